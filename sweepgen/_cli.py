@@ -1,0 +1,99 @@
+"""Shared pieces of the command-line interface: errors, JSON, tables, numbers.
+
+Data goes to stdout, messages and errors to stderr. Expected errors
+(:class:`sweepgen.errors.SweepgenError`) become one line on stderr and their exit
+code (2 bad input, 1 a check failed or an instrument refused); no traceback.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import math
+import sys
+
+import click
+
+from sweepgen.errors import SweepgenError
+
+_PREFIXES = [(1e12, "T"), (1e9, "G"), (1e6, "M"), (1e3, "k"), (1.0, ""), (1e-3, "m"), (1e-6, "µ"),
+             (1e-9, "n"), (1e-12, "p")]
+_NO_PREFIX = {"%", "", "photons", "m/s²", "m/s^2", "samples", "bits", "V/s"}
+
+
+def handles_errors(func):
+    """Decorator for command callbacks: expected errors become one line and an exit code."""
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        try:
+            return func(*args, **kwargs)
+        except SweepgenError as exc:
+            fail(str(exc), exc.exit_code)
+        except KeyboardInterrupt:
+            click.echo("sweepgen: interrupted", err=True)
+            sys.exit(130)
+
+    return wrapper
+
+
+def fail(message: str, code: int):
+    """Print ``sweepgen: error: message`` on stderr and exit with ``code``."""
+    text = " ".join(str(message).split())
+    click.echo(f"sweepgen: error: {text}", err=True)
+    sys.exit(code)
+
+
+def jsonable(obj):
+    """Convert NumPy scalars/arrays and non-finite floats to plain JSON values (NaN -> null)."""
+    if isinstance(obj, dict):
+        return {str(k): jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [jsonable(v) for v in obj]
+    if hasattr(obj, "tolist") and not isinstance(obj, (str, bytes)):
+        return jsonable(obj.tolist())
+    if isinstance(obj, float):
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, (str, int, bool)) or obj is None:
+        return obj
+    return str(obj)
+
+
+def emit_json(doc) -> None:
+    """Write one JSON document to stdout, and nothing else."""
+    click.echo(json.dumps(jsonable(doc), indent=2, allow_nan=False))
+
+
+def si(value, unit: str = "", digits: int = 4) -> str:
+    """Format a number with an SI prefix: ``si(7.187e10, "Hz/s") -> '71.87 GHz/s'``."""
+    if value is None:
+        return "—"
+    if isinstance(value, float) and not math.isfinite(value):
+        return str(value)
+    if unit in _NO_PREFIX or value == 0:
+        return f"{value:.{digits}g} {unit}".rstrip()
+    mag = abs(value)
+    for factor, prefix in _PREFIXES:
+        if mag >= factor * 0.9995:
+            return f"{value / factor:.{digits}g} {prefix}{unit}"
+    factor, prefix = _PREFIXES[-1]
+    return f"{value / factor:.{digits}g} {prefix}{unit}"
+
+
+def table(rows, headers=None) -> str:
+    """A compact left-aligned text table (columns separated by two spaces)."""
+    rows = [[str(c) for c in r] for r in rows]
+    if headers:
+        rows = [list(headers)] + rows
+    if not rows:
+        return ""
+    widths = [max(len(r[i]) for r in rows if i < len(r)) for i in range(max(len(r) for r in rows))]
+    lines = []
+    for n, r in enumerate(rows):
+        lines.append("  ".join(c.ljust(widths[i]) for i, c in enumerate(r)).rstrip())
+        if headers and n == 0:
+            lines.append("  ".join("-" * w for w in widths))
+    return "\n".join(lines)
+
+
+json_option = click.option("--json", "as_json", is_flag=True, help="Print one JSON document on stdout (SI units).")

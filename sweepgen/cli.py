@@ -1,0 +1,53 @@
+"""The ``sweepgen`` command line.
+
+Each command lives in its own module under :mod:`sweepgen.commands` and is
+imported only when it runs (or when help lists it), so that ``sweepgen --help``
+starts quickly. To add a command, write ``sweepgen/commands/NAME.py`` defining a
+click command called ``command`` and add it to ``COMMANDS`` below.
+"""
+
+from __future__ import annotations
+
+import importlib
+
+import click
+
+from sweepgen import __version__
+
+#: command name -> (module under sweepgen.commands, one-line help shown in the listing)
+COMMANDS = {
+    "plan": ("plan", "Plan the sweep for a scenario and print its numbers."),
+    "profiles": ("profiles", "List the built-in species, lasers, generators and scenarios."),
+    "demo": ("demo", "Run the whole job on built-in data and write a report."),
+}
+
+
+class LazyGroup(click.Group):
+    """A group that imports a command's module only when that command is used."""
+
+    def list_commands(self, ctx):
+        return list(COMMANDS)
+
+    def get_command(self, ctx, name):
+        if name not in COMMANDS:
+            return None
+        module = importlib.import_module(f"sweepgen.commands.{COMMANDS[name][0]}")
+        return module.command
+
+    def format_commands(self, ctx, formatter):
+        rows = [(name, help_) for name, (_, help_) in COMMANDS.items()]
+        with formatter.section("Commands"):
+            formatter.write_dl(rows)
+
+
+@click.group(cls=LazyGroup, context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+@click.version_option(__version__, "--version", prog_name="sweepgen")
+def main():
+    """Plan, check, simulate and play frequency-chirped laser sweeps that slow
+    atomic and molecular beams.
+
+    \b
+    Example:
+      sweepgen demo                 # the whole job on built-in data
+      sweepgen plan rb-pulsed-oven  # the sweep for a built-in scenario
+    """

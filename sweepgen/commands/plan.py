@@ -1,0 +1,69 @@
+"""``sweepgen plan SCENARIO``: the sweep and the numbers to check it by."""
+
+from __future__ import annotations
+
+import click
+
+from sweepgen._cli import emit_json, handles_errors, json_option, si, table
+
+ROWS = [
+    ("capture_velocity", "capture (start) velocity", "m/s"),
+    ("end_velocity", "end velocity", "m/s"),
+    ("margin", "margin η", ""),
+    ("deceleration_min", "design deceleration, min", "m/s²"),
+    ("deceleration_max", "design deceleration, max", "m/s²"),
+    ("lag_velocity_start", "lag behind resonance at start", "m/s"),
+    ("start_detuning", "start detuning", "Hz"),
+    ("end_detuning", "end detuning", "Hz"),
+    ("chirp_span", "chirp span", "Hz"),
+    ("chirp_rate_max", "largest chirp rate", "Hz/s"),
+    ("chirp_duration", "chirp duration", "s"),
+    ("slowing_distance", "slowing distance", "m"),
+    ("start_position", "design atom at chirp start", "m"),
+    ("start_time", "chirp start after trigger", "s"),
+    ("arrival_time", "arrival at target", "s"),
+    ("photons_per_atom", "photons per atom", "photons"),
+    ("survival_fraction", "survival (dark-state loss)", ""),
+    ("doppler_limit", "Doppler limit", "K"),
+    ("recoil_velocity", "recoil velocity", "m/s"),
+]
+
+
+@click.command(short_help="Plan the sweep for a scenario.")
+@click.argument("scenario")
+@json_option
+@click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
+              help="Also draw the sweep (PNG or SVG by extension).")
+@handles_errors
+def command(scenario, as_json, plot_file):
+    """Plan the detuning sweep for SCENARIO (a built-in key or a path).
+
+    \b
+    Example:
+      sweepgen plan rb-pulsed-oven --json
+    """
+    from sweepgen.planner import plan
+    from sweepgen.scenario import load_scenario
+
+    sc = load_scenario(scenario)
+    result = plan(sc)
+    doc = result.to_json()
+    if plot_file:
+        from sweepgen.plots import plot_plan
+
+        plot_plan(result, plot_file)
+    if as_json:
+        emit_json(doc)
+        return
+    click.echo(f"{sc.title}  [{sc.species.key}, {'pulsed' if sc.pulsed else 'continuous'} source]")
+    rows = []
+    for key, label, unit in ROWS:
+        value = doc.get(key)
+        if value is None and key in ("start_time", "arrival_time"):
+            continue
+        if key == "survival_fraction" and sc.species.loss_per_photon == 0:
+            continue
+        rows.append((label, si(value, unit)))
+    click.echo(table(rows))
+    if plot_file:
+        click.echo(f"plot: {plot_file}", err=True)

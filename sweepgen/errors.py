@@ -1,0 +1,72 @@
+"""Every error sweepgen raises on purpose, in one place.
+
+The CLI maps them to exit codes without a traceback:
+
+* :class:`InputError` (exit 2): a file, key, value or option is wrong. The
+  message is one line naming the file, the key and what was expected.
+* :class:`CheckFailed` (exit 1): the input is well formed but a rule fails (the
+  sweep would not be safe or playable).
+* :class:`InstrumentError` (exit 1): an instrument or link refused, timed out or
+  answered wrongly. ``step`` names the step of the sequence that failed.
+"""
+
+from __future__ import annotations
+
+
+class SweepgenError(Exception):
+    """Base class of the expected errors; ``exit_code`` is what the CLI returns."""
+
+    exit_code = 1
+
+
+class InputError(SweepgenError, ValueError):
+    """Bad input: a user file, a key in it, a value or a command-line option."""
+
+    exit_code = 2
+
+    def __init__(self, message: str, *, file: str | None = None, key: str | None = None):
+        self.file = file
+        self.key = key
+        self.detail = message
+        where = []
+        if file:
+            where.append(str(file))
+        if key:
+            where.append(f"key '{key}'")
+        prefix = ": ".join(where)
+        super().__init__(f"{prefix}: {message}" if prefix else message)
+
+
+class PlanError(InputError):
+    """The scenario is well formed but asks for a sweep that cannot exist
+    (for example the slowing distance does not fit before the target)."""
+
+
+class CheckFailed(SweepgenError):
+    """At least one rule of the checker failed; ``findings`` holds them all."""
+
+    exit_code = 1
+
+    def __init__(self, message: str, findings=None):
+        super().__init__(message)
+        self.findings = findings or []
+
+
+class InstrumentError(SweepgenError):
+    """An instrument or a link failed; ``step`` names where in the sequence."""
+
+    exit_code = 1
+
+    def __init__(self, message: str, *, step: str | None = None, reply: str | None = None):
+        self.step = step
+        self.reply = reply
+        text = f"step '{step}': {message}" if step else message
+        if reply:
+            text += f" (instrument said: {reply})"
+        super().__init__(text)
+
+
+class DriverError(SweepgenError):
+    """A delivery driver could not deliver the table (file system, registry)."""
+
+    exit_code = 1

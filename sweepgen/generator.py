@@ -1,0 +1,185 @@
+"""Generator profiles: what plays the table, and how it is reached.
+
+A generator profile (``profiles/generators/*.toml``) describes an
+arbitrary-waveform generator on a VISA link (``kind = "awg"``) or a ramp board on
+a serial link (``kind = "board"``): its sample rates, memory, record
+granularity, output (DAC volts, or DDS frequency words), the load it really
+drives, the link, and for an AWG the SCPI command templates of its dialect.
+
+The voltage really delivered at the actuator input follows from the output
+termination setting and the real load: a generator with source impedance
+``R_s`` set for a load ``R_T`` produces an open-circuit voltage
+``V_prog (R_T + R_s)/R_T``, of which ``R_L/(R_L + R_s)`` reaches a load ``R_L``.
+Set for 50 Ω and driving a high-impedance input, that is twice the programmed
+voltage (common practice of function generators).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from sweepgen import catalog
+from sweepgen._config import Section, load_toml
+
+HIGH_Z = math.inf
+
+
+@dataclass(frozen=True)
+class Sampling:
+    rate_min: float                    # samples/s
+    rate_max: float                    # samples/s
+    rates: tuple | None                # the only rates it plays (None: any in [min, max])
+    memory: int                        # samples per channel
+    granularity: int                   # record length must be a multiple of this
+    min_length: int                    # samples
+
+    def allows(self, rate: float, rel: float = 1e-9) -> bool:
+        if self.rates is not None:
+            return any(abs(rate - r) <= rel * r for r in self.rates)
+        return self.rate_min * (1 - rel) <= rate <= self.rate_max * (1 + rel)
+
+
+@dataclass(frozen=True)
+class Output:
+    kind: str                          # "voltage" | "frequency"
+    range_min: float                   # V programmed (voltage) or Hz (frequency)
+    range_max: float
+    dac_bits: int | None = None        # voltage outputs
+    termination: float = HIGH_Z        # ohm, the load the instrument is set for
+    load: float = HIGH_Z               # ohm, the load it really drives
+    source_impedance: float = 50.0     # ohm
+    clock: float | None = None         # Hz, DDS reference clock (frequency outputs)
+    word_bits: int | None = None       # bits of the DDS frequency tuning word
+
+    @property
+    def delivered_factor(self) -> float:
+        """Volts at the real load per programmed volt."""
+        rs = self.source_impedance
+        k_open = 1.0 if math.isinf(self.termination) else (self.termination + rs) / self.termination
+        k_load = 1.0 if math.isinf(self.load) else self.load / (self.load + rs)
+        return k_open * k_load
+
+
+@dataclass(frozen=True)
+class Link:
+    kind: str                          # "visa" | "serial"
+    address: str                       # VISA resource string, or pyserial URL / device
+    throughput: float                  # bytes/s expected, for timeouts
+    timeout: float                     # s, base timeout of one exchange
+    baud: int | None = None            # serial only
+
+
+@dataclass(frozen=True)
+class Generator:
+    key: str
+    title: str
+    kind: str                          # "awg" | "board"
+    channels: int
+    sampling: Sampling
+    output: Output
+    link: Link
+    commands: object = None            # sweepgen.scpi.Commands for an AWG, None for a board
+    path: Path | None = field(default=None, compare=False)
+
+
+def load_generator(ref, *, relative_to=None, file=None, key=None) -> Generator:
+    """Load a generator profile by built-in key or path."""
+    path = catalog.resolve("generators", ref, relative_to=relative_to, file=file, key=key)
+    return generator_from_dict(load_toml(path), path)
+
+
+def _impedance(sec: Section, name: str, default):
+    value = sec.raw(name, default)
+    if value is default and default is not None and not isinstance(default, str):
+        return default
+    if isinstance(value, str) and value.strip().lower() in ("high-z", "highz", "hi-z", "inf"):
+        return HIGH_Z
+    return sec.quantity(name, "ohm", positive=True, example="50 ohm")
+
+
+def generator_from_dict(data: dict, path) -> Generator:
+    top = Section(data, path)
+    title = top.string("title")
+    kind = top.string("kind", choices=("awg", "board"))
+    channels = top.number("channels", 1, integer=True, minimum=1)
+
+    sm = top.section("sampling")
+    rates = None
+    if sm.has("rates"):
+        raw = sm.raw("rates")
+        if not isinstance(raw, list) or not raw:
+            raise sm.error("rates", "expected a non-empty list of sample rates such as [\"1 MSa/s\", \"10 MSa/s\"]")
+        from sweepgen import units
+
+        rates = tuple(sorted(units.parse(r, "Hz", file=sm.file, key=sm.key("rates"), example="1 MSa/s")
+                             for r in raw))
+        if any(r <= 0 for r in rates):
+            raise sm.error("rates", "sample rates must be greater than zero")
+        rate_min, rate_max = rates[0], rates[-1]
+        for name in ("rate_min", "rate_max"):
+            if sm.has(name):
+                raise sm.error(name, "give either 'rates' or 'rate_min'/'rate_max', not both")
+    else:
+        rate_min = sm.quantity("rate_min", "Hz", positive=True, example="1 kSa/s")
+        rate_max = sm.quantity("rate_max", "Hz", positive=True, example="100 MSa/s")
+        if rate_max < rate_min:
+            raise sm.error("rate_max", f"expected at least rate_min ({rate_min:g} Sa/s)")
+    memory = sm.number("memory", integer=True, minimum=1)
+    granularity = sm.number("granularity", 1, integer=True, minimum=1)
+    min_length = sm.number("min_length", 1, integer=True, minimum=1)
+    sm.finish()
+    if min_length > memory:
+        raise top.error("sampling.min_length", f"expected at most the memory ({memory} samples)")
+    sampling = Sampling(rate_min, rate_max, rates, memory, granularity, min_length)
+
+    out = top.section("output")
+    okind = out.string("kind", "voltage", choices=("voltage", "frequency"))
+    if okind == "voltage":
+        lo = out.quantity("range_min", "V", example="-5 V")
+        hi = out.quantity("range_max", "V", example="5 V")
+        bits = out.number("dac_bits", integer=True, minimum=2, maximum=32)
+        termination = _impedance(out, "termination", HIGH_Z)
+        load = _impedance(out, "load", HIGH_Z)
+        rs = out.quantity("source_impedance", "ohm", 50.0, nonnegative=True, example="50 ohm")
+        output = Output("voltage", lo, hi, dac_bits=bits, termination=termination, load=load,
+                        source_impedance=rs)
+    else:
+        clock = out.quantity("clock", "Hz", positive=True, example="1 GHz")
+        word_bits = out.number("word_bits", integer=True, minimum=8, maximum=64)
+        lo = out.quantity("range_min", "Hz", nonnegative=True, example="1 MHz")
+        hi = out.quantity("range_max", "Hz", positive=True, example="400 MHz")
+        if hi > clock / 2:
+            raise out.error("range_max", f"a DDS cannot synthesise above half its clock ({clock / 2:g} Hz)")
+        output = Output("frequency", lo, hi, clock=clock, word_bits=word_bits)
+    if not output.range_max > output.range_min:
+        raise out.error("range_max", "expected a value above range_min")
+    out.finish()
+
+    ln = top.section("link")
+    lkind = ln.string("kind", choices=("visa", "serial"))
+    if lkind == "visa":
+        address = ln.string("resource")
+        baud = None
+    else:
+        address = ln.string("port")
+        baud = ln.number("baud", 115200, integer=True, minimum=1)
+    throughput = ln.quantity("throughput", "B/s", positive=True, example="1 MB/s")
+    timeout = ln.quantity("timeout", "s", 5.0, positive=True, example="5 s")
+    ln.finish()
+    link = Link(lkind, address, throughput, timeout, baud)
+    if (kind == "awg") != (lkind == "visa"):
+        raise top.error("link.kind", f"a generator of kind '{kind}' needs link.kind = "
+                                     f"\"{'visa' if kind == 'awg' else 'serial'}\"")
+
+    commands = None
+    if kind == "awg":
+        from sweepgen.scpi import parse_commands
+
+        commands = parse_commands(top.section("commands"))
+    elif top.has("commands"):
+        raise top.error("commands", "a ramp board speaks the serial frame protocol; remove [commands]")
+    top.finish()
+    return Generator(key=Path(str(path)).stem, title=title, kind=kind, channels=channels, sampling=sampling,
+                     output=output, link=link, commands=commands, path=Path(str(path)))

@@ -1,0 +1,273 @@
+"""The planner: from a scenario to the design trajectory and the optical sweep.
+
+The design ("synchronous") atom starts at ``z0`` with the start velocity when the
+chirp starts and decelerates at ``a_d(z) = η · a_max(s(z))``. It rides on the
+low-velocity side of the Lorentzian, a lag ``Δv_lag(z)`` below the resonant
+velocity of the light, so the laser detuning during the chirp is
+
+    Δ(t) = -(v_s(t) + Δv_lag(z_s(t))) / λ
+
+(DEVELOPERS.md, "Physics conventions"). ``dv_s/dt = -a_d(z_s)``,
+``dz_s/dt = v_s`` are integrated with :func:`scipy.integrate.solve_ivp` and
+stopped by an event at ``v_s = end_velocity``. With uniform light the result is
+the constant-deceleration closed form (:func:`sweepgen.physics.closed_form_slowing`).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.integrate import solve_ivp
+from scipy.optimize import brentq
+
+from sweepgen import physics
+from sweepgen.errors import PlanError
+from sweepgen.scenario import Scenario
+
+#: Nodes of the cubic Hermite representation of the chirp (exact for uniform light).
+CHIRP_NODES = 513
+
+
+@dataclass(frozen=True)
+class Trajectory:
+    """The design atom during the chirp, sampled at ``time`` (s from the chirp start)."""
+
+    time: np.ndarray
+    position: np.ndarray      # m
+    velocity: np.ndarray      # m/s
+    deceleration: np.ndarray  # m/s², design deceleration a_d(z)
+    saturation: np.ndarray    # s(z)
+    lag: np.ndarray           # m/s, Δv_lag(z)
+    detuning: np.ndarray      # Hz
+    rate: np.ndarray          # Hz/s, dΔ/dt
+
+
+@dataclass(frozen=True)
+class Plan:
+    """The planned sweep and the numbers a physicist checks it by (SI units)."""
+
+    scenario: Scenario
+    trajectory: Trajectory
+    chirp_start: float        # s on the period's time axis (0 = trigger; the pulse is at pulse_time)
+    z_start: float            # m
+    z_end: float              # m
+    start_time: float | None  # s (pulsed) / None (continuous)
+    arrival_time: float | None
+
+    # -- the contract numbers ---------------------------------------------------
+    @property
+    def species(self):
+        return self.scenario.species
+
+    @property
+    def start_velocity(self) -> float:
+        return self.scenario.chirp.start_velocity
+
+    @property
+    def end_velocity(self) -> float:
+        return self.scenario.chirp.end_velocity
+
+    @property
+    def margin(self) -> float:
+        return self.scenario.chirp.margin
+
+    @property
+    def chirp_duration(self) -> float:
+        return float(self.trajectory.time[-1])
+
+    @property
+    def slowing_distance(self) -> float:
+        return self.z_end - self.z_start
+
+    @property
+    def start_detuning(self) -> float:
+        return float(self.trajectory.detuning[0])
+
+    @property
+    def end_detuning(self) -> float:
+        return float(self.trajectory.detuning[-1])
+
+    @property
+    def chirp_span(self) -> float:
+        return self.end_detuning - self.start_detuning
+
+    @property
+    def chirp_rate_max(self) -> float:
+        return float(np.max(self.trajectory.rate))
+
+    @property
+    def photons_per_atom(self) -> float:
+        sp = self.species
+        return physics.photons_to_slow(self.start_velocity - self.end_velocity, sp.mass, sp.wavelength)
+
+    def to_json(self) -> dict:
+        """The ``sweepgen plan --json`` document (SI units, Hz for detunings)."""
+        sp = self.species
+        tr = self.trajectory
+        return {
+            "capture_velocity": self.start_velocity,
+            "end_velocity": self.end_velocity,
+            "margin": self.margin,
+            "deceleration_min": float(np.min(tr.deceleration)),
+            "deceleration_max": float(np.max(tr.deceleration)),
+            "lag_velocity_start": float(tr.lag[0]),
+            "start_detuning": self.start_detuning,
+            "end_detuning": self.end_detuning,
+            "chirp_span": self.chirp_span,
+            "chirp_rate_max": self.chirp_rate_max,
+            "chirp_duration": self.chirp_duration,
+            "slowing_distance": self.slowing_distance,
+            "start_time": self.start_time,
+            "arrival_time": self.arrival_time,
+            "photons_per_atom": self.photons_per_atom,
+            "doppler_limit": physics.doppler_limit(sp.gamma),
+            "recoil_velocity": physics.recoil_velocity(sp.mass, sp.wavelength),
+            "start_position": self.z_start,
+            "end_position": self.z_end,
+            "survival_fraction": float(physics.survival_fraction(self.photons_per_atom, sp.loss_per_photon)),
+        }
+
+    def schedule(self):
+        """The sweep over one period as a :class:`sweepgen.schedule.Schedule`."""
+        from sweepgen.schedule import Schedule
+
+        return Schedule.from_plan(self)
+
+    def design_resonance(self, t):
+        """Detuning resonant with the design atom itself, ``-v_s/λ``, at period times ``t``
+        during the chirp (NaN outside); for plots."""
+        t = np.asarray(t, dtype=float) - self.chirp_start
+        tr = self.trajectory
+        inside = (t >= 0) & (t <= tr.time[-1])
+        v = np.interp(t, tr.time, tr.velocity)
+        return np.where(inside, -v / self.species.wavelength, np.nan)
+
+
+# ----------------------------------------------------------------------------------
+def _integrate(scenario: Scenario, z0: float, *, dense: bool):
+    """Integrate the design atom from ``z0``; returns (solution, duration) or raises PlanError."""
+    sp = scenario.species
+    ch = scenario.chirp
+    light = scenario.light
+    eta = ch.margin
+
+    def accel(z):
+        return eta * physics.max_deceleration(float(light.saturation_at(z)), sp.gamma, sp.wavelength, sp.mass)
+
+    def rhs(_t, y):
+        return (y[1], -accel(y[0]))
+
+    def stopped(_t, y):
+        return y[1] - ch.end_velocity
+
+    stopped.terminal = True
+    stopped.direction = -1
+
+    # An upper bound on the time: the weakest deceleration between z0 and far beyond the target.
+    z_far = max(scenario.target.distance, z0) + 10.0 * max(scenario.target.distance, 1.0)
+    zs = np.linspace(z0, z_far, 2001)
+    a_min = eta * physics.max_deceleration(light.saturation_at(zs).min(), sp.gamma, sp.wavelength, sp.mass)
+    if a_min <= 0:
+        raise PlanError("the slowing light has zero intensity somewhere on the path", file=str(scenario.path),
+                        key="light")
+    t_max = 1.5 * (ch.start_velocity - ch.end_velocity) / a_min
+    sol = solve_ivp(rhs, (0.0, t_max), [z0, ch.start_velocity], method="DOP853", rtol=1e-11,
+                    atol=[1e-12, 1e-10], events=stopped, dense_output=dense)
+    if sol.status != 1 or not len(sol.t_events[0]):
+        raise PlanError(f"the design atom does not reach the end velocity ({ch.end_velocity:g} m/s) "
+                        f"within {t_max:.3g} s; raise light.saturation or check the beam geometry",
+                        file=str(scenario.path), key="light")
+    return sol, float(sol.t_events[0][0])
+
+
+def _end_position(scenario, z0) -> float:
+    sol, _ = _integrate(scenario, z0, dense=False)
+    return float(sol.y_events[0][0][0])
+
+
+def _fit_message(scenario, needed, available, z_from, what) -> str:
+    ch = scenario.chirp
+    return (f"the slowing distance is {needed:.4g} m but only {available:.4g} m lie between {what} "
+            f"({z_from:.4g} m) and the target ({scenario.target.distance:.4g} m); lower chirp.start_velocity "
+            f"(now {ch.start_velocity:g} m/s), raise chirp.margin (now {ch.margin:g}) or light.saturation, "
+            f"or move the target further away")
+
+
+def plan(scenario: Scenario) -> Plan:
+    """Plan the sweep of ``scenario``.
+
+    Raises
+    ------
+    PlanError
+        When the sweep cannot exist: the slowing distance does not fit between
+        the design atom's start and the target, the chirp would start before the
+        atom reaches the light, ...
+    """
+    ch = scenario.chirp
+    light = scenario.light
+    target = scenario.target.distance
+    file = str(scenario.path)
+
+    if not scenario.pulsed:
+        z0 = light.start
+        z_end = _end_position(scenario, z0)
+        if z_end > target:
+            raise PlanError(_fit_message(scenario, z_end - z0, target - z0, z0, "the light start"),
+                            file=file, key="chirp.start_velocity")
+    elif ch.start_time == "auto":
+        z_end_first = _end_position(scenario, light.start)
+        if z_end_first > target:
+            raise PlanError(_fit_message(scenario, z_end_first - light.start, target - light.start,
+                                         light.start, "the light start"), file=file, key="chirp.start_velocity")
+        if not light.focused:
+            z0 = target - (z_end_first - light.start)
+        else:
+            z0 = brentq(lambda z: _end_position(scenario, z) - target, light.start, target,
+                        xtol=1e-9, rtol=1e-12)
+    else:
+        z0 = ch.start_velocity * (ch.start_time - scenario.pulse_time)
+        if z0 < light.start:
+            earliest = scenario.pulse_time + light.start / ch.start_velocity
+            raise PlanError(f"at chirp.start_time the design atom is at {z0:.4g} m, before the light start "
+                            f"({light.start:.4g} m); start the chirp at {earliest * 1e3:.4g} ms or later, "
+                            f"or use start_time = \"auto\"", file=file, key="chirp.start_time")
+        z_end = _end_position(scenario, z0)
+        if z_end > target:
+            raise PlanError(_fit_message(scenario, z_end - z0, target - z0, z0,
+                                         "the design atom's position at chirp.start_time"),
+                            file=file, key="chirp.start_time")
+
+    sol, duration = _integrate(scenario, z0, dense=True)
+    trajectory = _sample(scenario, sol, duration)
+    z_end = float(trajectory.position[-1])
+    if scenario.pulsed:
+        start_time = scenario.pulse_time + z0 / ch.start_velocity
+        arrival = start_time + duration + max(target - z_end, 0.0) / ch.end_velocity
+        chirp_start = start_time
+    else:
+        start_time = arrival = None
+        chirp_start = 0.0
+    return Plan(scenario=scenario, trajectory=trajectory, chirp_start=chirp_start, z_start=z0, z_end=z_end,
+                start_time=start_time, arrival_time=arrival)
+
+
+def _sample(scenario: Scenario, sol, duration: float) -> Trajectory:
+    sp = scenario.species
+    light = scenario.light
+    eta = scenario.chirp.margin
+    t = np.linspace(0.0, duration, CHIRP_NODES)
+    z, v = sol.sol(t)
+    v[-1] = scenario.chirp.end_velocity       # the event's value, exactly
+    v[0] = scenario.chirp.start_velocity
+    s = light.saturation_at(z)
+    a = eta * physics.max_deceleration(s, sp.gamma, sp.wavelength, sp.mass)
+    lag = physics.lag_velocity(s, eta, sp.gamma, sp.wavelength)
+    detuning = -(v + lag) / sp.wavelength
+    # d(lag)/dz = (λΓ/4π) sqrt(1/η - 1) · (ds/dz) / (2 sqrt(1+s))
+    dlag_dz = (sp.wavelength * sp.gamma / (4.0 * math.pi) * math.sqrt(1.0 / eta - 1.0)
+               * light.saturation_slope(z) / (2.0 * np.sqrt(1.0 + s)))
+    rate = (a - v * dlag_dz) / sp.wavelength
+    return Trajectory(time=t, position=z, velocity=v, deceleration=a, saturation=s, lag=lag,
+                      detuning=detuning, rate=rate)

@@ -1,0 +1,238 @@
+"""The scenario file: what the user wants to slow, where, and how hard.
+
+Loading parses every value once (units to SI floats) and validates ranges and
+relations that do not need the physics (end below start velocity, margin in
+(0, 1), a start time only for pulsed sources, ...). Relations that need the
+physics (does the slowing distance fit?) are the planner's.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from sweepgen import catalog
+from sweepgen._config import Section, load_toml
+from sweepgen.errors import InputError
+from sweepgen.physics import gaussian_beam_saturation, rayleigh_range
+from sweepgen.sources import EffusiveSource, GaussianSource
+from sweepgen.species import Species, load_species
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class Light:
+    """The slowing beam along the beam line (it propagates along -z)."""
+
+    saturation: float           # peak s0 on axis
+    start: float                # m, where the light begins along the beam line
+    waist: float | None = None  # m, 1/e² radius at the focus (None: uniform)
+    focus: float = 0.0          # m, position of the focus
+    wavelength: float = 0.0     # m, needed for the Rayleigh range
+
+    @property
+    def focused(self) -> bool:
+        return self.waist is not None
+
+    @property
+    def rayleigh_range(self) -> float | None:
+        return rayleigh_range(self.waist, self.wavelength) if self.focused else None
+
+    def saturation_at(self, z):
+        """Saturation parameter s(z) on axis; zero before the light start."""
+        z = np.asarray(z, dtype=float)
+        if self.focused:
+            s = gaussian_beam_saturation(z, self.saturation, self.focus, self.rayleigh_range)
+        else:
+            s = np.full_like(z, self.saturation)
+        return np.where(z >= self.start, s, 0.0)
+
+    def saturation_slope(self, z):
+        """ds/dz on axis (zero for uniform light and before the light start)."""
+        z = np.asarray(z, dtype=float)
+        if not self.focused:
+            return np.zeros_like(z)
+        zr = self.rayleigh_range
+        u = (z - self.focus) / zr
+        slope = -2.0 * self.saturation * u / (zr * (1.0 + u * u) ** 2)
+        return np.where(z >= self.start, slope, 0.0)
+
+
+@dataclass(frozen=True)
+class Target:
+    distance: float             # m, source -> target centre
+    capture_velocity: float     # m/s
+    aperture: float | None = None   # m, radius of the target aperture (optional)
+
+
+@dataclass(frozen=True)
+class Chirp:
+    start_velocity: float       # m/s
+    end_velocity: float         # m/s
+    margin: float               # η
+    start_time: object          # None (continuous), "auto", or float seconds
+    hold: float                 # s
+    return_time: float          # s
+    period: float               # s
+
+
+@dataclass(frozen=True)
+class Drive:
+    """How the sweep is played: options read by the checker and the renderer."""
+
+    sample_rate: float | None = None      # samples/s; None = automatic choice
+    channel: int = 1
+    max_step: float | None = None         # Hz: largest detuning change per sample / DAC step
+    tracking_fraction: float = 0.25       # tolerance as a fraction of the lag detuning
+
+
+@dataclass(frozen=True)
+class Scenario:
+    title: str
+    path: Path
+    species: Species
+    source: object                # EffusiveSource | GaussianSource
+    pulse_time: float | None      # s; None for a continuous beam
+    divergence: float | None      # rad, 1σ source divergence (transverse model), optional
+    light: Light
+    target: Target
+    chirp: Chirp
+    drive: Drive
+    laser_ref: str | None = None
+    generator_ref: str | None = None
+    digest: str = field(default="", compare=False)
+
+    @property
+    def pulsed(self) -> bool:
+        return self.pulse_time is not None
+
+    @property
+    def base_dir(self) -> Path:
+        return self.path.parent
+
+    def laser_path(self) -> Path:
+        if self.laser_ref is None:
+            raise InputError("no laser named; add  laser = \"...\"  (a built-in key or a path)",
+                             file=str(self.path), key="laser")
+        return catalog.resolve("lasers", self.laser_ref, relative_to=self.base_dir,
+                                file=str(self.path), key="laser")
+
+    def generator_path(self) -> Path:
+        if self.generator_ref is None:
+            raise InputError("no generator named; add  generator = \"...\"  (a built-in key or a path)",
+                             file=str(self.path), key="generator")
+        return catalog.resolve("generators", self.generator_ref, relative_to=self.base_dir,
+                                file=str(self.path), key="generator")
+
+
+def load_scenario(ref) -> Scenario:
+    """Load a scenario by built-in key or path, validated, in SI units."""
+    path = catalog.resolve("scenarios", str(ref))
+    data = load_toml(path)
+    return scenario_from_dict(data, path)
+
+
+def scenario_from_dict(data: dict, path) -> Scenario:
+    path = Path(str(path))
+    file = str(path)
+    top = Section(data, file)
+    title = top.string("title")
+    species_ref = top.string("species")
+    species = load_species(species_ref, relative_to=path.parent, file=file, key="species")
+    laser_ref = top.string("laser", None)
+    generator_ref = top.string("generator", None)
+
+    src = top.section("source")
+    model = src.string("model", choices=("effusive", "gaussian"))
+    if model == "effusive":
+        temperature = src.quantity("temperature", "K", positive=True, example="390 K")
+        source = EffusiveSource(temperature=temperature, mass=species.mass)
+    else:
+        mean = src.quantity("mean_velocity", "m/s", positive=True, example="170 m/s")
+        spread = src.quantity("velocity_spread", "m/s", positive=True, example="30 m/s")
+        source = GaussianSource(mean_velocity=mean, velocity_spread=spread)
+    pulse_time = src.quantity("pulse_time", "s", None, nonnegative=True, example="0 ms")
+    divergence = src.quantity("divergence", "rad", None, positive=True, example="10 mrad")
+    src.finish()
+
+    lt = top.section("light")
+    s0 = lt.number("saturation", positive=True)
+    light_start = lt.quantity("start", "m", 0.0, nonnegative=True, example="0.05 m")
+    waist = lt.quantity("waist", "m", None, positive=True, example="3 mm")
+    if lt.has("focus") and waist is None:
+        raise lt.error("focus", "a focus needs a waist; add light.waist (1/e² radius at the focus)")
+    focus = lt.quantity("focus", "m", 0.0, example="0 m")
+    lt.finish()
+    light = Light(saturation=s0, start=light_start, waist=waist, focus=focus,
+                  wavelength=species.wavelength)
+
+    tg = top.section("target")
+    distance = tg.quantity("distance", "m", positive=True, example="1.0 m")
+    capture_velocity = tg.quantity("capture_velocity", "m/s", positive=True, example="20 m/s")
+    aperture = tg.quantity("aperture", "m", None, positive=True, example="5 mm")
+    tg.finish()
+    if distance <= light_start:
+        raise tg.error("distance", f"the target ({distance:g} m) must lie beyond the light start "
+                                   f"({light_start:g} m)")
+    target = Target(distance=distance, capture_velocity=capture_velocity, aperture=aperture)
+
+    ch = top.section("chirp")
+    v1 = ch.quantity("start_velocity", "m/s", positive=True, example="260 m/s")
+    v2 = ch.quantity("end_velocity", "m/s", positive=True, example="15 m/s")
+    if not v2 < v1:
+        raise ch.error("end_velocity", f"expected an end velocity below the start velocity "
+                                       f"({v1:g} m/s), got {ch.data['end_velocity']!r}")
+    margin = ch.number("margin", minimum=0.0, maximum=1.0, exclusive=True)
+    if ch.has("start_time"):
+        raw = ch.raw("start_time")
+        if pulse_time is None:
+            raise ch.error("start_time", "a continuous beam has no chirp start time; remove it, "
+                                         "or add source.pulse_time for a pulsed source")
+        if raw == "auto":
+            start_time = "auto"
+        else:
+            start_time = ch.quantity("start_time", "s", nonnegative=True, example="1.2 ms")
+    else:
+        start_time = "auto" if pulse_time is not None else None
+    hold = ch.quantity("hold", "s", 0.0, nonnegative=True, example="0.5 ms")
+    return_time = ch.quantity("return_time", "s", positive=True, example="0.3 ms")
+    period = ch.quantity("period", "s", positive=True, example="20 ms")
+    ch.finish()
+    if pulse_time is not None and pulse_time >= period:
+        raise InputError(f"the source pulse at {pulse_time:g} s lies outside the period ({period:g} s)",
+                         file=file, key="source.pulse_time")
+    chirp = Chirp(start_velocity=v1, end_velocity=v2, margin=margin, start_time=start_time,
+                  hold=hold, return_time=return_time, period=period)
+
+    dv = top.section("drive", None)
+    drive = Drive()
+    if dv is not None:
+        rate_raw = dv.raw("sample_rate", "auto")
+        rate = None if rate_raw == "auto" else dv.quantity("sample_rate", "Hz", positive=True,
+                                                           example="10 MSa/s")
+        channel = dv.number("channel", 1, integer=True, minimum=1)
+        max_step = dv.quantity("max_step", "Hz", None, positive=True, example="500 kHz")
+        tracking = dv.number("tracking_fraction", 0.25, minimum=0.0, maximum=1.0, exclusive=True)
+        dv.finish()
+        drive = Drive(sample_rate=rate, channel=channel, max_step=max_step, tracking_fraction=tracking)
+    top.finish()
+
+    digest = scenario_digest(path, [species_ref and catalog.resolve(
+        "species", species_ref, relative_to=path.parent)])
+    return Scenario(title=title, path=path, species=species, source=source, pulse_time=pulse_time,
+                    divergence=divergence, light=light, target=target, chirp=chirp, drive=drive,
+                    laser_ref=laser_ref, generator_ref=generator_ref, digest=digest)
+
+
+def scenario_digest(path, others=()) -> str:
+    """SHA-256 over the scenario file and the profile files it uses (in order)."""
+    h = hashlib.sha256()
+    for p in [path, *others]:
+        if p is None:
+            continue
+        data = Path(str(p)).read_bytes()
+        h.update(len(data).to_bytes(8, "little"))
+        h.update(data)
+    return h.hexdigest()

@@ -1,0 +1,104 @@
+"""The rendered table: generator codes for one period, delivered in chunks.
+
+:class:`RenderedTable` is what the renderer produces and every driver consumes.
+The codes are never held in memory all at once for large tables: ``chunks()``
+evaluates the schedule and the tuning chain chunk by chunk, and can be iterated
+any number of times (each pass recomputes the same codes).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import zlib
+from dataclasses import dataclass, field
+from typing import Callable, Iterator
+
+import numpy as np
+
+DEFAULT_CHUNK = 1 << 18
+
+
+@dataclass(frozen=True)
+class TableInfo:
+    """Everything a driver or a reader needs to know about the codes (SI units)."""
+
+    sample_rate: float        # samples/s
+    count: int                # samples in the table (one period, padded to the granularity)
+    period_count: int         # samples that cover exactly one period (before padding)
+    dtype: str                # NumPy dtype string of the codes, e.g. "<i2" or "<u4"
+    output: str               # "voltage" (DAC codes) | "frequency" (DDS tuning words)
+    drive_unit: str           # "V" at the actuator input, or "Hz" of the DDS output
+    code_scale: float         # drive = code_offset + code_scale * code
+    code_offset: float
+    amplitude: float | None   # V peak-to-peak to program on the generator (voltage outputs)
+    offset: float | None      # V offset to program (voltage outputs)
+    channel: int = 1
+    scenario_digest: str = ""
+    tool_version: str = ""
+    extra: dict = field(default_factory=dict)   # renderer/chain details for sidecars
+
+    @property
+    def itemsize(self) -> int:
+        return np.dtype(self.dtype).itemsize
+
+    @property
+    def nbytes(self) -> int:
+        return self.count * self.itemsize
+
+    @property
+    def duration(self) -> float:
+        return self.count / self.sample_rate
+
+
+@dataclass
+class Frame:
+    """One chunk with its context, for drivers that write more than codes (CSV)."""
+
+    start: int                # index of the first sample
+    time: np.ndarray          # s
+    detuning: np.ndarray      # Hz, planned optical detuning
+    drive: np.ndarray         # drive units (V or Hz), planned (before quantisation)
+    codes: np.ndarray         # info.dtype
+
+
+class RenderedTable:
+    """Codes of one period plus metadata; iterate with :meth:`chunks` or :meth:`frames`."""
+
+    def __init__(self, info: TableInfo, frame_source: Callable[[int, int], Frame]):
+        self.info = info
+        self._frame_source = frame_source     # (start, stop) -> Frame
+        self._digests = None
+
+    def frames(self, size: int = DEFAULT_CHUNK) -> Iterator[Frame]:
+        for start in range(0, self.info.count, size):
+            yield self._frame_source(start, min(start + size, self.info.count))
+
+    def chunks(self, size: int = DEFAULT_CHUNK) -> Iterator[np.ndarray]:
+        """The codes in order, ``size`` samples at a time (dtype ``info.dtype``)."""
+        for frame in self.frames(size):
+            yield frame.codes
+
+    def codes(self) -> np.ndarray:
+        """All codes at once (only for small tables and tests)."""
+        return np.concatenate(list(self.chunks())) if self.info.count else np.empty(0, self.info.dtype)
+
+    def _digest(self):
+        if self._digests is None:
+            sha = hashlib.sha256()
+            crc = 0
+            for chunk in self.chunks():
+                data = np.ascontiguousarray(chunk).tobytes()
+                sha.update(data)
+                crc = zlib.crc32(data, crc)
+            self._digests = (sha.hexdigest(), crc & 0xFFFFFFFF)
+        return self._digests
+
+    @property
+    def sha256(self) -> str:
+        """SHA-256 of the code bytes in ``info.dtype`` (as stored in a raw file)."""
+        return self._digest()[0]
+
+    @property
+    def crc32(self) -> int:
+        """CRC-32 (``zlib.crc32``) of the code bytes in ``info.dtype``."""
+        return self._digest()[1]

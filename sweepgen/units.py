@@ -1,0 +1,128 @@
+"""Physical quantities at the boundary: text with a unit in, SI float out.
+
+Every physical value in a user file is a string such as ``"300 m/s"`` or
+``"-250 MHz/V"``. It is parsed here, once, with pint, checked for its dimension
+and converted to a plain float in the unit the caller names (SI, Hz for
+frequencies). Nothing inside the package converts units again.
+
+Two lab habits are handled explicitly:
+
+* ``"Sa"`` (sample) is known, so ``"10 MSa/s"`` is a sample rate of 1e7 /s.
+* Frequencies are cyclic (Hz). pint treats the radian as dimensionless, so it
+  would silently read ``"38 Mrad/s"`` as 38 MHz; a value in rad/s given where Hz
+  is expected is refused instead of being wrong by 2π.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from functools import lru_cache
+
+from sweepgen.errors import InputError
+
+_NUMBER_UNIT = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(.*?)\s*$")
+
+
+@lru_cache(maxsize=1)
+def registry():
+    """The one pint registry of the process (created on first use: pint is slow to import)."""
+    import pint
+
+    ureg = pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
+    ureg.define("Sa = 1 = sample")
+    return ureg
+
+
+def _describe(unit: str) -> str:
+    return f"a value in units of {unit}" if unit else "a dimensionless number"
+
+
+def parse(value, unit: str, *, file=None, key=None, example: str | None = None):
+    """Parse ``value`` (a string with a unit) and return a float in ``unit``.
+
+    Parameters
+    ----------
+    value : str
+        Text from a user file, for example ``"300 m/s"``.
+    unit : str
+        The unit wanted, for example ``"m/s"``; it fixes the dimension that is
+        accepted. ``""`` asks for a dimensionless value.
+    file, key : str, optional
+        Where the value came from, for the error message.
+    example : str, optional
+        An example of a correct value for the error message.
+
+    Raises
+    ------
+    InputError
+        Not a string, not parsable, wrong dimension, or not finite.
+    """
+    ex = f" such as '{example}'" if example else ""
+    if isinstance(value, bool) or not isinstance(value, (str, int, float)):
+        raise InputError(f"expected {_describe(unit)}{ex}, got {value!r}", file=file, key=key)
+    if isinstance(value, (int, float)):
+        if unit:
+            raise InputError(
+                f"{value!r} has no unit; write it as a string with its unit{ex or f' in {unit}'}",
+                file=file, key=key)
+        number = float(value)
+        if not math.isfinite(number):
+            raise InputError(f"expected a finite number, got {value!r}", file=file, key=key)
+        return number
+    text = value.strip()
+    if not text:
+        raise InputError(f"expected {_describe(unit)}{ex}, got an empty string", file=file, key=key)
+    lowered = text.lower()
+    if "nan" in lowered.split() or re.search(r"\b(nan|inf|infinity)\b", lowered):
+        raise InputError(f"expected a finite value, got {value!r}", file=file, key=key)
+    ureg = registry()
+    try:
+        match = _NUMBER_UNIT.match(text)
+        if match:
+            quantity = ureg.Quantity(float(match.group(1)), match.group(2) or "")
+        else:
+            quantity = ureg.Quantity(text)
+        target = ureg.Unit(unit) if unit else ureg.dimensionless
+    except Exception as exc:  # pint raises many types for bad text
+        raise InputError(f"cannot read {value!r} as a quantity ({_short(exc)}); "
+                         f"expected {_describe(unit)}{ex}", file=file, key=key) from None
+    if not hasattr(quantity, "dimensionality"):
+        quantity = ureg.Quantity(quantity)
+    if quantity.dimensionality != target.dimensionality:
+        got = f"{quantity.units:~}" or "no unit"
+        raise InputError(f"{value!r} has the wrong dimension ({got}); expected {_describe(unit)}{ex}",
+                         file=file, key=key)
+    if "radian" in str(quantity.units) and "radian" not in str(target):
+        raise InputError(f"{value!r} is an angular frequency; write cyclic frequencies in Hz "
+                         f"(Γ/2π, not Γ){ex}", file=file, key=key)
+    result = float(quantity.to(target).magnitude)
+    if not math.isfinite(result):
+        raise InputError(f"expected a finite value, got {value!r}", file=file, key=key)
+    return result
+
+
+def parse_any(value, *, file=None, key=None):
+    """Parse a quantity whose dimension the caller decides later.
+
+    Returns ``(magnitude_in_SI_base_units, dimensionality_string)``; used for
+    coefficients whose unit depends on the stage (``"MHz/V"``, ``"GHz/mA"``).
+    """
+    if not isinstance(value, str):
+        raise InputError(f"expected a string with a unit, got {value!r}", file=file, key=key)
+    ureg = registry()
+    try:
+        match = _NUMBER_UNIT.match(value)
+        quantity = (ureg.Quantity(float(match.group(1)), match.group(2) or "") if match
+                    else ureg.Quantity(value))
+        base = quantity.to_base_units()
+    except Exception as exc:
+        raise InputError(f"cannot read {value!r} as a quantity ({_short(exc)})", file=file, key=key) from None
+    if not math.isfinite(float(base.magnitude)):
+        raise InputError(f"expected a finite value, got {value!r}", file=file, key=key)
+    return float(base.magnitude), str(base.dimensionality)
+
+
+def _short(exc: Exception) -> str:
+    text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    return text[:120]
