@@ -235,8 +235,11 @@ def plan(scenario: Scenario) -> Plan:
                             f"or use start_time = \"auto\"", file=file, key="chirp.start_time")
         z_end = _end_position(scenario, z0)
         if z_end > target:
+            latest = scenario.pulse_time + (target - (z_end - z0)) / ch.start_velocity
+            hint = (f"; or start the chirp earlier (about {latest * 1e3:.4g} ms at the latest)"
+                    if latest * ch.start_velocity >= light.start else "")
             raise PlanError(_fit_message(scenario, z_end - z0, target - z0, z0,
-                                         "the design atom's position at chirp.start_time"),
+                                         "the design atom's position at chirp.start_time") + hint,
                             file=file, key="chirp.start_time")
 
     sol, duration = _integrate(scenario, z0, dense=True)

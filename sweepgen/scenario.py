@@ -9,6 +9,7 @@ physics (does the slowing distance fit?) are the planner's.
 from __future__ import annotations
 
 import hashlib
+import json
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -131,10 +132,14 @@ def load_scenario(ref) -> Scenario:
     """Load a scenario by built-in key or path, validated, in SI units."""
     path = catalog.resolve("scenarios", str(ref))
     data = load_toml(path)
-    return scenario_from_dict(data, path)
+    return scenario_from_dict(data, path, raw=path.read_bytes())
 
 
-def scenario_from_dict(data: dict, path) -> Scenario:
+def scenario_from_dict(data: dict, path, raw: bytes | None = None) -> Scenario:
+    """Build a scenario from parsed TOML; ``path`` names it in messages and anchors relative paths.
+
+    ``raw`` (the file's bytes) feeds the digest; without it the digest covers a canonical
+    rendering of ``data``."""
     path = Path(str(path))
     file = str(path)
     top = Section(data, file)
@@ -186,11 +191,11 @@ def scenario_from_dict(data: dict, path) -> Scenario:
                                        f"({v1:g} m/s), got {ch.data['end_velocity']!r}")
     margin = ch.number("margin", minimum=0.0, maximum=1.0, exclusive=True)
     if ch.has("start_time"):
-        raw = ch.raw("start_time")
+        start_raw = ch.raw("start_time")
         if pulse_time is None:
             raise ch.error("start_time", "a continuous beam has no chirp start time; remove it, "
                                          "or add source.pulse_time for a pulsed source")
-        if raw == "auto":
+        if start_raw == "auto":
             start_time = "auto"
         else:
             start_time = ch.quantity("start_time", "s", nonnegative=True, example="1.2 ms")
@@ -219,20 +224,19 @@ def scenario_from_dict(data: dict, path) -> Scenario:
         drive = Drive(sample_rate=rate, channel=channel, max_step=max_step, tracking_fraction=tracking)
     top.finish()
 
-    digest = scenario_digest(path, [species_ref and catalog.resolve(
-        "species", species_ref, relative_to=path.parent)])
+    if raw is None:
+        raw = json.dumps(data, sort_keys=True, default=str).encode()
+    digest = scenario_digest(raw, [catalog.resolve("species", species_ref, relative_to=path.parent)])
     return Scenario(title=title, path=path, species=species, source=source, pulse_time=pulse_time,
                     divergence=divergence, light=light, target=target, chirp=chirp, drive=drive,
                     laser_ref=laser_ref, generator_ref=generator_ref, digest=digest)
 
 
-def scenario_digest(path, others=()) -> str:
-    """SHA-256 over the scenario file and the profile files it uses (in order)."""
+def scenario_digest(raw: bytes, others=()) -> str:
+    """SHA-256 over the scenario's bytes and the profile files it uses (in order)."""
     h = hashlib.sha256()
-    for p in [path, *others]:
-        if p is None:
-            continue
-        data = Path(str(p)).read_bytes()
+    for item in [raw, *others]:
+        data = item if isinstance(item, bytes) else Path(str(item)).read_bytes()
         h.update(len(data).to_bytes(8, "little"))
         h.update(data)
     return h.hexdigest()

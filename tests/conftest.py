@@ -1,0 +1,86 @@
+"""Shared test helpers: small scenario files written into ``tmp_path``."""
+
+from __future__ import annotations
+
+import copy
+
+import pytest
+
+BASE_SCENARIO = {
+    "title": "test scenario",
+    "species": "rb87-d2",
+    "source": {"model": "effusive", "temperature": "390 K", "pulse_time": "0 ms"},
+    "light": {"saturation": 3.0, "start": "0.05 m"},
+    "target": {"distance": "1.0 m", "capture_velocity": "20 m/s"},
+    "chirp": {"start_velocity": "260 m/s", "end_velocity": "15 m/s", "margin": 0.6, "start_time": "auto",
+              "hold": "0.5 ms", "return_time": "0.3 ms", "period": "20 ms"},
+}
+
+
+def _value(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, float):
+        return repr(v) if v == v else "nan"
+    if isinstance(v, list):
+        return "[" + ", ".join(_value(x) for x in v) + "]"
+    return str(v)
+
+
+def to_toml(data: dict) -> str:
+    """A small TOML writer for test fixtures (scalars, lists, one or two levels of tables)."""
+    lines, tables = [], []
+    for key, value in data.items():
+        if isinstance(value, dict):
+            tables.append((key, value))
+        else:
+            lines.append(f"{key} = {_value(value)}")
+    for name, table in tables:
+        lines.append(f"\n[{name}]")
+        subtables = []
+        for key, value in table.items():
+            if isinstance(value, dict):
+                subtables.append((key, value))
+            else:
+                lines.append(f"{key} = {_value(value)}")
+        for sub, content in subtables:
+            lines.append(f"\n[{name}.{sub}]")
+            lines.extend(f"{k} = {_value(v)}" for k, v in content.items())
+    return "\n".join(lines) + "\n"
+
+
+def scenario_dict(**sections) -> dict:
+    """BASE_SCENARIO with sections updated: ``scenario_dict(chirp={"margin": 0.5})``.
+    A value of ``None`` removes a key (or a whole section)."""
+    data = copy.deepcopy(BASE_SCENARIO)
+    for name, change in sections.items():
+        if change is None:
+            data.pop(name, None)
+        elif isinstance(change, dict):
+            section = data.setdefault(name, {})
+            for key, value in change.items():
+                if value is None:
+                    section.pop(key, None)
+                else:
+                    section[key] = value
+        else:
+            data[name] = change
+    return data
+
+
+@pytest.fixture
+def write_scenario(tmp_path):
+    """Write a scenario built from BASE_SCENARIO into tmp_path; returns its path."""
+    counter = {"n": 0}
+
+    def write(data=None, text=None, name=None, **sections):
+        counter["n"] += 1
+        path = tmp_path / (name or f"scenario{counter['n']}.toml")
+        if text is None:
+            text = to_toml(data if data is not None else scenario_dict(**sections))
+        path.write_text(text, encoding="utf-8")
+        return path
+
+    return write

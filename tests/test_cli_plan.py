@@ -1,0 +1,118 @@
+"""``sweepgen plan`` and ``sweepgen profiles`` through the CLI: JSON contract,
+human table, and refusal of broken scenarios (exit 2, one line, no traceback)."""
+
+import json
+import subprocess
+import sys
+
+import pytest
+from click.testing import CliRunner
+
+from sweepgen.cli import main
+
+from conftest import scenario_dict, to_toml
+
+PLAN_KEYS = {"capture_velocity", "end_velocity", "margin", "deceleration_min", "deceleration_max",
+             "lag_velocity_start", "start_detuning", "end_detuning", "chirp_span", "chirp_rate_max",
+             "chirp_duration", "slowing_distance", "start_time", "arrival_time", "photons_per_atom",
+             "doppler_limit", "recoil_velocity"}
+
+
+def run(*args):
+    return CliRunner().invoke(main, list(args))
+
+
+def test_plan_json_has_the_contract_keys(write_scenario):
+    result = run("plan", str(write_scenario()), "--json")
+    assert result.exit_code == 0, result.stderr
+    doc = json.loads(result.stdout)
+    assert PLAN_KEYS <= set(doc)
+    assert doc["capture_velocity"] == 260.0 and doc["end_velocity"] == 15.0
+    assert doc["start_detuning"] < doc["end_detuning"] < 0
+
+
+def test_plan_human_table(write_scenario):
+    result = run("plan", str(write_scenario()))
+    assert result.exit_code == 0
+    assert "chirp span" in result.stdout and "MHz" in result.stdout
+
+
+@pytest.mark.parametrize("key", ["rb87-chopped-oven", "na23-continuous-focused", "caf-buffer-gas"])
+def test_builtin_scenarios_plan(key):
+    result = run("plan", key, "--json")
+    assert result.exit_code == 0, result.stderr
+    doc = json.loads(result.stdout)
+    assert doc["slowing_distance"] > 0
+
+
+def test_profiles_lists_builtins():
+    result = run("profiles", "--json")
+    doc = json.loads(result.stdout)
+    assert {"rb87-d2", "cs133-d2", "na23-d2", "k39-d2", "caf-a-x"} <= {x["key"] for x in doc["species"]}
+    assert {"rb87-chopped-oven", "na23-continuous-focused"} <= {x["key"] for x in doc["scenarios"]}
+
+
+BROKEN = [
+    # (name, sections or raw text, fragment expected in the message)
+    ("wrong unit", {"chirp": {"start_velocity": "260 m"}}, "chirp.start_velocity"),
+    ("missing key", {"chirp": {"margin": None}}, "chirp.margin"),
+    ("unknown key", {"chirp": {"speed": "3 m/s"}}, "chirp.speed"),
+    ("margin above one", {"chirp": {"margin": 1.2}}, "chirp.margin"),
+    ("margin zero", {"chirp": {"margin": 0.0}}, "chirp.margin"),
+    ("negative temperature", {"source": {"temperature": "-5 K"}}, "source.temperature"),
+    ("end above start", {"chirp": {"end_velocity": "300 m/s"}}, "chirp.end_velocity"),
+    ("NaN velocity", {"chirp": {"start_velocity": "nan m/s"}}, "chirp.start_velocity"),
+    ("NaN margin", {"chirp": {"margin": float("nan")}}, "chirp.margin"),
+    ("distance too short", {"target": {"distance": "0.4 m"}}, "chirp.start_velocity"),
+    ("unknown species", {"species": "unobtainium-d9"}, "species"),
+    ("bare number for a quantity", {"target": {"distance": 1.0}}, "target.distance"),
+    ("unknown source model", {"source": {"model": "laser-ablation"}}, "source.model"),
+    ("gaussian without spread", {"source": {"model": "gaussian", "temperature": None,
+                                            "mean_velocity": "170 m/s"}}, "source.velocity_spread"),
+    ("start time for continuous", {"source": {"pulse_time": None}, "chirp": {"start_time": "1 ms"}},
+     "chirp.start_time"),
+    ("chirp before light", {"chirp": {"start_time": "0.01 ms"}}, "chirp.start_time"),
+    ("focus without waist", {"light": {"focus": "0 m"}}, "light.focus"),
+    ("negative saturation", {"light": {"saturation": -1.0}}, "light.saturation"),
+    ("target before light", {"light": {"start": "2 m"}}, "target.distance"),
+    ("zero period", {"chirp": {"period": "0 s"}}, "chirp.period"),
+    ("angular frequency", {"drive": {"max_step": "3 Mrad/s"}}, "drive.max_step"),
+    ("missing section", {"target": None}, "target"),
+    ("string margin", {"chirp": {"margin": "0.6"}}, "chirp.margin"),
+    ("malformed TOML", "title = 'x'\n[chirp\nmargin = 0.5\n", "malformed TOML"),
+    ("not UTF-8", b"\xff\xfe\x00t", "UTF-8"),
+]
+
+
+@pytest.mark.parametrize("name,change,fragment", BROKEN, ids=[b[0] for b in BROKEN])
+def test_broken_scenarios_are_refused(tmp_path, name, change, fragment):
+    path = tmp_path / "broken.toml"
+    if isinstance(change, bytes):
+        path.write_bytes(change)
+    elif isinstance(change, str):
+        path.write_text(change)
+    else:
+        path.write_text(to_toml(scenario_dict(**change)))
+    result = run("plan", str(path), "--json")
+    assert result.exit_code == 2, (name, result.stdout, result.stderr)
+    assert result.stdout == ""
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1, lines
+    assert lines[0].startswith("sweepgen: error: ")
+    assert str(path) in lines[0] or "broken.toml" in lines[0]
+    assert fragment in lines[0]
+    assert "Traceback" not in result.stderr
+
+
+def test_missing_file_and_real_process(tmp_path):
+    # a real process: no traceback reaches the user, exit code 2
+    proc = subprocess.run([sys.executable, "-m", "sweepgen", "plan", str(tmp_path / "nope.toml")],
+                          capture_output=True, text=True)
+    assert proc.returncode == 2
+    assert "Traceback" not in proc.stderr
+    assert "nope.toml" in proc.stderr
+
+
+def test_version_and_usage_error():
+    assert run("--version").stdout.startswith("sweepgen, version ")
+    assert run("plan").exit_code == 2

@@ -1,0 +1,76 @@
+"""Scenario loading: units to SI once, relations checked, hypothesis round trips."""
+
+import math
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from sweepgen.errors import InputError
+from sweepgen.scenario import load_scenario, scenario_from_dict
+from sweepgen.sources import EffusiveSource, GaussianSource
+
+from conftest import scenario_dict, to_toml
+
+
+def test_builtin_scenario_in_si():
+    sc = load_scenario("rb87-chopped-oven")
+    assert sc.pulsed and sc.pulse_time == 0.0
+    assert isinstance(sc.source, EffusiveSource) and sc.source.temperature == 390.0
+    assert sc.chirp.hold == pytest.approx(5e-4) and sc.chirp.period == pytest.approx(0.02)
+    assert sc.divergence == pytest.approx(8e-3) and sc.target.aperture == pytest.approx(8e-3)
+    assert len(sc.digest) == 64
+
+
+def test_relative_species_path(tmp_path):
+    (tmp_path / "sp").mkdir()
+    (tmp_path / "sp" / "mine.toml").write_text(
+        (load_scenario.__globals__["catalog"].builtin_dir("species") / "rb87-d2.toml").read_text())
+    path = tmp_path / "s.toml"
+    path.write_text(to_toml(scenario_dict(species="sp/mine.toml")))
+    assert load_scenario(str(path)).species.key == "mine"
+
+
+def test_digest_changes_with_content(tmp_path):
+    a = tmp_path / "a.toml"
+    a.write_text(to_toml(scenario_dict()))
+    b = tmp_path / "b.toml"
+    b.write_text(to_toml(scenario_dict(chirp={"margin": 0.55})))
+    assert load_scenario(str(a)).digest != load_scenario(str(b)).digest
+
+
+@settings(max_examples=60, deadline=None)
+@given(v1=st.floats(10.0, 2000.0), frac=st.floats(0.001, 0.999), eta=st.floats(0.001, 0.999),
+       temp=st.floats(1.0, 3000.0), gaussian=st.booleans(), hold_us=st.floats(0, 1e4),
+       unit=st.sampled_from([("m/s", 1.0), ("km/s", 1e3), ("cm/s", 1e-2)]))
+def test_round_trip_values(tmp_path_factory, v1, frac, eta, temp, gaussian, hold_us, unit):
+    name, factor = unit
+    source = ({"model": "gaussian", "temperature": None, "mean_velocity": f"{v1 / factor!r} {name}",
+               "velocity_spread": "30 m/s"} if gaussian else {"temperature": f"{temp!r} K"})
+    data = scenario_dict(source=source, chirp={"start_velocity": f"{v1 / factor!r} {name}",
+                                               "end_velocity": f"{frac * v1!r} m/s", "margin": eta,
+                                               "hold": f"{hold_us!r} us"})
+    path = tmp_path_factory.mktemp("rt") / "s.toml"
+    path.write_text(to_toml(data))
+    sc = load_scenario(str(path))
+    assert math.isclose(sc.chirp.start_velocity, v1, rel_tol=1e-12)
+    assert math.isclose(sc.chirp.end_velocity, frac * v1, rel_tol=1e-12)
+    assert sc.chirp.margin == eta
+    assert math.isclose(sc.chirp.hold, hold_us * 1e-6, rel_tol=1e-12, abs_tol=1e-18)
+    if gaussian:
+        assert isinstance(sc.source, GaussianSource)
+    else:
+        assert math.isclose(sc.source.temperature, temp, rel_tol=1e-12)
+
+
+@settings(max_examples=60, deadline=None)
+@given(junk=st.one_of(st.text(max_size=12), st.integers(), st.floats(), st.booleans(),
+                      st.lists(st.integers(), max_size=3)))
+def test_any_junk_value_is_an_input_error_not_a_crash(junk):
+    data = scenario_dict(chirp={"start_velocity": junk})
+    try:
+        sc = scenario_from_dict(data, "junk.toml")
+    except InputError as exc:
+        assert "junk.toml" in str(exc) and "\n" not in str(exc)
+    else:   # only a valid velocity string gets through
+        assert sc.chirp.start_velocity > sc.chirp.end_velocity

@@ -1,0 +1,51 @@
+"""Quantities at the boundary: parsing, dimension checks and clear errors."""
+
+import math
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from sweepgen import units
+from sweepgen.errors import InputError
+
+
+@pytest.mark.parametrize("text,unit,expected", [
+    ("300 m/s", "m/s", 300.0),
+    ("6.07 MHz", "Hz", 6.07e6),
+    ("-250 MHz/V", "Hz/V", -2.5e8),
+    ("20 degC", "K", 293.15),
+    ("10 MSa/s", "Hz", 1e7),
+    ("1.66933 mW/cm^2", "W/m^2", 16.6933),
+    ("0.5 ms", "s", 5e-4),
+    ("8 mrad", "rad", 8e-3),
+    ("1 kohm", "ohm", 1000.0),
+])
+def test_parse(text, unit, expected):
+    assert units.parse(text, unit) == pytest.approx(expected)
+
+
+@pytest.mark.parametrize("value,unit,fragment", [
+    ("300 m", "m/s", "wrong dimension"),
+    (300, "m/s", "has no unit"),
+    ("fast", "m/s", "cannot read"),
+    ("nan m/s", "m/s", "finite"),
+    ("inf K", "K", "finite"),
+    ("38 Mrad/s", "Hz", "angular frequency"),
+    ("", "m", "empty"),
+    (True, "m", "expected"),
+])
+def test_errors_name_file_and_key(value, unit, fragment):
+    with pytest.raises(InputError) as info:
+        units.parse(value, unit, file="scenario.toml", key="chirp.start_velocity")
+    message = str(info.value)
+    assert fragment in message
+    assert message.startswith("scenario.toml: key 'chirp.start_velocity': ")
+    assert "\n" not in message
+
+
+@settings(max_examples=60, deadline=None)
+@given(x=st.floats(-1e12, 1e12, allow_nan=False), prefix=st.sampled_from(["", "k", "M", "G", "m", "u"]))
+def test_round_trip_prefixes(x, prefix):
+    factor = {"": 1, "k": 1e3, "M": 1e6, "G": 1e9, "m": 1e-3, "u": 1e-6}[prefix]
+    assert math.isclose(units.parse(f"{x!r} {prefix}Hz", "Hz"), x * factor, rel_tol=1e-12, abs_tol=1e-300)
