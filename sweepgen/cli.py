@@ -19,6 +19,11 @@ COMMANDS = {
     "plan": ("plan", "Plan the sweep for a scenario and print its numbers."),
     "profiles": ("profiles", "List the built-in species, lasers, generators and scenarios."),
     "demo": ("demo", "Run the whole job on built-in data and write a report."),
+    "check": ("check", "Check a sweep against its laser and generator before switching on."),
+    "export": ("export", "Write the sample table (csv, raw, npy or a plug-in format) and its sidecar."),
+    "upload": ("upload", "Upload the sweep to a generator (SCPI over VISA, or a ramp board), verified."),
+    "emulate": ("emulate", "Serve the virtual instrument (or ramp-board emulator) on a TCP port."),
+    "simulate": ("simulate", "Monte Carlo of the atoms through the sweep: what arrives, how slow."),
 }
 
 
@@ -49,5 +54,5 @@ def main():
     \b
     Example:
       sweepgen demo                 # the whole job on built-in data
-      sweepgen plan rb-pulsed-oven  # the sweep for a built-in scenario
+      sweepgen plan rb87-chopped-oven  # the sweep for a built-in scenario
     """

@@ -73,3 +73,84 @@ def plot_plan(plan, file, *, response=None) -> Path:
     ax2.set_ylabel("design atom position (m)", color=COLORS["muted"])
     axv.legend(fontsize=8, loc="upper right")
     return save(fig, file)
+
+
+def plot_check(report, file) -> Path:
+    """The checker's margins as horizontal bars, one per rule with a limit
+    (``sweepgen.checker.CheckReport``): failures red, warnings orange, passes
+    green; the dashed line marks the 20 % warning margin."""
+    from sweepgen.checker import WARN_MARGIN
+
+    plt = _pyplot()
+    rows = [f for f in report.findings if f.margin is not None and np.isfinite(f.margin)]
+    color = {"fail": COLORS["limit"], "warn": COLORS["design"], "pass": COLORS["response"]}
+    fig, ax = plt.subplots(figsize=(8, 0.32 * max(len(rows), 3) + 1.2))
+    labels = [f.rule if f.rule != "stage_range" else f"stage_range: {f.message.split(':')[0]}" for f in rows]
+    margins = [max(min(f.margin, 1.0), -1.0) * 100 for f in rows]
+    y = np.arange(len(rows))[::-1]
+    ax.barh(y, margins, color=[color[f.status] for f in rows], height=0.7)
+    ax.set_yticks(y)
+    ax.set_yticklabels(labels, fontsize=8)
+    ax.axvline(0, color="black", lw=0.8)
+    ax.axvline(WARN_MARGIN * 100, color=COLORS["muted"], lw=0.8, ls="--")
+    ax.set_xlim(-100, 100)
+    ax.set_xlabel("margin to the limit (%; below 0 = limit exceeded, clipped to ±100 %)")
+    ok = "no rule fails" if report.ok else f"{len(report.failures())} rule(s) fail"
+    title = getattr(getattr(report, "scenario", None), "title", "")
+    ax.set_title(f"{title}\n{ok}", fontsize=9)
+    ax.grid(axis="x", alpha=0.3)
+    return save(fig, file)
+
+
+def plot_simulation(result, file) -> Path:
+    """Velocity distributions before (at the source) and after (at the target plane:
+    with the sweep, without light, with the light held at the start detuning), and for
+    a pulsed source the arrival times at the target (all arrivals and captured atoms).
+    ``result`` is a :class:`sweepgen.simulate.SimulationResult`."""
+    plt = _pyplot()
+    sc = result.scenario
+    h = result.histograms()
+    doc = result.to_json()
+    pulsed = "arrival_time_edges" in h
+    if pulsed:
+        fig, (ax, axt) = plt.subplots(2, 1, figsize=(8, 7), gridspec_kw={"height_ratios": [3, 2]})
+    else:
+        fig, ax = plt.subplots(1, 1, figsize=(8, 4.5))
+    edges = np.asarray(h["velocity_edges"])
+    n = max(int(doc["atoms"]), 1)
+
+    def steps(counts, **kw):
+        ax.stairs(np.asarray(counts) / n, edges, **kw)
+
+    steps(h["initial"], color=COLORS["muted"], lw=1.2, label="at the source")
+    steps(h["final_no_light"], color=COLORS["limit"], lw=1, ls=":", label="at the target, no light")
+    steps(h["final_fixed_frequency"], color=COLORS["design"], lw=1, ls="--",
+          label="at the target, light held at the start detuning")
+    steps(h["final"], color=COLORS["sweep"], lw=2, fill=False, label="at the target, with the sweep")
+    ch = sc.chirp
+    ax.axvspan(ch.end_velocity, ch.start_velocity, color=COLORS["band"], alpha=0.07, label="chirp band")
+    ax.axvline(sc.target.capture_velocity, color=COLORS["response"], lw=1.2,
+               label=f"capture velocity ({sc.target.capture_velocity:g} m/s)")
+    ax.set_xlabel("velocity along the beam (m/s)")
+    ax.set_ylabel("fraction of atoms per bin")
+    cap = doc["captured_fraction"]
+    ax.set_title(f"{sc.title}\ncaptured {100 * cap:.2f} % of {doc['atoms']} atoms "
+                 f"(no light {100 * doc['baseline_no_light_fraction']:.2f} %, "
+                 f"fixed frequency {100 * doc['baseline_fixed_frequency_fraction']:.2f} %)", fontsize=9)
+    ax.legend(fontsize=7, loc="upper right")
+    ax.grid(alpha=0.3)
+    if pulsed:
+        tedges = np.asarray(h["arrival_time_edges"]) * 1e3
+        axt.stairs(np.asarray(h["arrival_time"]) / n, tedges, color=COLORS["muted"], lw=1.2,
+                   label="all arrivals")
+        axt.stairs(np.asarray(h["arrival_time_captured"]) / n, tedges, color=COLORS["sweep"], lw=2,
+                   label="captured atoms")
+        if result.arrival_design is not None:
+            axt.axvline(result.arrival_design * 1e3, color=COLORS["design"], lw=1, ls="--",
+                        label="planned arrival of the design atom")
+        axt.set_xlabel("arrival time at the target after the trigger (ms)")
+        axt.set_ylabel("fraction of atoms per bin")
+        axt.legend(fontsize=7, loc="upper right")
+        axt.grid(alpha=0.3)
+    fig.tight_layout()
+    return save(fig, file)

@@ -86,7 +86,9 @@ class Drive:
     sample_rate: float | None = None      # samples/s; None = automatic choice
     channel: int = 1
     max_step: float | None = None         # Hz: largest detuning change per sample / DAC step
-    tracking_fraction: float = 0.25       # tolerance as a fraction of the lag detuning
+    #                                       (None: 0.1 × natural linewidth, sampling.DEFAULT_STEP_FRACTION)
+    tracking_fraction: float = 0.25       # tolerance as a fraction of the lag detuning Δv_lag/λ
+    #                                       (checker rules "tracking" and "return_settling")
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,246 @@
+"""How fast the laser frequency follows its actuator: the response model.
+
+A laser profile's ``[response]`` table gives one of
+
+* ``model = "none"``: the frequency follows the drive at once;
+* ``model = "first-order"``, ``corner = "20 kHz"``: a single pole,
+  ``H(s) = 1 / (1 + s/ω_c)``, ``ω_c = 2π f_c``, time constant ``τ = 1/ω_c``;
+  its unit-step response is ``1 − exp(−t/τ)``;
+* ``model = "second-order"``, ``resonance = "25 kHz"``, ``q = 0.8``: a damped
+  resonance (a piezo), ``H(s) = ω_0² / (s² + (ω_0/Q) s + ω_0²)``.
+
+Both are the textbook low-pass forms (e.g. K. Ogata, *Modern Control
+Engineering*, ch. 5, first- and second-order systems). The DC gain is one: the
+static tuning is the chain's business, the response only shapes time.
+
+The generator holds each sample until the next (zero-order hold), so the
+response to a sampled drive is computed exactly at the sample instants by
+discretising ``H`` with a zero-order hold (:func:`scipy.signal.cont2discrete`)
+and filtering with :func:`scipy.signal.lfilter`. The periodic steady state (the
+sweep repeats forever) comes from two passes over one period, the second
+starting from the state the first ended in.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from sweepgen._config import Section
+
+MODELS = ("none", "first-order", "second-order")
+
+
+@dataclass(frozen=True)
+class Response:
+    """An actuator response model (frequencies in Hz)."""
+
+    model: str = "none"
+    corner: float | None = None        # Hz, first order: -3 dB frequency
+    resonance: float | None = None     # Hz, second order: undamped resonance f_0
+    q: float | None = None             # second order: quality factor
+
+    def __post_init__(self):
+        if self.model not in MODELS:
+            raise ValueError(f"unknown response model {self.model!r}")
+        if self.model == "first-order" and not (self.corner and self.corner > 0):
+            raise ValueError("a first-order response needs a corner frequency > 0")
+        if self.model == "second-order" and not (self.resonance and self.resonance > 0 and self.q and self.q > 0):
+            raise ValueError("a second-order response needs a resonance > 0 and q > 0")
+
+    # -- the model -----------------------------------------------------------------
+    @property
+    def time_constant(self) -> float:
+        """``τ = 1/(2π f_c)`` for first order, ``2Q/ω_0`` (envelope) for second order, 0 for none."""
+        if self.model == "first-order":
+            return 1.0 / (2.0 * math.pi * self.corner)
+        if self.model == "second-order":
+            return 2.0 * self.q / (2.0 * math.pi * self.resonance)
+        return 0.0
+
+    def transfer(self):
+        """``(num, den)`` of ``H(s)``, highest power first (as :mod:`scipy.signal` takes them)."""
+        if self.model == "first-order":
+            wc = 2.0 * math.pi * self.corner
+            return np.array([wc]), np.array([1.0, wc])
+        if self.model == "second-order":
+            w0 = 2.0 * math.pi * self.resonance
+            return np.array([w0 * w0]), np.array([1.0, w0 / self.q, w0 * w0])
+        return np.array([1.0]), np.array([1.0])
+
+    def ramp_lag(self, rate: float) -> float:
+        """Steady-state lag behind a ramp of slope ``rate``: ``rate·τ`` (first order),
+        ``rate/(Q ω_0)`` (second order); final-value theorem on ``(1 − H(s))/s²``."""
+        if self.model == "first-order":
+            return rate / (2.0 * math.pi * self.corner)
+        if self.model == "second-order":
+            return rate / (self.q * 2.0 * math.pi * self.resonance)
+        return 0.0
+
+    def step(self, t):
+        """Unit-step response at times ``t`` (s), in closed form.
+
+        First order: ``1 − exp(−t/τ)``. Second order with ``ζ = 1/(2Q)``:
+        underdamped ``1 − e^{−ζω_0 t}(cos ω_d t + ζ/√(1−ζ²) sin ω_d t)``,
+        ``ω_d = ω_0 √(1−ζ²)``; critically damped ``1 − e^{−ω_0 t}(1 + ω_0 t)``;
+        overdamped ``1 + (p_2 e^{p_1 t} − p_1 e^{p_2 t})/(p_1 − p_2)`` with the
+        two real poles ``p_1,2`` (Ogata, *Modern Control Engineering*, §5-3).
+        """
+        t = np.asarray(t, dtype=float)
+        pos = t >= 0
+        if self.model == "none":
+            return np.where(pos, 1.0, 0.0)
+        if self.model == "first-order":
+            tau = self.time_constant
+            return np.where(pos, -np.expm1(-np.maximum(t, 0) / tau), 0.0)
+        w0 = 2.0 * math.pi * self.resonance
+        zeta = 1.0 / (2.0 * self.q)
+        tt = np.maximum(t, 0.0)
+        if abs(zeta - 1.0) < 1e-9:
+            y = 1.0 - np.exp(-w0 * tt) * (1.0 + w0 * tt)
+        elif zeta < 1.0:
+            wd = w0 * math.sqrt(1.0 - zeta * zeta)
+            y = 1.0 - np.exp(-zeta * w0 * tt) * (np.cos(wd * tt) + zeta / math.sqrt(1.0 - zeta * zeta)
+                                                  * np.sin(wd * tt))
+        else:
+            root = math.sqrt(zeta * zeta - 1.0)
+            p1, p2 = -w0 * (zeta - root), -w0 * (zeta + root)
+            y = 1.0 + (p2 * np.exp(p1 * tt) - p1 * np.exp(p2 * tt)) / (p1 - p2)
+        return np.where(pos, y, 0.0)
+
+    # -- sampled signals ---------------------------------------------------------------
+    def discrete(self, rate: float):
+        """``(b, a)`` of the zero-order-hold discretisation at ``rate`` samples/s."""
+        from scipy.signal import cont2discrete
+
+        if self.model == "none":
+            return np.array([1.0]), np.array([1.0])
+        num, den = self.transfer()
+        b, a, _ = cont2discrete((num, den), 1.0 / rate, method="zoh")
+        b = np.atleast_1d(np.squeeze(b))
+        return b / a[0], a / a[0]
+
+    def filter(self, x, rate: float, *, periodic: bool = False):
+        """Response to the sampled drive ``x`` held between samples, at the sample instants.
+
+        Starts from rest at ``x[0]``; with ``periodic=True`` the input is taken to
+        repeat forever and the periodic steady state is returned instead.
+        """
+        from scipy.signal import lfilter
+
+        x = np.asarray(x, dtype=float)
+        if self.model == "none" or x.size == 0:
+            return x.copy()
+        b, a = self.discrete(rate)
+        # Filter the deviation from the first value: better conditioned for large offsets.
+        x0 = float(x[0])
+        d = x - x0
+        y, zf = lfilter(b, a, d, zi=np.zeros(max(len(a), len(b)) - 1))
+        if periodic:
+            for _ in range(2):
+                y, zf = lfilter(b, a, d, zi=zf)
+        return y + x0
+
+
+def response_from_section(sec: Section | None) -> Response:
+    """Read the ``[response]`` table of a laser profile (absent: ``model = "none"``)."""
+    if sec is None:
+        return Response()
+    model = sec.string("model", choices=MODELS)
+    try:
+        if model == "first-order":
+            resp = Response(model, corner=sec.quantity("corner", "Hz", positive=True, example="20 kHz"))
+        elif model == "second-order":
+            resp = Response(model, resonance=sec.quantity("resonance", "Hz", positive=True, example="25 kHz"),
+                            q=sec.number("q", positive=True))
+        else:
+            resp = Response()
+    except ValueError as exc:
+        raise sec.error("model", str(exc)) from None
+    sec.finish()
+    return resp
+
+
+@dataclass
+class Tracking:
+    """The simulated laser over one period, sampled at ``rate`` (SI units)."""
+
+    time: np.ndarray          # s
+    planned: np.ndarray       # Hz, the schedule's detuning
+    drive: np.ndarray         # drive units, as played (after quantisation when given)
+    actual: np.ndarray        # Hz, the detuning the laser really has (chain inverse of the response)
+    rate: float               # samples/s of the simulation
+
+    @property
+    def error(self) -> np.ndarray:
+        return self.actual - self.planned
+
+
+#: Largest number of points simulated per period; beyond it the drive is simulated
+#: at a lower rate (the hold staircase at such rates is far below any tolerance).
+MAX_SIM_POINTS = 1 << 21
+
+
+def simulate(schedule, chain, response: Response, rate: float, *, quant=None,
+             max_points: int = MAX_SIM_POINTS) -> Tracking:
+    """Play one period of ``schedule`` at ``rate`` through ``chain`` and ``response``.
+
+    The drive is the chain's drive for the planned detuning at each sample
+    (quantised to the generator's codes when ``quant`` is given, see
+    :mod:`sweepgen.sampling`), held between samples, filtered by the response
+    in its periodic steady state, and mapped back to detuning with the chain's
+    inverse. The response is applied to the drive at the actuator (the one
+    place where the profile states it).
+    """
+    n = int(round(schedule.period * rate))
+    sim_rate = rate
+    if n > max_points:
+        step = math.ceil(n / max_points)
+        sim_rate = rate / step
+        n = int(round(schedule.period * sim_rate))
+    n = max(n, 2)
+    t = np.arange(n) / sim_rate
+    planned = schedule.detuning(t)
+    drive = chain.to_drive(planned)
+    if quant is not None:
+        from sweepgen.sampling import codes_to_drive, drive_to_codes
+
+        drive = codes_to_drive(drive_to_codes(drive, quant), quant)
+    played = response.filter(drive, sim_rate, periodic=True)
+    actual = chain.to_detuning(played)
+    return Tracking(time=t, planned=planned, drive=drive, actual=actual, rate=sim_rate)
+
+
+def actuator_response(plan, laser, generator=None, *, rate: float | None = None):
+    """The simulated laser detuning over one period, ``(t, detuning_hz)``, for plots.
+
+    ``plots.plot_plan(plan, file, response=actuator_response(plan, laser, gen))``
+    overlays it on the planned sweep. The sample rate is the one the checker and
+    renderer choose for ``generator`` (or ``rate``; without either, 1000 points
+    per response time constant, at most :data:`MAX_SIM_POINTS` per period).
+    """
+    schedule = plan.schedule()
+    quant = None
+    if rate is None and generator is not None:
+        from sweepgen.sampling import choose_rate
+
+        choice = choose_rate(schedule, laser.chain, generator, plan.scenario.drive,
+                             linewidth=plan.species.linewidth, strict=False)
+        rate = choice.rate
+    if rate is None:
+        tau = laser.response.time_constant or schedule.period / 1e4
+        rate = min(1000.0 / tau, MAX_SIM_POINTS / schedule.period)
+    if generator is not None:
+        from sweepgen.sampling import drive_extremes, quantisation
+
+        lo, hi = drive_extremes(schedule, laser.chain)
+        from sweepgen.errors import SweepgenError
+
+        try:
+            quant = quantisation(lo, hi, generator, laser.chain)
+        except SweepgenError:      # an unplayable sweep is still drawn, unquantised
+            quant = None
+    tr = simulate(schedule, laser.chain, laser.response, rate, quant=quant)
+    return tr.time, tr.actual

@@ -1,0 +1,321 @@
+"""Sampling the sweep in time (the generator's sample rate) and in value (its codes).
+
+Time
+    :func:`choose_rate` picks the sample rate. Fixed by the user
+    (``[drive] sample_rate`` in the scenario, or ``--rate``), or automatic: the
+    lowest rate that keeps the detuning change per sample at most half the
+    tolerance (``[drive] max_step``; default :data:`DEFAULT_STEP_FRACTION` of the
+    natural linewidth), rounded up to a 1-2-2.5-4-5-8 value, and never above the
+    generator's maximum rate or the rate at which one period still fits in its
+    memory. When the generator plays any rate in a range, the rate is then
+    nudged so that one period is a whole number of samples and a multiple of the
+    record granularity (``rate = period_count / period`` exactly). When it plays
+    only listed rates, ``period_count = round(period · rate)`` and the table
+    lasts ``period_count / rate``, off the period by less than half a sample
+    (reported as ``period_error``); the record is padded up to the granularity
+    and minimum length (``count − period_count`` samples, which the renderer
+    fills with the period's first value, the start detuning: play such a table
+    triggered once per period).
+
+Value
+    :func:`quantisation` maps drive values to integer codes,
+    ``drive = code_offset + code_scale · code``, with ``drive`` in actuator
+    units: the real volts AT THE ACTUATOR (after the generator's
+    ``delivered_factor``) or Hz. Voltage outputs use signed DAC codes with full
+    scale ``±(2^(bits−1) − 1)`` (dtype ``<i2``, or ``<i4`` above 16 bits); the
+    programmed amplitude (V peak-to-peak) and offset are chosen so the sweep
+    fills the DAC range. Frequency outputs use DDS frequency tuning words
+    ``FTW = round(f · 2^N / f_clock)`` (common practice; dtype ``<u4``, or
+    ``<u8`` above 32 bits).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from sweepgen.errors import CheckFailed
+
+#: Default tolerance on the detuning change per sample and per code: this
+#: fraction of the natural linewidth Γ/2π (a step well inside the line does not
+#: kick the design atom off the Lorentzian).
+DEFAULT_STEP_FRACTION = 0.1
+#: Tolerance used when no linewidth is known (Hz).
+FALLBACK_STEP = 1.0e6
+#: Automatic rates aim at steps of at most tolerance / HEADROOM.
+HEADROOM = 2.0
+_NICE = (1.0, 2.0, 2.5, 4.0, 5.0, 8.0, 10.0)
+
+
+@dataclass(frozen=True)
+class RateChoice:
+    """The chosen sample rate and record length (SI units)."""
+
+    rate: float              # samples/s
+    period_count: int        # samples covering one period
+    count: int               # samples in the record (padded to granularity and min_length)
+    limited_by: str          # which limit decided the rate
+    reason: str              # one sentence for people
+    max_step: float          # Hz, detuning tolerance per sample used
+    step: float              # Hz, largest detuning change per sample at this rate
+    period_error: float = 0.0  # s, period_count/rate − period
+
+    @property
+    def padding(self) -> int:
+        return self.count - self.period_count
+
+
+def step_tolerance(drive_options, linewidth: float | None = None) -> tuple[float, str]:
+    """``(tolerance in Hz, where it comes from)`` for the detuning step per sample / code."""
+    if drive_options is not None and getattr(drive_options, "max_step", None):
+        return float(drive_options.max_step), "drive.max_step"
+    if linewidth:
+        return DEFAULT_STEP_FRACTION * linewidth, f"default: {DEFAULT_STEP_FRACTION:g} × natural linewidth"
+    return FALLBACK_STEP, "default"
+
+
+def _nice_up(x: float) -> float:
+    """The smallest 1-2-2.5-4-5-8 × 10^k value at or above ``x``."""
+    if x <= 0:
+        return x
+    exp = math.floor(math.log10(x))
+    for m in _NICE:
+        v = m * 10.0 ** exp
+        if v >= x * (1 - 1e-12):
+            return v
+    return 10.0 ** (exp + 1)
+
+
+def _pad(n: int, sampling) -> int:
+    g = sampling.granularity
+    n = max(n, sampling.min_length)
+    return -(-n // g) * g
+
+
+def _fmt(rate: float) -> str:
+    for f, p in ((1e9, "G"), (1e6, "M"), (1e3, "k")):
+        if rate >= f:
+            return f"{rate / f:.6g} {p}Sa/s"
+    return f"{rate:.6g} Sa/s"
+
+
+def choose_rate(schedule, chain, generator, drive_options, *, linewidth: float | None = None,
+                strict: bool = True, rate: float | None = None) -> RateChoice:
+    """Choose the sample rate and record length for one period of ``schedule``.
+
+    Parameters
+    ----------
+    schedule : sweepgen.schedule.Schedule
+    chain : sweepgen.chain.Chain
+        Not needed for the rate itself; kept so callers pass the whole context.
+    generator : sweepgen.generator.Generator
+    drive_options : sweepgen.scenario.Drive
+        ``sample_rate`` (None: automatic) and ``max_step`` (None: default).
+    linewidth : float, optional
+        Natural linewidth Γ/2π (Hz) for the default step tolerance.
+    strict : bool
+        Raise :class:`CheckFailed` when a fixed rate is not playable (not a rate
+        of the generator, or the period does not fit in memory). The checker
+        passes False and reports those as failed rules instead.
+    rate : float, optional
+        Overrides ``drive_options.sample_rate`` (the ``--rate`` option).
+
+    Raises
+    ------
+    CheckFailed
+        No rate satisfies both the step tolerance and the generator; the
+        message says which limit wins.
+    """
+    sm = generator.sampling
+    period = schedule.period
+    tol, tol_src = step_tolerance(drive_options, linewidth)
+    sweep_rate = schedule.max_abs_rate()
+    need = sweep_rate / tol if sweep_rate > 0 else 0.0
+    fixed = rate if rate is not None else getattr(drive_options, "sample_rate", None)
+
+    if fixed is not None:
+        n = max(int(round(period * fixed)), 1)
+        count = _pad(n, sm)
+        src = "--rate" if rate is not None else "drive.sample_rate"
+        if strict and not sm.allows(fixed):
+            allowed = (", ".join(_fmt(r) for r in sm.rates) if sm.rates
+                       else f"{_fmt(sm.rate_min)} to {_fmt(sm.rate_max)}")
+            raise CheckFailed(f"{src} = {_fmt(fixed)} is not a rate generator '{generator.key}' plays "
+                              f"({allowed})")
+        if strict and count > sm.memory:
+            raise CheckFailed(f"at {src} = {_fmt(fixed)} one period needs {count} samples but generator "
+                              f"'{generator.key}' holds {sm.memory}; lower the rate to at most "
+                              f"{_fmt(sm.memory / period)}")
+        return RateChoice(fixed, n, count, f"fixed by {src}", f"rate fixed by {src}", tol,
+                          sweep_rate / fixed, n / fixed - period)
+
+    mem_rate = (sm.memory // sm.granularity) * sm.granularity / period   # fastest rate that fits
+    if sm.rates is None:
+        upper = min(sm.rate_max, mem_rate)
+        lower = max(need, sm.rate_min, sm.min_length / period)
+        if lower > upper * (1 + 1e-12):
+            raise CheckFailed(_no_rate_message(need, tol, tol_src, sweep_rate, sm, mem_rate, period, generator))
+        target = max(need * HEADROOM, sm.rate_min, sm.min_length / period)
+        chosen = _nice_up(target)
+        limited = ("detuning step tolerance" if target == need * HEADROOM else
+                   "generator minimum rate" if target == sm.rate_min else "generator minimum record length")
+        if chosen > upper:
+            chosen = upper
+            limited = "generator memory" if mem_rate < sm.rate_max else "generator maximum rate"
+        # a whole number of samples per period, a multiple of the granularity
+        g = sm.granularity
+        n = math.ceil(round(period * chosen, 6) / g) * g
+        if n / period > upper * (1 + 1e-12):
+            n = math.floor(round(period * chosen, 6) / g) * g
+        if n >= 1 and lower * (1 - 1e-12) <= n / period <= upper * (1 + 1e-12):
+            chosen = n / period
+        else:
+            n = max(int(round(period * chosen)), 1)
+        period_count = n
+    else:
+        fits = [r for r in sm.rates if _pad(max(int(round(period * r)), 1), sm) <= sm.memory]
+        good = [r for r in fits if r >= need * (1 - 1e-12)]
+        if not good:
+            raise CheckFailed(_no_rate_message(need, tol, tol_src, sweep_rate, sm, mem_rate, period, generator))
+        comfy = [r for r in good if r >= need * HEADROOM]
+        chosen = comfy[0] if comfy else good[-1]
+        limited = ("detuning step tolerance" if chosen == good[0] and need > 0 else
+                   "generator's listed rates")
+        if not comfy and len(good) and good[-1] == chosen and chosen != sm.rates[-1]:
+            limited = "generator memory"
+        period_count = max(int(round(period * chosen)), 1)
+    count = _pad(period_count, sm)
+    step = sweep_rate / chosen
+    err = period_count / chosen - period
+    reason = (f"{_fmt(chosen)}: steps of at most {step / 1e3:.4g} kHz per sample (tolerance "
+              f"{tol / 1e3:.4g} kHz, {tol_src}); {period_count} samples per period"
+              + (f", padded to {count}" if count != period_count else "")
+              + (f"; the table lasts {err * 1e9:+.3g} ns longer than the period" if abs(err) > 1e-12 * period
+                 else "") + f"; decided by the {limited}")
+    return RateChoice(chosen, period_count, count, limited, reason, tol, step, err)
+
+
+def _no_rate_message(need, tol, tol_src, sweep_rate, sm, mem_rate, period, generator) -> str:
+    top = sm.rates[-1] if sm.rates else sm.rate_max
+    head = (f"no sample rate of generator '{generator.key}' plays this sweep: keeping the detuning step "
+            f"below {tol / 1e3:.4g} kHz ({tol_src}) at |dΔ/dt| up to {sweep_rate:.4g} Hz/s needs at least "
+            f"{_fmt(need)}")
+    if need > top and top <= mem_rate:
+        return head + f", but its fastest rate is {_fmt(top)} (the rate limit wins); raise drive.max_step, " \
+                      f"lengthen chirp.return_time, or use a faster generator"
+    if need > mem_rate:
+        return head + (f", but one period of {period * 1e3:.4g} ms fits in its memory of {sm.memory} samples "
+                       f"only up to {_fmt(mem_rate)} (the memory wins); shorten chirp.period, raise "
+                       f"drive.max_step, or use a generator with more memory")
+    return head + f"; its rates ({_fmt(sm.rate_min)} and up) overflow its memory of {sm.memory} samples " \
+                  f"for a period of {period * 1e3:.4g} ms (the memory wins)"
+
+
+# ----------------------------------------------------------------------------------
+def drive_extremes(schedule, chain, samples: int = 4001) -> tuple[float, float]:
+    """Smallest and largest drive over one period (dense grid plus segment ends)."""
+    ts = [np.linspace(seg.start, np.nextafter(seg.end, seg.start), samples) for seg in schedule.segments]
+    t = np.concatenate(ts)
+    d = chain.to_drive(schedule.detuning(t))
+    return float(np.min(d)), float(np.max(d))
+
+
+@dataclass(frozen=True)
+class Quantisation:
+    """How drive values (actuator units) become generator codes: ``drive = code_offset + code_scale·code``."""
+
+    output: str               # "voltage" | "frequency"
+    drive_unit: str           # "V" (at the actuator) | "Hz"
+    dtype: str                # NumPy dtype string of the codes
+    code_scale: float         # drive units per code
+    code_offset: float        # drive units at code 0
+    code_min: int             # smallest code the table may hold (the sweep's own lowest drive)
+    code_max: int
+    full_scale: int           # largest |code| of the DAC, or the largest DDS word
+    bits: int
+    amplitude: float | None = None     # V peak-to-peak to program (voltage outputs)
+    offset: float | None = None        # V offset to program (voltage outputs)
+    delivered_factor: float = 1.0      # actuator volts per programmed volt
+
+
+def _round_sig(x: float, digits: int, how) -> float:
+    if x == 0 or not math.isfinite(x):
+        return x
+    scale = 10.0 ** (digits - 1 - math.floor(math.log10(abs(x))))
+    return how(x * scale) / scale
+
+
+def quantisation(drive_min: float, drive_max: float, generator, chain) -> Quantisation:
+    """The code mapping that plays drives in ``[drive_min, drive_max]`` on ``generator``.
+
+    Raises
+    ------
+    CheckFailed
+        The chain and the output do not match (volts vs frequency), or the drive
+        range leaves the actuator's safe input range (``chain.safe_min/max``) or
+        the generator's output range at the real load.
+    """
+    out = generator.output
+    if not drive_max >= drive_min:
+        raise ValueError("drive_max below drive_min")
+    want = "voltage" if chain.drive_unit == "V" else "frequency"
+    if out.kind != want:
+        raise CheckFailed(f"the laser's chain ends in {chain.drive_unit} but generator '{generator.key}' has a "
+                          f"{out.kind} output; use a generator with a {want} output")
+    unit = chain.drive_unit
+    if chain.safe_min is not None and (drive_min < chain.safe_min or drive_max > chain.safe_max):
+        raise CheckFailed(f"the drive spans {drive_min:.6g} to {drive_max:.6g} {unit}, outside the actuator's "
+                          f"safe input range {chain.safe_min:.6g} to {chain.safe_max:.6g} {unit}")
+    if out.kind == "voltage":
+        k = out.delivered_factor
+        lo_p, hi_p = drive_min / k, drive_max / k
+        rel = 1e-9 * max(abs(out.range_min), abs(out.range_max))
+        if lo_p < out.range_min - rel or hi_p > out.range_max + rel:
+            raise CheckFailed(f"the drive needs {lo_p:.6g} to {hi_p:.6g} V programmed ({drive_min:.6g} to "
+                              f"{drive_max:.6g} V at the actuator, ×{k:g} at the real load) but generator "
+                              f"'{generator.key}' outputs {out.range_min:g} to {out.range_max:g} V")
+        bits = out.dac_bits
+        fs = 2 ** (bits - 1) - 1
+        dtype = "<i2" if bits <= 16 else "<i4"
+        offset = _round_sig(0.5 * (lo_p + hi_p), 4, round)
+        half = max(hi_p - offset, offset - lo_p)
+        floor = 1e-6 * max(abs(out.range_max - out.range_min), 1.0)   # a flat sweep still gets a window
+        amplitude = _round_sig(max(2.0 * half, floor), 4, math.ceil)
+        room = 2.0 * min(offset - out.range_min, out.range_max - offset)
+        if amplitude > room:
+            amplitude = max(room, 2.0 * half)
+        scale = amplitude * k / (2.0 * fs)
+        off = offset * k
+        cmin = int(np.rint((drive_min - off) / scale))
+        cmax = int(np.rint((drive_max - off) / scale))
+        return Quantisation("voltage", unit, dtype, scale, off, max(cmin, -fs), min(cmax, fs), fs, bits,
+                            amplitude, offset, k)
+    # frequency output: DDS words
+    if drive_min < out.range_min or drive_max > out.range_max:
+        raise CheckFailed(f"the drive spans {drive_min / 1e6:.6g} to {drive_max / 1e6:.6g} MHz but generator "
+                          f"'{generator.key}' synthesises {out.range_min / 1e6:g} to {out.range_max / 1e6:g} MHz")
+    bits = out.word_bits
+    scale = out.clock / 2.0 ** bits
+    dtype = "<u4" if bits <= 32 else "<u8"
+    cmin = int(np.rint(drive_min / scale))
+    cmax = int(np.rint(drive_max / scale))
+    return Quantisation("frequency", unit, dtype, scale, 0.0, cmin, cmax, 2 ** bits - 1, bits)
+
+
+def drive_to_codes(drive, q: Quantisation) -> np.ndarray:
+    """Codes for drive values (rounded to nearest); raises :class:`CheckFailed` rather than clip."""
+    drive = np.asarray(drive, dtype=float)
+    codes = np.rint((drive - q.code_offset) / q.code_scale)
+    bad = ~np.isfinite(codes) | (codes < q.code_min) | (codes > q.code_max)
+    if np.any(bad):
+        i = int(np.flatnonzero(bad)[0])
+        raise CheckFailed(f"drive value {drive[i]:.6g} {q.drive_unit} (sample {i}) maps to code {codes[i]:.0f}, "
+                          f"outside the checked window {q.code_min}..{q.code_max}; refusing to clip")
+    return codes.astype(q.dtype)
+
+
+def codes_to_drive(codes, q: Quantisation) -> np.ndarray:
+    """Drive values (actuator units) the codes play: ``code_offset + code_scale · code``."""
+    return q.code_offset + q.code_scale * np.asarray(codes, dtype=float)

@@ -1,0 +1,121 @@
+"""Actuator response: closed-form step responses, scipy.signal reference, sampled filtering."""
+
+import math
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy import signal
+
+from sweepgen._config import Section
+from sweepgen.errors import InputError
+from sweepgen.response import Response, actuator_response, response_from_section, simulate
+
+
+def test_first_order_step_is_one_minus_exp():
+    r = Response("first-order", corner=20e3)
+    tau = 1 / (2 * math.pi * 20e3)
+    t = np.linspace(0, 10 * tau, 501)
+    # closed form of a single pole: 1 - exp(-t/τ) (textbook first-order system)
+    assert np.allclose(r.step(t), 1 - np.exp(-t / tau), rtol=0, atol=1e-14)
+    # the sampled (zero-order-hold) filter of a step is exact at the sample instants
+    rate = 100 / tau
+    x = np.ones(1001)
+    x[0] = 0.0
+    y = r.filter(x, rate)
+    ts = (np.arange(1001) - 1) / rate
+    assert np.allclose(y[1:], 1 - np.exp(-np.maximum(ts[1:], 0) / tau), atol=1e-9)
+
+
+@pytest.mark.parametrize("q", [0.3, 0.5, 0.8, 5.0])
+def test_second_order_step_matches_scipy_signal_step(q):
+    r = Response("second-order", resonance=25e3, q=q)
+    t = np.linspace(0, 40 / (2 * math.pi * 25e3) * max(q, 1), 2001)
+    # reference implementation: scipy.signal.step of H(s) = ω0²/(s² + ω0/Q s + ω0²)
+    w0 = 2 * math.pi * 25e3
+    _, ref = signal.step(signal.lti([w0 ** 2], [1, w0 / q, w0 ** 2]), T=t)
+    assert np.allclose(r.step(t), ref, atol=1e-6)
+    # and the sampled filter of a held step agrees at the samples
+    rate = 1.0 / (t[1] - t[0])
+    x = np.ones(t.size + 1)
+    x[0] = 0.0
+    y = r.filter(x, rate)[1:]
+    assert np.allclose(y, ref, atol=1e-6)
+
+
+def test_critically_damped_closed_form():
+    r = Response("second-order", resonance=1e3, q=0.5)
+    w0 = 2 * math.pi * 1e3
+    t = np.linspace(0, 5e-3, 101)
+    _, ref = signal.step(signal.lti([w0 ** 2], [1, 2 * w0, w0 ** 2]), T=t)   # scipy.signal reference
+    assert np.allclose(r.step(t), ref, atol=1e-6)
+
+
+@settings(max_examples=30, deadline=None)
+@given(corner=st.floats(min_value=1e3, max_value=1e6), slope=st.floats(min_value=1e6, max_value=1e12))
+def test_ramp_lag_is_rate_times_tau(corner, slope):
+    # final-value theorem for a ramp through 1/(1 + sτ): the lag tends to slope·τ (textbook)
+    r = Response("first-order", corner=corner)
+    tau = r.time_constant
+    rate = 50 / tau
+    n = 2000
+    t = np.arange(n) / rate
+    y = r.filter(slope * t, rate)
+    # a held ramp lags half a sample more than the continuous one
+    lag = slope * t[-1] - y[-1]
+    assert lag == pytest.approx(r.ramp_lag(slope) + slope / (2 * rate), rel=2e-3)
+
+
+def test_periodic_steady_state_repeats():
+    r = Response("second-order", resonance=5e3, q=3)
+    rate = 1e6
+    n = 2000                                    # a 2 ms period, shorter than the ringing
+    x = np.where(np.arange(n) < n // 2, 1.0, -1.0)
+    y = r.filter(x, rate, periodic=True)
+    # one more period from the end state gives the same waveform: steady state
+    y2 = r.filter(np.concatenate([x, x]), rate, periodic=True)
+    assert np.allclose(y, y2[:n], atol=1e-9) and np.allclose(y, y2[n:], atol=1e-9)
+    assert np.allclose(Response().filter(x, rate), x)
+
+
+def test_response_section_parsing():
+    r = response_from_section(Section({"model": "second-order", "resonance": "25 kHz", "q": 0.8}, "l.toml",
+                                      "response"))
+    assert r.resonance == 25e3 and r.q == 0.8
+    assert response_from_section(None).model == "none"
+    with pytest.raises(InputError, match="response.corner"):
+        response_from_section(Section({"model": "first-order"}, "l.toml", "response"))
+    with pytest.raises(InputError, match="response.q"):
+        response_from_section(Section({"model": "second-order", "resonance": "1 kHz", "q": -1}, "l.toml",
+                                      "response"))
+
+
+def test_simulate_ideal_actuator_follows_the_schedule():
+    from sweepgen.chain import AnalogStage, Chain
+    from sweepgen.planner import plan
+    from sweepgen.scenario import load_scenario
+
+    sched = plan(load_scenario("na23-continuous-focused")).schedule()
+    chain = Chain([AnalogStage("in", 100e6, -400e6, 0.0, "V")])
+    tr = simulate(sched, chain, Response(), 2e6)
+    assert np.allclose(tr.actual, tr.planned, atol=1e-3)
+    assert tr.time.size == round(sched.period * 2e6)
+
+
+def test_actuator_response_for_plots():
+    from sweepgen.generator import load_generator
+    from sweepgen.laser import load_laser
+    from sweepgen.planner import plan
+    from sweepgen.scenario import load_scenario
+
+    p = plan(load_scenario("rb87-chopped-oven"))
+    laser = load_laser("demo-ecdl-piezo")
+    t, d = actuator_response(p, laser, load_generator("virtual-awg"))
+    sched = p.schedule()
+    assert t.shape == d.shape and t[0] == 0 and t[-1] < sched.period
+    # the piezo follows within its ramp lag rate/(Q ω0) plus the transients (second-order lag, final-value theorem)
+    lag = laser.response.ramp_lag(sched.max_abs_rate("chirp"))
+    chirp = sched.kinds(t) == "chirp"
+    assert np.max(np.abs(d - sched.detuning(t))[chirp]) < 1.5 * lag
+    assert np.max(np.abs(d - sched.detuning(t))[chirp]) > 0.5 * lag
