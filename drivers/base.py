@@ -1,10 +1,27 @@
-"""The one small protocol every driver implements."""
+"""The one small protocol every driver implements, and the helpers file drivers share.
+
+A driver receives a :class:`sweepgen.table.RenderedTable` (codes in chunks plus
+:class:`sweepgen.table.TableInfo`) and a :class:`Delivery` (where and how), and
+returns a JSON-able report. File drivers derive from :class:`FileDriver`, which
+writes the data file and its JSON sidecar as one atomic unit
+(:class:`AtomicFileSet`): an export that fails or is interrupted leaves the
+output folder as it was.
+"""
 
 from __future__ import annotations
 
 import abc
+import contextlib
+import hashlib
+import os
+import re
+import shutil
+import tempfile
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Callable, ClassVar
+
+from sweepgen.errors import DriverError, InputError
 
 
 @dataclass
@@ -15,7 +32,8 @@ class Delivery:
     VISA driver, a pyserial URL for the serial driver. ``generator`` is the
     loaded :class:`sweepgen.generator.Generator`. Outputs are switched on only
     when ``arm`` is true; ``dry_run`` validates and reports without touching
-    anything. ``progress`` is called with (bytes_done, bytes_total).
+    anything. ``progress`` is called with (done, total): bytes for binary data,
+    samples where the byte count is not known in advance (csv).
     """
 
     destination: str
@@ -34,12 +52,276 @@ class Driver(abc.ABC):
     "instrument") and ``description``, and implement :meth:`deliver`, which
     returns a JSON-able report dict and raises only
     :class:`sweepgen.errors.SweepgenError` subclasses for expected failures.
+    ``options`` names the keys of ``Delivery.options`` the driver understands
+    (key -> one-line help), for command-line help and validation.
     """
 
     name: ClassVar[str] = ""
     kind: ClassVar[str] = "file"
     description: ClassVar[str] = ""
+    options: ClassVar[dict] = {}
 
     @abc.abstractmethod
     def deliver(self, table, delivery: Delivery) -> dict:
         """Deliver ``table``; return a report (steps, bytes, files, verification)."""
+
+
+# ---------------------------------------------------------------------------------------------
+# Atomic groups of files
+# ---------------------------------------------------------------------------------------------
+def _umask() -> int:
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def _fsync_dir(folder: Path) -> None:
+    """Make renames in ``folder`` durable (POSIX); silently skipped where unsupported."""
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+class AtomicFileSet:
+    """Write several files of one folder so that all of them appear, or none.
+
+    Each file is first written to a hidden temporary beside its target
+    (:meth:`open`). :meth:`commit` flushes them to disk and renames them onto
+    their targets in the order they were opened (data files first, the
+    sidecar last). If any rename fails, the targets already renamed are rolled
+    back: a file that existed before is restored from a hard-link backup, a new
+    one is removed. Leaving the ``with`` block by an exception (including
+    ``KeyboardInterrupt``) removes the temporaries and leaves the folder as it
+    was. A folder created for the set is removed again when nothing was committed.
+    """
+
+    def __init__(self, folder):
+        self.folder = Path(folder)
+        self._entries: list[tuple[Path, Path, object]] = []   # (target, temporary, handle)
+        self._created: list[Path] = []           # folders made for this set, deepest first
+        self.committed = False
+
+    # -- context manager -------------------------------------------------------------------------
+    def __enter__(self):
+        if self.folder.exists() and not self.folder.is_dir():
+            raise DriverError(f"{self.folder}: exists and is not a folder")
+        if not self.folder.exists():
+            missing = [self.folder, *[p for p in self.folder.parents if not p.exists()]]
+            try:
+                self.folder.mkdir(parents=True)
+            except OSError as exc:
+                raise DriverError(f"{self.folder}: cannot create the folder ({exc.strerror})") from None
+            self._created = missing              # deepest first
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is None and not self.committed:
+            self.commit()
+        elif exc_type is not None:
+            self.abort()
+        return False
+
+    # -- writing -----------------------------------------------------------------------------------
+    def open(self, name: str, mode: str = "wb", **kwargs):
+        """A handle on a temporary that becomes ``folder/name`` at commit."""
+        target = self.folder / name
+        if target.is_dir():
+            raise DriverError(f"{target}: a folder of that name is in the way")
+        fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".part", dir=self.folder)
+        os.close(fd)
+        try:
+            os.chmod(tmp, 0o666 & ~_umask())          # as an ordinary open() would create it
+            handle = open(tmp, mode, **kwargs)
+        except OSError as exc:
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
+            raise DriverError(f"{target}: cannot write ({exc.strerror})") from None
+        self._entries.append((target, Path(tmp), handle))
+        return handle
+
+    @property
+    def targets(self) -> list[Path]:
+        return [target for target, _, _ in self._entries]
+
+    def abort(self) -> None:
+        """Remove every temporary; the targets are untouched."""
+        for _, tmp, handle in self._entries:
+            with contextlib.suppress(Exception):
+                handle.close()
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
+        self._entries = []
+        self._remove_created_folder()
+
+    def _remove_created_folder(self) -> None:
+        if not self.committed:
+            for folder in self._created:
+                try:
+                    folder.rmdir()           # only if still empty
+                except OSError:
+                    break
+
+    def commit(self) -> list[Path]:
+        """Flush and rename every temporary onto its target, all or none."""
+        try:
+            for _, _, handle in self._entries:
+                if not handle.closed:
+                    handle.flush()
+                    os.fsync(handle.fileno())
+                    handle.close()
+        except BaseException:
+            self.abort()
+            raise
+        done: list[tuple[Path, Path | None]] = []     # (target, backup or None)
+        backups: list[Path] = []
+        try:
+            for target, tmp, _ in self._entries:
+                backup = None
+                if target.exists():
+                    backup = self._backup(target)
+                    backups.append(backup)
+                os.replace(tmp, target)
+                done.append((target, backup))
+        except BaseException as exc:
+            for target, backup in reversed(done):
+                with contextlib.suppress(OSError):
+                    if backup is not None:
+                        os.replace(backup, target)
+                    else:
+                        os.unlink(target)
+            for backup in backups:
+                with contextlib.suppress(OSError):
+                    os.unlink(backup)
+            self.abort()
+            if isinstance(exc, OSError):
+                raise DriverError(f"{exc.filename or self.folder}: cannot put the file in place "
+                                  f"({exc.strerror}); the folder was left as it was") from None
+            raise
+        for backup in backups:
+            with contextlib.suppress(OSError):
+                os.unlink(backup)
+        self.committed = True
+        _fsync_dir(self.folder)
+        targets = self.targets
+        self._entries = []
+        return targets
+
+    def _backup(self, target: Path) -> Path:
+        fd, name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".old", dir=self.folder)
+        os.close(fd)
+        os.unlink(name)
+        try:
+            os.link(target, name)           # the old file stays reachable, the target is untouched
+        except OSError:
+            shutil.copy2(target, name)      # file systems without hard links
+        return Path(name)
+
+
+class HashingWriter:
+    """A binary file wrapper that hashes (SHA-256) and counts every byte written."""
+
+    def __init__(self, handle, progress=None, total: int = 0):
+        self.handle = handle
+        self.sha256 = hashlib.sha256()
+        self.bytes = 0
+        self._progress = progress
+        self._total = total
+
+    def write(self, data) -> int:
+        view = memoryview(data).cast("B")
+        self.handle.write(view)
+        self.sha256.update(view)
+        self.bytes += view.nbytes
+        if self._progress is not None and self._total:
+            self._progress(self.bytes, self._total)
+        return view.nbytes
+
+    def hexdigest(self) -> str:
+        return self.sha256.hexdigest()
+
+
+# ---------------------------------------------------------------------------------------------
+# File drivers
+# ---------------------------------------------------------------------------------------------
+_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.+-]{0,127}$")
+COMMON_OPTIONS = {"name": "file name without extension (default 'sweep')"}
+
+
+class FileDriver(Driver):
+    """A driver that writes one data file plus its JSON sidecar into a folder.
+
+    Subclasses set ``extension`` and implement :meth:`layout` (validate the
+    options and describe how values are stored) and :meth:`write` (stream the
+    data into a binary handle). ``deliver`` does the rest: file names, the
+    atomic pair, SHA-256, and the sidecar (built by :mod:`sweepgen.sidecar`).
+
+    The layout dict describes the stored values for the sidecar: ``dtype``
+    (NumPy dtype string as stored, with byte order), ``header_bytes`` (bytes
+    before the data, or None for text), and ``value_to_code`` = ``{"offset",
+    "scale"}`` with ``code = offset + scale * value``; further keys (columns,
+    format notes) are copied into the sidecar.
+    """
+
+    kind: ClassVar[str] = "file"
+    extension: ClassVar[str] = ""
+
+    def check_options(self, options: dict) -> dict:
+        """The options with defaults filled in; unknown keys are an :class:`InputError`."""
+        known = {**COMMON_OPTIONS, **self.options}
+        unknown = sorted(set(options) - set(known))
+        if unknown:
+            raise InputError(f"driver {self.name!r} has no option {unknown[0]!r} "
+                             f"(options: {', '.join(sorted(known))})", key="--option")
+        name = str(options.get("name", "sweep"))
+        if not _NAME.match(name) or name in (".", ".."):
+            raise InputError(f"expected a plain file name (letters, digits, '_', '-', '.', '+'; no folders), "
+                             f"got {name!r}", key="--name")
+        return {**options, "name": name}
+
+    @abc.abstractmethod
+    def layout(self, table, options: dict) -> dict:
+        """Validate ``options`` against the table; describe the stored values (see class doc)."""
+
+    @abc.abstractmethod
+    def write(self, table, out: HashingWriter, layout: dict, delivery: Delivery) -> None:
+        """Write the data to ``out`` (a binary writer); raise on failure."""
+
+    def file_names(self, options: dict) -> tuple[str, str]:
+        data = f"{options['name']}.{self.extension}"
+        return data, data + ".json"
+
+    def deliver(self, table, delivery: Delivery) -> dict:
+        from sweepgen import sidecar
+
+        options = self.check_options(dict(delivery.options))
+        layout = self.layout(table, options)
+        data_name, sidecar_name = self.file_names(options)
+        folder = Path(delivery.destination)
+        report = {"driver": self.name, "folder": str(folder), "files": [data_name, sidecar_name],
+                  "count": table.info.count, "sample_rate": table.info.sample_rate,
+                  "dtype": layout["dtype"], "dry_run": bool(delivery.dry_run)}
+        if delivery.dry_run:
+            return report
+        try:
+            with AtomicFileSet(folder) as files:
+                handle = files.open(data_name, "wb")
+                out = HashingWriter(handle, delivery.progress, layout.get("expected_bytes") or 0)
+                self.write(table, out, layout, delivery)
+                doc = sidecar.build(table.info, driver=self.name, data_file=data_name,
+                                    sha256=out.hexdigest(), nbytes=out.bytes, layout=layout,
+                                    provenance=delivery.sidecar)
+                files.open(sidecar_name, "w", encoding="utf-8").write(sidecar.dumps(doc))
+                files.commit()         # data file first, sidecar last; all or nothing
+        except OSError as exc:
+            raise DriverError(f"{exc.filename or folder}: write failed ({exc.strerror or exc}); "
+                              f"the folder was left as it was") from None
+        report.update(bytes=out.bytes, sha256=out.hexdigest(),
+                      paths=[str(folder / data_name), str(folder / sidecar_name)])
+        return report

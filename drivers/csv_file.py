@@ -1,0 +1,51 @@
+"""``csv``: one row per sample: time, detuning, drive, code (comma separated, one header line).
+
+* ``time_s``: ``index / sample_rate``;
+* ``detuning_Hz``: the planned optical detuning at that time;
+* ``drive_<unit>``: the planned drive (V at the actuator input, or Hz of the
+  DDS output) before quantisation;
+* ``code``: the generator code actually played (integer).
+
+The code column is the table; the sidecar's ``scaling`` maps it (as ``value``)
+to drive units and to detuning. Read it back with
+``numpy.loadtxt(path, delimiter=",", skiprows=1)``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from sweepgen.drivers.base import FileDriver
+
+ROWS_PER_WRITE = 1 << 15
+
+
+def _lines(frame) -> str:
+    codes = frame.codes.tolist()
+    return "".join(f"{t!r},{d!r},{v!r},{c}\n" for t, d, v, c in
+                   zip(frame.time.tolist(), frame.detuning.tolist(), frame.drive.tolist(), codes))
+
+
+class CsvDriver(FileDriver):
+    name = "csv"
+    extension = "csv"
+    description = "text table: time, detuning, drive, code (one row per sample)"
+    options = {}
+
+    def layout(self, table, options):
+        unit = table.info.drive_unit
+        columns = [{"name": "time", "unit": "s"}, {"name": "detuning", "unit": "Hz"},
+                   {"name": "drive", "unit": unit}, {"name": "code", "unit": ""}]
+        head = ",".join(f"{c['name']}_{c['unit']}" if c["unit"] else c["name"] for c in columns)
+        return {"dtype": np.dtype(table.info.dtype).str, "header_bytes": None, "byte_order": "not applicable (text)",
+                "value_to_code": {"offset": 0, "scale": 1}, "columns": columns, "value_column": "code",
+                "delimiter": ",", "header_lines": 1, "encoding": "ascii", "_head": head}
+
+    def write(self, table, out, layout, delivery):
+        out.write((layout["_head"] + "\n").encode("ascii"))
+        done = 0
+        for frame in table.frames(ROWS_PER_WRITE):
+            out.write(_lines(frame).encode("ascii"))
+            done += len(frame.codes)
+            if delivery.progress is not None:
+                delivery.progress(done, table.info.count)

@@ -1,0 +1,387 @@
+"""Render the sweep: the schedule sampled at the generator's rate, as generator codes.
+
+:func:`render` returns a :class:`sweepgen.table.RenderedTable` whose codes are
+computed chunk by chunk when a driver iterates it, so memory does not grow with
+the table's length. Sample ``i`` plays at ``t_i = i / rate``:
+
+* for ``i < period_count`` (one period of the schedule) the optical detuning
+  ``Δ(t_i)`` comes from :class:`sweepgen.schedule.Schedule`, the drive from the
+  laser's tuning chain (``chain.to_drive``), the code from the generator's
+  quantisation (:func:`sweepgen.sampling.drive_to_codes`: DAC codes, or DDS
+  frequency tuning words);
+* the samples from ``period_count`` to ``count`` pad the table to the
+  generator's record granularity with the first sample, so that the table
+  loops without a jump.
+
+Safety: before anything is iterated, the drive range of the whole period is
+found exactly (the schedule is a piecewise cubic: its extremes lie at piece
+boundaries or at roots of its derivative, and the chain is monotone), and a
+table whose drive would leave the actuator's safe input range or the
+generator's output range is refused with :class:`CheckFailed`; nothing is
+ever clipped. Every chunk is checked again as it is computed.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from sweepgen import __version__
+from sweepgen.errors import CheckFailed
+from sweepgen.table import Frame, RenderedTable, TableInfo
+
+#: a chain is written to the sidecar as linear when a straight line reproduces it within this fraction of a code step
+LINEAR_TOLERANCE = 1e-3
+#: target accuracy of the code -> detuning lookup of a non-linear chain, as a fraction of the local code step
+LOOKUP_TOLERANCE = 0.1
+#: the fast drive evaluation agrees with the chain within this fraction of a code step
+TABLE_TOLERANCE = 1e-3
+#: samples computed at a time inside a frame (the temporaries stay in the processor's cache)
+BLOCK = 8192
+
+
+# ---------------------------------------------------------------------------------------------
+# Exact range of the schedule over one period
+# ---------------------------------------------------------------------------------------------
+def detuning_extremes(schedule) -> tuple[float, float]:
+    """Smallest and largest detuning of the schedule over one period (Hz).
+
+    The schedule is a piecewise polynomial (``Schedule.poly``); on each piece the
+    extremes lie at the ends or where the derivative vanishes, so evaluating it
+    at the breakpoints and at the real roots of its derivative inside ``[0,
+    period]`` gives the exact range (elementary calculus; the roots come from
+    ``scipy.interpolate.PPoly.roots``).
+    """
+    poly = schedule.poly
+    x = poly.x
+    inside = (x >= 0.0) & (x <= schedule.period)
+    candidates = [x[inside], np.array([0.0, schedule.period])]
+    roots = poly.derivative().roots(discontinuity=False, extrapolate=False)
+    roots = roots[np.isfinite(roots)]
+    candidates.append(roots[(roots >= 0.0) & (roots <= schedule.period)])
+    t = np.concatenate(candidates)
+    # a piece ends where the next starts: take both one-sided values at every breakpoint
+    left = np.nextafter(t, -np.inf)
+    values = np.concatenate([poly(t), poly(np.clip(left, 0.0, None))])
+    return float(values.min()), float(values.max())
+
+
+def drive_range(schedule, chain) -> tuple[float, float]:
+    """Smallest and largest drive over one period (drive units); the chain is monotone."""
+    lo, hi = detuning_extremes(schedule)
+    ends = np.asarray(chain.to_drive(np.array([lo, hi])), dtype=float)
+    return float(ends.min()), float(ends.max())
+
+
+# ---------------------------------------------------------------------------------------------
+# Safety
+# ---------------------------------------------------------------------------------------------
+def _finding(rule, value, limit, unit, message) -> dict:
+    return {"rule": rule, "status": "fail", "value": value, "limit": limit, "unit": unit, "message": message}
+
+
+def output_range(generator) -> tuple[float, float, str]:
+    """The generator's output range expressed at the actuator input (drive units)."""
+    out = generator.output
+    if out.kind == "voltage":
+        k = out.delivered_factor
+        lo, hi = sorted((out.range_min * k, out.range_max * k))
+        return lo, hi, "V"
+    return out.range_min, out.range_max, "Hz"
+
+
+def safety_findings(lo: float, hi: float, laser, generator, unit: str) -> list[dict]:
+    """Failed findings for a drive range ``[lo, hi]`` outside the safe input or the output range."""
+    found = []
+    lim = laser.limits
+    if lo < lim.input_min or hi > lim.input_max:
+        found.append(_finding(
+            "render.safe_input", [lo, hi], [lim.input_min, lim.input_max], unit,
+            f"the drive would span {lo:.6g}..{hi:.6g} {unit}, outside the actuator's safe input range "
+            f"{lim.input_min:.6g}..{lim.input_max:.6g} {unit} (laser profile, limits.input_min/input_max); "
+            f"no table is written"))
+    olo, ohi, ounit = output_range(generator)
+    if lo < olo or hi > ohi:
+        found.append(_finding(
+            "render.output_range", [lo, hi], [olo, ohi], ounit,
+            f"the drive would span {lo:.6g}..{hi:.6g} {unit}, outside what the generator delivers at the "
+            f"actuator ({olo:.6g}..{ohi:.6g} {ounit}: output range at its load); no table is written"))
+    return found
+
+
+def _refuse(findings):
+    raise CheckFailed("; ".join(f["message"] for f in findings), findings)
+
+
+# ---------------------------------------------------------------------------------------------
+# code -> detuning, for sidecars
+# ---------------------------------------------------------------------------------------------
+def detuning_scaling(chain, q, code_lo: int, code_hi: int) -> dict:
+    """How a reader turns codes back into optical detuning (Hz).
+
+    Linear when a straight line through the ends reproduces ``chain.to_detuning``
+    within :data:`LINEAR_TOLERANCE` of a code step everywhere in ``[code_lo,
+    code_hi]``; otherwise a lookup ``(code, detuning)`` on a grid refined until
+    ``numpy.interp`` is within :data:`LOOKUP_TOLERANCE` of the local code step
+    (at worst every code is a grid point and the lookup is exact).
+    """
+    def det(code):
+        return np.asarray(chain.to_detuning(q.code_offset + q.code_scale * np.asarray(code, dtype=float)),
+                          dtype=float)
+
+    code_lo, code_hi = int(code_lo), int(code_hi)
+    if code_hi <= code_lo:
+        code_hi = code_lo + 1
+    span = code_hi - code_lo
+    grid = np.linspace(code_lo, code_hi, min(span + 1, 4097))
+    values = det(grid)
+    scale = (values[-1] - values[0]) / span
+    offset = values[0] - scale * code_lo
+    step = abs(scale)
+    dev = float(np.max(np.abs(values - (offset + scale * grid))))
+    if step > 0 and dev <= LINEAR_TOLERANCE * step:
+        return {"kind": "linear", "offset": float(offset), "scale": float(scale), "step": step,
+                "max_error": dev}
+    n = 257
+    while True:
+        n = min(n, span + 1)
+        grid = np.unique(np.round(np.linspace(code_lo, code_hi, n)))
+        values = det(grid)
+        mid = 0.5 * (grid[:-1] + grid[1:])
+        err = np.abs(np.interp(mid, grid, values) - det(mid))
+        local = np.abs(np.diff(values) / np.diff(grid))          # Hz per code on each interval
+        if n >= span + 1 or np.all(err <= LOOKUP_TOLERANCE * local):
+            exact = n >= span + 1
+            return {"kind": "lookup", "code": grid.astype(np.int64).tolist(), "detuning": values.tolist(),
+                    "max_error": 0.0 if exact else float(err.max()), "step": float(local.min())}
+        n = 2 * n - 1
+
+
+# ---------------------------------------------------------------------------------------------
+# Fast evaluation of the schedule at increasing times
+# ---------------------------------------------------------------------------------------------
+class SortedEvaluator:
+    """Evaluate a ``scipy.interpolate.PPoly`` at increasing times, piece by piece.
+
+    A block of sample times usually falls on a few pieces of the schedule; each
+    piece is then a single polynomial with scalar coefficients, evaluated by
+    Horner's rule in place (no per-sample gather of coefficients). Blocks that
+    cross many pieces go to ``PPoly.__call__``. The pieces are taken as PPoly
+    takes them: piece ``k`` covers ``[x[k], x[k+1])``, the last one extends
+    beyond ``x[-1]``.
+    """
+
+    MAX_PIECES = 16
+
+    def __init__(self, poly):
+        self.poly = poly
+        self.x = np.asarray(poly.x, dtype=float)
+        self.c = np.asarray(poly.c, dtype=float)
+        self.last = len(self.x) - 2
+
+    def __call__(self, t, out=None):
+        """Values at increasing times ``t``; written into ``out`` when given."""
+        t = np.asarray(t, dtype=float)
+        if out is None:
+            out = np.empty_like(t)
+        if t.size == 0:
+            return out
+        x, c = self.x, self.c
+        k0 = min(max(int(np.searchsorted(x, t[0], side="right")) - 1, 0), self.last)
+        k1 = min(max(int(np.searchsorted(x, t[-1], side="right")) - 1, 0), self.last)
+        if k1 - k0 > self.MAX_PIECES or k1 < k0:
+            out[...] = self.poly(t)
+            return out
+        bounds = np.searchsorted(t, x[k0 + 1:k1 + 1], side="left").tolist()
+        for j, (a, b) in enumerate(zip([0, *bounds], [*bounds, t.size])):
+            if b <= a:
+                continue
+            k = k0 + j
+            dt = t[a:b] - x[k]
+            y = out[a:b]
+            y[:] = c[0, k]
+            for m in range(1, c.shape[0]):
+                y *= dt
+                y += c[m, k]
+        return out
+
+
+# ---------------------------------------------------------------------------------------------
+# Fast drive evaluation
+# ---------------------------------------------------------------------------------------------
+def drive_function(chain, det_lo: float, det_hi: float, code_step: float):
+    """A vectorised detuning -> drive map over ``[det_lo, det_hi]``, equal to ``chain.to_drive``
+    within :data:`TABLE_TOLERANCE` of a code step (``code_step``, drive units).
+
+    A chain that is a straight line over the range is evaluated as one; a
+    non-linear one (a calibrated stage, whose exact inverse takes Newton
+    iterations) is tabulated on a grid refined until ``numpy.interp`` agrees with
+    the chain at every interval's midpoint within the tolerance; the chain itself
+    is used when no grid of at most 2^20 points is fine enough. Returns
+    ``(function, description)``; the function takes ``(detuning, out=None)``.
+    """
+    def exact(d, out=None):
+        v = np.asarray(chain.to_drive(d), dtype=float)
+        if out is None:
+            return v
+        out[...] = v
+        return out
+
+    if not det_hi > det_lo:
+        return exact, "exact"
+    tol = TABLE_TOLERANCE * abs(code_step)
+    ends = np.asarray(exact(np.array([det_lo, det_hi])), dtype=float)
+    slope = (ends[1] - ends[0]) / (det_hi - det_lo)
+    probe = np.linspace(det_lo, det_hi, 4097)
+    line = ends[0] + slope * (probe - det_lo)
+    if np.max(np.abs(np.asarray(exact(probe), dtype=float) - line)) <= tol:
+        a, b = ends[0] - slope * det_lo, slope
+
+        def linear(d, out=None):
+            v = np.multiply(d, b, out=out)
+            v += a
+            return v
+
+        return linear, "linear"
+    n = 1025
+    while n <= (1 << 20) + 1:
+        grid = np.linspace(det_lo, det_hi, n)
+        values = np.asarray(exact(grid), dtype=float)
+        mid = 0.5 * (grid[:-1] + grid[1:])
+        err = np.max(np.abs(np.interp(mid, grid, values) - np.asarray(exact(mid), dtype=float)))
+        if err <= tol:
+            def tabulated(d, out=None):
+                v = np.interp(d, grid, values)
+                if out is None:
+                    return v
+                out[...] = v
+                return out
+
+            return tabulated, f"tabulated ({n} points, within {err:.3g})"
+        n = 2 * n - 1
+    return exact, "exact"
+
+
+# ---------------------------------------------------------------------------------------------
+# Render
+# ---------------------------------------------------------------------------------------------
+def render(schedule, laser, generator, scenario, rate_choice=None) -> RenderedTable:
+    """The table of generator codes for one period of ``schedule``, streamed in chunks.
+
+    Parameters
+    ----------
+    schedule : sweepgen.schedule.Schedule
+        The sweep (detuning in Hz versus time over one period).
+    laser : sweepgen.laser.Laser
+        Its chain maps detuning to drive; ``limits.input_min/max`` is the
+        actuator's safe input range.
+    generator : sweepgen.generator.Generator
+        Sample rates, memory, granularity, output range and resolution.
+    scenario : sweepgen.scenario.Scenario
+        ``scenario.drive`` (sample rate or automatic, channel) and the digest.
+    rate_choice : sweepgen.sampling.RateChoice, optional
+        The sample rate and lengths; chosen by :func:`sweepgen.sampling.choose_rate`
+        from ``scenario.drive`` when not given.
+
+    Returns
+    -------
+    RenderedTable
+        Codes (``info.dtype``) for ``info.count`` samples: ``info.period_count``
+        samples of one period, then copies of the first sample.
+
+    Raises
+    ------
+    CheckFailed
+        The drive would leave the actuator's safe input range or the
+        generator's output range (also raised mid-stream by the chunk check).
+    """
+    from sweepgen import sampling
+
+    chain = laser.chain
+    if rate_choice is None:
+        rate_choice = sampling.choose_rate(schedule, chain, generator, scenario.drive,
+                                           linewidth=scenario.species.linewidth)
+    rate = float(rate_choice.rate)
+    period_count = int(rate_choice.period_count)
+    count = int(rate_choice.count)
+    if not (0 < period_count <= count):
+        raise ValueError(f"inconsistent rate choice: period_count={period_count}, count={count}")
+    unit = chain.drive_unit
+
+    lo, hi = drive_range(schedule, chain)
+    found = safety_findings(lo, hi, laser, generator, unit)
+    if found:
+        _refuse(found)
+    q = sampling.quantisation(lo, hi, generator, chain)
+    # the quantised ends (codes are rounded) must be safe too
+    end_codes = sampling.drive_to_codes(np.array([lo, hi]), q)
+    qd = q.code_offset + q.code_scale * end_codes.astype(float)
+    found = safety_findings(float(qd.min()), float(qd.max()), laser, generator, unit)
+    if found:
+        _refuse(found)
+    code_lo, code_hi = sorted(int(c) for c in end_codes)
+
+    poly = SortedEvaluator(schedule.poly)
+    period = schedule.period
+    det_lo, det_hi = detuning_extremes(schedule)
+    to_drive, drive_eval = drive_function(chain, det_lo, det_hi, q.code_scale)
+    first_detuning = float(schedule.poly(0.0))
+    first_drive = float(np.asarray(chain.to_drive(np.array([first_detuning])))[0])
+    first_code = sampling.drive_to_codes(np.array([first_drive]), q)[0]
+    dtype = np.dtype(q.dtype)
+
+    def compute(start: int, stop: int, detuning, drive, codes) -> None:
+        """Samples start..stop of the period (all < period_count) into the output slices."""
+        t = np.arange(start, stop, dtype=np.float64)
+        t /= rate
+        if t[-1] >= period:                           # rounding of the rate: stay on the period's axis
+            np.mod(t, period, out=t)
+        poly(t, out=detuning)
+        to_drive(detuning, out=drive)
+        codes[:] = sampling.drive_to_codes(drive, q)  # refuses (CheckFailed) instead of clipping
+
+    def frame_source(start: int, stop: int) -> Frame:
+        n = stop - start
+        time = np.arange(start, stop, dtype=np.float64)
+        time /= rate
+        detuning = np.empty(n)
+        drive = np.empty(n)
+        codes = np.empty(n, dtype=dtype)
+        inner = max(0, min(stop, period_count) - start)
+        # work in blocks that stay in the processor's cache; the frame is only the output
+        for a in range(0, inner, BLOCK):
+            b = min(a + BLOCK, inner)
+            compute(start + a, start + b, detuning[a:b], drive[a:b], codes[a:b])
+        if inner < n:                                 # padding: the first sample again
+            detuning[inner:] = first_detuning
+            drive[inner:] = first_drive
+            codes[inner:] = first_code
+        return Frame(start, time, detuning, drive, codes)
+
+    choice = {"rate": rate, "period_count": period_count, "count": count,
+              "limited_by": getattr(rate_choice, "limited_by", None),
+              "reason": getattr(rate_choice, "reason", None)}
+    extra = {
+        "period": period,
+        "sampling": choice,
+        "chain": {"description": chain.describe(), "drive_unit": unit, "stages": chain.info(),
+                  "evaluation": drive_eval},
+        "quantisation": {"dtype": dtype.str, "bits": int(q.bits),
+                         "full_min": -int(q.full_scale) if q.output == "voltage" else 0,
+                         "full_max": int(q.full_scale),
+                         "code_min": int(q.code_min), "code_max": int(q.code_max),
+                         "code_scale": float(q.code_scale), "code_offset": float(q.code_offset),
+                         "amplitude": q.amplitude, "offset": q.offset,
+                         "delivered_factor": float(q.delivered_factor)},
+        "drive_range": [lo, hi],
+        "code_range": [code_lo, code_hi],
+        "safe_range": [laser.limits.input_min, laser.limits.input_max],
+        "detuning_scaling": detuning_scaling(chain, q, code_lo, code_hi),
+    }
+    info = TableInfo(sample_rate=rate, count=count, period_count=period_count, dtype=dtype.str,
+                     output=generator.output.kind, drive_unit=unit, code_scale=float(q.code_scale),
+                     code_offset=float(q.code_offset), amplitude=q.amplitude, offset=q.offset,
+                     channel=scenario.drive.channel, scenario_digest=scenario.digest,
+                     tool_version=__version__, extra=extra)
+    return RenderedTable(info, frame_source)
