@@ -1,0 +1,160 @@
+"""``sweepgen upload``: the whole path from a scenario to a verified upload, over real sockets."""
+
+from __future__ import annotations
+
+import json
+import socket
+
+import pytest
+from click.testing import CliRunner
+
+from sweepgen.cli import main
+from sweepgen.instrument import Faults
+from sweepgen.testing import instrument_server
+
+from conftest import to_toml
+from test_drivers_visa import OTHER_DIALECT, OTHER_IDENTITY
+
+SCENARIO = "rb87-chopped-oven"          # built in: pulsed source, virtual-awg, 160000 samples at 8 MSa/s
+
+
+def run(*args):
+    return CliRunner().invoke(main, ["upload", *args])
+
+
+def closed_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_dry_run_prints_the_command_log_and_connects_to_nothing():
+    result = run(SCENARIO, "--dry-run", "--resource", f"TCPIP::127.0.0.1::{closed_port()}::SOCKET")
+    assert result.exit_code == 0, result.output
+    out = result.stdout
+    assert "TRAC:DATA SWEEP,#6320000<320000 bytes of data>" in out
+    assert "320025" in out                                  # 16 + 8 header + 320000 + newline
+    assert "OUTP1:STAT OFF" in out and "OUTP1:STAT ON" not in out
+    assert "TRIG:SOUR EXT" in out                           # a pulsed source triggers the sweep
+    assert "dry run: nothing was sent" in out
+
+
+def test_dry_run_json_is_one_document():
+    result = run(SCENARIO, "--dry-run", "--arm", "--json")
+    assert result.exit_code == 0, result.output
+    doc = json.loads(result.stdout)
+    assert doc["dry_run"] is True and doc["driver"] == "visa" and doc["generator"] == "virtual-awg"
+    assert doc["log"][-2]["command"] == "OUTP1:STAT ON"
+    assert doc["bytes"] == sum(e["bytes"] for e in doc["log"])
+    assert "CAUTION" not in result.stderr                  # nothing is switched on in a dry run
+
+
+def test_upload_json_reports_steps_bytes_duration_verification():
+    with instrument_server("virtual-awg") as server:
+        result = run(SCENARIO, "--resource", server.resource, "--json")
+        assert result.exit_code == 0, result.output
+        doc = json.loads(result.stdout)
+        trace = server.instrument.traces["SWEEP"]
+        assert len(trace.values) == 160000
+        assert server.instrument.outputs_on == [] and not server.instrument.ever_armed
+    assert doc["verification"]["ok"] is True and doc["verification"]["method"] == "readback"
+    assert doc["block_bytes"] == 320000 and doc["bytes"] > 320000 and doc["duration"] > 0
+    assert [s["step"] for s in doc["steps"]][:5] == ["identify", "output_off", "clear", "format", "upload"]
+    assert doc["armed"] is False
+    assert "CAUTION" not in result.stderr
+
+
+def test_arm_prints_the_caution_then_switches_on():
+    with instrument_server("virtual-awg") as server:
+        result = run(SCENARIO, "--resource", server.resource, "--arm")
+        assert result.exit_code == 0, result.output
+        assert server.instrument.outputs_on == [1]
+    err = result.stderr
+    assert "Laser radiation" in err and "eyewear" in err.lower()
+    assert "piezo" in err and "high-voltage" in err
+    assert "scope and a wavemeter" in err
+    assert "output: ON" in result.stdout
+    assert "verified by readback" in result.stdout
+
+
+# A dropped connection shows in the upload, or, when the socket buffers took the whole block
+# before the instrument hung up, in the completion wait right after it.
+@pytest.mark.parametrize("faults, steps", [
+    (Faults(error_after_upload=True), ["upload"]),
+    (Faults(corrupt_readback=True), ["verify"]),
+    (Faults(drop_after=100000), ["upload", "wait"]),
+])
+def test_faults_exit_1_name_the_step_and_leave_the_output_off(faults, steps):
+    with instrument_server("virtual-awg", faults=faults) as server:
+        result = run(SCENARIO, "--resource", server.resource, "--arm", "--json")
+        assert result.exit_code == 1
+        assert server.instrument.outputs_on == [] and not server.instrument.ever_armed
+    assert result.stdout == ""
+    assert any(f"step '{step}'" in result.stderr for step in steps)
+    assert "output switched off" in result.stderr
+    assert "Traceback" not in result.output
+
+
+def test_silent_instrument_times_out_with_the_profile_timeout(tmp_path):
+    profile = tmp_path / "quick.toml"
+    data = {**OTHER_DIALECT, "link": {**OTHER_DIALECT["link"], "timeout": "0.2 s"}}
+    profile.write_text(to_toml(data), encoding="utf-8")
+    with instrument_server(str(profile), faults=Faults(mute=True), identity=OTHER_IDENTITY) as server:
+        result = run(SCENARIO, "--generator", str(profile), "--resource", server.resource, "--arm")
+        assert server.instrument.outputs_on == []
+    assert result.exit_code == 1
+    assert "step 'identify': no answer within 0.2 s" in result.stderr
+
+
+def test_other_dialect_profile_outside_the_repo_uploads_and_verifies(tmp_path):
+    profile = tmp_path / "lab" / "other-awg.toml"
+    profile.parent.mkdir()
+    profile.write_text(to_toml(OTHER_DIALECT), encoding="utf-8")
+    with instrument_server(str(profile), identity=OTHER_IDENTITY) as server:
+        result = run(SCENARIO, "--generator", str(profile), "--resource", server.resource, "--json", "--arm")
+        assert result.exit_code == 0, result.output
+        assert server.instrument.outputs_on == [1]
+        assert "CHIRP_A" in server.instrument.traces and server.instrument.border == "NORM"
+    doc = json.loads(result.stdout)
+    assert doc["verification"]["method"] == "checksum" and doc["verification"]["ok"] is True
+    assert doc["generator"] == "other-awg"
+
+
+def test_failed_check_sends_nothing(tmp_path):
+    profile = tmp_path / "tiny.toml"
+    tiny = {**OTHER_DIALECT, "sampling": {"rate_min": "40 MSa/s", "rate_max": "50 MSa/s", "memory": 4096}}
+    profile.write_text(to_toml(tiny), encoding="utf-8")
+    with instrument_server(str(profile)) as server:
+        result = run(SCENARIO, "--generator", str(profile), "--resource", server.resource)
+        assert server.clients == 0
+    assert result.exit_code == 1
+    assert "nothing is written or sent" in result.stderr
+
+
+@pytest.mark.parametrize("args, key", [
+    (["--resource", "TCPIP::127.0.0.1::1::SOCKET", "--serial-port", "socket://127.0.0.1:1"], "--serial-port"),
+    (["--serial-port", "socket://127.0.0.1:1"], "--serial-port"),             # virtual-awg is not a board
+])
+def test_contradictory_destinations_are_usage_errors(args, key):
+    result = run(SCENARIO, *args)
+    assert result.exit_code == 2
+    assert key in result.stderr
+
+
+def test_unknown_backend_is_a_usage_error():
+    with instrument_server("virtual-awg") as server:
+        result = run(SCENARIO, "--resource", server.resource, "--backend", "@nonexistent")
+    assert result.exit_code == 2 and "--backend" in result.stderr
+
+
+def test_board_generator_goes_to_the_serial_driver():
+    from sweepgen.board import BoardServer
+
+    server = BoardServer("demo-ramp-board").start()
+    try:
+        result = run("caf-buffer-gas", "--serial-port", server.url, "--json")
+    finally:
+        server.stop()
+    assert result.exit_code == 0, result.output
+    doc = json.loads(result.stdout)
+    assert doc["driver"] == "serial" and doc["armed"] is False

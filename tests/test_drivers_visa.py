@@ -1,0 +1,305 @@
+"""The ``visa`` driver against the virtual instrument over a real loopback socket (pyvisa, '@py')."""
+
+from __future__ import annotations
+
+import socket
+import zlib
+
+import numpy as np
+import pytest
+
+from sweepgen import drivers
+from sweepgen.drivers.base import Delivery
+from sweepgen.drivers.visa import VisaDriver
+from sweepgen.errors import CheckFailed, InputError, InstrumentError
+from sweepgen.generator import generator_from_dict, load_generator
+from sweepgen.instrument import Faults
+from sweepgen.table import Frame, RenderedTable, TableInfo
+from sweepgen.testing import instrument_server, upload_to_virtual_instrument
+
+from conftest import to_toml
+
+# An instrument with another dialect: long forms, SOURce1/OUTPut1 suffixes, DATA instead of TRACe,
+# big-endian blocks, a checksum query instead of a readback (all standard SCPI, but the checksum node,
+# which is the virtual instrument's own extension).
+OTHER_DIALECT = {
+    "title": "AWG with another dialect (test profile)", "kind": "awg", "channels": 1,
+    "sampling": {"rate_min": "1 kSa/s", "rate_max": "50 MSa/s", "memory": 1048576, "granularity": 8,
+                 "min_length": 32},
+    "output": {"kind": "voltage", "range_min": "-10 V", "range_max": "10 V", "dac_bits": 14},
+    "link": {"kind": "visa", "resource": "TCPIP::127.0.0.1::5025::SOCKET", "throughput": "5 MB/s",
+             "timeout": "2 s"},
+    "commands": {
+        "identify": "*IDN?", "identity_pattern": "^sweepgen,other-awg,", "clear": "*CLS",
+        "reset": "*RST",
+        "output_off": "OUTPut{channel}:STATe 0",
+        "format": "FORMat:DATA {type},{bits};BORDer {border}",
+        "byte_order": "big", "upload_mode": "block", "trace_name": "CHIRP_A",
+        "upload": "DATA:DATA {name},{data}",
+        "wait": "*OPC?", "error_query": "SYSTem:ERRor:NEXT?", "no_error_pattern": '^[+]?0,"No error"',
+        "checksum": "DATA:CRC? {name}",
+        "function": "SOURce{channel}:FUNCtion:SHAPe USER;USER {name}",
+        "rate": "SOURce{channel}:FREQuency:CW {frequency}",
+        "amplitude": "SOURce{channel}:VOLTage:LEVel:IMMediate:AMPLitude {amplitude}",
+        "offset": "SOURce{channel}:VOLTage:LEVel:IMMediate:OFFSet {offset}",
+        "trigger": "TRIGger:SEQuence:SOURce {trigger_source}",
+        "output_on": "OUTPut{channel}:STATe 1",
+    },
+}
+OTHER_IDENTITY = "sweepgen,other-awg,42,1.0"
+
+
+def make_table(count=1024, rate=1e6, amplitude=2.0, offset=0.5, dtype="<i2", channel=1, bits=14):
+    fs = 2 ** (bits - 1) - 1
+    codes = np.round(fs * np.sin(np.linspace(0, 2 * np.pi, count, endpoint=False))).astype(dtype)  # demo data
+    info = TableInfo(sample_rate=rate, count=count, period_count=count, dtype=dtype, output="voltage",
+                     drive_unit="V", code_scale=amplitude / 2 / fs, code_offset=offset, amplitude=amplitude,
+                     offset=offset, channel=channel)
+
+    def frames(start, stop):
+        t = np.arange(start, stop) / rate
+        return Frame(start, t, t, t, codes[start:stop])
+
+    return RenderedTable(info, frames), codes
+
+
+def write_profile(tmp_path, data, name="other-awg.toml"):
+    path = tmp_path / name
+    path.write_text(to_toml(data), encoding="utf-8")
+    return load_generator(str(path))
+
+
+def short_timeout(tmp_path, timeout="0.3 s"):
+    data = {**OTHER_DIALECT, "link": {**OTHER_DIALECT["link"], "timeout": timeout}}
+    return write_profile(tmp_path, data, "short.toml")
+
+
+def deliver(server, table, generator, **kw):
+    return VisaDriver().deliver(table, Delivery(destination=server.resource, generator=generator, **kw))
+
+
+def test_registered_as_entry_point():
+    assert drivers.load("visa") is VisaDriver
+
+
+def test_upload_builtin_dialect_verifies_and_leaves_output_off():
+    table, codes = make_table()
+    gen = load_generator("virtual-awg")
+    with instrument_server(gen) as server:
+        report = deliver(server, table, gen)
+        inst = server.instrument
+        np.testing.assert_array_equal(inst.traces["SWEEP"].values, codes)
+        ch = inst.channels[1]
+        assert (ch.shape, ch.user) == ("USER", "SWEEP")
+        assert ch.frequency * table.info.count == pytest.approx(table.info.sample_rate)
+        assert (ch.amplitude, ch.offset) == (2.0, 0.5)
+        assert inst.trigger_source == "EXT"
+        assert inst.outputs_on == [] and not inst.ever_armed
+    assert report["verification"]["method"] == "readback" and report["verification"]["ok"]
+    # CRC-32 as zlib.crc32 of the little-endian int16 bytes sent
+    assert report["verification"]["instrument_crc32"] == zlib.crc32(codes.astype("<i2").tobytes())
+    assert [s["step"] for s in report["steps"]] == [
+        "identify", "output_off", "clear", "format", "upload", "wait", "verify", "function", "rate",
+        "amplitude", "offset", "trigger"]
+    assert report["armed"] is False
+    assert report["block_bytes"] == 2048
+    assert report["bytes"] == sum(e["bytes"] for e in report["log"])
+
+
+def test_arm_switches_the_output_on_last():
+    table, _ = make_table()
+    gen = load_generator("virtual-awg")
+    with instrument_server(gen) as server:
+        report = deliver(server, table, gen, arm=True, options={"trigger_source": "IMM"})
+        assert server.instrument.outputs_on == [1]
+        assert server.instrument.trigger_source == "IMM"
+        assert server.instrument.log[-2].startswith("OUTP1:STAT ON")
+    assert report["armed"] is True and report["steps"][-1]["step"] == "output_on"
+
+
+def test_other_dialect_from_a_profile_outside_the_repo(tmp_path):
+    gen = write_profile(tmp_path, OTHER_DIALECT)
+    table, codes = make_table(count=4096, rate=2e6)
+    with instrument_server(gen, identity=OTHER_IDENTITY) as server:
+        report = deliver(server, table, gen, arm=True)
+        inst = server.instrument
+        np.testing.assert_array_equal(inst.traces["CHIRP_A"].values, codes)
+        assert inst.border == "NORM" and inst.format == ("INT", 16)
+        assert inst.outputs_on == [1]
+        assert any(line.startswith("DATA:DATA CHIRP_A,<block 8192 bytes>") for line in inst.log)
+    v = report["verification"]
+    assert v["method"] == "checksum" and v["ok"]
+    assert v["instrument_crc32"] == zlib.crc32(codes.astype(">i2").tobytes())     # big-endian on the wire
+
+
+def test_ascii_dialect_with_readback(tmp_path):
+    commands = {**OTHER_DIALECT["commands"], "upload_mode": "ascii", "format": "FORMat:DATA {format}",
+                "upload": "TRACe:DATA {name},{data}", "readback": "TRACe:DATA? {name}"}
+    del commands["checksum"]
+    gen = write_profile(tmp_path, {**OTHER_DIALECT, "commands": commands})
+    table, codes = make_table(count=256)
+    with instrument_server(gen, identity=OTHER_IDENTITY) as server:
+        report = deliver(server, table, gen)
+        np.testing.assert_array_equal(server.instrument.traces["CHIRP_A"].values, codes)
+    assert report["verification"] == {**report["verification"], "method": "readback", "ok": True}
+    assert "<ASCII list of 256 codes" in report["log"][[e["step"] for e in report["log"]].index("upload")]["command"]
+
+
+def test_dry_run_prints_the_exact_log_without_connecting():
+    table, _ = make_table(count=1024)
+    gen = load_generator("virtual-awg")
+    with socket.socket() as s:                 # a port nobody listens on
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    report = VisaDriver().deliver(table, Delivery(destination=f"TCPIP::127.0.0.1::{port}::SOCKET",
+                                                  generator=gen, dry_run=True, arm=True))
+    upload = next(e for e in report["log"] if e["step"] == "upload" and e["kind"] == "write")
+    assert upload["command"] == "TRAC:DATA SWEEP,#42048<2048 bytes of data>"
+    assert upload["bytes"] == len(b"TRAC:DATA SWEEP,#42048") + 2048 + 1
+    commands = [e["command"] for e in report["log"]]
+    assert commands[:3] == ["*IDN?", "OUTP1:STAT OFF", "*CLS"]
+    assert commands[-2] == "OUTP1:STAT ON"
+    assert "SOUR1:FREQ 976.5625" in commands                  # 1 MSa/s / 1024 points
+    assert report["bytes"] == sum(e["bytes"] for e in report["log"])
+
+
+def test_a_2_24_sample_upload_completes_without_timeout():
+    gen = load_generator("virtual-awg")                 # memory 2^24, throughput 20 MB/s, timeout 5 s
+    count = 1 << 24
+    codes = (np.arange(count, dtype=np.int64) % 16001 - 8000).astype("<i2")
+    info = TableInfo(sample_rate=10e6, count=count, period_count=count, dtype="<i2", output="voltage",
+                     drive_unit="V", code_scale=1e-3, code_offset=0.0, amplitude=2.0, offset=0.0)
+    empty = np.empty(0)
+    table = RenderedTable(info, lambda a, b: Frame(a, empty, empty, empty, codes[a:b]))
+    report = upload_to_virtual_instrument(table, gen)
+    assert report["block_bytes"] == 2 * count
+    assert report["verification"]["ok"] and report["verification"]["bytes"] == 2 * count
+    assert report["instrument"]["outputs_on"] == []
+
+
+def test_progress_reports_every_byte():
+    seen = []
+    table, _ = make_table(count=1 << 20, rate=10e6)
+    upload_to_virtual_instrument(table, progress=lambda done, total: seen.append((done, total)))
+    assert seen[-1] == (2 << 20, 2 << 20)
+    assert all(b[0] > a[0] for a, b in zip(seen, seen[1:]))
+
+
+# --- failures: every one leaves the output off and names the step -------------------------------------
+def failing_upload(gen, faults, identity=OTHER_IDENTITY, prearm=False):
+    # 2 MiB: more than the socket buffers hold, so a dropped connection shows while sending
+    table, _ = make_table(count=1 << 20, rate=10e6)
+    with instrument_server(gen, faults=None if prearm else faults, identity=identity) as server:
+        inst = server.instrument
+        if prearm:                                    # a previous session left the output on
+            deliver(server, table, gen, arm=True)
+            assert inst.outputs_on == [1]
+            inst.faults = faults
+        with pytest.raises(InstrumentError) as info:
+            deliver(server, table, gen, arm=True)
+        assert inst.outputs_on == []
+        assert inst.ever_armed is prearm
+    return info.value
+
+
+@pytest.mark.parametrize("faults, step, words", [
+    (Faults(error_after_upload=True), "upload", '-240,"Hardware error'),
+    (Faults(corrupt_readback=True), "verify", "differs from what was sent"),
+    # a drop shows in the wait when the socket buffers took the whole block before the hang-up
+    (Faults(drop_after=5000), ("upload", "wait"), ("connection was lost", "no answer within")),
+    (Faults(mute=True), "identify", "no answer within 0.3 s"),
+    (Faults(delay=1.0), "identify", "no answer within 0.3 s"),
+])
+def test_each_fault_fails_its_step_with_output_off(tmp_path, faults, step, words):
+    error = failing_upload(short_timeout(tmp_path), faults)
+    assert error.step in (step if isinstance(step, tuple) else (step,))
+    assert any(w in str(error) for w in (words if isinstance(words, tuple) else (words,)))
+    assert "output" in str(error).split(";")[-1]      # says what became of the output
+
+
+def test_failure_after_a_previous_arming_switches_the_output_off(tmp_path):
+    error = failing_upload(short_timeout(tmp_path), Faults(corrupt_readback=True), prearm=True)
+    assert error.step == "verify" and "output switched off" in str(error)
+
+
+def test_wrong_identity_is_refused_before_anything_is_sent(tmp_path):
+    gen = write_profile(tmp_path, OTHER_DIALECT)
+    table, _ = make_table()
+    with instrument_server(gen) as server:          # answers sweepgen,virtual-awg,... instead
+        with pytest.raises(InstrumentError, match="identity pattern") as info:
+            deliver(server, table, gen)
+        assert info.value.step == "identify" and "virtual-awg" in info.value.reply
+        assert server.instrument.traces == {}
+
+
+def test_instrument_refusal_names_the_step(tmp_path):
+    table, _ = make_table(amplitude=30.0, offset=0.0)      # the instrument's range is -10..10 V
+    gen = load_generator("virtual-awg")
+    with instrument_server(gen) as server:
+        with pytest.raises(InstrumentError) as info:
+            deliver(server, table, gen, arm=True)
+        assert server.instrument.outputs_on == []
+    assert info.value.step == "amplitude" and info.value.reply.startswith("-222,")
+
+
+def test_nothing_is_sent_for_a_table_the_generator_cannot_hold():
+    gen = load_generator("virtual-awg")
+    table, _ = make_table(count=1004)                       # not a multiple of the granularity 8
+    with instrument_server(gen) as server:
+        with pytest.raises(CheckFailed, match="granularity"):
+            deliver(server, table, gen)
+        assert server.clients == 0
+
+
+@pytest.mark.parametrize("options, key", [
+    ({"verify": "checksum"}, "verify"), ({"verify": "maybe"}, "verify"), ({"colour": "red"}, "--option"),
+    ({"trigger_source": "NOW"}, "trigger_source"), ({"backend": "@nonexistent"}, "--backend"),
+])
+def test_bad_options_are_input_errors(options, key):
+    table, _ = make_table()
+    gen = load_generator("virtual-awg")
+    with instrument_server(gen) as server:
+        with pytest.raises(InputError) as info:
+            deliver(server, table, gen, options=options)
+    assert info.value.key == key
+
+
+def test_connection_refused_is_an_instrument_error():
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    table, _ = make_table()
+    gen = load_generator("virtual-awg")
+    with pytest.raises(InstrumentError, match="connection refused") as info:
+        VisaDriver().deliver(table, Delivery(destination=f"TCPIP::127.0.0.1::{port}::SOCKET", generator=gen))
+    assert info.value.step == "identify"
+
+
+def test_timeouts_scale_with_the_byte_count():
+    from sweepgen.drivers.visa import _Plan
+
+    table, _ = make_table()
+    plan = _Plan(table, load_generator("virtual-awg"), {})
+    # link.timeout + 2 N / link.throughput (virtual-awg: 5 s, 20 MB/s)
+    assert plan.data_timeout(0) == 5.0
+    assert plan.data_timeout(20e6) == pytest.approx(7.0)
+
+
+def test_profile_for_a_generator_without_dac_limits_is_rejected_for_bad_channel():
+    table, _ = make_table(channel=2)
+    with pytest.raises(CheckFailed, match="channel 2"):
+        VisaDriver().deliver(table, Delivery(destination="", generator=load_generator("virtual-awg"),
+                                             dry_run=True))
+
+
+def test_frequency_profile_must_be_an_awg(tmp_path):
+    board = load_generator("demo-ramp-board")
+    table, _ = make_table()
+    with pytest.raises(InputError, match="kind 'awg'"):
+        VisaDriver().deliver(table, Delivery(destination="", generator=board, dry_run=True))
+
+
+def test_generator_profile_checked(tmp_path):
+    data = {**OTHER_DIALECT, "commands": {**OTHER_DIALECT["commands"], "trace_name": "A;B"}}
+    with pytest.raises(InputError, match="trace_name"):
+        generator_from_dict(data, tmp_path / "bad.toml")
