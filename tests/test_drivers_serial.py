@@ -1,0 +1,545 @@
+"""The ``serial`` driver against the board emulator and against an independent board.
+
+Every upload runs over a real link: a loopback TCP socket (``socket://`` URL) or a
+real pseudo-terminal pair from ``os.openpty()`` whose slave device path the driver
+opens with pyserial, as it would a USB serial adapter.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+import select
+import socket
+import struct
+import threading
+import tty
+import zlib
+
+import numpy as np
+import pytest
+from hypothesis import given, settings, strategies as st
+
+from sweepgen import framing as fr
+from sweepgen.board import BoardEmulator, FaultPlan
+from sweepgen.drivers import load
+from sweepgen.drivers.base import Delivery
+from sweepgen.drivers.serial_board import SerialDriver, _Plan, _TableBytes
+from sweepgen.errors import CheckFailed, InputError, InstrumentError
+from sweepgen.generator import load_generator
+from sweepgen.table import Frame, RenderedTable, TableInfo
+from sweepgen.testing import virtual_board
+
+BASE = load_generator("demo-ramp-board")      # 32-bit words, 1 GHz clock, 1-400 MHz, rates 0.1-1 MSa/s
+# short timeouts keep the fault tests fast; the board's gap timeout (0.1 s) stays below them
+GEN = dataclasses.replace(BASE, link=dataclasses.replace(BASE.link, timeout=0.2))
+FAST = {"frame_bytes": 1024}
+
+
+def dds_table(count=3000, rate=1e6, f0=20e6, f1=180e6, clock=1e9, bits=32, dtype="<u4"):
+    freqs = np.linspace(f0, f1, count)
+    # DDS frequency tuning word FTW = round(f 2^N / f_clock) (common practice; REFERENCES.md)
+    words = np.round(freqs * 2.0**bits / clock).astype(dtype)
+    info = TableInfo(sample_rate=rate, count=count, period_count=count, dtype=dtype, output="frequency",
+                     drive_unit="Hz", code_scale=clock / 2.0**bits, code_offset=0.0, amplitude=None, offset=None)
+
+    def source(start, stop):
+        return Frame(start, np.arange(start, stop) / rate, freqs[start:stop], freqs[start:stop], words[start:stop])
+
+    return RenderedTable(info, source), words
+
+
+def deliver(table, url, generator=GEN, **kwargs):
+    options = {**FAST, **kwargs.pop("options", {})}
+    return SerialDriver().deliver(table, Delivery(url, generator, options=options, **kwargs))
+
+
+def test_registered_as_serial_instrument_driver():
+    cls = load("serial", kind="instrument")
+    assert cls is SerialDriver and set(cls.options) == {"retries", "restarts", "frame_bytes"}
+
+
+def test_upload_over_a_socket_url_commits_the_rendered_table():
+    table, words = dds_table()
+    seen = []
+    with virtual_board(GEN) as url:
+        report = deliver(table, url, progress=lambda done, total: seen.append((done, total)))
+        committed = url.board.committed
+        assert np.array_equal(committed.codes(), words)
+        assert committed.crc == table.crc32 == zlib.crc32(words.tobytes())
+        assert committed.rate == 1_000_000 and not url.board.armed
+    assert report["verification"] == {"method": "crc32", "expected_crc32": table.crc32,
+                                      "instrument_crc32": table.crc32, "ok": True, "committed": True}
+    n_frames = -(-words.nbytes // 1024)
+    assert report["bytes"] == words.nbytes + n_frames * (fr.OVERHEAD + fr.DATA_PREFIX) + (13 + 28 + 4 * 12)
+    assert report["armed"] is False and report["retries"] == 0 and report["restarts"] == 0
+    assert report["frames"] == -(-words.nbytes // 1024)
+    assert [s["step"] for s in report["steps"]] == ["open", "hello", "disarm", "begin", "data", "verify",
+                                                  "commit", "status"]
+    assert seen[0] == (0, words.nbytes) and seen[-1] == (words.nbytes, words.nbytes)
+    assert all(a[0] <= b[0] for a, b in zip(seen, seen[1:]))
+
+
+def test_arm_only_when_asked():
+    table, _ = dds_table(500)
+    with virtual_board(GEN) as url:
+        deliver(table, url)
+        assert not url.board.armed
+        report = deliver(table, url, arm=True)
+        assert url.board.armed and report["armed"] and report["steps"][-1]["step"] == "arm"
+        deliver(table, url)                      # a new upload switches the output off first
+        assert not url.board.armed
+
+
+def _pty():
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    return master, slave
+
+
+def test_upload_through_a_pseudo_terminal_device():
+    table, words = dds_table(5000)
+    master, slave = _pty()
+    board = BoardEmulator(GEN)
+    try:
+        with board.start_fd(master):
+            report = deliver(table, os.ttyname(slave), arm=True)
+    finally:
+        os.close(slave)
+        os.close(master)
+    assert np.array_equal(board.committed.codes(), words) and board.armed
+    assert report["destination"].startswith("/dev/")
+
+
+def test_the_board_announces_a_smaller_payload_and_the_driver_follows():
+    table, words = dds_table(700)
+    with virtual_board(GEN, max_payload=100) as url:
+        report = deliver(table, url, options={"frame_bytes": 4096})
+        assert np.array_equal(url.board.committed.codes(), words)
+    data_step = next(s for s in report["steps"] if s["step"] == "data")
+    assert data_step["frame_bytes"] == 96          # 100 - 4 offset bytes, whole 4-byte words
+
+
+def test_voltage_board_with_int16_codes(tmp_path):
+    profile = tmp_path / "dac-board.toml"
+    profile.write_text("""
+title = "test DAC ramp board"
+kind = "board"
+[sampling]
+rates = ["200 kSa/s"]
+memory = 8192
+[output]
+kind = "voltage"
+range_min = "-5 V"
+range_max = "5 V"
+dac_bits = 16
+[link]
+kind = "serial"
+port = "socket://127.0.0.1:9"
+throughput = "50 kB/s"
+timeout = "0.2 s"
+""", encoding="utf-8")
+    gen = load_generator(str(profile))
+    codes = (np.sin(np.linspace(0, 6, 4000)) * 30000).astype("<i2")
+    info = TableInfo(sample_rate=200e3, count=4000, period_count=4000, dtype="<i2", output="voltage",
+                     drive_unit="V", code_scale=5 / 32767, code_offset=0.0, amplitude=10.0, offset=0.0)
+    table = RenderedTable(info, lambda a, b: Frame(a, np.arange(a, b) / 200e3, codes[a:b] * 0.0,
+                                                   codes[a:b] * 5 / 32767, codes[a:b]))
+    with virtual_board(gen) as url:
+        report = deliver(table, url, gen)
+        assert np.array_equal(url.board.committed.codes(), codes)
+    assert report["table"]["format"] == "int16"
+    assert report["board"]["dac_bits"] == 16 and report["board"]["formats"] == ["int16", "uint16"]
+
+
+def test_48_bit_tuning_words_travel_as_uint64(tmp_path):
+    gen = dataclasses.replace(GEN, output=dataclasses.replace(GEN.output, word_bits=48))
+    table, words = dds_table(1000, bits=48, dtype="<u8")
+    with virtual_board(gen) as url:
+        report = deliver(table, url, gen)
+        assert np.array_equal(url.board.committed.codes(), words)
+    assert report["table"]["format"] == "uint64" and report["board"]["word_bits"] == 48
+
+
+# --------------------------------------------------------------------------- faults
+
+# (fault, count) -> transient: the driver retries or starts over and succeeds
+TRANSIENT = [
+    ({"corrupt": 2}, "retries"),
+    ({"drop": 2}, "retries"),
+    ({"refuse": 3}, "retries"),
+    ({"stall": 1, "stall_time": 0.5}, "retries"),
+    ({"reset": 1}, "restarts"),
+    ({"corrupt_reply": 2}, "retries"),
+    ({"corrupt_memory": 1}, "restarts"),
+]
+
+
+@pytest.mark.parametrize("faults, counter", TRANSIENT, ids=[next(iter(f)) for f, _ in TRANSIENT])
+def test_transient_fault_is_retried_and_the_upload_succeeds(faults, counter):
+    table, words = dds_table(4000)
+    with virtual_board(GEN, faults=faults) as url:
+        report = deliver(table, url, arm=True)
+        board = url.board
+        assert np.array_equal(board.committed.codes(), words)
+        assert board.committed.crc == table.crc32 and board.armed
+        assert board.commits == 1                 # nothing else was ever committed
+    kind = next(iter(faults))
+    assert board.faults.fired[kind] == faults[kind]
+    assert report[counter] >= 1
+
+
+# persistent faults: the upload fails with a message naming the step and the cause
+PERSISTENT = [
+    ("corrupt", "data at byte 1024", "refused with FRAME_CRC after 3 attempts"),
+    ("drop", "data at byte 1024", "no reply within"),
+    ("refuse", "data at byte 1024", "refused with BUSY after 3 attempts"),
+    ("stall", "data at byte 1024", "no reply within"),
+    ("reset", "data at byte", "the board lost the upload 2 times (last: DATA refused with NO_SESSION"),
+    ("corrupt_reply", "data at byte 1024", "the reply failed its CRC after 3 attempts"),
+    ("corrupt_memory", "verify", "the board lost the upload 2 times (last: END refused with TABLE_CRC"),
+]
+
+
+@pytest.mark.parametrize("kind, step, message", PERSISTENT, ids=[p[0] for p in PERSISTENT])
+def test_persistent_fault_fails_clearly_commits_nothing_and_leaves_the_board_disarmed(kind, step, message):
+    old, old_words = dds_table(300, f0=5e6, f1=6e6)
+    table, _ = dds_table(4000)
+    with virtual_board(GEN) as url:
+        deliver(old, url, arm=True)
+        assert url.board.armed
+        url.board.faults = FaultPlan.parse({kind: "always", "stall_time": 1.0})   # > 3 reply timeouts
+        with pytest.raises(InstrumentError) as err:
+            deliver(table, url, arm=True, options={"retries": 2, "restarts": 1})
+        board = url.board
+        assert not board.armed
+        assert np.array_equal(board.committed.codes(), old_words) and board.commits == 1
+    assert err.value.exit_code == 1
+    assert err.value.step.startswith(step)
+    assert message in str(err.value)
+    assert f"step '{err.value.step}'" in str(err.value)
+    # the driver's DISARM after the failure is confirmed, except by a board that is still stalled
+    note = ("could not confirm that the board's output is off: check it before going on" if kind == "stall"
+            else "the board's output was switched off")
+    assert str(err.value).endswith(note)
+
+
+def test_board_asking_for_an_earlier_offset_gets_the_bytes_again():
+    class Forgetful(BoardEmulator):
+        forgot = False
+
+        def _data(self, frame, refuse, corrupt_memory):
+            if not self.forgot and self.received >= 3072:
+                self.forgot, self.received = True, 1024        # pretends it lost two frames
+            return super()._data(frame, refuse, corrupt_memory)
+
+    table, words = dds_table(2000)
+    board = Forgetful(GEN)
+    with virtual_board(GEN, board=board) as url:
+        report = deliver(table, url)
+    assert board.forgot and np.array_equal(board.committed.codes(), words)
+    assert report["retries"] == 1
+    refusals = [e[1] for e in board.events if e[0] == "refuse"]
+    assert [(r["type"], r["reason"], r["detail"]) for r in refusals] == [("data", "BAD_OFFSET", 1024)]
+
+
+def test_a_board_that_does_not_match_the_profile_is_refused_before_anything_is_sent():
+    other = dataclasses.replace(GEN, output=dataclasses.replace(GEN.output, clock=1.2e9, range_max=500e6))
+    table, _ = dds_table(100)
+    with virtual_board(other) as url:
+        with pytest.raises(InstrumentError, match="step 'hello'.*DDS clock is 1200000000 Hz, the profile says 1e"):
+            deliver(table, url)
+        assert url.board.committed is None
+        assert not any(e[0] == "begin" for e in url.board.events)
+
+
+def test_a_board_with_less_memory_than_the_table_is_refused():
+    small = dataclasses.replace(GEN, sampling=dataclasses.replace(GEN.sampling, memory=1000))
+    table, _ = dds_table(2000)
+    with virtual_board(small) as url:
+        with pytest.raises(InstrumentError, match="2000 samples exceed its memory of 1000"):
+            deliver(table, url)
+
+
+def test_words_outside_the_output_range_are_never_sent():
+    table, _ = dds_table(1000, f0=100e6, f1=450e6)          # the board plays 1-400 MHz
+    with virtual_board(GEN) as url:
+        with pytest.raises(CheckFailed, match=r"sample 857: tuning word .* is 4\.0\d+e\+08 Hz, outside"):
+            deliver(table, url)
+        assert url.server.connections == 0
+
+
+@pytest.mark.parametrize("change, error, match", [
+    ({"count": 300000}, CheckFailed, "exceed the board memory"),
+    ({"rate": 2e6}, CheckFailed, "not one the board plays"),
+    ({"rate": 250000.5}, CheckFailed, "whole number of samples per second"),
+    ({"dtype": "<f4"}, InputError, "float32"),
+])
+def test_tables_the_board_cannot_take_are_refused_before_connecting(change, error, match):
+    count = change.get("count", 100)
+    dtype = change.get("dtype", "<u4")
+    info = TableInfo(sample_rate=change.get("rate", 1e6), count=count, period_count=count, dtype=dtype,
+                     output="frequency", drive_unit="Hz", code_scale=1.0, code_offset=0.0, amplitude=None,
+                     offset=None)
+    table = RenderedTable(info, lambda a, b: Frame(a, None, None, None, np.full(b - a, 100_000_000, dtype)))
+    with pytest.raises(error, match=match):
+        deliver(table, "socket://127.0.0.1:9")
+
+
+@settings(max_examples=60, deadline=None)
+@given(count=st.integers(1, 400), chunk=st.integers(1, 97),
+       reads=st.lists(st.tuples(st.integers(0, 1700), st.integers(1, 300)), min_size=1, max_size=25))
+def test_table_bytes_reads_any_range_across_chunk_boundaries(count, chunk, reads):
+    table, words = dds_table(count)
+    data = words.tobytes()
+    source = _TableBytes(_Plan(table, GEN, {}), chunk=chunk)
+    for offset, n in reads:
+        assert source.read(offset, n) == data[offset:offset + n]
+
+
+def test_bad_options_are_input_errors():
+    table, _ = dds_table(10)
+    for options in ({"retries": -1}, {"frame_bytes": 2}, {"restarts": "many"}, {"retries": True},
+                    {"backend": "@py"}):
+        with pytest.raises(InputError, match="--option"):
+            deliver(table, "socket://127.0.0.1:9", options=options)
+
+
+def test_an_unreachable_port_is_an_instrument_error_at_open():
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]            # bound but not listening: connection refused
+        table, _ = dds_table(10)
+        with pytest.raises(InstrumentError, match="step 'open': cannot open"):
+            deliver(table, f"socket://127.0.0.1:{port}")
+
+
+def test_dry_run_checks_and_reports_the_frames_without_connecting():
+    table, words = dds_table(3000)
+    report = deliver(table, "socket://127.0.0.1:9", dry_run=True, arm=True)
+    assert report["dry_run"] and report["table"]["crc32"] == zlib.crc32(words.tobytes())
+    log = report["log"]
+    assert [e["message"] for e in log] == ["HELLO", "DISARM", "BEGIN", "DATA", "END", "COMMIT", "STATUS",
+                                           "ARM", "STATUS"]
+    data = log[3]
+    n = -(-words.nbytes // 1024)
+    assert data["bytes"] == words.nbytes + n * (fr.OVERHEAD + fr.DATA_PREFIX)
+    assert log[0]["bytes"] == 13 and log[2]["bytes"] == 28
+    assert report["bytes"] == sum(e["bytes"] for e in log)
+
+
+def test_after_a_failure_the_driver_sends_disarm_before_raising():
+    table, _ = dds_table(3000)
+    with virtual_board(GEN, faults={"refuse": "always", "on": "end", "skip": 0}) as url:
+        with pytest.raises(InstrumentError, match="step 'verify'.*BUSY"):
+            deliver(table, url, options={"retries": 1})
+        events = [e[0] for e in url.board.events]
+    assert events[-1] == "disarm" and events.count("disarm") == 2      # before BEGIN, and after the failure
+    assert url.board.committed is None
+
+
+def test_a_link_that_dies_mid_transfer_is_an_instrument_error():
+    listener = socket.create_server(("127.0.0.1", 0))
+    board = BoardEmulator(GEN)
+
+    def serve():
+        conn, _ = listener.accept()
+        with conn:
+            got = 0
+            while got < 5000:                      # answer until 5000 bytes came in, then hang up
+                data = conn.recv(65536)
+                got += len(data)
+                for _, reply in board.feed(data):
+                    conn.sendall(reply)
+
+    thread = threading.Thread(target=serve, daemon=True)
+    thread.start()
+    table, _ = dds_table(4000)
+    try:
+        with pytest.raises(InstrumentError, match=r"step 'data at byte \d+': the link failed.*"
+                                                  r"could not confirm that the board's output is off"):
+            deliver(table, f"socket://127.0.0.1:{listener.getsockname()[1]}")
+    finally:
+        thread.join(5)
+        listener.close()
+    assert board.committed is None
+
+
+# --------------------------------------------------------------------------- an independent board
+
+
+class DocBoard:
+    """A minimal board written from drivers/serial_protocol.md alone: struct and zlib, no sweepgen code.
+
+    Sections of the document it follows: 1 (frames), 1.1 (receiving), 2 (remembered reply),
+    3.1-3.7 (messages), 4 (REFUSE layout), 5 (commit rule).
+    """
+
+    def __init__(self, *, memory=262144, rates=(1_000_000,), clock=1_000_000_000, word_bits=32,
+                 max_payload=512):
+        self.memory, self.rates, self.clock, self.word_bits = memory, rates, clock, word_bits
+        self.max_payload = max_payload
+        self.rx = bytearray()
+        self.session = False
+        self.state = 0                       # 0 IDLE, 1 RECEIVING, 2 VERIFIED
+        self.armed = False
+        self.begin = None                    # (format, count, crc, rate)
+        self.mem = bytearray()
+        self.received = 0
+        self.committed = None                # (format, count, crc, rate, bytes)
+        self.last = None                     # (seq, type, crc of payload, reply)
+
+    @staticmethod
+    def frame(t, seq, payload):
+        body = b"\xa5\x5a" + struct.pack("<BBHH", t, seq, len(payload), len(payload) ^ 0xFFFF) + payload
+        return body + struct.pack("<I", zlib.crc32(body))
+
+    def ack(self, t, seq, data=b""):
+        return self.frame(0x80, seq, bytes([t]) + data)
+
+    def refuse(self, t, seq, reason, detail=0):
+        return self.frame(0x81, seq, struct.pack("<BBI", t, reason, detail))
+
+    def receive(self, data):
+        """Section 1.1: return the replies to every complete frame in the stream."""
+        self.rx += data
+        out = []
+        while True:
+            i = self.rx.find(b"\xa5\x5a")
+            if i < 0:
+                del self.rx[:max(0, len(self.rx) - 1) if self.rx[-1:] == b"\xa5" else len(self.rx)]
+                return out
+            del self.rx[:i]
+            if len(self.rx) < 8:
+                return out
+            t, seq, n, check = struct.unpack_from("<BBHH", self.rx, 2)
+            if check != n ^ 0xFFFF or n > self.max_payload:
+                del self.rx[:1]
+                continue
+            if len(self.rx) < n + 12:
+                return out
+            frame = bytes(self.rx[:n + 12])
+            if zlib.crc32(frame[:8 + n]) != struct.unpack_from("<I", frame, 8 + n)[0]:
+                out.append(self.refuse(t, seq, 0x01))
+                del self.rx[:1]
+                continue
+            del self.rx[:n + 12]
+            out.append(self.handle(t, seq, frame[8:8 + n]))
+
+    def handle(self, t, seq, p):
+        key = (seq, t, zlib.crc32(p))
+        if t != 0x01 and self.last and self.last[:3] == key:
+            return self.last[3]
+        reply = self.execute(t, seq, p)
+        self.last = (*key, reply)
+        return reply
+
+    def execute(self, t, seq, p):
+        if t == 0x01:                                            # HELLO
+            if p != b"\x01":
+                return self.refuse(t, seq, 0x04, 1)
+            self.session, self.state = True, 0
+            caps = struct.pack("<BBBBBHIQ", 1, 1 << 2, self.word_bits, 0, len(self.rates), self.max_payload,
+                               self.memory, self.clock)
+            return self.ack(t, seq, caps + struct.pack(f"<{len(self.rates)}I", *self.rates) + b"doc board")
+        if t == 0x08:                                            # DISARM
+            self.armed = False
+            return self.ack(t, seq)
+        if t == 0x06:                                            # STATUS
+            fmt, count, crc, rate = self.committed[:4] if self.committed else (0, 0, 0, 0)
+            return self.ack(t, seq, struct.pack("<BBBxIIII", self.state, self.armed, fmt, count, crc, rate,
+                                                self.received))
+        if not self.session:
+            return self.refuse(t, seq, 0x05)
+        if t == 0x02:                                            # BEGIN
+            fmt, count, crc, rate = struct.unpack("<B3xIII", p)
+            if self.armed:
+                return self.refuse(t, seq, 0x07)
+            if fmt != 3:
+                return self.refuse(t, seq, 0x08, 1 << 2)
+            if not 1 <= count <= self.memory:
+                return self.refuse(t, seq, 0x09, self.memory)
+            if rate not in self.rates:
+                return self.refuse(t, seq, 0x0A, rate)
+            self.begin, self.mem, self.received, self.state = (fmt, count, crc, rate), bytearray(4 * count), 0, 1
+            return self.ack(t, seq)
+        if t == 0x03:                                            # DATA
+            if self.state != 1:
+                return self.refuse(t, seq, 0x06, self.state)
+            (offset,), chunk = struct.unpack_from("<I", p), p[4:]
+            if offset > self.received:
+                return self.refuse(t, seq, 0x0B, self.received)
+            if offset + len(chunk) > len(self.mem):
+                return self.refuse(t, seq, 0x0C, len(self.mem))
+            self.mem[offset:offset + len(chunk)] = chunk
+            self.received = max(self.received, offset + len(chunk))
+            return self.ack(t, seq, struct.pack("<I", self.received))
+        if t == 0x04:                                            # END
+            if self.state != 1:
+                return self.refuse(t, seq, 0x06, self.state)
+            if self.received < len(self.mem):
+                return self.refuse(t, seq, 0x0D, self.received)
+            crc = zlib.crc32(self.mem)
+            if crc != self.begin[2]:
+                self.state = 0
+                return self.refuse(t, seq, 0x0E, crc)
+            self.state = 2
+            return self.ack(t, seq, struct.pack("<I", crc))
+        if t == 0x05:                                            # COMMIT
+            if self.state != 2:
+                return self.refuse(t, seq, 0x06, self.state)
+            self.state = 0
+            if zlib.crc32(self.mem) != self.begin[2]:
+                return self.refuse(t, seq, 0x0E, zlib.crc32(self.mem))
+            self.committed = (*self.begin, bytes(self.mem))
+            return self.ack(t, seq, struct.pack("<B3xIII", *self.begin))
+        if t == 0x07:                                            # ARM
+            if self.committed is None:
+                return self.refuse(t, seq, 0x11)
+            self.armed = True
+            return self.ack(t, seq, struct.pack("<I", self.committed[2]))
+        return self.refuse(t, seq, 0x03)
+
+
+def _serve_doc_board(board, fd, stop):
+    while not stop.is_set():
+        ready, _, _ = select.select([fd], [], [], 0.05)
+        if ready:
+            for reply in board.receive(os.read(fd, 65536)):
+                os.write(fd, reply)
+
+
+@pytest.mark.parametrize("link", ["pty", "socket"])
+def test_an_independent_board_written_from_the_document_accepts_an_upload(link):
+    table, words = dds_table(6000)
+    board = DocBoard()
+    stop = threading.Event()
+    if link == "pty":
+        master, slave = _pty()
+        url, fds = os.ttyname(slave), (master, slave)
+        thread = threading.Thread(target=_serve_doc_board, args=(board, master, stop), daemon=True)
+    else:
+        listener = socket.create_server(("127.0.0.1", 0))
+        url, fds = f"socket://127.0.0.1:{listener.getsockname()[1]}", ()
+
+        def serve():
+            conn, _ = listener.accept()
+            with conn:
+                _serve_doc_board(board, conn.fileno(), stop)
+        thread = threading.Thread(target=serve, daemon=True)
+    thread.start()
+    try:
+        report = deliver(table, url, arm=True, options={"frame_bytes": 4096})
+    finally:
+        stop.set()
+        thread.join(5)
+        for fd in fds:
+            os.close(fd)
+        if link == "socket":
+            listener.close()
+    fmt, count, crc, rate, data = board.committed
+    assert (fmt, count, crc, rate) == (3, 6000, table.crc32, 1_000_000)
+    assert np.array_equal(np.frombuffer(data, "<u4"), words) and board.armed
+    assert report["board"]["name"] == "doc board" and report["retries"] == 0
+    # the board announced 512-byte payloads: 508 table bytes per frame, whole words
+    assert next(s for s in report["steps"] if s["step"] == "data")["frame_bytes"] == 508
