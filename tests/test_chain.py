@@ -88,7 +88,9 @@ def test_dds_word_is_rounded_frequency_times_two_to_n_over_clock(f, bits):
     tie_window = max(float(exact), 1.0) * 2.0 ** -50
     near_tie = abs(exact - math.floor(exact) - Fraction(1, 2)) < tie_window
     assert abs(word - expected) <= (1 if near_tie else 0)
-    assert abs(float(dds.rounding_error(f))) <= dds.resolution / 2 * (1 + 1e-9)
+    # |error| ≤ half a word step, up to the float64 rounding of the word near a half-way point
+    assert abs(float(dds.rounding_error(f))) <= dds.resolution / 2 + 4 * float(np.spacing(f)) + float(
+        np.spacing(float(exact))) * dds.resolution
 
 
 def test_dds_stage_is_identity_and_resolution():

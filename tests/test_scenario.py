@@ -17,8 +17,9 @@ def test_builtin_scenario_in_si():
     sc = load_scenario("rb87-chopped-oven")
     assert sc.pulsed and sc.pulse_time == 0.0
     assert isinstance(sc.source, EffusiveSource) and sc.source.temperature == 390.0
-    assert sc.chirp.hold == pytest.approx(5e-4) and sc.chirp.period == pytest.approx(0.02)
-    assert sc.divergence == pytest.approx(8e-3) and sc.target.aperture == pytest.approx(8e-3)
+    assert sc.chirp.hold == 0.0 and sc.chirp.period == pytest.approx(0.02)
+    assert sc.chirp.return_time == pytest.approx(3e-4)
+    assert sc.divergence == pytest.approx(3e-3) and sc.target.aperture == pytest.approx(10e-3)
     assert len(sc.digest) == 64
 
 

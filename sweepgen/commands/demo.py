@@ -21,7 +21,7 @@ def command(directory):
 
     \b
     Example:
-      sweepgen demo /tmp/first-look
+      sweepgen demo first-look
     """
     from sweepgen._atomic import atomic_write_text
     from sweepgen._cli import jsonable
