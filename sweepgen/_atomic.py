@@ -12,6 +12,12 @@ import tempfile
 from pathlib import Path
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 @contextlib.contextmanager
 def atomic_path(target):
     """Yield a temporary path in the target's folder; rename it onto ``target`` on success."""
@@ -19,6 +25,7 @@ def atomic_path(target):
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent)
     os.close(fd)
+    os.chmod(tmp, 0o666 & ~_umask())   # mkstemp makes 0600; give the usual permissions
     try:
         yield Path(tmp)
         os.replace(tmp, target)

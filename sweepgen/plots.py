@@ -154,3 +154,43 @@ def plot_simulation(result, file) -> Path:
         axt.grid(alpha=0.3)
     fig.tight_layout()
     return save(fig, file)
+
+
+def plot_drive(report, file) -> Path:
+    """The drive signal over one period with the limits drawn in: the actuator's
+    safe input range (laser profile) and the generator's output range as it
+    arrives at the actuator (after the termination/load factor). ``report`` is a
+    :class:`sweepgen.checker.CheckReport` of a sweep that could be planned."""
+    plt = _pyplot()
+    plan, laser, gen = report.plan, report.laser, report.generator
+    sched = plan.schedule()
+    chain = laser.chain
+    unit = chain.drive_unit
+    scale, label = (1.0, "V") if unit == "V" else (1e-6, "MHz")
+    t = np.linspace(0.0, sched.period, 4001)
+    drive = chain.to_drive(sched.detuning(t))
+    fig, ax = plt.subplots(figsize=(8, 4.2))
+    ax.plot(t * 1e3, drive * scale, color=COLORS["sweep"], lw=2, label=f"planned drive ({chain.describe()})")
+    tracking = getattr(report, "tracking", None)
+    if tracking is not None:
+        ax.plot(tracking.time * 1e3, tracking.drive * scale, color=COLORS["response"], lw=0.8,
+                drawstyle="steps-post", label="as played (quantised samples)")
+    lim = laser.limits
+    ax.axhline(lim.input_max * scale, color=COLORS["limit"], lw=1.4, ls="--", label="actuator safe input range")
+    ax.axhline(lim.input_min * scale, color=COLORS["limit"], lw=1.4, ls="--")
+    out = gen.output
+    factor = out.delivered_factor if out.kind == "voltage" else 1.0
+    lo, hi = sorted((out.range_min * factor, out.range_max * factor))
+    where = "at the actuator" if out.kind == "voltage" else "of the DDS"
+    ax.axhline(hi * scale, color=COLORS["muted"], lw=1, ls=":", label=f"generator output range {where}")
+    ax.axhline(lo * scale, color=COLORS["muted"], lw=1, ls=":")
+    span = max(drive.max() - drive.min(), 1e-12)
+    top = max(drive.max(), min(lim.input_max, hi)) + 0.15 * span
+    bottom = min(drive.min(), max(lim.input_min, lo)) - 0.15 * span
+    ax.set_ylim(bottom * scale, top * scale)
+    ax.set_xlabel("time after trigger (ms)")
+    ax.set_ylabel(f"drive at the actuator ({label})")
+    ax.set_title(f"{laser.title}\non {gen.title}", fontsize=9)
+    ax.legend(fontsize=7, loc="best")
+    ax.grid(alpha=0.3)
+    return save(fig, file)

@@ -2,14 +2,9 @@
 
 from __future__ import annotations
 
-import json
-from pathlib import Path
-
 import click
 
 from sweepgen._cli import handles_errors
-
-DEMO_SCENARIO = "rb87-chopped-oven"
 
 
 @click.command(short_help="Run the whole job on built-in data.")
@@ -17,24 +12,21 @@ DEMO_SCENARIO = "rb87-chopped-oven"
 @handles_errors
 def command(directory):
     """Run the whole job on a built-in scenario and write a short report into
-    DIRECTORY (default ./sweepgen-demo/).
+    DIRECTORY (default ./sweepgen-demo/): plan the sweep, check it against the
+    laser and generator, simulate the atoms, export the sample table with its
+    sidecar, upload it to an in-process virtual instrument over a loopback
+    socket and verify it (the output stays off). No network, no hardware.
 
     \b
     Example:
       sweepgen demo first-look
     """
-    from sweepgen._atomic import atomic_write_text
-    from sweepgen._cli import jsonable
-    from sweepgen.planner import plan
-    from sweepgen.plots import plot_plan
-    from sweepgen.scenario import load_scenario
+    from sweepgen.demo import run
 
-    out = Path(directory)
-    out.mkdir(parents=True, exist_ok=True)
-    sc = load_scenario(DEMO_SCENARIO)
-    result = plan(sc)
-    atomic_write_text(out / "plan.json", json.dumps(jsonable(result.to_json()), indent=2) + "\n")
-    plot_plan(result, out / "sweep.png")
-    click.echo(f"demo scenario: {sc.title}")
-    click.echo(f"  plan:  {out / 'plan.json'}")
-    click.echo(f"  sweep: {out / 'sweep.png'}")
+    result = run(directory, echo=click.echo)
+    click.echo(f"report written in {result.seconds:.1f} s to {result.directory}/:")
+    width = max(len(k) for k in result.files)
+    for label, path in result.files.items():
+        click.echo(f"  {label.ljust(width)}  {path}")
+    if not result.ok:
+        raise SystemExit(1)
