@@ -70,6 +70,14 @@ def scenario_dict(**sections) -> dict:
     return data
 
 
+@pytest.fixture(autouse=True)
+def _run_in_tmp_path(tmp_path, monkeypatch):
+    """Every test runs in its own temporary folder. Relative outputs land there, and a
+    ``python -m sweepgen`` child process imports the installed package rather than
+    the source folder of a checkout (which lacks the drivers and profiles packages)."""
+    monkeypatch.chdir(tmp_path)
+
+
 @pytest.fixture
 def write_scenario(tmp_path):
     """Write a scenario built from BASE_SCENARIO into tmp_path; returns its path."""
