@@ -97,3 +97,28 @@ def table(rows, headers=None) -> str:
 
 
 json_option = click.option("--json", "as_json", is_flag=True, help="Print one JSON document on stdout (SI units).")
+
+
+def load_and_check(scenario_ref, *, rate=None, laser_ref=None, generator_ref=None):
+    """Load a scenario and check it, with the CLI's overrides; returns (scenario, report).
+
+    ``scenario_ref`` is a built-in key, a path or an already loaded scenario.
+    ``rate`` is the ``--rate`` text (a sample rate with its unit), ``laser_ref`` and
+    ``generator_ref`` replace the scenario's profiles (``--laser``, ``--generator``).
+    """
+    from sweepgen import units
+    from sweepgen.checker import check
+    from sweepgen.errors import InputError
+    from sweepgen.generator import load_generator
+    from sweepgen.laser import load_laser
+    from sweepgen.scenario import Scenario, load_scenario
+
+    sc = scenario_ref if isinstance(scenario_ref, Scenario) else load_scenario(scenario_ref)
+    rate_value = None
+    if rate is not None:
+        rate_value = units.parse(rate, "Hz", key="--rate", example="10 MSa/s")
+        if not rate_value > 0:
+            raise InputError(f"expected a sample rate above zero, got {rate!r}", key="--rate")
+    laser = load_laser(laser_ref, key="--laser") if laser_ref else None
+    gen = load_generator(generator_ref, key="--generator") if generator_ref else None
+    return sc, check(sc, laser, gen, rate=rate_value)

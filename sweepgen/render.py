@@ -23,7 +23,6 @@ ever clipped. Every chunk is checked again as it is computed.
 
 from __future__ import annotations
 
-import math
 
 import numpy as np
 

@@ -46,23 +46,9 @@ def command(scenario, as_json, rate, laser_ref, generator_ref, plot_file, show_a
       sweepgen check rb87-chopped-oven
       sweepgen check my-scenario.toml --laser ./my-laser.toml --json
     """
-    from sweepgen import units
-    from sweepgen.checker import check
-    from sweepgen.generator import load_generator
-    from sweepgen.laser import load_laser
-    from sweepgen.scenario import load_scenario
+    from sweepgen._cli import load_and_check
 
-    sc = load_scenario(scenario)
-    rate_value = None
-    if rate is not None:
-        rate_value = units.parse(rate, "Hz", key="--rate", example="10 MSa/s")
-        if not rate_value > 0:
-            from sweepgen.errors import InputError
-
-            raise InputError(f"expected a sample rate above zero, got {rate!r}", key="--rate")
-    laser = load_laser(laser_ref, key="--laser") if laser_ref else None
-    gen = load_generator(generator_ref, key="--generator") if generator_ref else None
-    report = check(sc, laser, gen, rate=rate_value)
+    sc, report = load_and_check(scenario, rate=rate, laser_ref=laser_ref, generator_ref=generator_ref)
     if plot_file:
         from sweepgen.plots import plot_check
 

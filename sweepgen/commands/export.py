@@ -6,7 +6,7 @@ import re
 
 import click
 
-from sweepgen._cli import emit_json, handles_errors, json_option, si, table
+from sweepgen._cli import emit_json, handles_errors, json_option, load_and_check, si, table
 
 #: tables larger than this get a progress bar when stderr is a terminal
 PROGRESS_BYTES = 8 << 20
@@ -67,12 +67,9 @@ def command(scenario, fmt, output, rate, name, option_pairs, laser_ref, generato
     """
     import sys
 
-    from sweepgen import drivers, sidecar, units
-    from sweepgen.checker import check
+    from sweepgen import drivers, sidecar
     from sweepgen.drivers.base import Delivery
     from sweepgen.errors import CheckFailed, InputError
-    from sweepgen.generator import load_generator
-    from sweepgen.laser import load_laser
     from sweepgen.render import render
     from sweepgen.scenario import load_scenario
 
@@ -84,15 +81,7 @@ def command(scenario, fmt, output, rate, name, option_pairs, laser_ref, generato
     options["name"] = name if name is not None else _default_name(sc.path)
     if hasattr(driver, "check_options"):
         driver.check_options(options)             # bad options fail before any work
-    rate_value = None
-    if rate is not None:
-        rate_value = units.parse(rate, "Hz", key="--rate", example="10 MSa/s")
-        if not rate_value > 0:
-            raise InputError(f"expected a sample rate above zero, got {rate!r}", key="--rate")
-    laser = load_laser(laser_ref, key="--laser") if laser_ref else None
-    gen = load_generator(generator_ref, key="--generator") if generator_ref else None
-
-    report = check(sc, laser, gen, rate=rate_value)
+    _, report = load_and_check(sc, rate=rate, laser_ref=laser_ref, generator_ref=generator_ref)
     fails = report.failures()
     if fails:
         for f in fails:

@@ -55,21 +55,17 @@ def command(scenario, resource, serial_port, backend, generator_ref, laser_ref, 
     import sys
 
     from sweepgen import drivers
-    from sweepgen.checker import check, require_playable
+    from sweepgen._cli import load_and_check
+    from sweepgen.checker import require_playable
     from sweepgen.drivers.base import Delivery
     from sweepgen.errors import InputError
-    from sweepgen.generator import load_generator
-    from sweepgen.laser import load_laser
     from sweepgen.render import render
-    from sweepgen.scenario import load_scenario
 
     if resource is not None and serial_port is not None:
         raise InputError("give either --resource (VISA) or --serial-port (ramp board), not both",
                          key="--serial-port")
-    sc = load_scenario(scenario)
-    laser = load_laser(laser_ref, key="--laser") if laser_ref else None
-    gen = load_generator(generator_ref, key="--generator") if generator_ref else None
-    report = require_playable(check(sc, laser, gen))
+    sc, report = load_and_check(scenario, laser_ref=laser_ref, generator_ref=generator_ref)
+    require_playable(report)
     gen = report.generator
     name = "serial" if (serial_port is not None or gen.kind == "board") else "visa"
     if name == "serial":
