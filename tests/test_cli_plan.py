@@ -116,3 +116,13 @@ def test_missing_file_and_real_process(tmp_path):
 def test_version_and_usage_error():
     assert run("--version").stdout.startswith("sweepgen, version ")
     assert run("plan").exit_code == 2
+
+
+def test_plan_plot_png_and_svg(tmp_path):
+    png, svg = tmp_path / "sweep.png", tmp_path / "sweep.svg"
+    assert run("plan", "rb87-chopped-oven", "--plot", str(png)).exit_code == 0
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert run("plan", "na23-continuous-focused", "--plot", str(svg)).exit_code == 0
+    assert b"<svg" in svg.read_bytes()[:400]
+    bad = run("plan", "rb87-chopped-oven", "--plot", str(tmp_path / "sweep.gif"))
+    assert bad.exit_code == 2 and ".png or .svg" in bad.stderr

@@ -33,7 +33,8 @@ ROWS = [
 @click.argument("scenario")
 @json_option
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
-              help="Also draw the sweep (PNG or SVG by extension).")
+              help="Also draw the sweep, the design atom and (when the scenario names a laser) the "
+                   "actuator's simulated response (PNG or SVG by extension).")
 @handles_errors
 def command(scenario, as_json, plot_file):
     """Plan the detuning sweep for SCENARIO (a built-in key or a path).
@@ -51,7 +52,17 @@ def command(scenario, as_json, plot_file):
     if plot_file:
         from sweepgen.plots import plot_plan
 
-        plot_plan(result, plot_file)
+        response = None
+        if sc.laser_ref:   # overlay the actuator's simulated response when the laser is known
+            from sweepgen.generator import load_generator
+            from sweepgen.laser import load_laser
+            from sweepgen.response import actuator_response
+
+            laser = load_laser(sc.laser_ref, relative_to=sc.base_dir, file=str(sc.path), key="laser")
+            gen = (load_generator(sc.generator_ref, relative_to=sc.base_dir, file=str(sc.path), key="generator")
+                   if sc.generator_ref else None)
+            response = actuator_response(result, laser, gen)
+        plot_plan(result, plot_file, response=response)
     if as_json:
         emit_json(doc)
         return
