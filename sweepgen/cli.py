@@ -17,13 +17,13 @@ from sweepgen import __version__
 #: command name -> (module under sweepgen.commands, one-line help shown in the listing)
 COMMANDS = {
     "plan": ("plan", "Plan the sweep for a scenario and print its numbers."),
-    "profiles": ("profiles", "List the built-in species, lasers, generators and scenarios."),
-    "demo": ("demo", "Run the whole job on built-in data and write a report."),
     "check": ("check", "Check a sweep against its laser and generator before switching on."),
+    "simulate": ("simulate", "Monte Carlo of the atoms through the sweep: what arrives, how slow."),
     "export": ("export", "Write the sample table (csv, raw, npy or a plug-in format) and its sidecar."),
     "upload": ("upload", "Upload the sweep to a generator (SCPI over VISA, or a ramp board), verified."),
     "emulate": ("emulate", "Serve the virtual instrument (or ramp-board emulator) on a TCP port."),
-    "simulate": ("simulate", "Monte Carlo of the atoms through the sweep: what arrives, how slow."),
+    "profiles": ("profiles", "List the built-in species, lasers, generators and scenarios."),
+    "demo": ("demo", "Run the whole job on built-in data and write a report."),
 }
 
 
