@@ -10,6 +10,10 @@ Sources of the expected values, named beside each assertion:
   variance of cos θ for an isotropic direction is 1/3, a textbook result);
 * a point source with Gaussian angles of 1σ θ: distance from the axis at distance
   D is Rayleigh-distributed with scale Dθ (reference: scipy.stats.rayleigh);
+* the expected photons per step: R·dt with R of physics.scattering_rate
+  (DESIGN.md §3; Foot 2005 eq. 7.68);
+* photons of a clock that ran out: 1 + Poisson(overshoot), fresh clock Exp(1)
+  (reference: scipy.stats.poisson, scipy.stats.expon);
 * statistical tolerances: binomial standard errors sqrt(f(1-f)/n), standard
   errors of means and of standard deviations (σ/sqrt(2n)), from the sample sizes.
 """
@@ -26,8 +30,8 @@ from scipy import stats
 from sweepgen import physics
 from sweepgen.planner import plan
 from sweepgen.scenario import load_scenario, scenario_from_dict
-from sweepgen.simulate import (ARRIVED, DARK, HORIZON_FACTOR, STEP_FRACTION, Atoms, DetuningProgram, draw_atoms,
-                               propagate, simulate, velocity_width)
+from sweepgen.simulate import (ARRIVED, DARK, HORIZON_FACTOR, STEP_FRACTION, Atoms, DetuningProgram, _clock_counts,
+                               draw_atoms, expected_counts, propagate, simulate, velocity_width)
 
 from conftest import scenario_dict
 
@@ -61,6 +65,60 @@ def test_detuning_program_is_the_schedule():
             dense = sched.detuning(np.linspace(t0, t0 + width, 20001))
             assert lo <= dense.min() + 1e-3 and hi >= dense.max() - 1e-3
             assert lo >= sched.start_detuning - 1e-3 and hi <= sched.end_detuning + 1e-3
+
+
+_SCHED = plan(make()).schedule()
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.floats(-0.05, 0.07), st.floats(1e-7, 0.03))
+def test_detuning_extremes_property_any_window(t0, width):
+    # the window may start before zero and run over the period's end (the schedule repeats)
+    sched = _SCHED
+    prog = DetuningProgram(sched)
+    lo, hi = prog.extremes(t0, t0 + width)
+    t = np.linspace(t0, t0 + width, 4001)
+    dense = sched.detuning(t)
+    assert lo <= dense.min() + 1e-3 and hi >= dense.max() - 1e-3
+    # and no looser than the schedule's change between two samples (a value the schedule takes there),
+    # except at the period's wrap, where the detuning jumps back to the start detuning
+    slack = float(np.max(np.abs(sched.rate(t)))) * (t[1] - t[0]) + 1e-3
+    assert lo >= min(dense.min() - slack, sched.start_detuning - 1e-3)
+    assert hi <= max(dense.max() + slack, sched.end_detuning + 1e-3)
+
+
+# -- the expected photons per step ------------------------------------------------------------
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.floats(-50.0, 900.0), st.floats(-0.2, 1.2)), min_size=1, max_size=30),
+       st.floats(-8e8, 0.0), st.floats(1e-8, 1e-4), st.sampled_from([0.3, 3.0, 20.0]), st.booleans())
+def test_expected_counts_are_the_scattering_rate_times_the_step(atoms, detuning, dt, s0, focused):
+    light = {"saturation": s0, "start": "0.05 m"}
+    if focused:
+        light.update(waist="0.4 mm", focus="0.1 m")
+    sc = make(light=light)
+    sp, lt = sc.species, sc.light
+    v = np.array([a[0] for a in atoms])
+    z = np.array([a[1] for a in atoms])
+    lit = (z >= lt.start).astype(float)
+    # DESIGN.md §3: R(Δ, v, s(z)) of physics.scattering_rate, times the step
+    reference = physics.scattering_rate(detuning, v, lt.saturation_at(z), sp.gamma, sp.wavelength) * dt
+    work = [np.empty(v.size) for _ in range(3)]
+    got = expected_counts(v, z, lit, detuning, dt, lt, sp.gamma, sp.wavelength, *work)
+    np.testing.assert_allclose(got, reference, rtol=1e-11, atol=0.0)
+
+
+@pytest.mark.parametrize("overshoot", [0.05, 0.7, 4.0, 9.9])
+def test_a_clock_that_ran_out_gives_one_plus_poisson_photons_and_a_fresh_clock(overshoot):
+    n = 20000
+    k = np.empty(n)
+    clock = _clock_counts(np.full(n, overshoot), np.random.default_rng(5), k)
+    assert np.all(k >= 1) and np.all(k == np.round(k))
+    # counts against scipy.stats.poisson: the frequency of each count within 5 binomial standard errors
+    values, seen = np.unique(k - 1, return_counts=True)
+    expected = stats.poisson(overshoot).pmf(values)
+    assert np.all(np.abs(seen / n - expected) <= 5 * np.sqrt(expected * (1 - expected) / n) + 1e-4)
+    # fresh clocks: Exp(1) (scipy.stats.expon), Kolmogorov-Smirnov at the 0.1 % level
+    assert stats.kstest(clock, stats.expon.cdf).pvalue > 1e-3
 
 
 # -- light off: ballistic flight ------------------------------------------------------------
