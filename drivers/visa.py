@@ -29,6 +29,15 @@ fresh connection if the old one broke) before the error is raised: the
 instrument is left with its output off, and the message names the step and
 what the instrument said.
 
+A connection the instrument closes or resets is reported as lost at once, in
+the step that noticed it, instead of after the full timeout: before every
+exchange the driver looks at the socket, and while waiting for a reply it
+watches the socket itself (pyvisa-py would keep polling a closed socket until
+the timeout). A loss between the first byte of the block and the completion
+reply is always charged to ``upload``: whether the sender notices it while
+sending or only while waiting for ``*OPC?`` depends on how much the socket
+buffers took, but either way the instrument never confirmed the table.
+
 Speed: pyvisa-py writes a message to a raw socket in 4 KiB pieces with a
 ``select`` call per piece. For the bulk of a block on such a session the driver
 hands the same bytes directly to that session's socket (``sendall``), which
@@ -40,6 +49,7 @@ from __future__ import annotations
 
 import queue
 import re
+import select
 import socket
 import threading
 import time
@@ -211,6 +221,21 @@ def _visa_errors():
     return (pyvisa.errors.VisaIOError, pyvisa.errors.InvalidSession, OSError, ValueError)
 
 
+class _LinkLost(InstrumentError):
+    """The instrument closed or reset the connection (seen on the socket, not inferred from a timeout).
+
+    ``why`` is what the socket said ("Connection reset by peer", "the instrument closed it").
+    """
+
+    def __init__(self, why: str, *, step: str, message: str | None = None):
+        super().__init__(message or f"the connection was lost ({why})", step=step)
+        self.why = why
+
+
+def _reason(exc: BaseException) -> str:
+    return getattr(exc, "strerror", None) or str(exc) or type(exc).__name__
+
+
 class _Session:
     """One open VISA resource and the running report."""
 
@@ -273,37 +298,118 @@ class _Session:
     def _fail(self, step, exc, timeout=None) -> InstrumentError:
         import pyvisa
 
+        if isinstance(exc, OSError):
+            error = self._os_error(step, exc)
+            if error is not None:
+                return error
+        lost = self._link_lost(step)        # a closed socket explains a timeout or an I/O error
+        if lost is not None:
+            return lost
         if isinstance(exc, pyvisa.errors.VisaIOError) and exc.error_code == pyvisa.constants.StatusCode.error_timeout:
             return InstrumentError(f"no answer within {timeout:.3g} s", step=step)
+        return InstrumentError(f"the link failed ({exc})", step=step)
+
+    def _os_error(self, step: str, exc: OSError) -> InstrumentError | None:
+        """The error for a refused, reset or broken connection; None for other OS errors."""
         if isinstance(exc, ConnectionRefusedError):
             return InstrumentError(f"cannot connect to {self.resource_name} (connection refused: is the "
                                    f"instrument on and listening?)", step=step)
-        if isinstance(exc, (ConnectionError, BrokenPipeError)):
-            return InstrumentError(f"the connection was lost ({exc.strerror or exc})", step=step)
-        return InstrumentError(f"the link failed ({exc})", step=step)
+        if isinstance(exc, ConnectionError):        # reset, aborted, broken pipe
+            return _LinkLost(_reason(exc), step=step)
+        return None
+
+    # -- is the connection still there? -------------------------------------------------------
+    def _pending(self) -> bool:
+        """True if pyvisa-py already holds received bytes that were not read yet."""
+        sessions = getattr(self.res.visalib, "sessions", None) if self.res is not None else None
+        session = sessions.get(self.res.session) if isinstance(sessions, dict) else None
+        return bool(getattr(session, "_pending_buffer", None))
+
+    def _link_lost(self, step: str) -> _LinkLost | None:
+        """A :class:`_LinkLost` if the instrument has closed or reset the connection, else None.
+
+        Looks at a pyvisa-py raw socket without waiting and without consuming
+        anything: readable with nothing to read is the end of the stream (the
+        instrument closed it), an error is a reset. Other sessions: None.
+        """
+        if self.res is None:
+            return None
+        sock = self._raw_socket()
+        if sock is None:
+            return None
+        try:
+            readable, _, _ = select.select([sock], [], [], 0)
+            if not readable:
+                return None
+            data = sock.recv(1, socket.MSG_PEEK | socket.MSG_DONTWAIT)
+        except (BlockingIOError, InterruptedError):
+            return None
+        except OSError as exc:
+            return self._os_error(step, exc) or _LinkLost(_reason(exc), step=step)
+        except ValueError as exc:            # the socket was closed on this side
+            return _LinkLost(_reason(exc), step=step)
+        if data:
+            return None
+        return _LinkLost("the instrument closed it", step=step)
+
+    def _check_link(self, step: str) -> None:
+        lost = self._link_lost(step)
+        if lost is not None:
+            raise lost
+
+    def _await_reply(self, step: str, deadline: float, timeout: float) -> None:
+        """Wait until a reply starts to arrive, the connection ends, or ``deadline`` passes.
+
+        pyvisa-py keeps polling a socket the instrument has closed until the
+        whole timeout has passed; on a raw socket the driver waits itself, so a
+        closed or reset connection is reported at once, as such.
+        """
+        sock = self._raw_socket()
+        if sock is None or self._pending():
+            return
+        while True:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                raise InstrumentError(f"no answer within {timeout:.3g} s", step=step)
+            try:
+                readable, _, _ = select.select([sock], [], [], left)
+            except InterruptedError:
+                continue
+            if readable:
+                self._check_link(step)
+                return
 
     def write(self, step: str, text: str) -> None:
         self.res.timeout = int(self.plan.timeout * 1000) + 1
+        self._check_link(step)
         try:
             self.res.write(text)
         except _visa_errors() as exc:
-            raise self._fail(step, exc) from None
+            raise self._fail(step, exc, self.plan.timeout) from None
         self.sent += len(text.encode()) + 1
         self._log(step, "write", text, len(text.encode()) + 1)
 
     def query(self, step: str, text: str, timeout: float | None = None) -> str:
         timeout = self.plan.timeout if timeout is None else timeout
-        self.res.timeout = int(timeout * 1000) + 1
         t0 = time.monotonic()
+        deadline = t0 + timeout
+        self._check_link(step)
         try:
+            self.res.timeout = int(timeout * 1000) + 1
             self.res.write(text)
-            reply = self.res.read()
+            self._await_reply(step, deadline, timeout)
+            self.res.timeout = int(max(deadline - time.monotonic(), 0.0) * 1000) + 1
+            raw = self.res.read_raw()
         except _visa_errors() as exc:
             raise self._fail(step, exc, timeout) from None
+        if not raw.endswith(b"\n"):            # cut off: the connection ended inside the reply
+            self._check_link(step)
+            raise InstrumentError("the reply ended without its terminator", step=step,
+                                  reply=raw.decode("ascii", "replace").strip()[:120])
+        reply = raw.decode("ascii", "replace").strip()
         self.sent += len(text.encode()) + 1
-        self._log(step, "query", text, len(text.encode()) + 1, reply=reply.strip(),
-                  duration=time.monotonic() - t0)
-        return reply.strip()
+        self._log(step, "query", text, len(text.encode()) + 1, reply=reply, duration=time.monotonic() - t0)
+        return reply
 
     def check_errors(self, step: str) -> None:
         """Read the error queue until it is empty; any entry fails ``step``."""
@@ -353,6 +459,7 @@ class _Session:
             if sock is not None:
                 sock.settimeout(plan.data_timeout(CHUNK_BYTES))
             self.res.timeout = int(plan.data_timeout(CHUNK_BYTES) * 1000) + 1
+            self._check_link(step)
             self._send(sock, head)
             for chunk in chunks:
                 if crc is not None:
@@ -371,7 +478,10 @@ class _Session:
             raise InstrumentError(f"the instrument stopped taking data after {done} of {nbytes} bytes",
                                   step=step) from None
         except _visa_errors() as exc:
-            raise self._fail(step, exc, plan.data_timeout(CHUNK_BYTES)) from None
+            error = self._fail(step, exc, plan.data_timeout(CHUNK_BYTES))
+            if isinstance(error, _LinkLost):
+                error = _upload_lost("while the block was being sent", error.why)
+            raise error from None
         finally:
             crc_value = crc.result() if crc is not None else None
             if sock is not None:
@@ -439,7 +549,9 @@ class _Session:
         self.res.timeout = int(timeout * 1000) + 1
         t0 = time.monotonic()
         try:
+            self._check_link(step)
             self.res.write(command)
+            self._await_reply(step, t0 + timeout, timeout)
             if self.plan.mode == "ascii":
                 text = self.res.read().strip().encode("ascii", "replace")
                 crc, count = zlib.crc32(text) & 0xFFFFFFFF, len(text)
@@ -496,7 +608,13 @@ class _Session:
                 self.upload()
                 detail["bytes"] = self.report["upload"]["bytes"]
             elif step == "wait":
-                reply = self.query(step, rendered["wait"], plan.data_timeout(self.report.get("block_bytes", 0)))
+                try:
+                    reply = self.query(step, rendered["wait"],
+                                       plan.data_timeout(self.report.get("block_bytes", 0)))
+                except _LinkLost as exc:
+                    # the table was handed to the link, but the instrument hung up before confirming it:
+                    # how far it got depends on socket buffers, so the loss is charged to the upload
+                    raise _upload_lost("after the whole block was sent", exc.why) from None
                 detail["reply"] = reply
                 self.check_errors("upload")
             elif step == "verify":
@@ -636,6 +754,12 @@ class VisaDriver(Driver):
         report["bytes"] = session.sent
         report["duration"] = time.monotonic() - t0
         return report
+
+
+def _upload_lost(when: str, why: str) -> _LinkLost:
+    """The error of a connection lost between the first byte of the block and the completion reply."""
+    return _LinkLost(why, step="upload", message=f"the connection was lost {when}, before the instrument "
+                                                  f"confirmed the upload ({why})")
 
 
 def _message(exc: InstrumentError) -> str:

@@ -126,6 +126,28 @@ class FaultPlan:
         return None
 
 
+    def describe(self) -> list[str]:
+        """The active faults in words, e.g. ``["drop 2 data frames", "stall every data frame (2 s)"]``."""
+        if not self.counts:
+            return []
+        types = "" if self.on is None else "/".join(fr.type_name(t) for t in sorted(self.on)) + " "
+
+        def frames(n):
+            return f"{n} {types}frame{'' if n == 1 else 's'}"
+
+        verbs = {"corrupt": "corrupt", "drop": "drop", "refuse": "refuse", "stall": "stall",
+                 "reset": "reset on", "corrupt_reply": "corrupt the reply to",
+                 "corrupt_memory": "corrupt in memory"}
+        out = []
+        for kind in FAULT_KINDS:
+            if kind in self.counts:
+                left = self.counts[kind]
+                text = f"{verbs[kind]} {f'every {types}frame' if left is None else frames(left)}"
+                out.append(text + (f" ({self.stall_time:g} s)" if kind == "stall" else ""))
+        if self.skip:
+            out.append(f"after {frames(self.skip)} unharmed")
+        return out
+
     def refund(self, kind: str) -> None:
         """Give back a count taken by :meth:`pick` for a fault that did not apply."""
         if self.counts.get(kind) is not None:

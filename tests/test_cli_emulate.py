@@ -2,16 +2,27 @@
 
 from __future__ import annotations
 
+import dataclasses
 import signal
 import socket
 import subprocess
 import sys
+import time
+import zlib
 
+import numpy as np
 import pytest
 import pyvisa
 from click.testing import CliRunner
 
+from sweepgen import board, framing as fr
 from sweepgen.cli import main
+from sweepgen.commands.emulate import BOARD_FAULTS, FRAME_TYPES
+from sweepgen.drivers.base import Delivery
+from sweepgen.drivers.serial_board import SerialDriver
+from sweepgen.errors import InstrumentError
+from sweepgen.generator import load_generator
+from sweepgen.table import Frame, RenderedTable, TableInfo
 
 
 class Emulator:
@@ -82,7 +93,111 @@ def test_board_emulator():
     assert code == 0 and "ramp-board emulator" in err
 
 
+# --- the ramp-board emulator's fault switches on the command line -------------------------------------
+BOARD = load_generator("demo-ramp-board")     # 32-bit tuning words, 1 GHz clock, rates 0.1-1 MSa/s
+# the driver's side with a short reply timeout, so dropped and stalled frames are retried quickly
+FAST_BOARD = dataclasses.replace(BOARD, link=dataclasses.replace(BOARD.link, timeout=0.2))
+
+
+def dds_table(count=4000, rate=1e6):
+    """A frequency ramp as DDS tuning words (demo data): FTW = round(f 2^N / f_clock), common practice."""
+    freqs = np.linspace(20e6, 180e6, count)
+    words = np.round(freqs * 2.0**32 / 1e9).astype("<u4")
+    info = TableInfo(sample_rate=rate, count=count, period_count=count, dtype="<u4", output="frequency",
+                     drive_unit="Hz", code_scale=1e9 / 2.0**32, code_offset=0.0, amplitude=None, offset=None)
+    return RenderedTable(info, lambda a, b: Frame(a, freqs[a:b], freqs[a:b], freqs[a:b], words[a:b])), words
+
+
+def board_status(url: str) -> fr.Status:
+    """Ask the board for its STATUS over a fresh connection (the frame protocol, by hand)."""
+    host, port = url[len("socket://"):].rsplit(":", 1)
+    decoder = fr.Decoder()
+    with socket.create_connection((host, int(port)), timeout=5) as sock:
+        deadline = time.monotonic() + 5
+        while time.monotonic() < deadline:      # a stalled reply from the previous host may come first
+            sock.sendall(fr.encode(fr.MsgType.STATUS, 0x5A))
+            sock.settimeout(1.0)
+            try:
+                while True:
+                    frames = decoder.feed(sock.recv(4096))
+                    for frame in frames:
+                        if frame.seq == 0x5A and frame.type == fr.MsgType.ACK:
+                            request, data = fr.parse_ack(frame.payload)
+                            assert request == fr.MsgType.STATUS
+                            return fr.Status.unpack(data)
+            except socket.timeout:
+                continue
+    raise AssertionError("the board did not answer STATUS")
+
+
+def upload_to(url, table, **options):
+    return SerialDriver().deliver(table, Delivery(url, FAST_BOARD, options={"frame_bytes": 1024, **options}))
+
+
+def test_every_board_fault_switch_has_an_option():
+    assert set(BOARD_FAULTS) == set(board.FAULT_KINDS)
+    assert set(FRAME_TYPES) == {fr.type_name(t) for t in fr.REQUESTS}
+    result = CliRunner().invoke(main, ["emulate", "--help"])
+    for kind in board.FAULT_KINDS:
+        assert f"--{kind.replace('_', '-')} COUNT" in result.output
+    assert "--fault-on TYPE" in result.output and "--stall-time SECONDS" in result.output
+
+
+# one transient fault each: the driver gets through with retries (or by starting the upload over)
+BOARD_TRANSIENT = [
+    (["--corrupt", "2"], "retries", "corrupt 2 data frames"),
+    (["--drop", "2"], "retries", "drop 2 data frames"),
+    (["--refuse", "3"], "retries", "refuse 3 data frames"),
+    (["--stall", "1", "--stall-time", "0.5"], "retries", "stall 1 data frame (0.5 s)"),
+    (["--reset", "1"], "restarts", "reset on 1 data frame"),
+    (["--corrupt-reply", "2"], "retries", "corrupt the reply to 2 data frames"),
+    (["--corrupt-memory", "1"], "restarts", "corrupt in memory 1 data frame"),
+    (["--refuse", "1", "--fault-on", "hello", "--fault-skip", "0"], "retries", "refuse 1 hello frame"),
+]
+
+
+@pytest.mark.parametrize("args, counter, shown", BOARD_TRANSIENT,
+                         ids=[*(a[0][2:] for a, _, _ in BOARD_TRANSIENT[:-1]), "refuse-hello"])
+def test_board_transient_fault_from_the_command_line_is_retried(args, counter, shown):
+    table, words = dds_table()
+    with Emulator("--board", *args) as emulator:
+        report = upload_to(emulator.address, table)
+        status = board_status(emulator.address)
+        code, err = emulator.stop()
+    assert report[counter] >= 1                       # the fault struck, and the driver went round it
+    assert report["verification"]["ok"] is True
+    # what the board holds is the table: its CRC-32 as zlib.crc32 of the little-endian words
+    assert status.table.crc == zlib.crc32(words.tobytes()) and status.table.count == len(words)
+    assert not status.armed
+    assert f"with faults: {shown}" in err
+    assert code == 0 and "Traceback" not in err
+
+
+@pytest.mark.parametrize("args, message", [
+    (["--refuse", "always"], "refused with BUSY after 3 attempts"),
+    (["--corrupt-memory", "always"], "END refused with TABLE_CRC"),
+], ids=["refuse", "corrupt-memory"])
+def test_board_persistent_fault_from_the_command_line_fails_and_commits_nothing(args, message):
+    table, _ = dds_table()
+    with Emulator("--board", *args) as emulator:
+        with pytest.raises(InstrumentError) as info:
+            upload_to(emulator.address, table, retries=2, restarts=1)
+        status = board_status(emulator.address)
+        _, err = emulator.stop()
+    assert message in str(info.value) and info.value.exit_code == 1
+    assert status.table.format == 0 and status.table.count == 0      # no table was ever committed
+    assert not status.armed
+    assert "every data frame" in err
+
+
 @pytest.mark.parametrize("args, key", [
+    (["--drop", "2"], "--drop"),                                # a board fault for the instrument
+    (["--corrupt-memory", "always"], "--corrupt-memory"),
+    (["--board", "--fault-on", "data"], "--fault-on"),         # how faults strike, but no fault
+    (["--board", "--stall-time", "1"], "--stall-time"),
+    (["--board", "--drop", "0"], "--drop"),                     # a count is at least 1, or 'always'
+    (["--board", "--refuse", "sometimes"], "--refuse"),
+    (["--board", "--reset", "1", "--fault-on", "frames"], "--fault-on"),
     (["--board", "--mute"], "--board"),
     (["--generator", "demo-ramp-board"], "--generator"),
     (["--board", "--generator", "virtual-awg"], "--generator"),

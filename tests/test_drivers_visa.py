@@ -202,19 +202,81 @@ def failing_upload(gen, faults, identity=OTHER_IDENTITY, prearm=False):
     return info.value
 
 
-@pytest.mark.parametrize("faults, step, words", [
-    (Faults(error_after_upload=True), "upload", '-240,"Hardware error'),
-    (Faults(corrupt_readback=True), "verify", "differs from what was sent"),
-    # a drop shows in the wait when the socket buffers took the whole block before the hang-up
-    (Faults(drop_after=5000), ("upload", "wait"), ("connection was lost", "no answer within")),
-    (Faults(mute=True), "identify", "no answer within 0.3 s"),
-    (Faults(delay=1.0), "identify", "no answer within 0.3 s"),
-])
-def test_each_fault_fails_its_step_with_output_off(tmp_path, faults, step, words):
+SAME = "output switched off (confirmed on the same connection)"
+NEW = "output switched off (confirmed on a new connection)"
+UNCONFIRMED = "could not confirm that the output is off: check the instrument before touching the setup"
+
+
+@pytest.mark.parametrize("faults, step, words, outcome", [
+    (Faults(error_after_upload=True), "upload", '-240,"Hardware error', SAME),
+    (Faults(corrupt_readback=True), "verify", "differs from what was sent", SAME),
+    # the instrument hangs up inside the block: whether the driver sees it while sending or while
+    # waiting for the completion reply depends on socket buffers, but it is always the upload that failed
+    (Faults(drop_after=5000), "upload", "the connection was lost", NEW),
+    # an instrument that does not answer cannot confirm anything, and the message says so
+    (Faults(mute=True), "identify", "no answer within 0.3 s", UNCONFIRMED),
+    (Faults(delay=1.0), "identify", "no answer within 0.3 s", UNCONFIRMED),
+], ids=["error-after-upload", "corrupt-readback", "drop-after", "mute", "delay"])
+def test_each_fault_fails_its_step_with_output_off(tmp_path, faults, step, words, outcome):
     error = failing_upload(short_timeout(tmp_path), faults)
-    assert error.step in (step if isinstance(step, tuple) else (step,))
-    assert any(w in str(error) for w in (words if isinstance(words, tuple) else (words,)))
-    assert "output" in str(error).split(";")[-1]      # says what became of the output
+    assert error.step == step
+    assert words in str(error)
+    assert str(error).endswith(f"; {outcome}")
+
+
+def bytes_before_upload_ends(table, gen):
+    """Bytes the driver sends up to and including the upload message (from its dry-run log)."""
+    log = VisaDriver().deliver(table, Delivery(destination="", generator=gen, dry_run=True))["log"]
+    total = 0
+    for entry in log:
+        total += entry["bytes"]
+        if entry["step"] == "upload" and entry["kind"] == "write":
+            return total, entry["bytes"]
+    raise AssertionError("no upload in the log")
+
+
+# Where the instrument hangs up, counted from the end of the upload message (0 = right after its
+# terminator, so the trace is stored but the completion query is never answered).
+@pytest.mark.parametrize("count, from_end", [
+    (1 << 20, -(1 << 21)),        # 2 MiB block: a few bytes into the block
+    (1 << 20, -(1 << 20)),        # in the middle of the block
+    (1 << 20, -1),                # everything but the terminator
+    (256, -300),                  # a small block that the socket buffers take whole
+    (256, 0),                     # after the whole message
+], ids=["block-start", "block-middle", "block-end", "small-block", "after-terminator"])
+def test_a_dropped_connection_is_the_upload_step_and_is_noticed_at_once(tmp_path, count, from_end):
+    # a 30 s timeout: a driver that waited for it instead of noticing the closed socket would report
+    # "no answer within 30 s" (and take that long), not a lost connection
+    gen = short_timeout(tmp_path, "30 s")
+    table, codes = make_table(count=count, rate=10e6)
+    through, upload_bytes = bytes_before_upload_ends(table, gen)
+    assert -from_end < upload_bytes
+    with instrument_server(gen, faults=Faults(drop_after=through + from_end), identity=OTHER_IDENTITY) as server:
+        inst = server.instrument
+        with pytest.raises(InstrumentError) as info:
+            deliver(server, table, gen, arm=True)
+        assert inst.outputs_on == [] and not inst.ever_armed
+        if from_end < 0:
+            assert inst.traces == {}
+        else:
+            np.testing.assert_array_equal(inst.traces["CHIRP_A"].values, codes)
+        assert server.clients == 2          # the upload, then a new connection to switch the output off
+    error = info.value
+    assert error.step == "upload"
+    assert "the connection was lost" in str(error) and "before the instrument confirmed the upload" in str(error)
+    assert "no answer" not in str(error)
+    assert str(error).endswith(f"; {NEW}")
+
+
+def test_a_dropped_connection_before_the_upload_names_the_query_that_saw_it(tmp_path):
+    gen = short_timeout(tmp_path, "30 s")
+    table, _ = make_table(count=256)
+    with instrument_server(gen, faults=Faults(drop_after=3), identity=OTHER_IDENTITY) as server:
+        with pytest.raises(InstrumentError) as info:     # the instrument hangs up inside '*IDN?'
+            deliver(server, table, gen, arm=True)
+        assert server.instrument.outputs_on == [] and server.instrument.traces == {}
+    assert info.value.step == "identify"
+    assert "the connection was lost" in str(info.value) and "no answer" not in str(info.value)
 
 
 def test_failure_after_a_previous_arming_switches_the_output_off(tmp_path):
