@@ -179,7 +179,9 @@ class _Plan:
         steps = [("identify", "identify"), ("output_off", "output_off")]
         if c.has("reset"):
             steps.append(("reset", "reset"))
-        steps.append(("clear", "clear"))
+        # output off first, at once; after the error queue is cleared it is sent again and its
+        # error check counts, so an instrument that refuses "output off" stops the upload here
+        steps += [("clear", "clear"), ("output_off", "output_off")]
         if c.has("format"):
             steps.append(("format", "format"))
         steps += [("upload", "upload"), ("wait", "wait")]

@@ -59,7 +59,7 @@ def test_upload_json_reports_steps_bytes_duration_verification():
         assert server.instrument.outputs_on == [] and not server.instrument.ever_armed
     assert doc["verification"]["ok"] is True and doc["verification"]["method"] == "readback"
     assert doc["block_bytes"] == 320000 and doc["bytes"] > 320000 and doc["duration"] > 0
-    assert [s["step"] for s in doc["steps"]][:5] == ["identify", "output_off", "clear", "format", "upload"]
+    assert [s["step"] for s in doc["steps"]][:6] == ["identify", "output_off", "clear", "output_off", "format", "upload"]
     assert doc["armed"] is False
     assert "CAUTION" not in result.stderr
 
@@ -77,12 +77,12 @@ def test_arm_prints_the_caution_then_switches_on():
     assert "verified by readback" in result.stdout
 
 
-# A dropped connection shows in the upload, or, when the socket buffers took the whole block
-# before the instrument hung up, in the completion wait right after it.
+# A dropped connection is charged to the upload even when the socket buffers took the whole
+# block before the instrument hung up (the driver watches the socket itself).
 @pytest.mark.parametrize("faults, steps", [
     (Faults(error_after_upload=True), ["upload"]),
     (Faults(corrupt_readback=True), ["verify"]),
-    (Faults(drop_after=100000), ["upload", "wait"]),
+    (Faults(drop_after=100000), ["upload"]),
 ])
 def test_faults_exit_1_name_the_step_and_leave_the_output_off(faults, steps):
     with instrument_server("virtual-awg", faults=faults) as server:

@@ -99,7 +99,7 @@ def test_upload_builtin_dialect_verifies_and_leaves_output_off():
     # CRC-32 as zlib.crc32 of the little-endian int16 bytes sent
     assert report["verification"]["instrument_crc32"] == zlib.crc32(codes.astype("<i2").tobytes())
     assert [s["step"] for s in report["steps"]] == [
-        "identify", "output_off", "clear", "format", "upload", "wait", "verify", "function", "rate",
+        "identify", "output_off", "clear", "output_off", "format", "upload", "wait", "verify", "function", "rate",
         "amplitude", "offset", "trigger"]
     assert report["armed"] is False
     assert report["block_bytes"] == 2048
@@ -365,3 +365,27 @@ def test_generator_profile_checked(tmp_path):
     data = {**OTHER_DIALECT, "commands": {**OTHER_DIALECT["commands"], "trace_name": "A;B"}}
     with pytest.raises(InputError, match="trace_name"):
         generator_from_dict(data, tmp_path / "bad.toml")
+
+
+def test_an_instrument_that_refuses_output_off_stops_the_upload(tmp_path):
+    # a profile whose "output off" the instrument does not understand (SCPI -113 undefined header):
+    # *CLS must not wipe that error, and the upload must stop before any data is sent or armed
+    import re
+
+    from sweepgen import catalog
+
+    text = catalog.builtin_dir("generators").joinpath("virtual-awg.toml").read_text()
+    text = re.sub(r"^output_off = .*$", 'output_off = "OUTP{channel}:BOGUS OFF"', text, flags=re.M)
+    path = tmp_path / "bad-off.toml"
+    path.write_text(text)
+    gen = load_generator(str(path))
+    info = TableInfo(sample_rate=1e6, count=64, period_count=64, dtype="<i2", output="voltage",
+                     drive_unit="V", code_scale=1e-3, code_offset=0.0, amplitude=1.0, offset=0.0)
+    table = RenderedTable.from_arrays(info, np.zeros(64, dtype="<i2"))
+    with instrument_server(gen) as server:
+        with pytest.raises(InstrumentError) as exc:
+            VisaDriver().deliver(table, Delivery(destination=server.resource, generator=gen, arm=True))
+        assert exc.value.step == "output_off"
+        assert "-113" in str(exc.value)
+        assert not server.instrument.ever_armed
+        assert "SWEEP" not in server.instrument.traces
