@@ -21,6 +21,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, ClassVar
 
+from sweepgen._atomic import new_file_mode
 from sweepgen.errors import DriverError, InputError
 
 
@@ -69,12 +70,6 @@ class Driver(abc.ABC):
 # ---------------------------------------------------------------------------------------------
 # Atomic groups of files
 # ---------------------------------------------------------------------------------------------
-def _umask() -> int:
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
-
-
 def _fsync_dir(folder: Path) -> None:
     """Make renames in ``folder`` durable (POSIX); silently skipped where unsupported."""
     try:
@@ -137,7 +132,7 @@ class AtomicFileSet:
         fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".part", dir=self.folder)
         os.close(fd)
         try:
-            os.chmod(tmp, 0o666 & ~_umask())          # as an ordinary open() would create it
+            os.chmod(tmp, new_file_mode())            # as an ordinary open() would create it
             handle = open(tmp, mode, **kwargs)
         except OSError as exc:
             with contextlib.suppress(OSError):

@@ -12,10 +12,16 @@ import tempfile
 from pathlib import Path
 
 
-def _umask() -> int:
-    mask = os.umask(0)
+def new_file_mode() -> int:
+    """The permissions an ordinary ``open()`` gives a new file: ``0o666`` less the umask.
+
+    The umask can only be read by setting it; it is set to ``0o022`` for that
+    instant (not ``0``), so a file another thread creates meanwhile is never
+    world-writable.
+    """
+    mask = os.umask(0o022)
     os.umask(mask)
-    return mask
+    return 0o666 & ~mask
 
 
 @contextlib.contextmanager
@@ -25,7 +31,7 @@ def atomic_path(target):
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent)
     os.close(fd)
-    os.chmod(tmp, 0o666 & ~_umask())   # mkstemp makes 0600; give the usual permissions
+    os.chmod(tmp, new_file_mode())     # mkstemp makes 0600; give the usual permissions
     try:
         yield Path(tmp)
         os.replace(tmp, target)

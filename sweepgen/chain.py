@@ -47,7 +47,7 @@ from __future__ import annotations
 
 import abc
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -402,7 +402,6 @@ class Chain:
     stages: tuple
     safe_min: float | None = None      # the actuator's safe input range, drive units (set by the laser)
     safe_max: float | None = None
-    notes: list = field(default_factory=list)
 
     def __post_init__(self):
         self.stages = tuple(self.stages)

@@ -330,6 +330,7 @@ def _fmt(value, unit):
 def hardware_findings(report: CheckReport, schedule, rate=None) -> None:
     """Laser and generator rules for a schedule; appends to ``report.findings``."""
     from sweepgen import sampling
+    from sweepgen.render import drive_range
 
     plan, laser, gen = report.plan, report.laser, report.generator
     sc = plan.scenario
@@ -342,7 +343,9 @@ def hardware_findings(report: CheckReport, schedule, rate=None) -> None:
     drate = schedule.rate(t)
     drive = chain.to_drive(det)
     gain = chain.gain(det)
-    dmin, dmax = float(np.min(drive)), float(np.max(drive))
+    # the exact extremes (as the renderer finds them), so the codes chosen here are the ones rendered and
+    # every sample the tracking simulation plays lies inside the checked code window
+    dmin, dmax = drive_range(schedule, chain)
 
     span = float(np.max(det) - np.min(det))
     if lim.mode_hop_free is None:

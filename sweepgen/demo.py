@@ -62,7 +62,7 @@ def run(directory, *, scenario: str = DEMO_SCENARIO, atoms: int = DEMO_ATOMS, se
     files["plan"] = _write_json(out / "plan.json", doc_plan)
     files["check"] = _write_json(out / "check.json", report.to_json())
     echo(f"  plan:     chirp {si(doc_plan['chirp_span'], 'Hz')} in {si(doc_plan['chirp_duration'], 's')}, "
-         f"{si(doc_plan['start_velocity'] if 'start_velocity' in doc_plan else doc_plan['capture_velocity'], 'm/s')}"
+         f"{si(doc_plan['capture_velocity'], 'm/s')}"
          f" → {si(doc_plan['end_velocity'], 'm/s')} over {si(doc_plan['slowing_distance'], 'm')}")
     n_fail, n_warn = len(report.failures()), len(report.warnings())
     echo(f"  check:    {'ok' if report.ok else 'FAILED'} ({n_fail} failed, {n_warn} warning(s), "

@@ -17,8 +17,10 @@ The generator holds each sample until the next (zero-order hold), so the
 response to a sampled drive is computed exactly at the sample instants by
 discretising ``H`` with a zero-order hold (:func:`scipy.signal.cont2discrete`)
 and filtering with :func:`scipy.signal.lfilter`. The periodic steady state (the
-sweep repeats forever) comes from two passes over one period, the second
-starting from the state the first ended in.
+sweep repeats forever) is exact: the filter state after one period is linear in
+the state it started from, ``z_N = Φ z_0 + z_forced``, so the state that repeats
+solves ``(I − Φ) z_0 = z_forced`` (linear-systems algebra; Φ has one column per
+state variable, from one pass over a period of zeros each).
 """
 
 from __future__ import annotations
@@ -137,11 +139,29 @@ class Response:
         # Filter the deviation from the first value: better conditioned for large offsets.
         x0 = float(x[0])
         d = x - x0
-        y, zf = lfilter(b, a, d, zi=np.zeros(max(len(a), len(b)) - 1))
-        if periodic:
-            for _ in range(2):
-                y, zf = lfilter(b, a, d, zi=zf)
+        nz = max(len(a), len(b)) - 1
+        zi = np.zeros(nz)
+        if periodic and nz:
+            zi = _periodic_state(b, a, d)
+        y, _ = lfilter(b, a, d, zi=zi)
         return y + x0
+
+
+def _periodic_state(b, a, d) -> np.ndarray:
+    """The initial state of ``lfilter(b, a, ·)`` that it returns to after one period ``d``.
+
+    The final state is ``Φ z0 + z_forced``: ``z_forced`` from a pass starting at
+    rest, column ``i`` of ``Φ`` from a pass over zeros starting at unit state
+    ``e_i``. For a stable filter ``I − Φ`` is invertible (every eigenvalue of Φ is
+    a pole raised to the period's sample count, inside the unit circle).
+    """
+    from scipy.signal import lfilter
+
+    nz = max(len(a), len(b)) - 1
+    _, forced = lfilter(b, a, d, zi=np.zeros(nz))
+    zeros = np.zeros_like(d)
+    phi = np.column_stack([lfilter(b, a, zeros, zi=e)[1] for e in np.eye(nz)])
+    return np.linalg.solve(np.eye(nz) - phi, forced)
 
 
 def response_from_section(sec: Section | None) -> Response:
@@ -233,11 +253,11 @@ def actuator_response(plan, laser, generator=None, *, rate: float | None = None)
         tau = laser.response.time_constant or schedule.period / 1e4
         rate = min(1000.0 / tau, MAX_SIM_POINTS / schedule.period)
     if generator is not None:
-        from sweepgen.sampling import drive_extremes, quantisation
-
-        lo, hi = drive_extremes(schedule, laser.chain)
         from sweepgen.errors import SweepgenError
+        from sweepgen.render import drive_range
+        from sweepgen.sampling import quantisation
 
+        lo, hi = drive_range(schedule, laser.chain)
         try:
             quant = quantisation(lo, hi, generator, laser.chain)
         except SweepgenError:      # an unplayable sweep is still drawn, unquantised

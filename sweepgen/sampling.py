@@ -42,7 +42,8 @@ from sweepgen.errors import CheckFailed
 #: fraction of the natural linewidth Γ/2π (a step well inside the line does not
 #: kick the design atom off the Lorentzian).
 DEFAULT_STEP_FRACTION = 0.1
-#: Tolerance used when no linewidth is known (Hz).
+#: Tolerance used when no linewidth is known (Hz): a design choice of this tool,
+#: 0.1 × a 10 MHz line, the order of the alkali D lines' natural widths.
 FALLBACK_STEP = 1.0e6
 #: Automatic rates aim at steps of at most tolerance / HEADROOM.
 HEADROOM = 2.0
@@ -214,14 +215,6 @@ def _no_rate_message(need, tol, tol_src, sweep_rate, sm, mem_rate, period, gener
 
 
 # ----------------------------------------------------------------------------------
-def drive_extremes(schedule, chain, samples: int = 4001) -> tuple[float, float]:
-    """Smallest and largest drive over one period (dense grid plus segment ends)."""
-    ts = [np.linspace(seg.start, np.nextafter(seg.end, seg.start), samples) for seg in schedule.segments]
-    t = np.concatenate(ts)
-    d = chain.to_drive(schedule.detuning(t))
-    return float(np.min(d)), float(np.max(d))
-
-
 @dataclass(frozen=True)
 class Quantisation:
     """How drive values (actuator units) become generator codes: ``drive = code_offset + code_scale·code``."""
@@ -285,7 +278,10 @@ def quantisation(drive_min: float, drive_max: float, generator, chain) -> Quanti
         amplitude = _round_sig(max(2.0 * half, floor), 4, math.ceil)
         room = 2.0 * min(offset - out.range_min, out.range_max - offset)
         if amplitude > room:
-            amplitude = max(room, 2.0 * half)
+            # the rounded window would reach past the output range (a sweep using nearly all of it):
+            # centre the window exactly on the sweep, so the programmed window stays inside the range
+            offset = 0.5 * (lo_p + hi_p)
+            amplitude = max(hi_p - lo_p, floor)
         scale = amplitude * k / (2.0 * fs)
         off = offset * k
         cmin = int(np.rint((drive_min - off) / scale))

@@ -79,7 +79,7 @@ DDS_LASER = {
 DDS_GEN = dict(GEN, output={"kind": "frequency", "clock": "1 GHz", "word_bits": 32, "range_min": "1 MHz",
                             "range_max": "400 MHz"})
 
-RB_LAMBDA = 780.241209686e-9     # REFERENCES.md, 87Rb D2 vacuum wavelength (Steck, recalled)
+RB_LAMBDA = 780.241209686e-9     # 87Rb D2 vacuum wavelength (D. A. Steck, Rubidium 87 D Line Data, recalled)
 
 
 def merged(base, **sections):
@@ -119,7 +119,7 @@ def test_compliant_profiles_pass_every_rule(compliant):
     assert all(f.status in ("pass", "warn") for f in compliant.findings)
 
 
-# uniform light: the design deceleration is η a_max(s) (DESIGN.md §3; Foot 2005 §9.3.1)
+# uniform light: the design deceleration is η a_max(s) (README.md, Physics background; Foot 2005 §9.3.1, recalled section)
 def _a_design():
     sc = load_scenario("rb87-chopped-oven")        # the same species, s = 3, η = 0.6 as the test scenario
     sp = sc.species
@@ -130,7 +130,7 @@ def test_mode_hop_free_fails_with_the_span(tmp_path):
     r = run(tmp_path, laser=merged(LASER, limits={"mode_hop_free": "200 MHz"}))
     f = r.finding("mode_hop_free")
     assert f.status == "fail" and f.limit == pytest.approx(200e6)
-    # span (v1 − v2)/λ (closed form, REFERENCES.md): the lag is the same at both ends for uniform light
+    # span (v1 − v2)/λ (constant-deceleration closed form, Foot 2005 §9.3.1): the lag is the same at both ends for uniform light
     assert f.value == pytest.approx((200 - 15) / RB_LAMBDA, rel=1e-6)
     assert not r.ok
 
@@ -301,7 +301,7 @@ def test_period_rule_fails_instead_of_crashing(tmp_path):
     r = run(tmp_path, scenario=merged(SCENARIO, chirp={"period": "4 ms"}))
     f = r.finding("period")
     a, _ = _a_design()
-    # chirp duration (v1 − v2)/a (closed form, REFERENCES.md) + hold + return
+    # chirp duration (v1 − v2)/a (constant-deceleration closed form, Foot 2005 §9.3.1) + hold + return
     assert f.status == "fail" and f.value == pytest.approx((200 - 15) / a + 0.2e-3 + 0.5e-3, rel=1e-6)
     assert f.limit == pytest.approx(4e-3) and not r.ok
 
@@ -342,7 +342,7 @@ def test_photon_budget_for_a_lossy_molecule(tmp_path):
     r = run(tmp_path, scenario=sc)
     f = r.finding("photon_budget")
     sp = r.scenario.species
-    # photons Δv/v_r with v_r = h/(mλ), survival (1 − p)^N (DESIGN.md §3; CODATA h via scipy.constants)
+    # photons Δv/v_r with v_r = h/(mλ), survival (1 − p)^N (README.md, Physics background; CODATA h via scipy.constants)
     n = 140 / (constants.h / (sp.mass * sp.wavelength))
     assert f.status == "fail" and f.value == pytest.approx((1 - 1e-4) ** n, rel=1e-9)
     assert f.limit == MIN_SURVIVAL

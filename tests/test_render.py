@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import math
 import tracemalloc
 
 import numpy as np
@@ -221,3 +222,12 @@ def test_the_range_check_is_exact_at_the_edge():
     codes = table.codes()
     drive = table.info.code_offset + table.info.code_scale * codes.astype(float)
     assert drive.min() >= lo - step and drive.max() <= hi + step
+
+
+def test_drive_range_matches_the_chain_at_the_sweep_ends():
+    sc, schedule, laser, gen = setup("rb87-chopped-oven")
+    lo, hi = drive_range(schedule, laser.chain)
+    ends = laser.chain.to_drive(np.array([schedule.start_detuning, schedule.end_detuning]))
+    assert lo == pytest.approx(ends.min()) and hi == pytest.approx(ends.max())
+    # analog stage of demo-ecdl-piezo: drive = (Δ − set point)/(40 MHz/V), so the span is the chirp span / 40 MHz/V
+    assert math.isclose(hi - lo, (schedule.end_detuning - schedule.start_detuning) / 40e6, rel_tol=1e-9)

@@ -67,15 +67,25 @@ def test_ramp_lag_is_rate_times_tau(corner, slope):
     assert lag == pytest.approx(r.ramp_lag(slope) + slope / (2 * rate), rel=2e-3)
 
 
-def test_periodic_steady_state_repeats():
-    r = Response("second-order", resonance=5e3, q=3)
+@pytest.mark.parametrize("model", [{"model": "second-order", "resonance": 5e3, "q": 30.0},
+                                   {"model": "first-order", "corner": 100.0}])
+def test_periodic_steady_state_repeats(model):
+    r = Response(**model)
     rate = 1e6
-    n = 2000                                    # a 2 ms period, shorter than the ringing
+    n = 500                                     # a 0.5 ms period, far shorter than the ringing or decay
+    assert r.time_constant > 3 * n / rate       # (2Q/ω0 = 1.9 ms; 1/ω_c = 1.6 ms)
     x = np.where(np.arange(n) < n // 2, 1.0, -1.0)
     y = r.filter(x, rate, periodic=True)
     # one more period from the end state gives the same waveform: steady state
     y2 = r.filter(np.concatenate([x, x]), rate, periodic=True)
     assert np.allclose(y, y2[:n], atol=1e-9) and np.allclose(y, y2[n:], atol=1e-9)
+    # reference implementation: scipy.signal.lsim (zero-order hold) started at rest and run until the
+    # start-up transient has decayed (e^-40); its last period is the steady state
+    num, den = r.transfer()
+    periods = int(np.ceil(40 * r.time_constant * rate / n))
+    u = np.tile(x, periods) - x[0]
+    _, ref, _ = signal.lsim(signal.lti(num, den), u, np.arange(u.size) / rate, interp=False)
+    assert np.allclose(y, ref[-n:] + x[0], atol=1e-6)
     assert np.allclose(Response().filter(x, rate), x)
 
 
