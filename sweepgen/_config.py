@@ -21,6 +21,11 @@ MISSING = object()
 
 def load_toml(path) -> dict:
     """Read a TOML file; a missing or malformed file is an :class:`InputError`."""
+    return load_toml_bytes(path)[0]
+
+
+def load_toml_bytes(path) -> tuple[dict, bytes]:
+    """Read a TOML file once; returns the parsed table and the very bytes it was parsed from."""
     path = Path(path)
     try:
         raw = path.read_bytes()
@@ -29,7 +34,7 @@ def load_toml(path) -> dict:
     except OSError as exc:
         raise InputError(f"cannot read file ({exc.strerror})", file=str(path)) from None
     try:
-        return tomllib.loads(raw.decode("utf-8"))
+        return tomllib.loads(raw.decode("utf-8")), raw
     except UnicodeDecodeError:
         raise InputError("not a UTF-8 text file (expected TOML)", file=str(path)) from None
     except tomllib.TOMLDecodeError as exc:
@@ -108,12 +113,6 @@ class Section:
             raise self.error(name, f"expected a string, got {value!r}")
         if choices is not None and value not in choices:
             raise self.error(name, f"expected one of {', '.join(repr(c) for c in choices)}, got {value!r}")
-        return value
-
-    def boolean(self, name, default=MISSING):
-        value = self.raw(name, default)
-        if not isinstance(value, bool):
-            raise self.error(name, f"expected true or false, got {value!r}")
         return value
 
     def section(self, name, default=MISSING):

@@ -39,7 +39,10 @@ def resolve(kind: str, ref, *, relative_to=None, file=None, key=None) -> Path:
     ref : str
         A built-in key (``"rb87-d2"``) or a path (``"../my-laser.toml"``).
     relative_to : path, optional
-        The folder a relative path is taken from (the naming file's folder).
+        The folder a relative path is taken from (the naming file's folder);
+        without it, the current folder. A path named inside a file is never
+        looked up in the current folder, so a file of the same name there cannot
+        stand in for the one the scenario means.
     file, key : str, optional
         Where ``ref`` was written, for the error message.
     """
@@ -50,9 +53,9 @@ def resolve(kind: str, ref, *, relative_to=None, file=None, key=None) -> Path:
     path = Path(ref).expanduser()
     if path.is_absolute():
         candidates.append(path)
+    elif relative_to is not None:
+        candidates.append(Path(relative_to) / path)
     else:
-        if relative_to is not None:
-            candidates.append(Path(relative_to) / path)
         candidates.append(Path.cwd() / path)
     looks_like_path = ref.endswith(".toml") or "/" in ref or "\\" in ref
     for candidate in candidates:
@@ -63,7 +66,8 @@ def resolve(kind: str, ref, *, relative_to=None, file=None, key=None) -> Path:
         if entry.is_file():
             return Path(str(entry))
     known = ", ".join(builtin_keys(kind))
-    raise InputError(f"no built-in {kind} profile or file named {ref!r} (built-in: {known})",
+    looked = f"looked for the file at {candidates[0]}; " if looks_like_path else ""
+    raise InputError(f"no built-in {kind} profile or file named {ref!r} ({looked}built-in: {known})",
                      file=file, key=key)
 
 

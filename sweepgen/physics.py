@@ -1,6 +1,6 @@
 """Physics of radiation-pressure slowing, as pure functions in SI units.
 
-Conventions (DEVELOPERS.md, "Physics conventions"):
+Conventions (README.md, "Physics background"):
 
 * atoms move along +z with v > 0; the slowing light propagates along -z;
 * detunings are cyclic frequencies in Hz, ``detuning = f_laser - f_0``
@@ -10,7 +10,8 @@ Conventions (DEVELOPERS.md, "Physics conventions"):
 Formulas: the two-level scattering rate and the scattering force follow
 C. J. Foot, *Atomic Physics* (OUP 2005), ch. 7 and 9, and H. J. Metcalf and
 P. van der Straten, *Laser Cooling and Trapping* (Springer 1999), ch. 2-3 and 6.
-Constants are CODATA values from :mod:`scipy.constants`.
+Section and equation numbers below are recalled. Constants are CODATA values
+from :mod:`scipy.constants`.
 """
 
 from __future__ import annotations
@@ -90,7 +91,7 @@ def doppler_limit(gamma):
 
 
 def doppler_shift(velocity, wavelength):
-    """First-order Doppler shift ``v/λ`` in Hz."""
+    """First-order Doppler shift ``v/λ`` in Hz (an atom at v sees the light at detuning + v/λ)."""
     return velocity / wavelength
 
 
@@ -120,7 +121,13 @@ def gaussian_beam_saturation(z, s0, z_focus, z_rayleigh):
 
 
 def velocity_width(gamma, wavelength, saturation=0.0):
-    """Full width of the Lorentzian in velocity, ``λΓ/2π · sqrt(1+s)`` (power broadened)."""
+    """Full width at half maximum of the Lorentzian in velocity, ``λΓ/2π · sqrt(1+s)``.
+
+    The power-broadened line of :func:`scattering_rate` has a full width
+    ``(Γ/2π) sqrt(1+s)`` in detuning (Foot 2005, ch. 7); an atom's Doppler shift is
+    ``v/λ``, so the width in velocity is λ times that. ``saturation = 0`` gives the
+    natural width ``λΓ/2π``.
+    """
     return wavelength * gamma / TWO_PI * np.sqrt(1.0 + saturation)
 
 

@@ -7,7 +7,7 @@ velocity of the light, so the laser detuning during the chirp is
 
     Δ(t) = -(v_s(t) + Δv_lag(z_s(t))) / λ
 
-(DEVELOPERS.md, "Physics conventions"). ``dv_s/dt = -a_d(z_s)``,
+(README.md, "Physics background"). ``dv_s/dt = -a_d(z_s)``,
 ``dz_s/dt = v_s`` are integrated with :func:`scipy.integrate.solve_ivp` and
 stopped by an event at ``v_s = end_velocity``. With uniform light the result is
 the constant-deceleration closed form (:func:`sweepgen.physics.closed_form_slowing`).
@@ -95,7 +95,8 @@ class Plan:
 
     @property
     def chirp_rate_max(self) -> float:
-        return float(np.max(self.trajectory.rate))
+        """Largest |dΔ/dt| during the chirp (Hz/s)."""
+        return float(np.max(np.abs(self.trajectory.rate)))
 
     @property
     def photons_per_atom(self) -> float:
@@ -235,9 +236,10 @@ def plan(scenario: Scenario) -> Plan:
                             f"or use start_time = \"auto\"", file=file, key="chirp.start_time")
         z_end = _end_position(scenario, z0)
         if z_end > target:
-            latest = scenario.pulse_time + (target - (z_end - z0)) / ch.start_velocity
+            z_latest = target - (z_end - z0)       # where the design atom would have to start
+            latest = scenario.pulse_time + z_latest / ch.start_velocity
             hint = (f"; or start the chirp earlier (about {latest * 1e3:.4g} ms at the latest)"
-                    if latest * ch.start_velocity >= light.start else "")
+                    if z_latest >= light.start else "")
             raise PlanError(_fit_message(scenario, z_end - z0, target - z0, z0,
                                          "the design atom's position at chirp.start_time") + hint,
                             file=file, key="chirp.start_time")

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from sweepgen import catalog
-from sweepgen._config import Section, load_toml
+from sweepgen._config import Section, load_toml_bytes
 from sweepgen.errors import InputError
 from sweepgen.physics import gaussian_beam_saturation, rayleigh_range
 from sweepgen.sources import EffusiveSource, GaussianSource
@@ -133,8 +133,8 @@ class Scenario:
 def load_scenario(ref) -> Scenario:
     """Load a scenario by built-in key or path, validated, in SI units."""
     path = catalog.resolve("scenarios", str(ref))
-    data = load_toml(path)
-    return scenario_from_dict(data, path, raw=path.read_bytes())
+    data, raw = load_toml_bytes(path)
+    return scenario_from_dict(data, path, raw=raw)
 
 
 def scenario_from_dict(data: dict, path, raw: bytes | None = None) -> Scenario:
@@ -208,7 +208,8 @@ def scenario_from_dict(data: dict, path, raw: bytes | None = None) -> Scenario:
     period = ch.quantity("period", "s", positive=True, example="20 ms")
     ch.finish()
     if pulse_time is not None and pulse_time >= period:
-        raise InputError(f"the source pulse at {pulse_time:g} s lies outside the period ({period:g} s)",
+        raise InputError(f"the source pulse at {pulse_time:g} s lies outside the period ({period:g} s); "
+                         f"set source.pulse_time below chirp.period or lengthen chirp.period",
                          file=file, key="source.pulse_time")
     chirp = Chirp(start_velocity=v1, end_velocity=v2, margin=margin, start_time=start_time,
                   hold=hold, return_time=return_time, period=period)

@@ -4,14 +4,14 @@ Atoms leave the source at ``z = 0`` (a pulsed source fires at ``pulse_time``; a
 continuous beam emits uniformly over one period) with velocities drawn from the
 source model, and fly along +z through the slowing light, which travels along
 -z and is on all the time with the schedule's detuning ``Schedule.detuning(t)``.
-The model, per atom and time step ``dt`` (DESIGN.md §3):
+The model, per atom and time step ``dt`` (README.md, "Physics background"):
 
 * scattering rate ``R = (Γ/2) s / (1 + s + (2·2π(Δ + v/λ)/Γ)²)``
   (:func:`sweepgen.physics.scattering_rate`) with the on-axis ``s(z)``
   (``Light.saturation_at``) at the atom's position at the start of the step and
   the detuning at the step's mid-point time;
 * the number of scattered photons ``k`` is Poisson with mean ``λ = R·dt``
-  (Foot 2005, §9.3: absorption and spontaneous emission are independent events
+  (Foot 2005, §9.3, recalled section: absorption and spontaneous emission are independent events
   at rate R). It is drawn exactly: each atom carries the remaining unit-rate
   exponential "clock" of its photon process, ``λ`` is subtracted each step, and
   only when the clock runs out is ``1 + Poisson(overshoot)`` drawn and a fresh
@@ -65,7 +65,7 @@ emission (the pulse; for a continuous beam the end of the emission period) is
 Baselines use the same initial atoms (common random numbers): no light at all,
 and the light held at the schedule's start detuning.
 
-Speed (issue 8; ``tests/benchmarks/bench_simulate.py``): per step the working
+Speed (``tests/benchmarks/bench_simulate.py``): per step the working
 set of atoms in flight costs a few in-place array passes (the step rule's nearest
 velocity, the expected counts of :func:`expected_counts`, the two tests that pick
 the atoms that scatter, the clock update and the drift), and only the atoms that
@@ -269,8 +269,8 @@ class SimulationResult:
         doc = {
             "atoms": n,
             "seed": self.seed,
-            "captured_fraction": cap.mean(),
-            "band_fraction": self.in_band().mean(),
+            "captured_fraction": float(cap.mean()),
+            "band_fraction": float(self.in_band().mean()),
             "final_velocity_mean": float(vf.mean()) if vf.size else math.nan,
             "final_velocity_spread": spread,
             "final_temperature": temperature,
@@ -412,7 +412,7 @@ def transverse_model(scenario) -> bool:
 
 def velocity_width(species) -> float:
     """The Lorentzian's natural velocity width ``λΓ/2π`` (m/s), the time step's yardstick."""
-    return species.wavelength * species.gamma / (2.0 * math.pi)
+    return float(physics.velocity_width(species.gamma, species.wavelength))
 
 
 def peak_saturation(light, z_max: float) -> float:
@@ -654,7 +654,7 @@ def expected_counts(v, z, lit, detuning, dt, light, gamma, wavelength, work, wor
     """Expected photons ``λ = R·dt`` of each atom in a step, in place (no temporaries).
 
     ``R = (Γ/2) s / (1 + s + x²)``, ``x = 2·2π(Δ + v/λ)/Γ``, the rate of
-    :func:`sweepgen.physics.scattering_rate` (Foot 2005, eq. 7.68 with the Doppler
+    :func:`sweepgen.physics.scattering_rate` (Foot 2005, eq. 7.68, recalled number, with the Doppler
     shift), with ``s`` the on-axis saturation parameter of ``light`` at ``z``
     (``Light.saturation_at``); ``lit`` is 1.0 for the atoms at or past the light
     start and 0.0 for the others. Rearranged so that each array pass is one

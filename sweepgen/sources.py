@@ -54,9 +54,6 @@ class EffusiveSource:
         """Mean flux velocity ``(3√π/4) α`` (Ramsey 1956)."""
         return 0.75 * math.sqrt(math.pi) * self.alpha
 
-    def describe(self) -> str:
-        return f"effusive oven at {self.temperature:g} K (mean flux velocity {self.mean():.0f} m/s)"
-
 
 @dataclass(frozen=True)
 class GaussianSource:
@@ -93,7 +90,5 @@ class GaussianSource:
         return out
 
     def mean(self) -> float:
+        """Mean of the untruncated normal, ``u`` (the truncation at v > 0 shifts it up slightly)."""
         return self.mean_velocity
-
-    def describe(self) -> str:
-        return f"gaussian beam, {self.mean_velocity:g} ± {self.velocity_spread:g} m/s"

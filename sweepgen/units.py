@@ -9,8 +9,11 @@ Two lab habits are handled explicitly:
 
 * ``"Sa"`` (sample) is known, so ``"10 MSa/s"`` is a sample rate of 1e7 /s.
 * Frequencies are cyclic (Hz). pint treats the radian as dimensionless, so it
-  would silently read ``"38 Mrad/s"`` as 38 MHz; a value in rad/s given where Hz
-  is expected is refused instead of being wrong by 2π.
+  would silently read ``"38 Mrad/s"`` as 38 MHz (and ``"1 turn/s"`` as 2π Hz); a
+  value carrying an angle unit where the wanted unit has none is refused instead
+  of being wrong by 2π.
+* A value is a number followed by its unit: ``"MHz"`` alone is refused rather
+  than read as 1 MHz.
 """
 
 from __future__ import annotations
@@ -73,54 +76,38 @@ def parse(value, unit: str, *, file=None, key=None, example: str | None = None):
     text = value.strip()
     if not text:
         raise InputError(f"expected {_describe(unit)}{ex}, got an empty string", file=file, key=key)
-    lowered = text.lower()
-    if "nan" in lowered.split() or re.search(r"\b(nan|inf|infinity)\b", lowered):
+    if re.search(r"\b(nan|inf|infinity)\b", text.lower()):
         raise InputError(f"expected a finite value, got {value!r}", file=file, key=key)
+    match = _NUMBER_UNIT.match(text)
+    if not match:
+        raise InputError(f"cannot read {value!r} as a quantity: expected a number followed by its unit"
+                         f"{ex or (f' in {unit}' if unit else '')}", file=file, key=key)
     ureg = registry()
     try:
-        match = _NUMBER_UNIT.match(text)
-        if match:
-            quantity = ureg.Quantity(float(match.group(1)), match.group(2) or "")
-        else:
-            quantity = ureg.Quantity(text)
+        quantity = ureg.Quantity(float(match.group(1)), match.group(2) or "")
         target = ureg.Unit(unit) if unit else ureg.dimensionless
     except Exception as exc:  # pint raises many types for bad text
         raise InputError(f"cannot read {value!r} as a quantity ({_short(exc)}); "
                          f"expected {_describe(unit)}{ex}", file=file, key=key) from None
-    if not hasattr(quantity, "dimensionality"):
-        quantity = ureg.Quantity(quantity)
     if quantity.dimensionality != target.dimensionality:
         got = f"{quantity.units:~}" or "no unit"
         raise InputError(f"{value!r} has the wrong dimension ({got}); expected {_describe(unit)}{ex}",
                          file=file, key=key)
-    if "radian" in str(quantity.units) and "radian" not in str(target):
-        raise InputError(f"{value!r} is an angular frequency; write cyclic frequencies in Hz "
-                         f"(Γ/2π, not Γ){ex}", file=file, key=key)
+    if _has_angle(ureg, quantity.units) and not _has_angle(ureg, target):
+        if not unit:
+            raise InputError(f"{value!r} carries an angle unit; expected a dimensionless number{ex}",
+                             file=file, key=key)
+        raise InputError(f"{value!r} is an angular frequency (it carries an angle unit); write cyclic "
+                         f"frequencies in Hz (Γ/2π, not Γ){ex}", file=file, key=key)
     result = float(quantity.to(target).magnitude)
     if not math.isfinite(result):
         raise InputError(f"expected a finite value, got {value!r}", file=file, key=key)
     return result
 
 
-def parse_any(value, *, file=None, key=None):
-    """Parse a quantity whose dimension the caller decides later.
-
-    Returns ``(magnitude_in_SI_base_units, dimensionality_string)``; used for
-    coefficients whose unit depends on the stage (``"MHz/V"``, ``"GHz/mA"``).
-    """
-    if not isinstance(value, str):
-        raise InputError(f"expected a string with a unit, got {value!r}", file=file, key=key)
-    ureg = registry()
-    try:
-        match = _NUMBER_UNIT.match(value)
-        quantity = (ureg.Quantity(float(match.group(1)), match.group(2) or "") if match
-                    else ureg.Quantity(value))
-        base = quantity.to_base_units()
-    except Exception as exc:
-        raise InputError(f"cannot read {value!r} as a quantity ({_short(exc)})", file=file, key=key) from None
-    if not math.isfinite(float(base.magnitude)):
-        raise InputError(f"expected a finite value, got {value!r}", file=file, key=key)
-    return float(base.magnitude), str(base.dimensionality)
+def _has_angle(ureg, unit) -> bool:
+    """Whether ``unit`` contains an angle (radian, degree, turn, ...), which pint treats as dimensionless."""
+    return "radian" in str(ureg.get_root_units(unit)[1])
 
 
 def _short(exc: Exception) -> str:

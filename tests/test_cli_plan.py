@@ -15,7 +15,7 @@ from conftest import scenario_dict, to_toml
 PLAN_KEYS = {"capture_velocity", "end_velocity", "margin", "deceleration_min", "deceleration_max",
              "lag_velocity_start", "start_detuning", "end_detuning", "chirp_span", "chirp_rate_max",
              "chirp_duration", "slowing_distance", "start_time", "arrival_time", "photons_per_atom",
-             "doppler_limit", "recoil_velocity"}
+             "doppler_limit", "recoil_velocity", "start_position", "end_position", "survival_fraction"}
 
 
 def run(*args):
@@ -47,7 +47,9 @@ def test_builtin_scenarios_plan(key):
 
 def test_profiles_lists_builtins():
     result = run("profiles", "--json")
+    assert result.exit_code == 0, result.stderr
     doc = json.loads(result.stdout)
+    assert all(item["title"] and item["title"] != "(unreadable)" for items in doc.values() for item in items)
     assert {"rb87-d2", "cs133-d2", "na23-d2", "k39-d2", "caf-a-x"} <= {x["key"] for x in doc["species"]}
     assert {"rb87-chopped-oven", "na23-continuous-focused"} <= {x["key"] for x in doc["scenarios"]}
 

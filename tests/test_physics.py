@@ -1,7 +1,7 @@
 """Physics functions against published values and textbook closed forms.
 
 Species data and derived values: D. A. Steck, "Rubidium 87 / Cesium / Sodium D Line
-Data" (recalled; see REFERENCES.md). Constants: CODATA via scipy.constants.
+Data" (recalled). Constants: CODATA via scipy.constants.
 Tolerances cover the last printed digit of the published value.
 """
 
@@ -49,13 +49,13 @@ def test_potassium_linewidth_recalled():
 
 @pytest.mark.parametrize("key,a_max", [("rb87-d2", 1.122e5), ("na23-d2", 9.06e5), ("cs133-d2", 5.78e4)])
 def test_max_deceleration_saturated(key, a_max):
-    # REFERENCES.md: a_max = ħkΓ/2m (s → ∞), computed from Steck's rows
+    # a_max = ħkΓ/2m (s → ∞; Foot 2005 §9.3.1), from Steck's values (recalled): 3-digit check values
     sp = load_species(key)
     assert physics.max_deceleration(1e12, sp.gamma, sp.wavelength, sp.mass) == pytest.approx(a_max, rel=1e-3)
 
 
 def test_closed_form_kinematics_reference_example():
-    # REFERENCES.md, closed-form example: 87Rb, s → ∞, η = 0.5, 300 → 10 m/s
+    # constant-deceleration closed form (Foot 2005 §9.3.1), worked example: 87Rb, s → ∞, η = 0.5, 300 → 10 m/s
     sp = load_species("rb87-d2")
     a = 0.5 * physics.max_deceleration(1e12, sp.gamma, sp.wavelength, sp.mass)
     assert a == pytest.approx(5.608e4, rel=1e-3)
@@ -68,7 +68,7 @@ def test_closed_form_kinematics_reference_example():
 
 def test_scattering_rate_limits_and_width():
     gamma, lam = 2 * math.pi * 6e6, 780e-9
-    # on resonance, s → ∞ gives Γ/2 (Foot 2005, eq. 7.68)
+    # on resonance, s → ∞ gives Γ/2 (Foot 2005, eq. 7.68, recalled number)
     assert physics.scattering_rate(0.0, 0.0, 1e12, gamma, lam) == pytest.approx(gamma / 2, rel=1e-9)
     # half maximum at a detuning of (Γ/2π)/2 · sqrt(1+s) (power-broadened FWHM)
     s = 3.0

@@ -1,4 +1,4 @@
-"""The planner against closed forms (Foot 2005 §9.3.1; REFERENCES.md) and an
+"""The planner against closed forms (Foot 2005 §9.3.1, recalled section) and an
 independent computation in the position domain, plus hypothesis properties."""
 
 import math
@@ -18,7 +18,7 @@ from sweepgen.scenario import load_scenario, scenario_from_dict
 from conftest import scenario_dict
 
 
-def make(tmp_path_factory=None, **sections):
+def make(**sections):
     return scenario_from_dict(scenario_dict(**sections), "test.toml")
 
 
@@ -41,7 +41,7 @@ def test_uniform_light_matches_closed_form():
 
 
 def test_reference_example_through_the_planner():
-    # REFERENCES.md: 87Rb, s → ∞, η = 0.5, 300 → 10 m/s: 5.172 ms, 0.8016 m, 371.68 MHz, 71.87 MHz/ms
+    # constant-deceleration closed form (Foot 2005 §9.3.1), worked example: 87Rb, s → ∞, η = 0.5, 300 → 10 m/s: 5.172 ms, 0.8016 m, 371.68 MHz, 71.87 MHz/ms
     sc = make(source={"pulse_time": None}, light={"saturation": 1e9, "start": "0 m"},
               target={"distance": "2 m"},
               chirp={"start_time": None, "margin": 0.5, "start_velocity": "300 m/s", "end_velocity": "10 m/s"})
@@ -80,6 +80,18 @@ def test_explicit_start_too_late_says_how_to_fix():
         plan(sc)
     msg = str(info.value)
     assert "0.6675 m" in msg and "0.61 m" in msg and "start the chirp earlier (about 1.779 ms" in msg
+
+
+def test_no_earlier_start_is_offered_when_it_would_lie_before_the_light():
+    # pulse at 10 ms, target 0.70 m: the 0.6675 m slowing distance fits only if the design atom starts
+    # at 0.0325 m, before the light start (0.05 m), so no earlier start time can help
+    sc = make(source={"pulse_time": "10 ms"}, target={"distance": "0.7 m"},
+              chirp={"start_time": "10.5 ms", "period": "40 ms"})
+    with pytest.raises(PlanError) as info:
+        plan(sc)
+    msg = str(info.value)
+    assert "0.6675 m" in msg and "lower chirp.start_velocity" in msg
+    assert "start the chirp earlier" not in msg
 
 
 def test_explicit_start_before_light_is_refused_with_numbers():

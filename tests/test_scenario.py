@@ -6,6 +6,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from sweepgen import catalog
 from sweepgen.errors import InputError
 from sweepgen.scenario import load_scenario, scenario_from_dict
 from sweepgen.sources import EffusiveSource, GaussianSource
@@ -25,11 +26,31 @@ def test_builtin_scenario_in_si():
 
 def test_relative_species_path(tmp_path):
     (tmp_path / "sp").mkdir()
-    (tmp_path / "sp" / "mine.toml").write_text(
-        (load_scenario.__globals__["catalog"].builtin_dir("species") / "rb87-d2.toml").read_text())
+    (tmp_path / "sp" / "mine.toml").write_text((catalog.builtin_dir("species") / "rb87-d2.toml").read_text())
     path = tmp_path / "s.toml"
     path.write_text(to_toml(scenario_dict(species="sp/mine.toml")))
     assert load_scenario(str(path)).species.key == "mine"
+
+
+def test_a_path_in_a_file_is_taken_from_that_files_folder_only(tmp_path):
+    # the scenario lives in elsewhere/; a species file of the same relative name in the current
+    # folder (tmp_path, see conftest) must not stand in for the missing one next to the scenario
+    (tmp_path / "sp").mkdir()
+    (tmp_path / "sp" / "mine.toml").write_text((catalog.builtin_dir("species") / "rb87-d2.toml").read_text())
+    (tmp_path / "elsewhere").mkdir()
+    path = tmp_path / "elsewhere" / "s.toml"
+    path.write_text(to_toml(scenario_dict(species="sp/mine.toml")))
+    with pytest.raises(InputError) as info:
+        load_scenario(str(path))
+    msg = str(info.value)
+    assert "key 'species'" in msg and str(tmp_path / "elsewhere" / "sp" / "mine.toml") in msg
+
+
+def test_pulse_outside_the_period_says_what_to_change():
+    with pytest.raises(InputError) as info:
+        scenario_from_dict(scenario_dict(source={"pulse_time": "25 ms"}), "p.toml")
+    msg = str(info.value)
+    assert "source.pulse_time" in msg and "lengthen chirp.period" in msg
 
 
 def test_digest_changes_with_content(tmp_path):

@@ -67,6 +67,11 @@ def test_vectorised_shapes(pulsed):
     t = np.linspace(0, 0.05, 12).reshape(3, 4)
     assert s.detuning(t).shape == (3, 4)
     assert s.kinds(t).shape == (3, 4)
+    # the kind at each segment's midpoint, also one period later
+    mids = np.array([(seg.start + seg.end) / 2 for seg in s.segments])
+    expected = [seg.kind for seg in s.segments]
+    assert list(s.kinds(mids)) == expected
+    assert list(s.kinds(mids + s.period)) == expected
 
 
 def test_period_too_short_is_refused():

@@ -4,14 +4,14 @@ Sources of the expected values, named beside each assertion:
 
 * ballistic flight without light: arrival at t_e + D/v, speed unchanged (kinematics);
 * momentum conservation: photons scattered = (v_initial - v_final)/v_r
-  (REFERENCES.md, "photons needed to slow by Δv: Δv/v_r"; Foot 2005 §9.3);
-* dark-state loss: survival (1 - p)^N after N photons (DESIGN.md §3, REFERENCES.md);
+  (Foot 2005 §9.3, recalled section: photons needed to slow by Δv are Δv/v_r);
+* dark-state loss: survival (1 - p)^N after N photons (README.md, Physics background);
 * isotropic emission recoil: per-axis variance N v_r²/3 after N photons (the
   variance of cos θ for an isotropic direction is 1/3, a textbook result);
 * a point source with Gaussian angles of 1σ θ: distance from the axis at distance
   D is Rayleigh-distributed with scale Dθ (reference: scipy.stats.rayleigh);
 * the expected photons per step: R·dt with R of physics.scattering_rate
-  (DESIGN.md §3; Foot 2005 eq. 7.68);
+  (README.md, Physics background; Foot 2005 eq. 7.68, recalled number);
 * photons of a clock that ran out: 1 + Poisson(overshoot), fresh clock Exp(1)
   (reference: scipy.stats.poisson, scipy.stats.expon);
 * statistical tolerances: binomial standard errors sqrt(f(1-f)/n), standard
@@ -100,7 +100,7 @@ def test_expected_counts_are_the_scattering_rate_times_the_step(atoms, detuning,
     v = np.array([a[0] for a in atoms])
     z = np.array([a[1] for a in atoms])
     lit = (z >= lt.start).astype(float)
-    # DESIGN.md §3: R(Δ, v, s(z)) of physics.scattering_rate, times the step
+    # README.md, Physics background: R(Δ, v, s(z)) of physics.scattering_rate, times the step
     reference = physics.scattering_rate(detuning, v, lt.saturation_at(z), sp.gamma, sp.wavelength) * dt
     work = [np.empty(v.size) for _ in range(3)]
     got = expected_counts(v, z, lit, detuning, dt, lt, sp.gamma, sp.wavelength, *work)
@@ -191,11 +191,11 @@ def test_a_source_narrower_than_the_band_is_captured_whole(narrow_run):
     sc, r = narrow_run
     doc = r.to_json()
     assert doc["band_fraction"] == 1.0
-    # DESIGN.md §3: the chirp collects every atom between end and start velocity
+    # README.md, Physics background: the chirp collects every atom between end and start velocity
     assert doc["captured_fraction"] == 1.0
     assert doc["lost_fraction"] == 0.0 and doc["too_fast_fraction"] == 0.0
-    # the "done when": with no hold the mean final velocity lies within two natural
-    # velocity widths λΓ/2π of the end velocity
+    # acceptance criterion of this model: with no hold the mean final velocity lies within two
+    # natural velocity widths λΓ/2π of the end velocity
     width = velocity_width(sc.species)
     assert abs(doc["final_velocity_mean"] - sc.chirp.end_velocity) <= 2 * width
     # far below the no-light and fixed-frequency baselines (the reason the technique exists)
@@ -217,7 +217,7 @@ def test_photons_per_slowed_atom_follow_momentum_conservation(narrow_run):
     n = cap.sum()
     tol = 5.0 * math.sqrt(expected.mean() / 3.0 / n)
     assert doc["photons_mean"] == pytest.approx(expected.mean(), abs=tol)
-    assert doc["photons_mean"] == pytest.approx(expected.mean(), rel=0.02)     # the 2 %
+    assert doc["photons_mean"] == pytest.approx(expected.mean(), rel=0.02)     # and within 2 % (acceptance criterion)
     per_atom = r.flight.photons[cap] - expected
     assert per_atom.std() == pytest.approx(math.sqrt(expected.mean() / 3.0), rel=0.15)
 
@@ -241,7 +241,7 @@ def test_emission_recoil_heats_the_transverse_motion_as_n_over_three(tmp_path):
 
 
 def test_atoms_a_bit_above_the_start_velocity_are_pulled_in_before_the_chirp():
-    # The light is on at the start detuning before the chirp starts (DESIGN.md §3, schedule).
+    # The light is on at the start detuning before the chirp starts (README.md, Physics background, schedule).
     # Its power-broadened line (full width λΓ/2π·sqrt(1+s) = 9.5 m/s here) reaches above the
     # start velocity and brakes atoms there into the chirp's reach: they are captured although
     # they start faster than the start velocity. Atoms many widths above it are not.

@@ -13,6 +13,10 @@ def test_every_builtin_value_names_a_source(key):
     assert sp.wavelength > 0 and sp.mass > 0 and sp.gamma > 0
     for name in ("wavelength", "mass"):
         assert len(sp.sources[name]) > 10
+    # every value given, not only the required ones, names its publication
+    assert all(len(text) > 10 for text in sp.sources.values())
+    if sp.saturation_intensity is not None:
+        assert "saturation_intensity" in sp.sources
     assert "lifetime" in sp.sources or "linewidth" in sp.sources
     if sp.kind == "molecule":
         assert 0 < sp.loss_per_photon < 1e-2

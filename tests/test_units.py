@@ -32,6 +32,9 @@ def test_parse(text, unit, expected):
     ("nan m/s", "m/s", "finite"),
     ("inf K", "K", "finite"),
     ("38 Mrad/s", "Hz", "angular frequency"),
+    ("1 turn/s", "Hz", "angular frequency"),      # pint reads a turn as 2π rad: refused, not 2π Hz
+    ("2 rad", "", "angle unit"),
+    ("MHz", "Hz", "number followed by its unit"),  # a unit alone is not read as 1 MHz
     ("", "m", "empty"),
     (True, "m", "expected"),
 ])

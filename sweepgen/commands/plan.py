@@ -41,7 +41,7 @@ def command(scenario, as_json, plot_file):
 
     \b
     Example:
-      sweepgen plan rb-pulsed-oven --json
+      sweepgen plan rb87-chopped-oven --json
     """
     from sweepgen.planner import plan
     from sweepgen.scenario import load_scenario
