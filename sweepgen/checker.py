@@ -258,7 +258,7 @@ def _plan_failure(scenario, exc: PlanError) -> Finding:
         from sweepgen import planner
 
         try:
-            z_end = planner._end_position(scenario, scenario.light.start)
+            z_end = planner.end_position(scenario, scenario.light.start)
             value = z_end - scenario.light.start
             limit = scenario.target.distance - scenario.light.start
         except PlanError:

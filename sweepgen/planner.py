@@ -183,7 +183,9 @@ def _integrate(scenario: Scenario, z0: float, *, dense: bool):
     return sol, float(sol.t_events[0][0])
 
 
-def _end_position(scenario, z0) -> float:
+def end_position(scenario, z0) -> float:
+    """Where the design atom starting at ``z0`` with the start velocity reaches the end
+    velocity (m), integrated as in :func:`plan`; used to put numbers on a refusal."""
     sol, _ = _integrate(scenario, z0, dense=False)
     return float(sol.y_events[0][0][0])
 
@@ -213,19 +215,19 @@ def plan(scenario: Scenario) -> Plan:
 
     if not scenario.pulsed:
         z0 = light.start
-        z_end = _end_position(scenario, z0)
+        z_end = end_position(scenario, z0)
         if z_end > target:
             raise PlanError(_fit_message(scenario, z_end - z0, target - z0, z0, "the light start"),
                             file=file, key="chirp.start_velocity")
     elif ch.start_time == "auto":
-        z_end_first = _end_position(scenario, light.start)
+        z_end_first = end_position(scenario, light.start)
         if z_end_first > target:
             raise PlanError(_fit_message(scenario, z_end_first - light.start, target - light.start,
                                          light.start, "the light start"), file=file, key="chirp.start_velocity")
         if not light.focused:
             z0 = target - (z_end_first - light.start)
         else:
-            z0 = brentq(lambda z: _end_position(scenario, z) - target, light.start, target,
+            z0 = brentq(lambda z: end_position(scenario, z) - target, light.start, target,
                         xtol=1e-9, rtol=1e-12)
     else:
         z0 = ch.start_velocity * (ch.start_time - scenario.pulse_time)
@@ -234,7 +236,7 @@ def plan(scenario: Scenario) -> Plan:
             raise PlanError(f"at chirp.start_time the design atom is at {z0:.4g} m, before the light start "
                             f"({light.start:.4g} m); start the chirp at {earliest * 1e3:.4g} ms or later, "
                             f"or use start_time = \"auto\"", file=file, key="chirp.start_time")
-        z_end = _end_position(scenario, z0)
+        z_end = end_position(scenario, z0)
         if z_end > target:
             z_latest = target - (z_end - z0)       # where the design atom would have to start
             latest = scenario.pulse_time + z_latest / ch.start_velocity
