@@ -34,6 +34,8 @@ DEFAULT_RESTARTS = 2
 DEFAULT_FRAME_BYTES = 4096
 DEFAULT_TIMEOUT = 2.0          # s, without a generator profile
 DEFAULT_THROUGHPUT = 10e3      # B/s, without a generator profile or baud rate
+DEFAULT_BAUD = 115200          # baud, when the profile names none (a common UART rate, common practice)
+BITS_PER_BYTE = 10             # on the line: start bit, 8 data bits, stop bit (8N1, as serial_protocol.md specifies)
 _REPLY_ALLOWANCE = 128         # bytes a reply may take beyond the request, for timeouts
 
 
@@ -301,9 +303,10 @@ class SerialDriver(Driver):
         generator = delivery.generator
         plan = _Plan(table, generator, dict(delivery.options))
         link_cfg = getattr(generator, "link", None)
-        baud = getattr(link_cfg, "baud", None) or 115200
+        baud = getattr(link_cfg, "baud", None) or DEFAULT_BAUD
         timeout = getattr(link_cfg, "timeout", None) or DEFAULT_TIMEOUT
-        throughput = getattr(link_cfg, "throughput", None) or (baud / 10 if link_cfg else DEFAULT_THROUGHPUT)
+        throughput = (getattr(link_cfg, "throughput", None)
+                      or (baud / BITS_PER_BYTE if link_cfg else DEFAULT_THROUGHPUT))
         url = delivery.destination or getattr(link_cfg, "address", "")
         if not url:
             raise InputError("no serial port given and the generator profile names none", key="--serial-port")
@@ -444,10 +447,10 @@ class _Session:
         self.step("begin", f"{plan.count} samples {plan.format.name.lower()} at {plan.rate} Sa/s, "
                            f"CRC-32 0x{plan.crc:08x}", count=plan.count, format=plan.format.name.lower(),
                   rate=plan.rate, crc32=plan.crc)
+        # whole samples per frame; check_caps made sure the board takes >= MIN_PAYLOAD bytes, so at
+        # least one sample of the widest format (8 bytes) fits
         per_frame = min(plan.frame_bytes, self.caps.max_payload - fr.DATA_PREFIX)
         per_frame -= per_frame % plan.itemsize
-        if per_frame < 1:
-            per_frame = min(plan.itemsize, self.caps.max_payload - fr.DATA_PREFIX)
         offset = 0
         frames = 0
         rewinds = 0
@@ -492,8 +495,9 @@ class _Session:
         data = self._call(fr.MsgType.END, b"", "verify", timeout=long_wait)
         board_crc = fr.parse_u32(data) if len(data) == 4 else None
         if board_crc != plan.crc:
-            raise InstrumentError(f"the board reports whole-table CRC {board_crc!r}, expected 0x{plan.crc:08x}; "
-                                  "not committed", step="verify")
+            said = "no CRC" if board_crc is None else f"whole-table CRC-32 0x{board_crc:08x}"
+            raise InstrumentError(f"the board reports {said}, expected 0x{plan.crc:08x}; not committed",
+                                  step="verify")
         self.report["verification"] = {"method": "crc32", "expected_crc32": plan.crc, "instrument_crc32": board_crc,
                                        "ok": True, "committed": False}
         self.step("verify", f"board computed CRC-32 0x{board_crc:08x} over {plan.nbytes} bytes", crc32=board_crc)

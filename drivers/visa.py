@@ -223,6 +223,10 @@ def _visa_errors():
     return (pyvisa.errors.VisaIOError, pyvisa.errors.InvalidSession, OSError, ValueError)
 
 
+class _WrongInstrument(InstrumentError):
+    """The instrument's identity does not match the profile: none of the profile's commands are sent."""
+
+
 class _LinkLost(InstrumentError):
     """The instrument closed or reset the connection (seen on the socket, not inferred from a timeout).
 
@@ -447,9 +451,11 @@ class _Session:
             nbytes = len(data)
             head = plan.prefix.encode()
         else:
-            chunks = plan.wire_chunks()
             nbytes = plan.nbytes
-            head = plan.prefix.encode() + plan.header
+            # the block header, then the table's bytes; a chunk that would run past the announced
+            # length is refused before it is sent (the instrument would read the excess as commands)
+            chunks = scpi.block_parts(plan.wire_chunks(), nbytes)
+            head = plan.prefix.encode() + next(chunks)
         total = len(head) + nbytes + len(plan.suffix.encode()) + 1
         deadline = t0 + plan.data_timeout(total)
         progress = self.delivery.progress
@@ -473,12 +479,12 @@ class _Session:
                 if time.monotonic() > deadline:
                     raise InstrumentError(f"sent {done} of {nbytes} bytes in {plan.data_timeout(total):.3g} s "
                                           f"(the profile expects {plan.throughput:.3g} B/s)", step=step)
-            if done != nbytes:
-                raise InstrumentError(f"the table produced {done} bytes, {nbytes} were announced", step=step)
             self._send(sock, plan.suffix.encode() + b"\n")
         except socket.timeout:
             raise InstrumentError(f"the instrument stopped taking data after {done} of {nbytes} bytes",
                                   step=step) from None
+        except scpi.BlockError as exc:
+            raise InstrumentError(f"the table does not match its block header: {exc}", step=step) from None
         except _visa_errors() as exc:
             error = self._fail(step, exc, plan.data_timeout(CHUNK_BYTES))
             if isinstance(error, _LinkLost):
@@ -504,8 +510,7 @@ class _Session:
         """CRC-32 of the data bytes sent (binary: the table's bytes in the wire byte order)."""
         if self.crc is None:
             plan = self.plan
-            table_order = "big" if np.dtype(plan.info.dtype).byteorder == ">" else "little"
-            if plan.info.itemsize == 1 or table_order == plan.byte_order:
+            if np.dtype(plan.info.dtype) == scpi.wire_dtype(plan.info.dtype, plan.byte_order):
                 self.crc = plan.table.crc32          # cached on the table: shared with other users
             else:
                 value = 0
@@ -562,6 +567,7 @@ class _Session:
                 self.res.read_termination = None
                 head = self.res.read_bytes(2)
                 if head[:1] != b"#" or not head[1:2].isdigit() or head[1:2] == b"0":
+                    self.res.read_termination = "\n"     # a text reply: read the rest up to its terminator
                     rest = self.res.read() if not head.endswith(b"\n") else ""
                     raise InstrumentError("the readback is not a definite-length block", step=step,
                                           reply=(head.decode("latin-1") + rest).strip()[:120])
@@ -603,7 +609,7 @@ class _Session:
                 reply = self.query(step, rendered["identify"])
                 self.report["identity"] = reply
                 if not re.search(plan.commands.identity_pattern, reply):
-                    raise InstrumentError(f"this is not the instrument the profile describes (identity "
+                    raise _WrongInstrument(f"this is not the instrument the profile describes (identity "
                                           f"pattern {plan.commands.identity_pattern!r})", step=step, reply=reply)
                 detail["identity"] = reply
             elif step == "upload":
@@ -740,7 +746,14 @@ class VisaDriver(Driver):
             session.open()
             session.run()
         except InstrumentError as exc:
-            outcome = session.safe_off() if exc.step != "open" else "nothing was sent"
+            if exc.step == "open":
+                outcome = "nothing was sent"
+            elif isinstance(exc, _WrongInstrument):
+                # commands written for another instrument mean nothing certain here: send none
+                outcome = ("nothing else was sent to it (not even output off, whose meaning for this "
+                           "instrument is unknown): check its output by hand")
+            else:
+                outcome = session.safe_off()
             error = InstrumentError(_message(exc), step=exc.step, reply=exc.reply)
             error.args = (f"{error}; {outcome}",)
             raise error from None

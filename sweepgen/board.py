@@ -77,7 +77,7 @@ class FaultPlan:
     counts: dict = field(default_factory=dict)      # kind -> remaining count, None = always
     on: frozenset | None = frozenset({fr.MsgType.DATA})   # eligible types; None = any request
     skip: int = 1
-    stall_time: float = 4.0
+    stall_time: float = 4.0                         # s; BoardEmulator sets twice the profile's link timeout
     fired: dict = field(default_factory=dict)       # kind -> times applied
     seen: int = 0                                   # eligible frames seen
 
@@ -124,7 +124,6 @@ class FaultPlan:
                 self.fired[kind] = self.fired.get(kind, 0) + 1
                 return kind
         return None
-
 
     def describe(self) -> list[str]:
         """The active faults in words, e.g. ``["drop 2 data frames", "stall every data frame (2 s)"]``."""

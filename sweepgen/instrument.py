@@ -65,6 +65,7 @@ import numpy as np
 from sweepgen import scpi
 
 QUEUE_LENGTH = 16
+REPLY_SEND_TIMEOUT = 60.0             # s: a client that takes no reply bytes for this long is dropped
 MAX_HEADER = 12                       # characters in one SCPI mnemonic (SCPI-1999 6.2.1)
 _SPECIAL = re.compile(rb'[\n#"\']')
 _TOKEN = re.compile(r"^([A-Za-z]+)(\d*)$")
@@ -298,7 +299,8 @@ class VirtualInstrument:
         self.faults = faults or Faults()
         self.identity = identity or f"sweepgen,virtual-awg,0,{__version__}"
         memory = generator.sampling.memory
-        #: longest message text (blocks excluded) accepted, in bytes: room for an ASCII list
+        #: longest message text (blocks excluded) accepted, in bytes: room for an ASCII list of the
+        #: whole memory at 12 characters a value (the longest 32-bit integer and its comma)
         self.max_line = max_line if max_line is not None else 65536 + 12 * memory
         #: largest block accepted, in bytes (memory depth at 8 bytes per value)
         self.max_block = 8 * memory
@@ -598,6 +600,8 @@ class VirtualInstrument:
             except ValueError:
                 raise _Error(-120, "expected whole-number codes in the list") from None
         low, high = self._code_limits("INT" if kind == "ASC" else kind, values.dtype)
+        if kind == "REAL" and not np.isfinite(values).all():
+            raise _Error(-222, "REAL values must be finite")
         if count and (values.min() < low or values.max() > high):
             raise _Error(-222, f"codes must lie within {low:g} ... {high:g}")
         if kind == "ASC":
@@ -971,7 +975,7 @@ class InstrumentServer:
             while time.monotonic() < deadline:
                 if self._stop.wait(min(0.05, max(0.0, deadline - time.monotonic()))):
                     return False
-        conn.settimeout(60.0)
+        conn.settimeout(REPLY_SEND_TIMEOUT)
         try:
             for i, response in enumerate(responses):
                 if i:

@@ -240,8 +240,9 @@ def format_value(key: str, value) -> str:
                              f"or '_', at most 12 characters), got {value!r}")
         return value
     if key in ("channel", "count", "bits"):
-        if isinstance(value, bool) or not isinstance(value, int) or value < (0 if key == "count" else 1):
-            raise ValueError(f"{key} must be a positive whole number, got {value!r}")
+        least = 0 if key == "count" else 1
+        if isinstance(value, bool) or not isinstance(value, int) or value < least:
+            raise ValueError(f"{key} must be a whole number >= {least}, got {value!r}")
         return str(value)
     if key in ("rate", "frequency", "period", "amplitude", "offset", "high", "low"):
         return format_number(value)

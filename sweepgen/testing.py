@@ -21,6 +21,7 @@ a ``socket://127.0.0.1:<port>`` URL for the ``serial`` driver.
 from __future__ import annotations
 
 import contextlib
+import os
 from typing import Iterator
 
 
@@ -28,7 +29,7 @@ def _generator(generator):
     if isinstance(generator, (str, bytes)) or hasattr(generator, "__fspath__"):
         from sweepgen.generator import load_generator
 
-        return load_generator(str(generator))
+        return load_generator(os.fsdecode(generator))       # str(b"x") would be "b'x'"
     return generator
 
 

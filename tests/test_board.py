@@ -26,7 +26,7 @@ RATE = 1_000_000
 
 
 def words_for(freqs_hz):
-    # DDS frequency tuning word FTW = round(f 2^N / f_clock) (common practice; REFERENCES.md)
+    # DDS frequency tuning word FTW = round(f 2^N / f_clock) (common practice)
     return np.round(np.asarray(freqs_hz) * 2**32 / 1e9).astype("<u4")
 
 
@@ -330,7 +330,7 @@ def test_fault_corrupt_memory_is_caught_by_the_whole_table_crc():
 # --------------------------------------------------------------------------- servers
 
 
-def _exchange(sock_or_fd, frame: bytes, read, write):
+def _exchange(frame: bytes, read, write):
     write(frame)
     decoder = fr.Decoder()
     while True:
@@ -350,7 +350,7 @@ def test_board_server_on_a_loopback_socket_keeps_its_table_across_connections():
         ]):
             with socket.create_connection(("127.0.0.1", server.port), timeout=5) as sock:
                 for seq, (t, p) in enumerate(requests):
-                    reply = _exchange(sock, fr.encode(t, seq, p), lambda: sock.recv(4096), sock.sendall)
+                    reply = _exchange(fr.encode(t, seq, p), lambda: sock.recv(4096), sock.sendall)
                     assert reply.type == T.ACK and reply.seq == seq
         status = fr.Status.unpack(fr.parse_ack(reply.payload)[1])
         assert status.table.crc == zlib.crc32(data) and server.connections == 2
@@ -365,7 +365,7 @@ def test_serve_forever_calls_ready_with_its_port_and_stops_on_request():
     thread.start()
     assert ready.wait(5)
     with socket.create_connection(("127.0.0.1", ports[0]), timeout=5) as sock:
-        reply = _exchange(sock, fr.encode(T.HELLO, 1, b"\x01"), lambda: sock.recv(4096), sock.sendall)
+        reply = _exchange(fr.encode(T.HELLO, 1, b"\x01"), lambda: sock.recv(4096), sock.sendall)
     assert fr.Capabilities.unpack(fr.parse_ack(reply.payload)[1]).clock == 1_000_000_000
     stop.set()
     thread.join(5)
@@ -383,7 +383,7 @@ def test_board_serves_a_pseudo_terminal():
                 assert ready, "no reply on the pseudo-terminal"
                 return os.read(slave, 4096)
 
-            reply = _exchange(slave, fr.encode(T.HELLO, 3, b"\x01"), read, lambda b: os.write(slave, b))
+            reply = _exchange(fr.encode(T.HELLO, 3, b"\x01"), read, lambda b: os.write(slave, b))
             assert reply.type == T.ACK and reply.seq == 3
     finally:
         os.close(slave)

@@ -158,3 +158,5 @@ def test_board_generator_goes_to_the_serial_driver():
     assert result.exit_code == 0, result.output
     doc = json.loads(result.stdout)
     assert doc["driver"] == "serial" and doc["armed"] is False
+    assert doc["verification"]["ok"] is True and server.board.committed.crc == doc["table"]["crc32"]
+    assert not server.board.armed

@@ -38,7 +38,7 @@ FAST = {"frame_bytes": 1024}
 
 def dds_table(count=3000, rate=1e6, f0=20e6, f1=180e6, clock=1e9, bits=32, dtype="<u4"):
     freqs = np.linspace(f0, f1, count)
-    # DDS frequency tuning word FTW = round(f 2^N / f_clock) (common practice; REFERENCES.md)
+    # DDS frequency tuning word FTW = round(f 2^N / f_clock) (common practice)
     words = np.round(freqs * 2.0**bits / clock).astype(dtype)
     info = TableInfo(sample_rate=rate, count=count, period_count=count, dtype=dtype, output="frequency",
                      drive_unit="Hz", code_scale=clock / 2.0**bits, code_offset=0.0, amplitude=None, offset=None)

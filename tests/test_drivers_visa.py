@@ -145,6 +145,22 @@ def test_ascii_dialect_with_readback(tmp_path):
     assert "<ASCII list of 256 codes" in report["log"][[e["step"] for e in report["log"]].index("upload")]["command"]
 
 
+def test_a_readback_that_is_not_a_block_is_named_as_such_at_once(tmp_path):
+    # a profile whose "readback" query answers with text (here the point count) instead of a block:
+    # the driver must say what came back, not wait out its timeout and report "no answer"
+    commands = {**OTHER_DIALECT["commands"], "readback": "DATA:POIN? {name}"}
+    del commands["checksum"]
+    gen = write_profile(tmp_path, {**OTHER_DIALECT, "commands": commands,
+                                   "link": {**OTHER_DIALECT["link"], "timeout": "30 s"}})
+    table, _ = make_table(count=256)
+    with instrument_server(gen, identity=OTHER_IDENTITY) as server:
+        with pytest.raises(InstrumentError) as info:
+            deliver(server, table, gen, arm=True)
+        assert server.instrument.outputs_on == [] and not server.instrument.ever_armed
+    assert info.value.step == "verify" and info.value.reply == "256"
+    assert "not a definite-length block" in str(info.value) and "no answer" not in str(info.value)
+
+
 def test_dry_run_prints_the_exact_log_without_connecting():
     table, _ = make_table(count=1024)
     gen = load_generator("virtual-awg")
@@ -292,6 +308,9 @@ def test_wrong_identity_is_refused_before_anything_is_sent(tmp_path):
             deliver(server, table, gen)
         assert info.value.step == "identify" and "virtual-awg" in info.value.reply
         assert server.instrument.traces == {}
+        # only the identity query reached it: no command of a dialect it does not speak
+        assert [m for m in server.instrument.log if m.strip()] == [gen.commands.templates["identify"]]
+        assert "check its output by hand" in str(info.value)
 
 
 def test_instrument_refusal_names_the_step(tmp_path):
@@ -337,6 +356,20 @@ def test_connection_refused_is_an_instrument_error():
     assert info.value.step == "identify"
 
 
+def test_a_table_yielding_more_bytes_than_announced_never_sends_the_excess():
+    # the block header announces count x itemsize bytes; bytes beyond it would be read by the
+    # instrument as commands, so the chunk that runs past is refused before it is sent
+    table, codes = make_table(count=1024)
+    longer = np.concatenate([codes, codes[:8]])
+    over = RenderedTable(table.info, lambda a, b: Frame(a, None, None, None, longer[a:b + 8 * (b == 1024)]))
+    gen = load_generator("virtual-awg")
+    with instrument_server(gen) as server:
+        with pytest.raises(InstrumentError, match="ran past the announced 2048 bytes") as info:
+            deliver(server, over, gen, arm=True)
+        assert server.instrument.outputs_on == [] and "SWEEP" not in server.instrument.traces
+    assert info.value.step == "upload"
+
+
 def test_timeouts_scale_with_the_byte_count():
     from sweepgen.drivers.visa import _Plan
 
@@ -347,7 +380,7 @@ def test_timeouts_scale_with_the_byte_count():
     assert plan.data_timeout(20e6) == pytest.approx(7.0)
 
 
-def test_profile_for_a_generator_without_dac_limits_is_rejected_for_bad_channel():
+def test_a_channel_the_generator_lacks_is_refused_before_connecting():
     table, _ = make_table(channel=2)
     with pytest.raises(CheckFailed, match="channel 2"):
         VisaDriver().deliver(table, Delivery(destination="", generator=load_generator("virtual-awg"),

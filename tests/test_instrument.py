@@ -70,7 +70,7 @@ def codes_of(n, bits=12):
 def test_identity_and_empty_error_queue(rm, awg):
     inst = connect(rm, awg)
     assert inst.query("*IDN?").startswith("sweepgen,virtual-awg,0,")
-    # SCPI-1999 SYSTem:ERRor[:NEXT]? replies 0,"No error" when the queue is empty (REFERENCES.md)
+    # SCPI-1999 SYSTem:ERRor[:NEXT]? replies 0,"No error" when the queue is empty (SCPI-1999 standard, SCPI Consortium)
     assert inst.query("SYST:ERR?") == '0,"No error"'
     assert inst.query("SYSTem:ERRor:NEXT?") == '0,"No error"'
     assert inst.query("*OPC?") == "1"
@@ -136,6 +136,7 @@ def test_long_short_forms_optional_nodes_suffixes_and_compound_paths(rm, small):
     (["FORM:DATA ASC", "TRAC:DATA T," + ",".join(["2048"] * 32)], -222),              # beyond a 12-bit DAC
     (["TRAC:DATA T,#14abcd"], -221),                                                  # block while FORMat ASCii
     (["FORM:DATA INT,16", "TRAC:DATA T,#13abc"], -161),                               # odd bytes for INT,16
+    (["FORM:DATA REAL,32", "TRAC:DATA T,#3128" + "\x7f\xc0\x00\x00" * 32], -222),     # 32 NaNs (IEEE 754)
     (["SOUR:VOLT 11"], -222), (["SOUR:VOLT:OFFS -5.5"], -222), (["SOUR:FREQ -1"], -222),
     (["FUNC USER;:OUTP ON"], -221), (["FUNC USER", "OUTP ON"], -221),                  # no trace to play
     (["FUNC:USER NOPE"], -224), (["FUNC SAWTOOTH"], -224), (["FORM:DATA INT,12"], -224),

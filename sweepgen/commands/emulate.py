@@ -9,6 +9,7 @@ import click
 from sweepgen._cli import handles_errors
 
 DEFAULT_PORT = 5025        # the usual port of raw-socket SCPI instruments (common practice)
+DEFAULT_BOARD_PORT = 7450  # sweepgen's own choice for the board emulator (as in demo-ramp-board's link)
 
 
 #: the board emulator's fault switches (sweepgen.board.FAULT_KINDS) with their option help
@@ -133,7 +134,7 @@ def command(host, port, generator_ref, board, identity, drop_after, delay, mute,
         if gen.kind != "board":
             raise InputError(f"generator '{gen.key}' is of kind '{gen.kind}'; --board needs a ramp board profile",
                              key="--generator")
-        port = _profile_port(gen.link.address, 7450) if port is None else port
+        port = _profile_port(gen.link.address, DEFAULT_BOARD_PORT) if port is None else port
         faults = dict(board_faults)
         if faults:
             if fault_on:
@@ -152,7 +153,7 @@ def command(host, port, generator_ref, board, identity, drop_after, delay, mute,
         active = board_module.FaultPlan.parse(faults, default_stall=2.0 * gen.link.timeout).describe()
 
         def ready_board(bound_port):
-            click.echo(f"socket://{host}:{bound_port}")
+            click.echo(f"socket://{f'[{host}]' if ':' in host else host}:{bound_port}")   # pyserial URL
             note = f" with faults: {', '.join(active)}" if active else ""
             click.echo(f"ramp-board emulator ({gen.key}) listening{note}; Ctrl-C stops it", err=True)
 
