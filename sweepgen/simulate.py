@@ -118,9 +118,10 @@ class DetuningProgram:
     polynomial (``Schedule.breakpoints`` and ``Schedule.coefficients``, the very
     polynomial behind ``Schedule.detuning``) is evaluated here on Python floats,
     which is much faster for one time at a time (tests check that it agrees with
-    ``Schedule.detuning``). The pieces are monotone between segment boundaries
-    (rest and hold are flat, the chirp and the smooth return are monotone), so the
-    extremes over an interval lie at its ends or at a segment boundary inside it.
+    ``Schedule.detuning``). The extremes over an interval lie at its ends, at a
+    segment boundary inside it, or where the derivative of the polynomial vanishes
+    inside it (a chirp need not be monotone when the light gets stronger along the
+    path, so those critical times are included among the boundaries).
     """
 
     def __init__(self, schedule=None, constant: float | None = None):
@@ -130,8 +131,10 @@ class DetuningProgram:
         self.constant = constant
         if schedule is not None:
             self.period = float(schedule.period)
-            self.bounds = [float(b) for b in np.unique([x for seg in schedule.segments
-                                                         for x in (seg.start, seg.end)])]
+            edges = [x for seg in schedule.segments for x in (seg.start, seg.end)]
+            critical = np.asarray(schedule.poly.derivative().roots(extrapolate=False), dtype=float)
+            critical = critical[np.isfinite(critical) & (critical > 0) & (critical < self.period)]
+            self.bounds = [float(b) for b in np.unique(np.concatenate([edges, critical]))]
             self._bounds2 = self.bounds + [b + self.period for b in self.bounds]
             self._bounds2_parts = [(False, b) for b in self.bounds] + [(True, b) for b in self.bounds]
             self._x = [float(b) for b in schedule.breakpoints]

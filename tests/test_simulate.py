@@ -350,3 +350,18 @@ def test_the_chirp_captures_more_than_the_light_held_at_the_start_detuning(key):
     cap, fixed = doc["captured_fraction"], doc["baseline_fixed_frequency_fraction"]
     # significant at 3 binomial standard errors of the difference
     assert cap - fixed > 3 * math.hypot(binomial_sigma(cap, n), binomial_sigma(fixed, n))
+
+
+def test_extremes_include_a_turning_point_inside_a_piece():
+    # a schedule whose chirp turns back inside one polynomial piece (possible when the light gets
+    # stronger along the path): the extreme lies at the turning point, not at a boundary
+
+    from scipy.interpolate import PPoly
+
+    from sweepgen.schedule import Schedule, Segment
+
+    poly = PPoly(np.array([[-4.0], [4.0], [0.0]]), np.array([0.0, 1.0]))   # Δ(t) = 4t − 4t², peak 1 at t = 0.5
+    sched = Schedule([Segment("chirp", 0.0, 1.0)], poly, 1.0, 0.0, 0.0)
+    prog = DetuningProgram(sched)
+    lo, hi = prog.extremes(0.2, 0.9)
+    assert hi == pytest.approx(1.0) and lo == pytest.approx(min(4 * 0.2 - 4 * 0.04, 4 * 0.9 - 4 * 0.81))
