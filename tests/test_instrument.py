@@ -125,6 +125,7 @@ def test_long_short_forms_optional_nodes_suffixes_and_compound_paths(rm, small):
     inst.write("SOUR3:FREQ 1")                                  # only two channels
     assert errors(inst)[0].startswith("-114,")
     inst.write("*RST")
+    assert inst.query("*OPC?") == "1"     # a query: the server has processed *RST before we look
     assert small.instrument.outputs_on == [] and small.instrument.output_events == [(2, True), (2, False)]
     inst.close()
 
