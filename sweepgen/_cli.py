@@ -8,12 +8,12 @@ code (2 bad input, 1 a check failed or an instrument refused); no traceback.
 from __future__ import annotations
 
 import functools
-import json
 import math
 import sys
 
 import click
 
+from sweepgen._json import dumps
 from sweepgen.errors import SweepgenError
 
 _PREFIXES = [(1e12, "T"), (1e9, "G"), (1e6, "M"), (1e3, "k"), (1.0, ""), (1e-3, "m"), (1e-6, "µ"),
@@ -44,24 +44,9 @@ def fail(message: str, code: int):
     sys.exit(code)
 
 
-def jsonable(obj):
-    """Convert NumPy scalars/arrays and non-finite floats to plain JSON values (NaN -> null)."""
-    if isinstance(obj, dict):
-        return {str(k): jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [jsonable(v) for v in obj]
-    if hasattr(obj, "tolist") and not isinstance(obj, (str, bytes)):
-        return jsonable(obj.tolist())
-    if isinstance(obj, float):
-        return obj if math.isfinite(obj) else None
-    if isinstance(obj, (str, int, bool)) or obj is None:
-        return obj
-    return str(obj)
-
-
 def emit_json(doc) -> None:
     """Write one JSON document to stdout, and nothing else."""
-    click.echo(json.dumps(jsonable(doc), indent=2, allow_nan=False))
+    click.echo(dumps(doc), nl=False)
 
 
 def si(value, unit: str = "", digits: int = 4) -> str:

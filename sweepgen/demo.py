@@ -9,13 +9,13 @@ here needs a network or real hardware.
 
 from __future__ import annotations
 
-import json
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from sweepgen._atomic import atomic_write_text
-from sweepgen._cli import jsonable, si
+from sweepgen._cli import si
+from sweepgen._json import dumps
 
 DEMO_SCENARIO = "rb87-chopped-oven"
 DEMO_ATOMS = 10000
@@ -31,7 +31,7 @@ class DemoResult:
 
 
 def _write_json(path: Path, doc) -> Path:
-    return atomic_write_text(path, json.dumps(jsonable(doc), indent=2) + "\n")
+    return atomic_write_text(path, dumps(doc))
 
 
 def run(directory, *, scenario: str = DEMO_SCENARIO, atoms: int = DEMO_ATOMS, seed: int = DEMO_SEED,

@@ -53,15 +53,13 @@ sweepgen. Its keys (SI units; frequencies and detunings in Hz):
 from __future__ import annotations
 
 import hashlib
-import json
-import math
 import sys
 from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
 
-from sweepgen import __version__
+from sweepgen import __version__, _json
 
 LAYOUT_VERSION = 1
 
@@ -186,22 +184,6 @@ def provenance(scenario, laser=None, generator=None) -> dict:
             "generator": entry(getattr(generator, "key", None), getattr(generator, "path", None))}
 
 
-def _plain(obj):
-    if isinstance(obj, dict):
-        return {str(k): _plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_plain(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return _plain(obj.tolist())
-    if isinstance(obj, np.generic):
-        return _plain(obj.item())
-    if isinstance(obj, float):
-        return obj if math.isfinite(obj) else None
-    if isinstance(obj, (str, int, bool)) or obj is None:
-        return obj
-    return str(obj)
-
-
 def dumps(doc: dict) -> str:
     """The sidecar as JSON text (NaN and infinities become null)."""
-    return json.dumps(_plain(doc), indent=2, allow_nan=False) + "\n"
+    return _json.dumps(doc)
