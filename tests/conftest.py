@@ -70,6 +70,19 @@ def scenario_dict(**sections) -> dict:
     return data
 
 
+def install_driver_plugin(root, module: str, source: str, entries: str):
+    """Make ``root`` hold a real third-party distribution: ``module.py`` with ``source`` and a
+    ``*.dist-info`` whose ``entry_points.txt`` registers ``entries`` (lines ``name = module:Class``)
+    in the group ``sweepgen.drivers``. Put ``root`` on sys.path or PYTHONPATH to install it."""
+    root.mkdir(parents=True, exist_ok=True)
+    (root / f"{module}.py").write_text(source)
+    info = root / f"{module}-1.0.dist-info"
+    info.mkdir()
+    (info / "METADATA").write_text(f"Metadata-Version: 2.1\nName: {module}\nVersion: 1.0\n")
+    (info / "entry_points.txt").write_text("[sweepgen.drivers]\n" + entries)
+    return root
+
+
 @pytest.fixture(autouse=True)
 def _run_in_tmp_path(tmp_path, monkeypatch):
     """Every test runs in its own temporary folder. Relative outputs land there, and a

@@ -17,6 +17,8 @@ from scipy import constants
 
 from sweepgen.cli import main
 
+from conftest import install_driver_plugin
+
 SCENARIO = """\
 title = "Rb-87 pulsed, explicit chirp start (test data)"
 species = "rb87-d2"
@@ -278,15 +280,8 @@ class Exploding(TextCodes):
 
 @pytest.fixture
 def plugin_path(tmp_path):
-    root = tmp_path / "plugins"
-    root.mkdir()
-    (root / "sg_cli_plugin.py").write_text(PLUGIN)
-    info = root / "sg_cli_plugin-1.0.dist-info"
-    info.mkdir()
-    (info / "METADATA").write_text("Metadata-Version: 2.1\nName: sg-cli-plugin\nVersion: 1.0\n")
-    (info / "entry_points.txt").write_text("[sweepgen.drivers]\ntextcodes = sg_cli_plugin:TextCodes\n"
-                                           "exploding = sg_cli_plugin:Exploding\n")
-    return root
+    return install_driver_plugin(tmp_path / "plugins", "sg_cli_plugin", PLUGIN,
+                                 "textcodes = sg_cli_plugin:TextCodes\nexploding = sg_cli_plugin:Exploding\n")
 
 
 def cli(args, plugin_path):

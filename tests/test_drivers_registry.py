@@ -14,6 +14,8 @@ from sweepgen import drivers
 from sweepgen.drivers.base import Driver, FileDriver
 from sweepgen.errors import DriverError, InputError
 
+from conftest import install_driver_plugin
+
 PLUGIN = '''
 import numpy as np
 from sweepgen.drivers.base import Driver, FileDriver
@@ -42,11 +44,7 @@ NOT_A_DRIVER = 42
 
 def install_plugin(root, entries: str, module="sg_test_plugin"):
     """Write a module and a distribution registering ``entries`` under sweepgen.drivers."""
-    (root / f"{module}.py").write_text(PLUGIN)
-    info = root / f"{module}-1.0.dist-info"
-    info.mkdir()
-    (info / "METADATA").write_text(f"Metadata-Version: 2.1\nName: {module}\nVersion: 1.0\n")
-    (info / "entry_points.txt").write_text("[sweepgen.drivers]\n" + textwrap.dedent(entries))
+    install_driver_plugin(root, module, PLUGIN, textwrap.dedent(entries))
 
 
 def test_built_in_file_drivers_are_registered():
