@@ -150,8 +150,23 @@ def scenario_from_dict(data: dict, path, raw: bytes | None = None) -> Scenario:
     species = load_species(species_ref, relative_to=path.parent, file=file, key="species")
     laser_ref = top.string("laser", None)
     generator_ref = top.string("generator", None)
+    source, pulse_time, divergence = _read_source(top.section("source"), species)
+    light = _read_light(top.section("light"), species)
+    target = _read_target(top.section("target"), light)
+    chirp = _read_chirp(top.section("chirp"), pulse_time, file)
+    drive = _read_drive(top.section("drive", None))
+    top.finish()
 
-    src = top.section("source")
+    if raw is None:
+        raw = json.dumps(data, sort_keys=True, default=str).encode()
+    digest = scenario_digest(raw, [catalog.resolve("species", species_ref, relative_to=path.parent)])
+    return Scenario(title=title, path=path, species=species, source=source, pulse_time=pulse_time,
+                    divergence=divergence, light=light, target=target, chirp=chirp, drive=drive,
+                    laser_ref=laser_ref, generator_ref=generator_ref, digest=digest)
+
+
+def _read_source(src: Section, species: Species):
+    """``[source]``: the velocity model, the pulse time (pulsed sources) and the divergence."""
     model = src.string("model", choices=("effusive", "gaussian"))
     if model == "effusive":
         temperature = src.quantity("temperature", "K", positive=True, example="390 K")
@@ -163,8 +178,11 @@ def scenario_from_dict(data: dict, path, raw: bytes | None = None) -> Scenario:
     pulse_time = src.quantity("pulse_time", "s", None, nonnegative=True, example="0 ms")
     divergence = src.quantity("divergence", "rad", None, positive=True, example="10 mrad")
     src.finish()
+    return source, pulse_time, divergence
 
-    lt = top.section("light")
+
+def _read_light(lt: Section, species: Species) -> Light:
+    """``[light]``: peak saturation, light start, optional focus."""
     s0 = lt.number("saturation", positive=True)
     light_start = lt.quantity("start", "m", 0.0, nonnegative=True, example="0.05 m")
     waist = lt.quantity("waist", "m", None, positive=True, example="3 mm")
@@ -172,20 +190,23 @@ def scenario_from_dict(data: dict, path, raw: bytes | None = None) -> Scenario:
         raise lt.error("focus", "a focus needs a waist; add light.waist (1/e² radius at the focus)")
     focus = lt.quantity("focus", "m", 0.0, example="0 m")
     lt.finish()
-    light = Light(saturation=s0, start=light_start, waist=waist, focus=focus,
-                  wavelength=species.wavelength)
+    return Light(saturation=s0, start=light_start, waist=waist, focus=focus, wavelength=species.wavelength)
 
-    tg = top.section("target")
+
+def _read_target(tg: Section, light: Light) -> Target:
+    """``[target]``: distance, capture velocity, optional aperture; the target lies beyond the light start."""
     distance = tg.quantity("distance", "m", positive=True, example="1.0 m")
     capture_velocity = tg.quantity("capture_velocity", "m/s", positive=True, example="20 m/s")
     aperture = tg.quantity("aperture", "m", None, positive=True, example="5 mm")
     tg.finish()
-    if distance <= light_start:
+    if distance <= light.start:
         raise tg.error("distance", f"the target ({distance:g} m) must lie beyond the light start "
-                                   f"({light_start:g} m)")
-    target = Target(distance=distance, capture_velocity=capture_velocity, aperture=aperture)
+                                   f"({light.start:g} m)")
+    return Target(distance=distance, capture_velocity=capture_velocity, aperture=aperture)
 
-    ch = top.section("chirp")
+
+def _read_chirp(ch: Section, pulse_time: float | None, file: str) -> Chirp:
+    """``[chirp]``: velocities, η, start time (pulsed sources only), hold, return, period."""
     v1 = ch.quantity("start_velocity", "m/s", positive=True, example="260 m/s")
     v2 = ch.quantity("end_velocity", "m/s", positive=True, example="15 m/s")
     if not v2 < v1:
@@ -211,28 +232,22 @@ def scenario_from_dict(data: dict, path, raw: bytes | None = None) -> Scenario:
         raise InputError(f"the source pulse at {pulse_time:g} s lies outside the period ({period:g} s); "
                          f"set source.pulse_time below chirp.period or lengthen chirp.period",
                          file=file, key="source.pulse_time")
-    chirp = Chirp(start_velocity=v1, end_velocity=v2, margin=margin, start_time=start_time,
-                  hold=hold, return_time=return_time, period=period)
+    return Chirp(start_velocity=v1, end_velocity=v2, margin=margin, start_time=start_time,
+                 hold=hold, return_time=return_time, period=period)
 
-    dv = top.section("drive", None)
-    drive = Drive()
-    if dv is not None:
-        rate_raw = dv.raw("sample_rate", "auto")
-        rate = None if rate_raw == "auto" else dv.quantity("sample_rate", "Hz", positive=True,
-                                                           example="10 MSa/s")
-        channel = dv.number("channel", 1, integer=True, minimum=1)
-        max_step = dv.quantity("max_step", "Hz", None, positive=True, example="500 kHz")
-        tracking = dv.number("tracking_fraction", 0.25, minimum=0.0, maximum=1.0, exclusive=True)
-        dv.finish()
-        drive = Drive(sample_rate=rate, channel=channel, max_step=max_step, tracking_fraction=tracking)
-    top.finish()
 
-    if raw is None:
-        raw = json.dumps(data, sort_keys=True, default=str).encode()
-    digest = scenario_digest(raw, [catalog.resolve("species", species_ref, relative_to=path.parent)])
-    return Scenario(title=title, path=path, species=species, source=source, pulse_time=pulse_time,
-                    divergence=divergence, light=light, target=target, chirp=chirp, drive=drive,
-                    laser_ref=laser_ref, generator_ref=generator_ref, digest=digest)
+def _read_drive(dv: Section | None) -> Drive:
+    """``[drive]`` (optional): sample rate, channel, largest step, tracking tolerance."""
+    if dv is None:
+        return Drive()
+    rate_raw = dv.raw("sample_rate", "auto")
+    rate = None if rate_raw == "auto" else dv.quantity("sample_rate", "Hz", positive=True,
+                                                       example="10 MSa/s")
+    channel = dv.number("channel", 1, integer=True, minimum=1)
+    max_step = dv.quantity("max_step", "Hz", None, positive=True, example="500 kHz")
+    tracking = dv.number("tracking_fraction", 0.25, minimum=0.0, maximum=1.0, exclusive=True)
+    dv.finish()
+    return Drive(sample_rate=rate, channel=channel, max_step=max_step, tracking_fraction=tracking)
 
 
 def scenario_digest(raw: bytes, others=()) -> str:

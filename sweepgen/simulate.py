@@ -430,228 +430,279 @@ def propagate(scenario, atoms: Atoms, program: DetuningProgram, rng: np.random.G
               light: bool = True, step_fraction: float = STEP_FRACTION) -> Flight:
     """Fly the atoms from the source to the target plane (see the module notes).
 
-    Atoms that arrive, turn back or go dark are parked (moved far behind the
+    Each step has four parts, each a method of :class:`_Propagation`: take in the
+    atoms emitted soon (and drop the parked ones), choose the step, scatter (draw
+    the photons and kicks of the atoms that scatter) and settle (fates: arrived,
+    turned back, dark). Atoms that are done are parked (moved far behind the
     source, where there is no light, and no longer counted) and dropped from the
-    working arrays whenever they make up a sixteenth of them. Only the atoms that
-    scatter in a step (``hit``) are touched by the step's random numbers and
-    kicks; the whole working set costs a few in-place array passes per step.
+    working arrays whenever they make up a sixteenth of them.
     """
-    sp = scenario.species
-    lt = scenario.light
-    tg = scenario.target
-    n = atoms.velocity.size
-    lam_w = sp.wavelength
-    gamma = sp.gamma
-    v_r = physics.recoil_velocity(sp.mass, sp.wavelength)
-    dv_max = step_fraction * velocity_width(sp)
-    D = tg.distance
-    s_peak = peak_saturation(lt, D) if light else 0.0
-    r_peak = physics.scattering_rate(0.0, 0.0, s_peak, gamma, lam_w)
-    L = POSITION_FRACTION * D
-    if lt.focused:
-        L = min(L, POSITION_FRACTION * 10.0 * lt.rayleigh_range)
-    horizon = HORIZON_FACTOR * D / tg.capture_velocity
-    p_loss = sp.loss_per_photon
-    dark_scale = -1.0 / math.log1p(-p_loss) if p_loss > 0 else 0.0
-    transverse = atoms.theta_x is not None
-    z_start = float(lt.start)
-    PARK = -1e100
-
-    out = _empty_flight(n)
-    fate, final_v, arrival, photons_out = out.fate, out.final_velocity, out.arrival_time, out.photons
-    # moments of the photon times of arrived atoms, for the transverse draw at the end
-    mom1 = np.zeros(n) if transverse else None
-    mom2 = np.zeros(n) if transverse else None
-
-    # The clock starts at the first emission; atoms not yet emitted wait at
-    # z = -v (t_e - t) < 0, where there is no light, and so reach z = 0 at t_e exactly.
-    order = np.argsort(atoms.emission_time, kind="stable")
-    t_emit_sorted = atoms.emission_time[order]
-    if n == 0:
-        return out
-    t = t_first = float(t_emit_sorted[0])
-    t_end = float(t_emit_sorted[-1]) + horizon
-    lead = max(horizon / 400.0, 1e-6)
-
-    w = _Working(transverse, p_loss > 0)
-    nxt = 0
-    dt_prev = math.inf
-    unlit = False           # some atom of the working set may be before the light start
-    unchecked = False       # atoms taken in whose speed has not been checked yet
-
-    steps = 0
-    atom_steps = 0
-    smallest = math.inf
-    dv_seen = 0.0
+    run = _Propagation(scenario, atoms, program, rng, light, step_fraction)
+    if atoms.velocity.size == 0:
+        return run.out
+    t = run.t_first
     while True:
-        # -- drop parked atoms, take in atoms emitted soon ----------------------------------
-        grow = nxt < n and t_emit_sorted[nxt] <= t + lead
+        run.take_in(t)
+        if run.in_flight == 0:
+            if run.all_emitted:
+                break
+            t = run.next_emission - run.lead
+            continue
+        if t >= run.t_end:
+            break
+        dt, detuning = run.choose_step(t)
+        z_new = run.drift(dt)
+        hits = run.scatter(t, dt, detuning, z_new) if light else None
+        run.settle(t, dt, z_new, hits)
+        t = t + dt
+    return run.finish()
+
+
+@dataclass
+class _Hits:
+    """The atoms that scatter in one step (working-set indices) and what they receive."""
+
+    index: np.ndarray            # working-set indices: large expected counts first, then clocks run out
+    photons: np.ndarray          # photons scattered by each of them in the step
+    kick: np.ndarray             # m/s, their velocity change along z in the step
+
+
+class _Propagation:
+    """One run of :func:`propagate`: the run's constants, the working set and the step's parts."""
+
+    PARK = -1e100                # m, where atoms that are done wait (no light there)
+
+    def __init__(self, scenario, atoms: Atoms, program: DetuningProgram, rng, light: bool,
+                 step_fraction: float):
+        sp, lt, tg = scenario.species, scenario.light, scenario.target
+        self.atoms, self.program, self.rng, self.light = atoms, program, rng, light
+        self.beam = lt
+        self.wavelength = sp.wavelength
+        self.gamma = sp.gamma
+        self.recoil = physics.recoil_velocity(sp.mass, sp.wavelength)
+        self.dv_max = step_fraction * velocity_width(sp)
+        self.distance = tg.distance
+        self.s_peak = peak_saturation(lt, tg.distance) if light else 0.0
+        self.r_peak = physics.scattering_rate(0.0, 0.0, self.s_peak, sp.gamma, sp.wavelength)
+        self.max_move = POSITION_FRACTION * tg.distance
+        if lt.focused:
+            self.max_move = min(self.max_move, POSITION_FRACTION * 10.0 * lt.rayleigh_range)
+        horizon = HORIZON_FACTOR * tg.distance / tg.capture_velocity
+        self.p_loss = sp.loss_per_photon
+        self.dark_scale = -1.0 / math.log1p(-self.p_loss) if self.p_loss > 0 else 0.0
+        self.transverse = atoms.theta_x is not None
+        self.light_start = float(lt.start)
+
+        n = atoms.velocity.size
+        self.out = _empty_flight(n)
+        # moments of the photon times of arrived atoms, for the transverse draw at the end
+        self.arrived_kt = np.zeros(n) if self.transverse else None
+        self.arrived_ktt = np.zeros(n) if self.transverse else None
+        # The clock starts at the first emission; atoms not yet emitted wait at
+        # z = -v (t_e - t) < 0, where there is no light, and so reach z = 0 at t_e exactly.
+        self.order = np.argsort(atoms.emission_time, kind="stable")
+        self.emission_sorted = atoms.emission_time[self.order]
+        if n:
+            self.t_first = float(self.emission_sorted[0])
+            self.t_end = float(self.emission_sorted[-1]) + horizon
+        self.lead = max(horizon / 400.0, 1e-6)
+
+        self.w = _Working(self.transverse, self.p_loss > 0)
+        self.taken = 0              # atoms (in emission order) taken into the working set
+        self.dt_prev = math.inf
+        self.unlit = False          # some atom of the working set may be before the light start
+        self.unchecked = False      # atoms taken in whose speed has not been checked yet
+        self.steps = 0
+        self.atom_steps = 0
+        self.smallest = math.inf
+        self.dv_seen = 0.0
+
+    @property
+    def in_flight(self) -> int:
+        return self.w.size - self.w.parked
+
+    @property
+    def all_emitted(self) -> bool:
+        return self.taken >= self.order.size
+
+    @property
+    def next_emission(self) -> float:
+        return float(self.emission_sorted[self.taken])
+
+    def take_in(self, t: float) -> None:
+        """Drop parked atoms, and take in the atoms emitted before ``t + 2 lead``."""
+        w, rng = self.w, self.rng
+        grow = not self.all_emitted and self.emission_sorted[self.taken] <= t + self.lead
         if w.parked and (grow or 16 * w.parked >= w.size):
             w.compact()
-            unlit = True
-        if grow:
-            stop = int(np.searchsorted(t_emit_sorted, t + 2.0 * lead, side="right"))
-            new = order[nxt:stop]
-            nxt = stop
-            v0 = atoms.velocity[new]
-            w.take_in(new, v0, -v0 * (atoms.emission_time[new] - t), rng.standard_exponential(new.size),
-                      rng.standard_exponential(new.size) * dark_scale if p_loss > 0 else None)
-            unlit = unchecked = True
-        m = w.size - w.parked
-        if m == 0:
-            if nxt >= n:
-                break
-            t = float(t_emit_sorted[nxt]) - lead
-            continue
-        if t >= t_end:
-            break
-        v, z = w.v, w.z
+            self.unlit = True
+        if not grow:
+            return
+        stop = int(np.searchsorted(self.emission_sorted, t + 2.0 * self.lead, side="right"))
+        new = self.order[self.taken:stop]
+        self.taken = stop
+        v0 = self.atoms.velocity[new]
+        clock = rng.standard_exponential(new.size)
+        w.take_in(new, v0, -v0 * (self.atoms.emission_time[new] - t), clock,
+                  rng.standard_exponential(new.size) * self.dark_scale if self.p_loss > 0 else None)
+        self.unlit = self.unchecked = True
 
-        # -- the step (the rule of the module notes) -----------------------------------------
-        dt_try = min(L / max(float(v.max()), 1e-9), t_end - t)
-        if nxt < n:
-            dt_try = min(dt_try, max(float(t_emit_sorted[nxt]) - lead - t, lead))
-        if light:
-            dt = min(dt_try, 1.5 * dt_prev)
-            d_lo, d_hi = program.extremes(t, t + dt)
+    def choose_step(self, t: float) -> tuple[float, float]:
+        """The step (the rule of the module notes) and the detuning at its mid-point."""
+        w = self.w
+        dt_try = min(self.max_move / max(float(w.v.max()), 1e-9), self.t_end - t)
+        if not self.all_emitted:
+            dt_try = min(dt_try, max(self.next_emission - self.lead - t, self.lead))
+        detuning = math.nan
+        if self.light:
+            dt = min(dt_try, 1.5 * self.dt_prev)
+            d_lo, d_hi = self.program.extremes(t, t + dt)
             # resonant velocities in the step: [-λ d_hi, -λ d_lo]; distance of the nearest atom
-            centre = -0.5 * lam_w * (d_lo + d_hi)
-            u = w.buf
-            np.subtract(v, centre, out=u)
-            np.abs(u, out=u)
-            gap = float(u.min()) - 0.5 * lam_w * (d_hi - d_lo)
-            gap = max(gap - dv_max, 0.0)
-            r_bound = physics.scattering_rate(0.0, gap, s_peak, gamma, lam_w)
-            if v_r * r_bound * dt > dv_max:
-                dt = dv_max / (v_r * r_bound)
-            detuning = program.at(t + 0.5 * dt)
-            dv_seen = max(dv_seen, v_r * r_bound * dt)
+            centre = -0.5 * self.wavelength * (d_lo + d_hi)
+            gap_all = w.buf
+            np.subtract(w.v, centre, out=gap_all)
+            np.abs(gap_all, out=gap_all)
+            gap = float(gap_all.min()) - 0.5 * self.wavelength * (d_hi - d_lo)
+            gap = max(gap - self.dv_max, 0.0)
+            r_bound = physics.scattering_rate(0.0, gap, self.s_peak, self.gamma, self.wavelength)
+            if self.recoil * r_bound * dt > self.dv_max:
+                dt = self.dv_max / (self.recoil * r_bound)
+            detuning = self.program.at(t + 0.5 * dt)
+            self.dv_seen = max(self.dv_seen, self.recoil * r_bound * dt)
         else:
             dt = dt_try
-        dt_prev = dt
-        smallest = min(smallest, dt)
-        steps += 1
-        atom_steps += m
-        t_mid = t + 0.5 * dt
+        self.dt_prev = dt
+        self.smallest = min(self.smallest, dt)
+        self.steps += 1
+        self.atom_steps += self.in_flight
+        return dt, detuning
 
-        # -- motion without kicks (the kicks of the hit atoms are added below) ---------------
+    def drift(self, dt: float) -> np.ndarray:
+        """Positions after the step without kicks (the kicks of the atoms that scatter come later)."""
+        w = self.w
         z_new = w.z_next
-        np.multiply(v, dt, out=z_new)
-        z_new += z
+        np.multiply(w.v, dt, out=z_new)
+        z_new += w.z
+        return z_new
 
-        hit = None
-        if light:
-            # λ = R·dt, R = (Γ/2) s / (1 + s + x²) (physics.scattering_rate), fused in place
-            lam = w.lam
-            x = w.buf
-            if unlit:
-                lit = np.greater_equal(z, z_start, out=w.lit_bool)
-                np.copyto(w.lit, lit)
-                unlit = int(np.count_nonzero(lit)) + w.parked < w.size
-            expected_counts(v, z, w.lit, detuning, dt, lt, gamma, lam_w, x, w.buf2, lam)
-            if dt * r_peak >= LARGE_COUNT:
-                ib = (lam >= LARGE_COUNT).nonzero()[0]
-            else:
-                ib = _NONE
-            nb = ib.size
-            if nb:
-                lb = lam[ib]
-                lam[ib] = 0.0                   # their clocks wait this step (memoryless)
-            clock = w.clock
-            clock -= lam
-            ie = (clock <= 0.0).nonzero()[0]
-            ne = ie.size
-            if nb + ne:
-                # the atoms that scatter: large means first, then clocks run out
-                hit = np.concatenate([ib, ie]) if nb and ne else (ib if nb else ie)
-                kh = np.empty(nb + ne)          # their photons
-                # the counts of the large means, then the emissions of all hit atoms (order of hit)
-                xi = rng.standard_normal(2 * nb + ne)
-            if ne:
-                clock[ie] = _clock_counts(-clock[ie], rng, kh[nb:])
-            if nb:
-                # large means: the normal law of the same mean and variance λ
-                kb = np.sqrt(lb, out=kh[:nb])
-                kb *= xi[:nb]
-                kb += lb
-                np.maximum(kb, 0.0, out=kb)
-            if hit is not None:
-                # one recoil against the motion per photon, plus the z component of k isotropic
-                # emissions (mean 0, variance k/3)
-                dv = kh * (1.0 / 3.0)
-                np.sqrt(dv, out=dv)
-                dv *= xi[nb:]
-                dv -= kh
-                dv *= v_r
-                np.add.at(z_new, hit, (0.5 * dt) * dv)
-                np.add.at(w.ph, hit, kh)
-                if transverse:
-                    tm = t_mid - t_first
-                    kh *= tm
-                    np.add.at(w.a1, hit, kh)
-                    kh *= tm
-                    np.add.at(w.a2, hit, kh)
-        t_next = t + dt
-
-        # -- fates -------------------------------------------------------------------------
-        ia = (z_new >= D).nonzero()[0] if float(z_new.max()) >= D else _NONE
-        if ia.size:
-            v_in = v[ia]                        # before this step's kicks
-        if hit is not None:
-            vh = v[hit]
-            vh += dv
-            v[hit] = vh
-        if ia.size:
-            z0 = z[ia]
-            frac = (D - z0) / (z_new[ia] - z0)
-            ids = w.idx[ia]
-            fate[ids] = ARRIVED
-            arrival[ids] = t + frac * dt
-            final_v[ids] = v_in + frac * (v[ia] - v_in)
-            if transverse:
-                mom1[ids] = w.a1[ia]
-                mom2[ids] = w.a2[ia]
-        it = _NONE
-        if unchecked:
-            it = np.flatnonzero(v <= 0.0)
-            unchecked = False
-        elif hit is not None and float(vh.min()) <= 0.0:
-            it = hit[vh <= 0.0]
-        idk = _NONE
-        if p_loss > 0 and hit is not None:
-            idk = hit[w.ph[hit] > w.budget[hit]]
-        if it.size or idk.size:
-            done = np.zeros(w.size, dtype=bool)
-            done[ia] = True
-            it = it[~done[it]]
-            fate[w.idx[it]] = TURNED_BACK
-            done[it] = True
-            idk = idk[~done[idk]]
-            fate[w.idx[idk]] = DARK
-            done[idk] = True
-            idone = np.flatnonzero(done)
+    def scatter(self, t: float, dt: float, detuning: float, z_new: np.ndarray) -> _Hits | None:
+        """Draw the photons of the step and their kicks; move ``z_new`` by half of each kick."""
+        w, rng = self.w, self.rng
+        # λ = R·dt, R = (Γ/2) s / (1 + s + x²) (physics.scattering_rate), fused in place
+        expected = w.expected
+        if self.unlit:
+            lit = np.greater_equal(w.z, self.light_start, out=w.lit_bool)
+            np.copyto(w.lit, lit)
+            self.unlit = int(np.count_nonzero(lit)) + w.parked < w.size
+        expected_counts(w.v, w.z, w.lit, detuning, dt, self.beam, self.gamma, self.wavelength,
+                        w.buf, w.buf2, expected)
+        if dt * self.r_peak >= LARGE_COUNT:
+            large = (expected >= LARGE_COUNT).nonzero()[0]
         else:
-            idone = ia
+            large = _NONE
+        n_large = large.size
+        if n_large:
+            large_mean = expected[large]
+            expected[large] = 0.0               # their clocks wait this step (memoryless)
+        clock = w.clock
+        clock -= expected
+        ran_out = (clock <= 0.0).nonzero()[0]
+        n_out = ran_out.size
+        if n_large + n_out == 0:
+            return None
+        # the atoms that scatter: large means first, then clocks run out
+        index = np.concatenate([large, ran_out]) if n_large and n_out else (large if n_large else ran_out)
+        photons = np.empty(n_large + n_out)
+        # the counts of the large means, then the emissions of all hit atoms (order of index)
+        xi = rng.standard_normal(2 * n_large + n_out)
+        if n_out:
+            clock[ran_out] = _clock_counts(-clock[ran_out], rng, photons[n_large:])
+        if n_large:
+            # large means: the normal law of the same mean and variance λ
+            counts = np.sqrt(large_mean, out=photons[:n_large])
+            counts *= xi[:n_large]
+            counts += large_mean
+            np.maximum(counts, 0.0, out=counts)
+        # one recoil against the motion per photon, plus the z component of k isotropic
+        # emissions (mean 0, variance k/3)
+        kick = photons * (1.0 / 3.0)
+        np.sqrt(kick, out=kick)
+        kick *= xi[n_large:]
+        kick -= photons
+        kick *= self.recoil
+        np.add.at(z_new, index, (0.5 * dt) * kick)
+        np.add.at(w.photons, index, photons)
+        if self.transverse:
+            tm = t + 0.5 * dt - self.t_first
+            weighted = photons * tm
+            np.add.at(w.photon_t, index, weighted)
+            weighted *= tm
+            np.add.at(w.photon_tt, index, weighted)
+        return _Hits(index=index, photons=photons, kick=kick)
+
+    def settle(self, t: float, dt: float, z_new: np.ndarray, hits: _Hits | None) -> None:
+        """Apply the kicks, record the fates of the step (arrived, turned back, dark), park those done."""
+        w, out = self.w, self.out
+        v, z, D = w.v, w.z, self.distance
+        arrived = (z_new >= D).nonzero()[0] if float(z_new.max()) >= D else _NONE
+        if arrived.size:
+            v_in = v[arrived]                   # before this step's kicks
+        if hits is not None:
+            v_hit = v[hits.index]
+            v_hit += hits.kick
+            v[hits.index] = v_hit
+        if arrived.size:
+            z0 = z[arrived]
+            frac = (D - z0) / (z_new[arrived] - z0)
+            ids = w.idx[arrived]
+            out.fate[ids] = ARRIVED
+            out.arrival_time[ids] = t + frac * dt
+            out.final_velocity[ids] = v_in + frac * (v[arrived] - v_in)
+            if self.transverse:
+                self.arrived_kt[ids] = w.photon_t[arrived]
+                self.arrived_ktt[ids] = w.photon_tt[arrived]
+        turned = _NONE
+        if self.unchecked:
+            turned = np.flatnonzero(v <= 0.0)
+            self.unchecked = False
+        elif hits is not None and float(v_hit.min()) <= 0.0:
+            turned = hits.index[v_hit <= 0.0]
+        dark = _NONE
+        if self.p_loss > 0 and hits is not None:
+            dark = hits.index[w.photons[hits.index] > w.budget[hits.index]]
+        if turned.size or dark.size:
+            done = np.zeros(w.size, dtype=bool)
+            done[arrived] = True
+            turned = turned[~done[turned]]
+            out.fate[w.idx[turned]] = TURNED_BACK
+            done[turned] = True
+            dark = dark[~done[dark]]
+            out.fate[w.idx[dark]] = DARK
+            done[dark] = True
+            finished = np.flatnonzero(done)
+        else:
+            finished = arrived
         w.z, w.z_next = z_new, z
-        if idone.size:
-            photons_out[w.idx[idone]] = w.ph[idone]
-            w.park(idone, PARK)
-        t = t_next
+        if finished.size:
+            out.photons[w.idx[finished]] = w.photons[finished]
+            w.park(finished, self.PARK)
 
-    left = w.idx[w.alive]
-    photons_out[left] = w.ph[w.alive]       # not arrived: photons so far
-    if transverse:
-        ia = np.flatnonzero(fate == ARRIVED)
-        r, vx = _transverse(atoms, ia, arrival[ia], photons_out[ia], mom1[ia], mom2[ia], t_first,
-                            v_r * v_r / 3.0, rng)
-        out.radius[ia] = r
-        out.transverse_velocity[ia] = vx
-    else:
-        out.radius[fate == ARRIVED] = 0.0
-    out.steps, out.atom_steps, out.smallest_step = steps, atom_steps, smallest
-    out.largest_velocity_change = dv_seen
-    return out
-
+    def finish(self) -> Flight:
+        """Photons of the atoms still in flight, the transverse draw of the arrived, the step record."""
+        w, out = self.w, self.out
+        out.photons[w.idx[w.alive]] = w.photons[w.alive]       # not arrived: photons so far
+        if self.transverse:
+            arrived = np.flatnonzero(out.fate == ARRIVED)
+            r, vx = _transverse(self.atoms, arrived, out.arrival_time[arrived], out.photons[arrived],
+                                self.arrived_kt[arrived], self.arrived_ktt[arrived], self.t_first,
+                                self.recoil * self.recoil / 3.0, self.rng)
+            out.radius[arrived] = r
+            out.transverse_velocity[arrived] = vx
+        else:
+            out.radius[out.fate == ARRIVED] = 0.0
+        out.steps, out.atom_steps, out.smallest_step = self.steps, self.atom_steps, self.smallest
+        out.largest_velocity_change = self.dv_seen
+        return out
 
 def expected_counts(v, z, lit, detuning, dt, light, gamma, wavelength, work, work2, out):
     """Expected photons ``λ = R·dt`` of each atom in a step, in place (no temporaries).
@@ -717,9 +768,9 @@ class _Working:
         self.v = np.empty(0)
         self.z = np.empty(0)
         self.clock = np.empty(0)
-        self.ph = np.empty(0)                  # photons scattered
-        self.a1 = np.empty(0)                  # Σk·t (t from t_first), transverse model only
-        self.a2 = np.empty(0)                  # Σk·t²
+        self.photons = np.empty(0)             # photons scattered
+        self.photon_t = np.empty(0)            # Σk·t (t from t_first), transverse model only
+        self.photon_tt = np.empty(0)           # Σk·t²
         self.budget = np.empty(0)              # dark-state photon budget (molecules)
         self.alive = np.empty(0, dtype=bool)
         self.parked = 0
@@ -730,9 +781,9 @@ class _Working:
         return self.v.size
 
     def _names(self):
-        names = ["idx", "v", "z", "clock", "ph", "alive"]
+        names = ["idx", "v", "z", "clock", "photons", "alive"]
         if self.transverse:
-            names += ["a1", "a2"]
+            names += ["photon_t", "photon_tt"]
         if self.dark:
             names.append("budget")
         return names
@@ -742,7 +793,7 @@ class _Working:
         self.z_next = np.empty(n)
         self.buf = np.empty(n)
         self.buf2 = np.empty(n)
-        self.lam = np.empty(n)
+        self.expected = np.empty(n)      # expected photons of the step
         self.lit = np.zeros(n)
         self.lit_bool = np.zeros(n, dtype=bool)
 
@@ -755,8 +806,8 @@ class _Working:
 
     def take_in(self, ids, v0, z0, clock, budget):
         zeros = np.zeros(ids.size)
-        add = {"idx": ids, "v": v0, "z": z0, "clock": clock, "ph": zeros, "alive": np.ones(ids.size, dtype=bool),
-               "a1": zeros, "a2": zeros, "budget": budget}
+        add = {"idx": ids, "v": v0, "z": z0, "clock": clock, "photons": zeros,
+               "alive": np.ones(ids.size, dtype=bool), "photon_t": zeros, "photon_tt": zeros, "budget": budget}
         for name in self._names():
             setattr(self, name, np.concatenate([getattr(self, name), add[name]]))
         self._scratch()
