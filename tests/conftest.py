@@ -1,10 +1,26 @@
-"""Shared test helpers: small scenario files written into ``tmp_path``."""
+"""Shared test helpers: Hypothesis profiles, small scenario files written into ``tmp_path``."""
 
 from __future__ import annotations
 
 import copy
 
 import pytest
+from hypothesis import settings
+
+# Hypothesis profiles. "thorough" is the default: what ``pytest`` and CI run. "fast" is for
+# local runs, selected with Hypothesis's own option ``pytest --hypothesis-profile=fast``.
+# Tests give their example count through ``examples(n)``: n under the thorough profile.
+THOROUGH_EXAMPLES = 100
+settings.register_profile("thorough", max_examples=THOROUGH_EXAMPLES, deadline=None)
+settings.register_profile("fast", max_examples=THOROUGH_EXAMPLES // 10, deadline=None)
+settings.load_profile("thorough")
+
+
+def examples(n: int) -> int:
+    """``max_examples`` for a property test that runs ``n`` examples under the thorough profile,
+    scaled by the loaded profile (a tenth, at least 2, under the fast one)."""
+    scaled = round(n * settings.default.max_examples / THOROUGH_EXAMPLES)
+    return max(min(n, 2), scaled)
 
 BASE_SCENARIO = {
     "title": "test scenario",

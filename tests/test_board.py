@@ -19,6 +19,8 @@ from sweepgen.errors import InputError
 from sweepgen.generator import load_generator
 from sweepgen.testing import virtual_board
 
+from conftest import examples
+
 T = fr.MsgType
 R = fr.Reason
 GEN = load_generator("demo-ramp-board")      # 32-bit DDS words, 1 GHz clock, 1-400 MHz, rates 0.1-1 MSa/s
@@ -122,7 +124,7 @@ def test_wrong_whole_table_crc_is_never_committed_and_the_old_table_stays(host):
     assert host.board.committed.data == old
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40))
 @given(seed=st.integers(0, 2**32 - 1), count=st.integers(1, 600), frame=st.integers(1, 400),
        tamper=st.one_of(st.none(), st.integers(0, 10**6)), bit=st.integers(0, 7))
 def test_the_board_commits_exactly_the_table_whose_crc_matches(seed, count, frame, tamper, bit):

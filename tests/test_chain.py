@@ -11,6 +11,8 @@ from sweepgen._config import Section
 from sweepgen.chain import AnalogStage, AomStage, Calibration, Chain, DdsStage, OffsetLockStage, chain_from_sections
 from sweepgen.errors import InputError
 
+from conftest import examples
+
 finite = st.floats(min_value=-2e9, max_value=2e9, allow_nan=False)
 
 
@@ -18,7 +20,7 @@ def sections(*tables, file="laser.toml"):
     return Section({"chain": list(tables)}, file).sections("chain")
 
 
-@settings(max_examples=200, deadline=None)
+@settings(max_examples=examples(200))
 @given(coef=st.floats(min_value=1e5, max_value=5e9), sign=st.sampled_from([1, -1]),
        set_point=st.floats(min_value=-1e9, max_value=1e9), set_drive=st.floats(min_value=-5, max_value=5),
        detuning=st.lists(finite, min_size=1, max_size=20))
@@ -30,7 +32,7 @@ def test_linear_analog_round_trip_is_exact(coef, sign, set_point, set_drive, det
     assert np.allclose(back, d, rtol=1e-12, atol=1e-3)
 
 
-@settings(max_examples=100, deadline=None)
+@settings(max_examples=examples(100))
 @given(detuning=st.lists(st.floats(min_value=-1.5e9, max_value=-1e6), min_size=1, max_size=20),
        passes=st.integers(1, 4), order=st.sampled_from([1, -1]), divider=st.integers(1, 16))
 def test_composed_aom_lock_dds_round_trip(detuning, passes, order, divider):
@@ -73,7 +75,7 @@ def test_offset_lock_sign_and_divider():
     assert below.inverse(below.forward(-123e6)) == pytest.approx(-123e6)
 
 
-@settings(max_examples=200, deadline=None)
+@settings(max_examples=examples(200))
 @given(f=st.floats(min_value=0, max_value=5e8), bits=st.sampled_from([24, 32, 48]))
 def test_dds_word_is_rounded_frequency_times_two_to_n_over_clock(f, bits):
     clock = 1e9

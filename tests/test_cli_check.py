@@ -143,6 +143,7 @@ def test_bad_rate_option_and_missing_scenario(tmp_path):
     assert res.exit_code == 2
 
 
+@pytest.mark.slow
 def test_rate_option_and_plot(tmp_path):
     plot = tmp_path / "margins.png"
     res = invoke(write(tmp_path), "--rate", "100 kSa/s", "--plot", str(plot))

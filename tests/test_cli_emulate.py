@@ -69,6 +69,7 @@ def test_serves_the_virtual_instrument_on_loopback_until_ctrl_c():
     assert "listening" in err and "stopped" in err and "Traceback" not in err
 
 
+@pytest.mark.slow
 def test_fault_switches_and_identity_from_the_command_line():
     with Emulator("--mute", "--identity", "sweepgen,other-awg,1,0") as emulator:
         inst = visa(emulator.address, timeout_ms=300)
@@ -83,6 +84,7 @@ def test_fault_switches_and_identity_from_the_command_line():
         inst.close()
 
 
+@pytest.mark.slow
 def test_board_emulator():
     with Emulator("--board") as emulator:
         assert emulator.address.startswith("socket://127.0.0.1:")
@@ -156,6 +158,7 @@ BOARD_TRANSIENT = [
 ]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("args, counter, shown", BOARD_TRANSIENT,
                          ids=[*(a[0][2:] for a, _, _ in BOARD_TRANSIENT[:-1]), "refuse-hello"])
 def test_board_transient_fault_from_the_command_line_is_retried(args, counter, shown):
@@ -173,6 +176,7 @@ def test_board_transient_fault_from_the_command_line_is_retried(args, counter, s
     assert code == 0 and "Traceback" not in err
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("args, message", [
     (["--refuse", "always"], "refused with BUSY after 3 attempts"),
     (["--corrupt-memory", "always"], "END refused with TABLE_CRC"),

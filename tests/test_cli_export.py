@@ -290,6 +290,7 @@ def cli(args, plugin_path):
                           env=env, timeout=120)
 
 
+@pytest.mark.slow
 def test_the_cli_finds_a_driver_registered_by_another_distribution(tmp_path, plugin_path):
     scenario = write_scenario(tmp_path)
     out = tmp_path / "out"
@@ -306,6 +307,7 @@ def test_the_cli_finds_a_driver_registered_by_another_distribution(tmp_path, plu
     assert np.max(np.abs(detuning - expected_detuning(t))) <= abs(det["scale"])
 
 
+@pytest.mark.slow
 def test_a_driver_failing_mid_stream_leaves_the_folder_as_it_was(tmp_path, plugin_path):
     scenario = write_scenario(tmp_path)
     out = tmp_path / "out"

@@ -120,6 +120,7 @@ def test_version_and_usage_error():
     assert run("plan").exit_code == 2
 
 
+@pytest.mark.slow
 def test_plan_plot_png_and_svg(tmp_path):
     png, svg = tmp_path / "sweep.png", tmp_path / "sweep.svg"
     assert run("plan", "rb87-chopped-oven", "--plot", str(png)).exit_code == 0

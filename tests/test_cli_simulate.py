@@ -56,6 +56,7 @@ def test_human_table(fast):
     assert "m/s" in out and "150 atoms, seed 0" in out
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("suffix, magic", [(".png", b"\x89PNG\r\n\x1a\n"), (".svg", b"<?xml")])
 def test_plot_by_extension(fast, tmp_path, suffix, magic):
     target = tmp_path / f"atoms{suffix}"
@@ -65,6 +66,7 @@ def test_plot_by_extension(fast, tmp_path, suffix, magic):
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []    # no temporary left
 
 
+@pytest.mark.slow
 def test_plot_of_a_continuous_source(write_scenario, tmp_path):
     path = write_scenario(source={"pulse_time": None}, chirp={"start_time": None})
     target = tmp_path / "c.png"
@@ -97,14 +99,3 @@ def test_bad_scenario_is_one_line_exit_2(write_scenario):
     missing = run("simulate", "no-such-scenario")
     assert missing.exit_code == 2 and "no-such-scenario" in missing.stderr
 
-
-def test_listed_in_help():
-    result = run("--help")
-    assert "simulate" in result.stdout
-
-
-def test_default_atoms_agree_with_the_library():
-    from sweepgen.commands import simulate as cmd
-    from sweepgen import simulate as lib
-
-    assert cmd.DEFAULT_ATOMS == lib.DEFAULT_ATOMS

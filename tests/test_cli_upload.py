@@ -95,6 +95,7 @@ def test_faults_exit_1_name_the_step_and_leave_the_output_off(faults, steps):
     assert "Traceback" not in result.output
 
 
+@pytest.mark.slow
 def test_silent_instrument_times_out_with_the_profile_timeout(tmp_path):
     profile = tmp_path / "quick.toml"
     data = {**OTHER_DIALECT, "link": {**OTHER_DIALECT["link"], "timeout": "0.2 s"}}

@@ -2,6 +2,7 @@
 
 import json
 
+import pytest
 from click.testing import CliRunner
 
 from sweepgen.cli import main
@@ -9,6 +10,7 @@ from sweepgen.cli import main
 PNG = b"\x89PNG\r\n\x1a\n"
 
 
+@pytest.mark.slow
 def test_demo_writes_the_whole_report(tmp_path):
     out = tmp_path / "demo"
     result = CliRunner().invoke(main, ["demo", str(out)])

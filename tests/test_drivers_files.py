@@ -21,6 +21,8 @@ from sweepgen.drivers.raw_file import RawDriver, convert, storage
 from sweepgen.errors import DriverError, InputError
 from sweepgen.table import Frame, RenderedTable, TableInfo
 
+from conftest import examples
+
 
 # -- a small table built directly (demo numbers) ------------------------------------------------
 def make_table(count=1000, padding=8, *, dtype="<i2", code_min=-8192, code_max=8191, lookup=False,
@@ -139,7 +141,7 @@ def test_dds_words_keep_every_bit_in_native_and_are_refused_in_16_bits(tmp_path)
     assert not (tmp_path / "x").exists()
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=examples(60))
 @given(lo=st.integers(-40000, 40000), span=st.integers(1, 65536),
        dtype=st.sampled_from(["int16", "uint16", "float32"]), order=st.sampled_from(["little", "big"]),
        seed=st.integers(0, 1000))

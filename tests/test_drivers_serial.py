@@ -30,6 +30,8 @@ from sweepgen.generator import load_generator
 from sweepgen.table import Frame, RenderedTable, TableInfo
 from sweepgen.testing import virtual_board
 
+from conftest import examples
+
 BASE = load_generator("demo-ramp-board")      # 32-bit words, 1 GHz clock, 1-400 MHz, rates 0.1-1 MSa/s
 # short timeouts keep the fault tests fast; the board's gap timeout (0.1 s) stays below them
 GEN = dataclasses.replace(BASE, link=dataclasses.replace(BASE.link, timeout=0.2))
@@ -175,6 +177,7 @@ TRANSIENT = [
 ]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("faults, counter", TRANSIENT, ids=[next(iter(f)) for f, _ in TRANSIENT])
 def test_transient_fault_is_retried_and_the_upload_succeeds(faults, counter):
     table, words = dds_table(4000)
@@ -201,6 +204,7 @@ PERSISTENT = [
 ]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kind, step, message", PERSISTENT, ids=[p[0] for p in PERSISTENT])
 def test_persistent_fault_fails_clearly_commits_nothing_and_leaves_the_board_disarmed(kind, step, message):
     old, old_words = dds_table(300, f0=5e6, f1=6e6)
@@ -286,7 +290,7 @@ def test_tables_the_board_cannot_take_are_refused_before_connecting(change, erro
         deliver(table, "socket://127.0.0.1:9")
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=examples(60))
 @given(count=st.integers(1, 400), chunk=st.integers(1, 97),
        reads=st.lists(st.tuples(st.integers(0, 1700), st.integers(1, 300)), min_size=1, max_size=25))
 def test_table_bytes_reads_any_range_across_chunk_boundaries(count, chunk, reads):

@@ -179,6 +179,7 @@ def test_dry_run_prints_the_exact_log_without_connecting():
     assert report["bytes"] == sum(e["bytes"] for e in report["log"])
 
 
+@pytest.mark.slow
 def test_a_2_24_sample_upload_completes_without_timeout():
     gen = load_generator("virtual-awg")                 # memory 2^24, throughput 20 MB/s, timeout 5 s
     count = 1 << 24
@@ -223,6 +224,7 @@ NEW = "output switched off (confirmed on a new connection)"
 UNCONFIRMED = "could not confirm that the output is off: check the instrument before touching the setup"
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("faults, step, words, outcome", [
     (Faults(error_after_upload=True), "upload", '-240,"Hardware error', SAME),
     (Faults(corrupt_readback=True), "verify", "differs from what was sent", SAME),
@@ -356,6 +358,7 @@ def test_connection_refused_is_an_instrument_error():
     assert info.value.step == "identify"
 
 
+@pytest.mark.slow
 def test_a_table_yielding_more_bytes_than_announced_never_sends_the_excess():
     # the block header announces count x itemsize bytes; bytes beyond it would be read by the
     # instrument as commands, so the chunk that runs past is refused before it is sent

@@ -14,6 +14,8 @@ from hypothesis import given, settings, strategies as st
 import sweepgen.drivers
 from sweepgen import framing as fr
 
+from conftest import examples
+
 PROTOCOL_DOC = Path(sweepgen.drivers.__file__).parent / "serial_protocol.md"
 
 types = st.integers(0, 255)
@@ -24,7 +26,7 @@ payloads = st.one_of(st.binary(max_size=600), marker_bytes,
                      st.builds(lambda t, s, p: fr.encode(t, s, p), types, seqs, st.binary(max_size=50)))
 
 
-@settings(max_examples=200, deadline=None)
+@settings(max_examples=examples(200))
 @given(msg_type=types, seq=seqs, payload=payloads)
 def test_encode_decode_round_trip_and_crc_is_zlib_crc32(msg_type, seq, payload):
     raw = fr.encode(msg_type, seq, payload)
@@ -44,7 +46,7 @@ def test_crc32_check_value():
     assert "0xCBF43926" in PROTOCOL_DOC.read_text(encoding="utf-8")
 
 
-@settings(max_examples=150, deadline=None)
+@settings(max_examples=examples(150))
 @given(msg_type=types, seq=seqs, payload=payloads, data=st.data())
 def test_every_single_bit_error_is_detected(msg_type, seq, payload, data):
     # CRC-32 detects every single-bit error (a property of any CRC with more than one term)
@@ -64,7 +66,7 @@ def _split(stream: bytes, cuts):
     return pieces
 
 
-@settings(max_examples=150, deadline=None)
+@settings(max_examples=examples(150))
 @given(frames=st.lists(st.tuples(types, seqs, payloads), min_size=1, max_size=6),
        noise=st.lists(st.binary(max_size=30).map(lambda b: b.replace(b"\xa5", b"\x00")), min_size=7, max_size=7),
        cuts=st.lists(st.integers(0, 10_000), max_size=12))
@@ -80,7 +82,7 @@ def test_decoder_finds_every_frame_in_a_noisy_stream_fed_in_any_pieces(frames, n
     assert decoder.discarded == sum(len(n) for n in noise[:len(frames) + 1])
 
 
-@settings(max_examples=150, deadline=None)
+@settings(max_examples=examples(150))
 @given(payload=payloads, seq=seqs)
 def test_decoder_reports_a_damaged_frame_and_recovers_with_the_next(payload, seq):
     bad = bytearray(fr.encode(fr.MsgType.DATA, seq, payload))
@@ -156,7 +158,7 @@ text = st.text(max_size=20)
 u32 = st.integers(0, 2**32 - 1)
 
 
-@settings(max_examples=100, deadline=None)
+@settings(max_examples=examples(100))
 @given(formats=st.sets(st.sampled_from(list(fr.Format)), min_size=1), word=st.integers(0, 64),
        dac=st.integers(0, 32), maxp=st.integers(64, 65535), memory=u32, clock=st.integers(0, 2**64 - 1),
        rates=st.lists(u32, min_size=1, max_size=20), name=text)
@@ -165,7 +167,7 @@ def test_capabilities_round_trip(formats, word, dac, maxp, memory, clock, rates,
     assert fr.Capabilities.unpack(caps.pack()) == caps
 
 
-@settings(max_examples=100, deadline=None)
+@settings(max_examples=examples(100))
 @given(fmt=st.sampled_from(list(fr.Format)), count=u32, crc=u32, rate=u32, req=types,
        reason=st.sampled_from(list(fr.Reason)), detail=u32, msg=text, state=st.sampled_from(list(fr.State)),
        armed=st.booleans(), received=u32, offset=u32, chunk=st.binary(min_size=1, max_size=100))

@@ -15,6 +15,8 @@ from sweepgen.generator import generator_from_dict, load_generator
 from sweepgen.instrument import Faults
 from sweepgen.testing import instrument_server
 
+from conftest import examples
+
 SMALL = {   # a small instrument: its limits are easy to cross (demo data)
     "title": "small test generator", "kind": "awg", "channels": 2,
     "sampling": {"rate_min": "1 kSa/s", "rate_max": "1 MSa/s", "memory": 4096, "granularity": 8,
@@ -130,6 +132,7 @@ def test_long_short_forms_optional_nodes_suffixes_and_compound_paths(rm, small):
     inst.close()
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("commands, code", [
     (["FORM:DATA INT,16", "TRAC:DATA T,#18\x00\x00\x00\x01\x00\x02\x00\x03"], -222),   # 4 points < min_length 32
     (["FORM:DATA INT,16", "TRAC:DATA T," + "#240" + "\x00" * 40], -222),              # 20 points: not a multiple of 8
@@ -186,7 +189,8 @@ def test_injected_commands_never_run(rm, small):
     assert small.instrument.outputs_on == [] and not small.instrument.ever_armed
 
 
-@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@pytest.mark.slow
+@settings(max_examples=examples(25), suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(st.binary(min_size=1, max_size=300))
 def test_garbage_is_refused_and_the_instrument_keeps_serving(rm, small, garbage):
     inst = connect(rm, small)
@@ -239,6 +243,7 @@ def test_clients_are_served_one_at_a_time(rm, small):
     second.close()
 
 
+@pytest.mark.slow
 def test_fault_delay_and_mute(rm, tmp_path):
     gen = generator_from_dict(SMALL, tmp_path / "small.toml")
     with instrument_server(gen, faults=Faults(delay=0.5)) as server:

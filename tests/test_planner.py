@@ -15,7 +15,7 @@ from sweepgen.errors import PlanError
 from sweepgen.planner import plan
 from sweepgen.scenario import load_scenario, scenario_from_dict
 
-from conftest import scenario_dict
+from conftest import examples, scenario_dict
 
 
 def make(**sections):
@@ -146,7 +146,7 @@ def test_focused_auto_start_root_find():
 species_keys = st.sampled_from(["rb87-d2", "cs133-d2", "na23-d2", "k39-d2"])
 
 
-@settings(max_examples=25, deadline=None)
+@settings(max_examples=examples(25))
 @given(key=species_keys, s0=st.floats(0.3, 20.0), eta=st.floats(0.2, 0.9), v1=st.floats(60.0, 500.0),
        frac=st.floats(0.02, 0.7), focused=st.booleans(), waist=st.floats(0.4e-3, 3e-3))
 def test_planner_properties(key, s0, eta, v1, frac, focused, waist):

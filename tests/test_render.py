@@ -21,6 +21,8 @@ from sweepgen.sampling import RateChoice, drive_to_codes, quantisation
 from sweepgen.scenario import load_scenario
 from sweepgen.schedule import Schedule, Segment
 
+from conftest import examples
+
 SCENARIOS = ["rb87-chopped-oven", "na23-continuous-focused", "caf-buffer-gas"]
 
 
@@ -47,7 +49,7 @@ def random_schedule(seed, pieces):
     return Schedule([Segment("chirp", 0.0, 1e-2)], poly, 1e-2, float(poly(0.0)), float(poly(1e-2)))
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40))
 @given(seed=st.integers(0, 2**32 - 1), pieces=st.integers(1, 12))
 def test_detuning_extremes_bound_a_dense_sampling_and_are_attained(seed, pieces):
     schedule = random_schedule(seed, pieces)
@@ -60,7 +62,7 @@ def test_detuning_extremes_bound_a_dense_sampling_and_are_attained(seed, pieces)
     assert dense.min() - lo <= 1e-4 * span and hi - dense.max() <= 1e-4 * span
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40))
 @given(seed=st.integers(0, 2**32 - 1), pieces=st.integers(1, 40), n=st.integers(1, 3000),
        lo=st.floats(0, 1e-2), width=st.floats(0, 1.2e-2))
 def test_sorted_evaluator_equals_ppoly(seed, pieces, n, lo, width):
@@ -147,7 +149,7 @@ def rb_table():
     return table, table.codes()
 
 
-@settings(max_examples=15, deadline=None)
+@settings(max_examples=examples(15))
 @given(size=st.integers(50, 70000))
 def test_codes_do_not_depend_on_the_chunk_size(rb_table, size):
     table, codes = rb_table

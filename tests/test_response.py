@@ -12,6 +12,8 @@ from sweepgen._config import Section
 from sweepgen.errors import InputError
 from sweepgen.response import Response, actuator_response, response_from_section, simulate
 
+from conftest import examples
+
 
 def test_first_order_step_is_one_minus_exp():
     r = Response("first-order", corner=20e3)
@@ -52,7 +54,7 @@ def test_critically_damped_closed_form():
     assert np.allclose(r.step(t), ref, atol=1e-6)
 
 
-@settings(max_examples=30, deadline=None)
+@settings(max_examples=examples(30))
 @given(corner=st.floats(min_value=1e3, max_value=1e6), slope=st.floats(min_value=1e6, max_value=1e12))
 def test_ramp_lag_is_rate_times_tau(corner, slope):
     # final-value theorem for a ramp through 1/(1 + sτ): the lag tends to slope·τ (textbook)

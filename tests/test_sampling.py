@@ -12,6 +12,8 @@ from sweepgen.planner import plan
 from sweepgen.sampling import choose_rate, codes_to_drive, drive_to_codes, quantisation, step_tolerance
 from sweepgen.scenario import Drive, load_scenario
 
+from conftest import examples
+
 
 def board(**over):
     """A serial-board generator with a voltage output (only the fields the sampling uses matter)."""
@@ -141,7 +143,7 @@ def test_quantisation_refuses_unsafe_or_mismatched_ranges():
         quantisation(150e6, 200e6, board(), dds_chain)
 
 
-@settings(max_examples=100, deadline=None)
+@settings(max_examples=examples(100))
 @given(f=st.lists(st.floats(min_value=150e6, max_value=200e6), min_size=1, max_size=50))
 def test_dds_words_equal_round_f_times_two_to_n_over_clock(f):
     g = board(dds_output={"kind": "frequency", "clock": "1 GHz", "word_bits": 32, "range_min": "1 MHz",

@@ -11,7 +11,7 @@ from sweepgen.errors import InputError
 from sweepgen.scenario import load_scenario, scenario_from_dict
 from sweepgen.sources import EffusiveSource, GaussianSource
 
-from conftest import scenario_dict, to_toml
+from conftest import examples, scenario_dict, to_toml
 
 
 def test_builtin_scenario_in_si():
@@ -61,7 +61,7 @@ def test_digest_changes_with_content(tmp_path):
     assert load_scenario(str(a)).digest != load_scenario(str(b)).digest
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=examples(60))
 @given(v1=st.floats(10.0, 2000.0), frac=st.floats(0.001, 0.999), eta=st.floats(0.001, 0.999),
        temp=st.floats(1.0, 3000.0), gaussian=st.booleans(), hold_us=st.floats(0, 1e4),
        unit=st.sampled_from([("m/s", 1.0), ("km/s", 1e3), ("cm/s", 1e-2)]))
@@ -85,7 +85,7 @@ def test_round_trip_values(tmp_path_factory, v1, frac, eta, temp, gaussian, hold
         assert math.isclose(sc.source.temperature, temp, rel_tol=1e-12)
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=examples(60))
 @given(junk=st.one_of(st.text(max_size=12), st.integers(), st.floats(), st.booleans(),
                       st.lists(st.integers(), max_size=3)))
 def test_any_junk_value_is_an_input_error_not_a_crash(junk):

@@ -9,7 +9,7 @@ from sweepgen.errors import PlanError
 from sweepgen.planner import plan
 from sweepgen.scenario import scenario_from_dict
 
-from conftest import scenario_dict
+from conftest import examples, scenario_dict
 
 
 @pytest.fixture(scope="module")
@@ -55,7 +55,7 @@ def test_continuity_everywhere(pulsed):
         assert left == pytest.approx(right, abs=1.0)   # Hz, across every piece boundary
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40))
 @given(t=st.floats(-1.0, 1.0), k=st.integers(-50, 50))
 def test_periodic(pulsed, t, k):
     _, s = pulsed

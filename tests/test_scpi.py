@@ -13,6 +13,8 @@ from sweepgen import scpi
 from sweepgen._config import Section
 from sweepgen.errors import InputError
 
+from conftest import examples
+
 # NumPy dtype -> pyvisa (struct) datatype letter
 DTYPES = {"i2": "h", "u2": "H", "i4": "i", "u4": "I", "f4": "f", "i1": "b", "u1": "B"}
 
@@ -24,7 +26,7 @@ def arrays():
 
 
 # --- block codec against pyvisa's reference implementation (IEEE 488.2 definite-length block) ---
-@settings(max_examples=120, deadline=None)
+@settings(max_examples=examples(120))
 @given(arrays(), st.sampled_from(["little", "big"]))
 def test_encode_block_matches_pyvisa_to_ieee_block(values, order):
     wire = np.asarray(values).astype(scpi.wire_dtype(values.dtype, order))
@@ -33,7 +35,7 @@ def test_encode_block_matches_pyvisa_to_ieee_block(values, order):
     assert ours == reference
 
 
-@settings(max_examples=120, deadline=None)
+@settings(max_examples=examples(120))
 @given(arrays(), st.sampled_from(["little", "big"]), st.lists(st.integers(0, 300), max_size=6))
 def test_streamed_block_equals_pyvisa_block_for_any_chunking(values, order, cuts):
     cuts = sorted(c for c in cuts if c <= len(values))
@@ -44,7 +46,7 @@ def test_streamed_block_equals_pyvisa_block_for_any_chunking(values, order, cuts
     assert streamed == reference
 
 
-@settings(max_examples=120, deadline=None)
+@settings(max_examples=examples(120))
 @given(arrays(), st.sampled_from(["little", "big"]))
 def test_decode_block_roundtrip_with_pyvisa_from_ieee_block(values, order):
     letter = DTYPES[values.dtype.str[1:]]
@@ -92,7 +94,7 @@ def test_render_refuses_injection_through_the_trace_name(name):
         scpi.render("TRAC:DATA {name},{data}", "upload", name=name)
 
 
-@settings(max_examples=200, deadline=None)
+@settings(max_examples=examples(200))
 @given(st.text(max_size=16))
 def test_any_accepted_name_cannot_break_out_of_its_command(name):
     try:
@@ -127,7 +129,7 @@ def test_data_format_words():
     assert scpi.border("big") == "NORM" and scpi.border("little") == "SWAP"
 
 
-@settings(max_examples=80, deadline=None)
+@settings(max_examples=examples(80))
 @given(hnp.arrays(np.int32, st.integers(0, 200)))
 def test_ascii_list_roundtrip(values):
     text = scpi.ascii_list(values)

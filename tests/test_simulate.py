@@ -33,7 +33,7 @@ from sweepgen.scenario import load_scenario, scenario_from_dict
 from sweepgen.simulate import (ARRIVED, DARK, HORIZON_FACTOR, STEP_FRACTION, Atoms, DetuningProgram, _clock_counts,
                                draw_atoms, expected_counts, propagate, simulate, velocity_width)
 
-from conftest import scenario_dict
+from conftest import examples, scenario_dict
 
 # A pulsed narrow beam well inside the chirp's band (15 .. 260 m/s); no hold, and a long
 # period so that slowed atoms arrive before the next chirp.
@@ -70,7 +70,7 @@ def test_detuning_program_is_the_schedule():
 _SCHED = plan(make()).schedule()
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=examples(60))
 @given(st.floats(-0.05, 0.07), st.floats(1e-7, 0.03))
 def test_detuning_extremes_property_any_window(t0, width):
     # the window may start before zero and run over the period's end (the schedule repeats)
@@ -88,7 +88,7 @@ def test_detuning_extremes_property_any_window(t0, width):
 
 
 # -- the expected photons per step ------------------------------------------------------------
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=examples(60))
 @given(st.lists(st.tuples(st.floats(-50.0, 900.0), st.floats(-0.2, 1.2)), min_size=1, max_size=30),
        st.floats(-8e8, 0.0), st.floats(1e-8, 1e-4), st.sampled_from([0.3, 3.0, 20.0]), st.booleans())
 def test_expected_counts_are_the_scattering_rate_times_the_step(atoms, detuning, dt, s0, focused):
@@ -143,7 +143,7 @@ def test_with_the_light_off_every_atom_keeps_its_speed(pulsed):
     assert np.all(flight.photons == 0)
 
 
-@settings(max_examples=25, deadline=None)
+@settings(max_examples=examples(25))
 @given(st.lists(st.floats(5.0, 2000.0), min_size=1, max_size=40),
        st.lists(st.floats(0.0, 0.0199), min_size=1, max_size=40))
 def test_light_off_property_any_velocities_and_emission_times(speeds, times):
@@ -338,6 +338,7 @@ def test_the_time_step_follows_the_rule_and_halving_it_changes_nothing_beyond_st
     assert abs(coarse.final_velocity[both].mean() - fine.final_velocity[both].mean()) < 0.1 * width
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("key", [
     "rb87-chopped-oven",
     "na23-continuous-focused",

@@ -12,6 +12,8 @@ from scipy import constants as C
 
 from sweepgen.sources import EffusiveSource, GaussianSource
 
+from conftest import examples
+
 RB87_MASS = 1.443160648e-25  # kg, Steck (recalled)
 
 
@@ -68,7 +70,7 @@ def test_gaussian_truncated_normalisation_and_cdf():
     assert stats.kstest(sample, ref.cdf).pvalue > 0.01
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40))
 @given(t=st.floats(1.0, 3000.0), m_u=st.floats(1.0, 300.0), q=st.floats(0.0, 1.0))
 def test_effusive_cdf_monotone_and_bounded(t, m_u, q):
     src = EffusiveSource(t, m_u * C.atomic_mass)

@@ -11,13 +11,15 @@ from hypothesis import given, settings, strategies as st
 
 from sweepgen.table import RenderedTable, TableInfo
 
+from conftest import examples
+
 
 def info_for(count, dtype="<i2", rate=1e6):
     return TableInfo(sample_rate=rate, count=count, period_count=count, dtype=dtype, output="voltage",
                      drive_unit="V", code_scale=1e-3, code_offset=0.5, amplitude=2.0, offset=0.0)
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40))
 @given(count=st.integers(1, 3000), size=st.integers(1, 700), seed=st.integers(0, 2**32 - 1))
 def test_chunks_cover_the_codes_in_order_for_any_chunk_size(count, size, seed):
     codes = np.random.default_rng(seed).integers(-8192, 8192, count).astype("<i2")

@@ -9,6 +9,8 @@ from hypothesis import strategies as st
 from sweepgen import units
 from sweepgen.errors import InputError
 
+from conftest import examples
+
 
 @pytest.mark.parametrize("text,unit,expected", [
     ("300 m/s", "m/s", 300.0),
@@ -47,7 +49,7 @@ def test_errors_name_file_and_key(value, unit, fragment):
     assert "\n" not in message
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=examples(60))
 @given(x=st.floats(-1e12, 1e12, allow_nan=False), prefix=st.sampled_from(["", "k", "M", "G", "m", "u"]))
 def test_round_trip_prefixes(x, prefix):
     factor = {"": 1, "k": 1e3, "M": 1e6, "G": 1e9, "m": 1e-3, "u": 1e-6}[prefix]

@@ -6,9 +6,7 @@ import click
 
 from sweepgen._cli import emit_json, handles_errors, json_option, si, table
 from sweepgen.errors import InputError
-
-#: the default of --atoms (sweepgen.simulate.DEFAULT_ATOMS; kept here so --help stays fast)
-DEFAULT_ATOMS = 10000
+from sweepgen.simulate import DEFAULT_ATOMS
 
 
 def _pct(x) -> str:
