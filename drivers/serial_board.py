@@ -25,7 +25,7 @@ import time
 import zlib
 from typing import ClassVar
 
-from sweepgen import framing as fr
+from sweepgen.wire import frames as fr
 from sweepgen.drivers.base import Delivery, Driver
 from sweepgen.errors import CheckFailed, InputError, InstrumentError
 

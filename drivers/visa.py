@@ -4,7 +4,7 @@ Any VISA resource string works (``TCPIP::host::port::SOCKET``, ``TCPIP::host::IN
 ``USB::...``, ``GPIB::...``); the pure-Python pyvisa backend (``@py``) is the
 default, another is chosen with the ``backend`` option (``upload --backend``).
 Every command comes from the ``[commands]`` templates of the generator profile
-(:mod:`sweepgen.scpi`), so a new instrument needs a profile, never code.
+(:mod:`sweepgen.dialect`), so a new instrument needs a profile, never code.
 
 Sequence (each step's name appears in errors and in the report):
 
@@ -58,9 +58,10 @@ from typing import ClassVar
 
 import numpy as np
 
-from sweepgen import scpi
+from sweepgen.dialect import split_data
 from sweepgen.drivers.base import Delivery, Driver
 from sweepgen.errors import CheckFailed, InputError, InstrumentError
+from sweepgen.wire import block, scpi
 
 DEFAULT_BACKEND = "@py"
 #: error-queue entries read after one step before giving up (a queue holds 16 or so)
@@ -112,10 +113,10 @@ class _Plan:
         }
         self.values = values
         self.rendered = {name: commands.render(name, **values) for name in commands.templates}
-        self.prefix, self.suffix = scpi.split_data(self.rendered["upload"])
+        self.prefix, self.suffix = split_data(self.rendered["upload"])
         if mode == "block":
             self.nbytes = info.count * info.itemsize
-            self.header = scpi.block_header(self.nbytes)
+            self.header = block.block_header(self.nbytes)
         else:
             self.nbytes = None          # known after the list is formatted
             self.header = b""
@@ -454,7 +455,7 @@ class _Session:
             nbytes = plan.nbytes
             # the block header, then the table's bytes; a chunk that would run past the announced
             # length is refused before it is sent (the instrument would read the excess as commands)
-            chunks = scpi.block_parts(plan.wire_chunks(), nbytes)
+            chunks = block.block_parts(plan.wire_chunks(), nbytes)
             head = plan.prefix.encode() + next(chunks)
         total = len(head) + nbytes + len(plan.suffix.encode()) + 1
         deadline = t0 + plan.data_timeout(total)
@@ -483,7 +484,7 @@ class _Session:
         except socket.timeout:
             raise InstrumentError(f"the instrument stopped taking data after {done} of {nbytes} bytes",
                                   step=step) from None
-        except scpi.BlockError as exc:
+        except block.BlockError as exc:
             raise InstrumentError(f"the table does not match its block header: {exc}", step=step) from None
         except _visa_errors() as exc:
             error = self._fail(step, exc, plan.data_timeout(CHUNK_BYTES))

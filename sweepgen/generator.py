@@ -80,7 +80,7 @@ class Generator:
     sampling: Sampling
     output: Output
     link: Link
-    commands: object = None            # sweepgen.scpi.Commands for an AWG, None for a board
+    commands: object = None            # sweepgen.dialect.Commands for an AWG, None for a board
     path: Path | None = field(default=None, compare=False)
 
 
@@ -104,23 +104,47 @@ def generator_from_dict(data: dict, path) -> Generator:
     title = top.string("title")
     kind = top.string("kind", choices=("awg", "board"))
     channels = top.number("channels", 1, integer=True, minimum=1)
+    sampling = _sampling(top)
+    output = _output(top.section("output"))
+    link = _link(top.section("link"))
+    if (kind == "awg") != (link.kind == "visa"):
+        raise top.error("link.kind", f"a generator of kind '{kind}' needs link.kind = "
+                                     f"\"{'visa' if kind == 'awg' else 'serial'}\"")
+    commands = None
+    if kind == "awg":
+        from sweepgen.dialect import parse_commands
 
+        commands = parse_commands(top.section("commands"))
+    elif top.has("commands"):
+        raise top.error("commands", "a ramp board speaks the serial frame protocol; remove [commands]")
+    top.finish()
+    return Generator(key=Path(str(path)).stem, title=title, kind=kind, channels=channels, sampling=sampling,
+                     output=output, link=link, commands=commands, path=Path(str(path)))
+
+
+def _rates(sm: Section) -> tuple:
+    """The ``[sampling] rates`` list: the only sample rates the generator plays, sorted."""
+    raw = sm.raw("rates")
+    if not isinstance(raw, list) or not raw:
+        raise sm.error("rates", "expected a non-empty list of sample rates such as [\"1 MSa/s\", \"10 MSa/s\"]")
+    from sweepgen import units
+
+    rates = tuple(sorted(units.parse(r, "Hz", file=sm.file, key=sm.key("rates"), example="1 MSa/s")
+                         for r in raw))
+    if any(r <= 0 for r in rates):
+        raise sm.error("rates", "sample rates must be greater than zero")
+    for name in ("rate_min", "rate_max"):
+        if sm.has(name):
+            raise sm.error(name, "give either 'rates' or 'rate_min'/'rate_max', not both")
+    return rates
+
+
+def _sampling(top: Section) -> Sampling:
     sm = top.section("sampling")
     rates = None
     if sm.has("rates"):
-        raw = sm.raw("rates")
-        if not isinstance(raw, list) or not raw:
-            raise sm.error("rates", "expected a non-empty list of sample rates such as [\"1 MSa/s\", \"10 MSa/s\"]")
-        from sweepgen import units
-
-        rates = tuple(sorted(units.parse(r, "Hz", file=sm.file, key=sm.key("rates"), example="1 MSa/s")
-                             for r in raw))
-        if any(r <= 0 for r in rates):
-            raise sm.error("rates", "sample rates must be greater than zero")
+        rates = _rates(sm)
         rate_min, rate_max = rates[0], rates[-1]
-        for name in ("rate_min", "rate_max"):
-            if sm.has(name):
-                raise sm.error(name, "give either 'rates' or 'rate_min'/'rate_max', not both")
     else:
         rate_min = sm.quantity("rate_min", "Hz", positive=True, example="1 kSa/s")
         rate_max = sm.quantity("rate_max", "Hz", positive=True, example="100 MSa/s")
@@ -132,9 +156,10 @@ def generator_from_dict(data: dict, path) -> Generator:
     sm.finish()
     if min_length > memory:
         raise top.error("sampling.min_length", f"expected at most the memory ({memory} samples)")
-    sampling = Sampling(rate_min, rate_max, rates, memory, granularity, min_length)
+    return Sampling(rate_min, rate_max, rates, memory, granularity, min_length)
 
-    out = top.section("output")
+
+def _output(out: Section) -> Output:
     okind = out.string("kind", "voltage", choices=("voltage", "frequency"))
     if okind == "voltage":
         lo = out.quantity("range_min", "V", example="-5 V")
@@ -156,10 +181,12 @@ def generator_from_dict(data: dict, path) -> Generator:
     if not output.range_max > output.range_min:
         raise out.error("range_max", "expected a value above range_min")
     out.finish()
+    return output
 
-    ln = top.section("link")
-    lkind = ln.string("kind", choices=("visa", "serial"))
-    if lkind == "visa":
+
+def _link(ln: Section) -> Link:
+    kind = ln.string("kind", choices=("visa", "serial"))
+    if kind == "visa":
         address = ln.string("resource")
         baud = None
     else:
@@ -168,18 +195,4 @@ def generator_from_dict(data: dict, path) -> Generator:
     throughput = ln.quantity("throughput", "B/s", positive=True, example="1 MB/s")
     timeout = ln.quantity("timeout", "s", 5.0, positive=True, example="5 s")
     ln.finish()
-    link = Link(lkind, address, throughput, timeout, baud)
-    if (kind == "awg") != (lkind == "visa"):
-        raise top.error("link.kind", f"a generator of kind '{kind}' needs link.kind = "
-                                     f"\"{'visa' if kind == 'awg' else 'serial'}\"")
-
-    commands = None
-    if kind == "awg":
-        from sweepgen.scpi import parse_commands
-
-        commands = parse_commands(top.section("commands"))
-    elif top.has("commands"):
-        raise top.error("commands", "a ramp board speaks the serial frame protocol; remove [commands]")
-    top.finish()
-    return Generator(key=Path(str(path)).stem, title=title, kind=kind, channels=channels, sampling=sampling,
-                     output=output, link=link, commands=commands, path=Path(str(path)))
+    return Link(kind, address, throughput, timeout, baud)

@@ -1,6 +1,6 @@
 """Helpers for tests and dry runs: the virtual instrument in-process, on a real socket.
 
-Everything here runs the real components: a :class:`sweepgen.instrument.InstrumentServer`
+Everything here runs the real components: a :class:`sweepgen.emulators.instrument.InstrumentServer`
 listening on a free loopback port, reached through pyvisa's pure-Python backend
 with the resource string ``TCPIP::127.0.0.1::<port>::SOCKET``. Use them in your
 own tests of profiles and scenarios::
@@ -41,10 +41,10 @@ def instrument_server(generator="virtual-awg", *, faults=None, identity: str | N
     ``generator`` is a loaded :class:`sweepgen.generator.Generator`, a built-in
     key or a path to a profile; its limits are the instrument's. The server has
     ``resource`` (VISA resource string), ``instrument`` (the
-    :class:`sweepgen.instrument.VirtualInstrument`, to inspect its state) and
+    :class:`sweepgen.emulators.instrument.VirtualInstrument`, to inspect its state) and
     stops when the block ends.
     """
-    from sweepgen.instrument import InstrumentServer, VirtualInstrument
+    from sweepgen.emulators.instrument import InstrumentServer, VirtualInstrument
 
     instrument = VirtualInstrument(_generator(generator), faults=faults, identity=identity, max_line=max_line)
     server = InstrumentServer(instrument, host, port)
@@ -88,8 +88,8 @@ class BoardURL(str):
     """The ``socket://127.0.0.1:PORT`` URL of a running ramp-board emulator.
 
     A plain string (pass it wherever a pyserial URL goes) that also carries the
-    emulator: ``.board`` (:class:`sweepgen.board.BoardEmulator`, e.g.
-    ``.board.committed``) and ``.server`` (:class:`sweepgen.board.BoardServer`).
+    emulator: ``.board`` (:class:`sweepgen.emulators.board.BoardEmulator`, e.g.
+    ``.board.committed``) and ``.server`` (:class:`sweepgen.emulators.board.BoardServer`).
     """
 
     board = None
@@ -102,13 +102,13 @@ def virtual_board(generator="demo-ramp-board", *, faults: dict | None = None, ho
     """Serve the ramp-board emulator on a free loopback port; yield its pyserial URL.
 
     ``generator`` is a loaded generator profile, a built-in key or a path;
-    ``faults`` are the emulator's fault switches (see :mod:`sweepgen.board`)::
+    ``faults`` are the emulator's fault switches (see :mod:`sweepgen.emulators.board`)::
 
         with virtual_board("demo-ramp-board") as url:
             SerialDriver().deliver(table, Delivery(url, generator))
             assert url.board.committed.crc == table.crc32
     """
-    from sweepgen.board import BoardServer
+    from sweepgen.emulators.board import BoardServer
 
     server = BoardServer(_generator(generator), host=host, port=port, faults=faults, **board_options)
     server.start()

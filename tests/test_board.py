@@ -1,4 +1,4 @@
-"""The ramp-board emulator (sweepgen.board): protocol state machine, commit rule, faults, servers."""
+"""The ramp-board emulator (sweepgen.emulators.board): protocol state machine, commit rule, faults, servers."""
 
 from __future__ import annotations
 
@@ -13,8 +13,8 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from sweepgen import framing as fr
-from sweepgen.board import BoardEmulator, BoardServer, FaultPlan, serve_forever
+from sweepgen.wire import frames as fr
+from sweepgen.emulators.board import BoardEmulator, BoardServer, FaultPlan, serve_forever
 from sweepgen.errors import InputError
 from sweepgen.generator import load_generator
 from sweepgen.testing import virtual_board

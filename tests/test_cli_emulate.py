@@ -15,7 +15,8 @@ import pytest
 import pyvisa
 from click.testing import CliRunner
 
-from sweepgen import board, framing as fr
+from sweepgen.emulators import board
+from sweepgen.wire import frames as fr
 from sweepgen.cli import main
 from sweepgen.commands.emulate import BOARD_FAULTS, FRAME_TYPES
 from sweepgen.drivers.base import Delivery

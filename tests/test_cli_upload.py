@@ -9,7 +9,7 @@ import pytest
 from click.testing import CliRunner
 
 from sweepgen.cli import main
-from sweepgen.instrument import Faults
+from sweepgen.emulators.instrument import Faults
 from sweepgen.testing import instrument_server
 
 from conftest import to_toml
@@ -149,7 +149,7 @@ def test_unknown_backend_is_a_usage_error():
 
 
 def test_board_generator_goes_to_the_serial_driver():
-    from sweepgen.board import BoardServer
+    from sweepgen.emulators.board import BoardServer
 
     server = BoardServer("demo-ramp-board").start()
     try:

@@ -20,8 +20,8 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from sweepgen import framing as fr
-from sweepgen.board import BoardEmulator, FaultPlan
+from sweepgen.wire import frames as fr
+from sweepgen.emulators.board import BoardEmulator, FaultPlan
 from sweepgen.drivers import load
 from sweepgen.drivers.base import Delivery
 from sweepgen.drivers.serial_board import SerialDriver, _Plan, _TableBytes

@@ -13,7 +13,7 @@ from sweepgen.drivers.base import Delivery
 from sweepgen.drivers.visa import VisaDriver
 from sweepgen.errors import CheckFailed, InputError, InstrumentError
 from sweepgen.generator import generator_from_dict, load_generator
-from sweepgen.instrument import Faults
+from sweepgen.emulators.instrument import Faults
 from sweepgen.table import Frame, RenderedTable, TableInfo
 from sweepgen.testing import instrument_server, upload_to_virtual_instrument
 

@@ -12,7 +12,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from sweepgen.generator import generator_from_dict, load_generator
-from sweepgen.instrument import Faults
+from sweepgen.emulators.instrument import Faults
 from sweepgen.testing import instrument_server
 
 from conftest import examples

@@ -2,28 +2,16 @@
 
 from __future__ import annotations
 
-import re
+import contextlib
 
 import click
 
 from sweepgen._cli import handles_errors
+from sweepgen.emulators.board import ALWAYS, FAULTS as BOARD_FAULTS
+from sweepgen.wire.frames import REQUESTS, type_name
 
-DEFAULT_PORT = 5025        # the usual port of raw-socket SCPI instruments (common practice)
-DEFAULT_BOARD_PORT = 7450  # sweepgen's own choice for the board emulator (as in demo-ramp-board's link)
-
-
-#: the board emulator's fault switches (sweepgen.board.FAULT_KINDS) with their option help
-BOARD_FAULTS = {
-    "corrupt": "flip one bit of COUNT received frames: they fail their CRC and are refused",
-    "drop": "lose COUNT frames without a reply",
-    "refuse": "refuse COUNT frames as busy",
-    "stall": "answer COUNT frames only after --stall-time",
-    "reset": "reset on COUNT frames, mid-transfer: the unfinished upload and the session are lost",
-    "corrupt_reply": "flip one bit of the reply to COUNT frames",
-    "corrupt_memory": "store COUNT data frames with one bit flipped: the whole-table CRC then fails",
-}
-#: request types of the frame protocol a board fault can strike (sweepgen.framing.REQUESTS)
-FRAME_TYPES = ("hello", "begin", "data", "end", "commit", "status", "arm", "disarm")
+#: request types of the frame protocol a board fault can strike
+FRAME_TYPES = tuple(type_name(t) for t in sorted(REQUESTS))
 
 
 class _Count(click.ParamType):
@@ -36,7 +24,7 @@ class _Count(click.ParamType):
             number = value
         else:
             text = str(value).strip().lower()
-            if text in ("always", "persistent"):
+            if text in ALWAYS:
                 return "always"
             try:
                 number = int(text)
@@ -68,11 +56,6 @@ def _board_fault_options(command):
     for option in extra:
         command = option(command)
     return command
-
-
-def _profile_port(address: str, default: int) -> int:
-    m = re.search(r"::(\d+)::SOCKET$", address or "", re.I) or re.search(r":(\d+)$", address or "")
-    return int(m.group(1)) if m else default
 
 
 @click.command(short_help="Serve the virtual instrument (or the ramp-board emulator) on a TCP port.")
@@ -117,66 +100,85 @@ def command(host, port, generator_ref, board, identity, drop_after, delay, mute,
       sweepgen upload caf-buffer-gas --serial-port socket://127.0.0.1:7450
     """
     from sweepgen.errors import InputError
-    from sweepgen.generator import load_generator
 
     board_faults = {kind: count for kind, count in board_faults.items() if count is not None}
-    board_timing = {"--fault-on": bool(fault_on), "--fault-skip": fault_skip is not None,
-                    "--stall-time": stall_time is not None}
+    timing = {"--fault-on": bool(fault_on), "--fault-skip": fault_skip is not None,
+              "--stall-time": stall_time is not None}
     if host not in ("127.0.0.1", "localhost", "::1"):
         click.echo(f"sweepgen: listening on {host}: other computers on that network can connect", err=True)
     if board:
         if identity or mute or error_after_upload or corrupt_readback or drop_after or delay:
             raise InputError("the fault and identity options belong to the virtual instrument, not to --board",
                              key="--board")
-        from sweepgen import board as board_module
-
-        gen = load_generator(generator_ref or "demo-ramp-board")
-        if gen.kind != "board":
-            raise InputError(f"generator '{gen.key}' is of kind '{gen.kind}'; --board needs a ramp board profile",
-                             key="--generator")
-        port = _profile_port(gen.link.address, DEFAULT_BOARD_PORT) if port is None else port
-        faults = dict(board_faults)
-        if faults:
-            if fault_on:
-                kinds = {t.lower() for t in fault_on}
-                faults["on"] = "any" if "any" in kinds else sorted(kinds)
-            if fault_skip is not None:
-                faults["skip"] = fault_skip
-            if stall_time is not None:
-                faults["stall_time"] = stall_time
-        else:
-            given = [name for name, used in board_timing.items() if used]
-            if given:
-                raise InputError("sets how board faults strike, but no board fault is switched on (--corrupt, "
-                                 "--drop, --refuse, --stall, --reset, --corrupt-reply or --corrupt-memory)",
-                                 key=given[0])
-        active = board_module.FaultPlan.parse(faults, default_stall=2.0 * gen.link.timeout).describe()
-
-        def ready_board(bound_port):
-            click.echo(f"socket://{f'[{host}]' if ':' in host else host}:{bound_port}")   # pyserial URL
-            note = f" with faults: {', '.join(active)}" if active else ""
-            click.echo(f"ramp-board emulator ({gen.key}) listening{note}; Ctrl-C stops it", err=True)
-
-        try:
-            board_module.serve_forever(host, port, gen, faults=faults or None, ready=ready_board)
-        except KeyboardInterrupt:
-            click.echo("ramp-board emulator stopped", err=True)
-        except OSError as exc:
-            raise InputError(f"cannot listen on {host}:{port} ({exc.strerror or exc})", key="--port") from None
+        faults = _board_faults(board_faults, timing, fault_on, fault_skip, stall_time)
+        _serve_board(host, port, generator_ref, faults)
         return
-
     given = [f"--{kind.replace('_', '-')}" for kind in board_faults]
-    given += [name for name, used in board_timing.items() if used]
+    given += [name for name, used in timing.items() if used]
     if given:
         raise InputError("the ramp-board fault options need --board", key=given[0])
-    from sweepgen.instrument import Faults, serve_forever
+    from sweepgen.emulators.instrument import Faults
 
-    gen = load_generator(generator_ref or "virtual-awg")
-    if gen.kind != "awg":
-        raise InputError(f"generator '{gen.key}' is a ramp board; serve it with --board", key="--generator")
-    port = _profile_port(gen.link.address, DEFAULT_PORT) if port is None else port
     faults = Faults(drop_after=drop_after, delay=delay, mute=mute, error_after_upload=error_after_upload,
                     corrupt_readback=corrupt_readback)
+    _serve_instrument(host, port, generator_ref, faults, identity)
+
+
+def _board_faults(counts: dict, timing: dict, fault_on, fault_skip, stall_time) -> dict:
+    """The board's fault switches from the options; how faults strike needs a fault to strike."""
+    from sweepgen.errors import InputError
+
+    faults = dict(counts)
+    if not faults:
+        given = [name for name, used in timing.items() if used]
+        if given:
+            raise InputError("sets how board faults strike, but no board fault is switched on (--corrupt, "
+                             "--drop, --refuse, --stall, --reset, --corrupt-reply or --corrupt-memory)",
+                             key=given[0])
+        return faults
+    if fault_on:
+        kinds = {t.lower() for t in fault_on}
+        faults["on"] = "any" if "any" in kinds else sorted(kinds)
+    if fault_skip is not None:
+        faults["skip"] = fault_skip
+    if stall_time is not None:
+        faults["stall_time"] = stall_time
+    return faults
+
+
+def _load(generator_ref, default: str, kind: str, wrong: str):
+    from sweepgen.errors import InputError
+    from sweepgen.generator import load_generator
+
+    gen = load_generator(generator_ref or default)
+    if gen.kind != kind:
+        raise InputError(wrong.format(key=gen.key, kind=gen.kind), key="--generator")
+    return gen
+
+
+def _serve_board(host, port, generator_ref, faults: dict) -> None:
+    from sweepgen.emulators import board
+
+    gen = _load(generator_ref, board.DEFAULT_GENERATOR, "board",
+                "generator '{key}' is of kind '{kind}'; --board needs a ramp board profile")
+    port = board.listen_port(gen, port)
+    active = board.FaultPlan.parse(faults, default_stall=2.0 * gen.link.timeout).describe()
+
+    def ready(bound_port):
+        click.echo(f"socket://{f'[{host}]' if ':' in host else host}:{bound_port}")   # pyserial URL
+        note = f" with faults: {', '.join(active)}" if active else ""
+        click.echo(f"ramp-board emulator ({gen.key}) listening{note}; Ctrl-C stops it", err=True)
+
+    with _listening(host, port, "ramp-board emulator"):
+        board.serve_forever(host, port, gen, faults=faults or None, ready=ready)
+
+
+def _serve_instrument(host, port, generator_ref, faults, identity) -> None:
+    from sweepgen.emulators import instrument
+
+    gen = _load(generator_ref, instrument.DEFAULT_GENERATOR, "awg",
+                "generator '{key}' is a ramp board; serve it with --board")
+    port = instrument.listen_port(gen, port)
 
     def ready(resource):
         click.echo(resource)
@@ -184,9 +186,18 @@ def command(host, port, generator_ref, board, identity, drop_after, delay, mute,
         note = f" with faults: {', '.join(active)}" if active else ""
         click.echo(f"virtual instrument ({gen.key}) listening{note}; Ctrl-C stops it", err=True)
 
+    with _listening(host, port, "virtual instrument"):
+        instrument.serve_forever(host, port, gen, faults=faults, ready=ready, identity=identity)
+
+
+@contextlib.contextmanager
+def _listening(host, port, what: str):
+    """Ctrl-C stops the server with a note; a port that cannot be bound is a usage error."""
+    from sweepgen.errors import InputError
+
     try:
-        serve_forever(host, port, gen, faults=faults, ready=ready, identity=identity)
+        yield
     except KeyboardInterrupt:
-        click.echo("virtual instrument stopped", err=True)
+        click.echo(f"{what} stopped", err=True)
     except OSError as exc:
         raise InputError(f"cannot listen on {host}:{port} ({exc.strerror or exc})", key="--port") from None

@@ -25,7 +25,7 @@ import time
 
 import numpy as np
 
-from sweepgen import scpi
+from sweepgen.wire import block
 from sweepgen.drivers.base import Delivery
 from sweepgen.drivers.visa import VisaDriver
 from sweepgen.generator import load_generator
@@ -77,7 +77,7 @@ def bare_socket(server, codes: np.ndarray) -> float:
         sock.sendall(b"FORM:DATA INT,16;:FORM:BORD SWAP\n")
         payload = memoryview(codes).cast("B")
         t0 = time.perf_counter()
-        sock.sendall(b"TRAC:DATA SWEEP," + scpi.block_header(payload.nbytes))
+        sock.sendall(b"TRAC:DATA SWEEP," + block.block_header(payload.nbytes))
         sock.sendall(payload)
         sock.sendall(b"\n*OPC?\n")
         reply = read_line(sock)

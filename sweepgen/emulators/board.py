@@ -48,132 +48,25 @@ first one with a count left, in the order of the table above.
 
 from __future__ import annotations
 
-import contextlib
 import os
 import select
 import socket
 import threading
 import time
 import zlib
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
-from sweepgen import framing as fr
-from sweepgen.errors import InputError
+from sweepgen.emulators._board_faults import ALWAYS, FAULT_KINDS, FAULTS, FaultPlan
+from sweepgen.emulators._server import LOOPBACK, LoopbackServer, profile_port
+from sweepgen.wire import frames as fr
 
-FAULT_KINDS = ("corrupt", "drop", "refuse", "stall", "reset", "corrupt_reply", "corrupt_memory")
-ALWAYS = ("always", "persistent")
+__all__ = ["ALWAYS", "FAULTS", "FAULT_KINDS", "BoardEmulator", "BoardServer", "BoardThread", "CommittedTable",
+           "FaultPlan", "capabilities_for", "listen_port", "serve_forever"]
+
 DEFAULT_GENERATOR = "demo-ramp-board"
+DEFAULT_PORT = 7450        # sweepgen's own choice (as in demo-ramp-board's link)
 DEFAULT_MAX_PAYLOAD = 4096 + fr.DATA_PREFIX
 GAP_TIMEOUT = 0.1          # s: a partial frame is discarded after this much silence
-
-
-# --------------------------------------------------------------------------- faults
-
-
-@dataclass
-class FaultPlan:
-    """Parsed fault switches; see the module docstring for the keys."""
-
-    counts: dict = field(default_factory=dict)      # kind -> remaining count, None = always
-    on: frozenset | None = frozenset({fr.MsgType.DATA})   # eligible types; None = any request
-    skip: int = 1
-    stall_time: float = 4.0                         # s; BoardEmulator sets twice the profile's link timeout
-    fired: dict = field(default_factory=dict)       # kind -> times applied
-    seen: int = 0                                   # eligible frames seen
-
-    @classmethod
-    def parse(cls, faults: dict | None, *, default_stall: float = 4.0) -> "FaultPlan":
-        faults = dict(faults or {})
-        plan = cls(stall_time=float(default_stall))
-        for key in list(faults):
-            value = faults.pop(key)
-            if key in FAULT_KINDS:
-                plan.counts[key] = _count(key, value)
-            elif key == "on":
-                plan.on = _types(value)
-            elif key == "skip":
-                if isinstance(value, bool) or not isinstance(value, int) or value < 0:
-                    raise InputError(f"expected a whole number of frames >= 0, got {value!r}", key="faults.skip")
-                plan.skip = value
-            elif key == "stall_time":
-                if isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0:
-                    raise InputError(f"expected a time in seconds > 0, got {value!r}", key="faults.stall_time")
-                plan.stall_time = float(value)
-            else:
-                raise InputError(f"unknown fault switch (known: {', '.join(FAULT_KINDS)}, on, skip, "
-                                 "stall_time)", key=f"faults.{key}")
-        return plan
-
-    def eligible(self, msg_type: int) -> bool:
-        return self.on is None and msg_type in fr.REQUESTS or self.on is not None and msg_type in self.on
-
-    def pick(self, msg_type: int) -> str | None:
-        """The fault to apply to a received frame of ``msg_type`` (consumes one count)."""
-        if not self.counts or not self.eligible(msg_type):
-            return None
-        self.seen += 1
-        if self.seen <= self.skip:
-            return None
-        for kind in FAULT_KINDS:
-            if kind not in self.counts:
-                continue
-            left = self.counts[kind]
-            if left is None or left > 0:
-                if left is not None:
-                    self.counts[kind] = left - 1
-                self.fired[kind] = self.fired.get(kind, 0) + 1
-                return kind
-        return None
-
-    def describe(self) -> list[str]:
-        """The active faults in words, e.g. ``["drop 2 data frames", "stall every data frame (2 s)"]``."""
-        if not self.counts:
-            return []
-        types = "" if self.on is None else "/".join(fr.type_name(t) for t in sorted(self.on)) + " "
-
-        def frames(n):
-            return f"{n} {types}frame{'' if n == 1 else 's'}"
-
-        verbs = {"corrupt": "corrupt", "drop": "drop", "refuse": "refuse", "stall": "stall",
-                 "reset": "reset on", "corrupt_reply": "corrupt the reply to",
-                 "corrupt_memory": "corrupt in memory"}
-        out = []
-        for kind in FAULT_KINDS:
-            if kind in self.counts:
-                left = self.counts[kind]
-                text = f"{verbs[kind]} {f'every {types}frame' if left is None else frames(left)}"
-                out.append(text + (f" ({self.stall_time:g} s)" if kind == "stall" else ""))
-        if self.skip:
-            out.append(f"after {frames(self.skip)} unharmed")
-        return out
-
-    def refund(self, kind: str) -> None:
-        """Give back a count taken by :meth:`pick` for a fault that did not apply."""
-        if self.counts.get(kind) is not None:
-            self.counts[kind] += 1
-        self.fired[kind] -= 1
-
-
-def _count(key, value):
-    if isinstance(value, str) and value.strip().lower() in ALWAYS or value is True or value == -1:
-        return None
-    if isinstance(value, bool) or not isinstance(value, int) or value < 0:
-        raise InputError(f"expected a count of frames (the first N times) or \"always\", got {value!r}",
-                         key=f"faults.{key}")
-    return value
-
-
-def _types(value):
-    if isinstance(value, str):
-        if value.strip().lower() == "any":
-            return None
-        value = [value]
-    try:
-        return frozenset(fr.MsgType[str(v).strip().upper()] for v in value)
-    except (KeyError, TypeError):
-        names = ", ".join(t.name.lower() for t in sorted(fr.REQUESTS))
-        raise InputError(f"expected \"any\" or message type names ({names}), got {value!r}",
-                         key="faults.on") from None
 
 
 # --------------------------------------------------------------------------- the board
@@ -568,79 +461,46 @@ class BoardThread:
         return False
 
 
-class BoardServer:
+class BoardServer(LoopbackServer):
     """The board emulator on a TCP port (one host connection at a time).
 
     The board's state (its committed table) persists across connections, as a
     powered board's does when a host closes and reopens the port.
     """
 
-    def __init__(self, generator=None, *, host: str = "127.0.0.1", port: int = 0,
-                 faults: dict | None = None, board: BoardEmulator | None = None, **board_options):
+    name = "sweepgen-board-server"
+
+    def __init__(self, generator=None, *, host: str = LOOPBACK, port: int = 0,
+                 faults: dict | None = None, board: BoardEmulator | None = None,
+                 stop: threading.Event | None = None, **board_options):
         self.board = board if board is not None else BoardEmulator(generator, faults=faults, **board_options)
-        self.host = host
-        self._listener = socket.create_server((host, port))
-        self._listener.settimeout(0.1)
-        self.port = self._listener.getsockname()[1]
-        self._stop = threading.Event()
-        self._thread = None
-        self.connections = 0
+        super().__init__(host, port, stop=stop)
 
     @property
     def url(self) -> str:
         host = f"[{self.host}]" if ":" in self.host else self.host
         return f"socket://{host}:{self.port}"
 
-    def serve_forever(self) -> None:
-        """Accept and serve connections until :meth:`stop` (or Ctrl-C in the calling thread)."""
-        try:
-            while not self._stop.is_set():
-                try:
-                    conn, _ = self._listener.accept()
-                except socket.timeout:
-                    continue
-                except OSError:
-                    if self._stop.is_set():
-                        break
-                    raise
-                self.connections += 1
-                with conn:
-                    conn.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
-                    self.board.serve_socket(conn, self._stop)
-                with self.board._lock:
-                    self.board.decoder.reset()
-        finally:
-            with contextlib.suppress(OSError):
-                self._listener.close()
-
-    def start(self) -> "BoardServer":
-        self._thread = threading.Thread(target=self.serve_forever, daemon=True, name="sweepgen-board-server")
-        self._thread.start()
-        return self
-
-    def stop(self, timeout: float = 5.0) -> None:
-        self._stop.set()
-        if self._thread is not None:
-            self._thread.join(timeout)
-        with contextlib.suppress(OSError):
-            self._listener.close()
-
-    def __enter__(self):
-        return self.start() if self._thread is None else self
-
-    def __exit__(self, *exc):
-        self.stop()
-        return False
+    def serve_connection(self, conn) -> None:
+        self.board.serve_socket(conn, self.stopping)
+        with self.board._lock:
+            self.board.decoder.reset()
 
 
-def serve_forever(host: str, port: int, generator, faults: dict | None = None, ready=None, *,
+def listen_port(generator, port: int | None = None) -> int:
+    """``port``, else the port named in the profile's link, else :data:`DEFAULT_PORT`."""
+    return profile_port(generator.link.address, DEFAULT_PORT) if port is None else port
+
+
+def serve_forever(host: str, port: int | None, generator, faults: dict | None = None, ready=None, *,
                   stop: threading.Event | None = None) -> None:
     """Serve the board emulator on ``host:port`` until interrupted (``sweepgen emulate --board``).
 
     Parameters
     ----------
-    host, port : str, int
-        Where to listen (``port = 0`` picks a free port).
+    host, port : str, int or None
+        Where to listen (``port = 0`` picks a free port; None: the port of the
+        profile's link, else :data:`DEFAULT_PORT`).
     generator : Generator, str or None
         The board's profile (loaded, a key or a path; None: ``demo-ramp-board``).
     faults : dict, optional
@@ -650,9 +510,9 @@ def serve_forever(host: str, port: int, generator, faults: dict | None = None, r
     stop : threading.Event, optional
         Setting it ends the server (otherwise it runs until Ctrl-C).
     """
-    server = BoardServer(generator, host=host, port=port, faults=faults)
-    if stop is not None:
-        server._stop = stop
+    generator = _load_generator(generator)
+    port = listen_port(generator, port)
+    server = BoardServer(generator, host=host, port=port, faults=faults, stop=stop)
     if ready is not None:
         ready(server.port)
     try:

@@ -1,4 +1,4 @@
-"""Frame codec of the serial ramp-board protocol (sweepgen.framing)."""
+"""Frame codec of the serial ramp-board protocol (sweepgen.wire.frames)."""
 
 from __future__ import annotations
 
@@ -12,7 +12,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 
 import sweepgen.drivers
-from sweepgen import framing as fr
+from sweepgen.wire import frames as fr
 
 from conftest import examples
 

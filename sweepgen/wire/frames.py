@@ -2,7 +2,7 @@
 
 Pure functions and small data classes, no I/O. Both sides use this module: the
 ``serial`` driver (:mod:`sweepgen.drivers.serial_board`) and the board emulator
-(:mod:`sweepgen.board`). The protocol itself is specified in
+(:mod:`sweepgen.emulators.board`). The protocol itself is specified in
 ``drivers/serial_protocol.md`` (shipped as ``sweepgen/drivers/serial_protocol.md``);
 the constants and layouts here follow that document, which is the reference.
 
