@@ -50,11 +50,21 @@ generator
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 
+from sweepgen._format import si
 from sweepgen.errors import CheckFailed, PlanError
+
+if TYPE_CHECKING:
+    from sweepgen.generator import Generator
+    from sweepgen.laser import Laser
+    from sweepgen.planner import Plan
+    from sweepgen.response import Tracking
+    from sweepgen.sampling import Quantisation, RateChoice
+    from sweepgen.scenario import Scenario
 
 #: A finding warns when its margin is below this fraction.
 WARN_MARGIN = 0.2
@@ -82,35 +92,21 @@ class Finding:
                 "unit": self.unit, "margin": self.margin, "message": self.message, "advice": self.advice}
 
 
-def _status(margin: float | None, failed: bool) -> str:
-    if failed:
-        return "fail"
-    if margin is not None and margin < WARN_MARGIN:
-        return "warn"
-    return "pass"
+def _finding(rule, value, limit, unit, margin, failed, message, advice="", warns=True) -> Finding:
+    """The one place a status is decided: fail, else warn when near the limit (and ``warns``), else pass."""
+    near = warns and margin is not None and margin < WARN_MARGIN
+    status = "fail" if failed else "warn" if near else "pass"
+    return Finding(rule, status, value, limit, unit, margin, message, advice if failed or near else "")
 
 
-def upper(rule, value, limit, unit, message, advice="") -> Finding:
-    """A finding for ``value ≤ limit``."""
-    value, limit = float(value), float(limit)
+def _upper_room(value: float, limit: float) -> tuple[float, bool]:
+    """``(margin, failed)`` of ``value ≤ limit``."""
     margin = (limit - value) / abs(limit) if limit else (0.0 if value <= 0 else -math.inf)
-    failed = value > limit * (1 + 1e-12) + (0 if limit else 1e-300)
-    return Finding(rule, _status(margin, failed), value, limit, unit, margin, message, advice if failed or
-                   margin < WARN_MARGIN else "")
+    return margin, value > limit * (1 + 1e-12) + (0 if limit else 1e-300)
 
 
-def lower(rule, value, limit, unit, message, advice="") -> Finding:
-    """A finding for ``value ≥ limit``."""
-    value, limit = float(value), float(limit)
-    margin = (value - limit) / abs(limit) if limit else math.inf
-    failed = value < limit * (1 - 1e-12)
-    return Finding(rule, _status(margin, failed), value, limit, unit, margin, message,
-                   advice if failed or margin < WARN_MARGIN else "")
-
-
-def within(rule, vmin, vmax, lo, hi, unit, message, advice="") -> Finding:
-    """A finding for ``lo ≤ vmin ≤ vmax ≤ hi``; value and limit are the extreme nearer its edge."""
-    vmin, vmax, lo, hi = float(vmin), float(vmax), float(lo), float(hi)
+def _range_room(vmin: float, vmax: float, lo: float, hi: float) -> tuple[float, float, float, bool]:
+    """``(value, limit, margin, failed)`` of ``lo ≤ vmin ≤ vmax ≤ hi``: the extreme nearer its edge."""
     half = (hi - lo) / 2.0 if math.isfinite(hi - lo) else math.inf
     room_hi, room_lo = hi - vmax, vmin - lo
     if room_hi <= room_lo:
@@ -119,9 +115,27 @@ def within(rule, vmin, vmax, lo, hi, unit, message, advice="") -> Finding:
         value, limit, room = vmin, lo, room_lo
     margin = room / half if math.isfinite(half) and half > 0 else (math.inf if room >= 0 else -math.inf)
     tol = 1e-12 * max(abs(lo), abs(hi) if math.isfinite(hi) else 0.0, 1e-300)
-    failed = room < -tol
-    return Finding(rule, _status(margin, failed), value, limit, unit, margin, message,
-                   advice if failed or margin < WARN_MARGIN else "")
+    return value, limit, margin, room < -tol
+
+
+def upper(rule, value, limit, unit, message, advice="", *, warns=True) -> Finding:
+    """A finding for ``value ≤ limit``; with ``warns=False`` nearness to the limit is no warning."""
+    value, limit = float(value), float(limit)
+    margin, failed = _upper_room(value, limit)
+    return _finding(rule, value, limit, unit, margin, failed, message, advice, warns)
+
+
+def lower(rule, value, limit, unit, message, advice="") -> Finding:
+    """A finding for ``value ≥ limit``."""
+    value, limit = float(value), float(limit)
+    margin = (value - limit) / abs(limit) if limit else math.inf
+    return _finding(rule, value, limit, unit, margin, value < limit * (1 - 1e-12), message, advice)
+
+
+def within(rule, vmin, vmax, lo, hi, unit, message, advice="") -> Finding:
+    """A finding for ``lo ≤ vmin ≤ vmax ≤ hi``; value and limit are the extreme nearer its edge."""
+    value, limit, margin, failed = _range_room(float(vmin), float(vmax), float(lo), float(hi))
+    return _finding(rule, value, limit, unit, margin, failed, message, advice)
 
 
 def info(rule, message, value=None, unit="") -> Finding:
@@ -131,17 +145,16 @@ def info(rule, message, value=None, unit="") -> Finding:
 
 @dataclass
 class CheckReport:
-    """All findings of one check, and what was computed on the way."""
+    """All findings of one check, and what they judged."""
 
-    findings: list
-    scenario: object = None
-    plan: object = None
-    laser: object = None
-    generator: object = None
-    rate: object = None              # sampling.RateChoice
-    quant: object = None             # sampling.Quantisation
-    tracking: object = None          # response.Tracking
-    extra: dict = field(default_factory=dict)
+    findings: list[Finding]
+    scenario: Scenario | None = None
+    plan: Plan | None = None
+    laser: Laser | None = None
+    generator: Generator | None = None
+    rate: RateChoice | None = None              # the sample rate judged (None: no rate plays the sweep)
+    quant: Quantisation | None = None           # the codes judged (None: no safe code window)
+    tracking: Tracking | None = None            # the simulated actuator over one period
 
     @property
     def ok(self) -> bool:
@@ -192,61 +205,28 @@ def require_playable(report: CheckReport) -> CheckReport:
 
 
 # ----------------------------------------------------------------------------------
-def check(scenario, laser=None, generator=None, *, rate: float | None = None) -> CheckReport:
-    """Check ``scenario`` against its laser and generator (or the ones given).
+# The design: the planner's physics
+# ----------------------------------------------------------------------------------
+def check_design(report: CheckReport):
+    """Plan ``report.scenario`` and add the design rules to ``report``.
 
-    Parameters
-    ----------
-    scenario : sweepgen.scenario.Scenario
-    laser : sweepgen.laser.Laser, optional
-        Default: the scenario's ``laser``.
-    generator : sweepgen.generator.Generator, optional
-        Default: the scenario's ``generator``.
-    rate : float, optional
-        Sample rate (Sa/s) overriding ``[drive] sample_rate``.
-
-    Returns
-    -------
-    CheckReport
-        ``report.ok`` is False when any rule fails. Bad input (unreadable
-        profiles) raises :class:`sweepgen.errors.InputError` instead.
+    Returns the plan, or None when the design fails so badly that the hardware
+    rules have nothing to judge (the planner refuses the sweep, or one period
+    cannot hold it).
     """
-    from sweepgen.generator import load_generator
-    from sweepgen.laser import load_laser
     from sweepgen.planner import plan as make_plan
 
-    if laser is None:
-        laser = load_laser(scenario.laser_ref, relative_to=scenario.base_dir, file=str(scenario.path),
-                           key="laser") if scenario.laser_ref else _missing(scenario, "laser")
-    if generator is None:
-        generator = load_generator(scenario.generator_ref, relative_to=scenario.base_dir,
-                                   file=str(scenario.path), key="generator") \
-            if scenario.generator_ref else _missing(scenario, "generator")
-    report = CheckReport([], scenario=scenario, laser=laser, generator=generator)
-    add = report.findings.append
-
+    scenario = report.scenario
     try:
         plan = make_plan(scenario)
     except PlanError as exc:
-        add(_plan_failure(scenario, exc))
-        return report
+        report.findings.append(_plan_failure(scenario, exc))
+        return None
     report.plan = plan
-    for f in physics_findings(plan):
-        add(f)
+    report.findings.extend(physics_findings(plan))
     period = period_finding(plan)
-    add(period)
-    if period.status == "fail":
-        return report
-    schedule = plan.schedule()
-    hardware_findings(report, schedule, rate)
-    return report
-
-
-def _missing(scenario, what):
-    from sweepgen.errors import InputError
-
-    raise InputError(f"no {what} named; add  {what} = \"...\"  (a built-in key or a path) to check the sweep",
-                     file=str(scenario.path), key=what)
+    report.findings.append(period)
+    return None if period.status == "fail" else plan
 
 
 def _plan_failure(scenario, exc: PlanError) -> Finding:
@@ -316,184 +296,250 @@ def period_finding(plan) -> Finding:
                  "lengthen chirp.period, or shorten chirp.hold / chirp.return_time")
 
 
-def _dense(schedule, n=GRID):
-    ts = [np.linspace(seg.start, np.nextafter(seg.end, seg.start), n) for seg in schedule.segments]
-    return np.concatenate(ts)
+# ----------------------------------------------------------------------------------
+# The hardware: what one output plays
+# ----------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class SweepSamples:
+    """The sweep on a dense grid over one period, for the rules that look at every instant."""
+
+    time: np.ndarray           # s, GRID points per segment
+    detuning: np.ndarray       # Hz
+    chirp_rate: np.ndarray     # Hz/s, dΔ/dt
+    drive: np.ndarray          # drive units
+    gain: np.ndarray           # drive units per Hz of detuning, d drive/dΔ
+
+    @classmethod
+    def of(cls, schedule, chain, n: int = GRID) -> "SweepSamples":
+        t = np.concatenate([np.linspace(seg.start, np.nextafter(seg.end, seg.start), n)
+                            for seg in schedule.segments])
+        det = schedule.detuning(t)
+        return cls(t, det, schedule.rate(t), chain.to_drive(det), chain.gain(det))
 
 
-def _fmt(value, unit):
-    from sweepgen._cli import si
+def check_hardware(report: CheckReport, playing) -> None:
+    """Add the laser, generator, sample-rate, quantisation and tracking rules for ``playing``.
 
-    return si(value, unit)
+    ``playing`` (a :class:`sweepgen.playback.ChannelPlayback`) holds the drive
+    range, sample-rate choice and quantisation computed once by the playback
+    service; the rules judge them and never compute them again.
+    """
+    sweep = SweepSamples.of(playing.schedule, playing.laser.chain)
+    add = report.findings.extend
+    add(laser_findings(playing, sweep))
+    kind = output_kind_finding(playing)
+    report.findings.append(kind)
+    if kind.status == "fail":
+        return
+    add(generator_findings(playing))
+    choice = playing.rate_choice
+    if choice is None:
+        report.findings.append(Finding("sample_rate", "fail", None, None, "Sa/s", None, playing.rate_refusal,
+                                       "see the message: the limit that wins is named"))
+        return
+    report.rate = choice
+    add(sample_rate_findings(playing))
+    report.quant = quant = _judged_quantisation(report, playing)
+    if quant is not None:
+        add(quantisation_findings(playing, quant, sweep))
+    tracking_findings(report, playing.schedule, choice.rate, quant)
 
 
-def hardware_findings(report: CheckReport, schedule, rate=None) -> None:
-    """Laser and generator rules for a schedule; appends to ``report.findings``."""
-    from sweepgen import sampling
-    from sweepgen.render import drive_range
+def _judged_quantisation(report: CheckReport, playing):
+    """The codes the remaining rules judge: none for a drive a range rule already refused; a
+    quantisation refused for another reason fails ``generator_range``."""
+    if any(f.status == "fail" and f.rule in ("actuator_range", "generator_range") for f in report.findings):
+        return None
+    if playing.quantisation is None:
+        report.findings.append(Finding("generator_range", "fail", None, None, playing.drive_unit, None,
+                                       playing.quantisation_refusal, "see the message"))
+    return playing.quantisation
 
-    plan, laser, gen = report.plan, report.laser, report.generator
-    sc = plan.scenario
-    chain, lim = laser.chain, laser.limits
-    unit = chain.drive_unit
-    add = report.findings.append
 
-    t = _dense(schedule)
-    det = schedule.detuning(t)
-    drate = schedule.rate(t)
-    drive = chain.to_drive(det)
-    gain = chain.gain(det)
-    # the exact extremes (as the renderer finds them), so the codes chosen here are the ones rendered and
-    # every sample the tracking simulation plays lies inside the checked code window
-    dmin, dmax = drive_range(schedule, chain)
+# -- laser rules -------------------------------------------------------------------
+def laser_findings(playing, sweep: SweepSamples) -> list[Finding]:
+    """The laser's limits: mode-hop-free range, chirp and return rates, the actuator's safe input
+    range, slew, and each stage's own range."""
+    laser, schedule = playing.laser, playing.schedule
+    return [_mode_hop_free(laser.limits, sweep), *_chirp_rates(laser.limits, schedule),
+            _actuator_range(laser.limits, playing), _slew_rate(laser.limits, playing.drive_unit, sweep),
+            *_stage_ranges(laser.chain, sweep)]
 
-    span = float(np.max(det) - np.min(det))
+
+def _mode_hop_free(lim, sweep) -> Finding:
+    span = float(np.max(sweep.detuning) - np.min(sweep.detuning))
     if lim.mode_hop_free is None:
-        add(info("mode_hop_free", f"the laser itself is not tuned (no limits.mode_hop_free); the sweep spans "
-                                  f"{_fmt(span, 'Hz')}", span, "Hz"))
-    else:
-        add(upper("mode_hop_free", span, lim.mode_hop_free, "Hz",
-                  f"the sweep spans {_fmt(span, 'Hz')} of a {_fmt(lim.mode_hop_free, 'Hz')} mode-hop-free range",
-                  "slow over a smaller velocity range, or use a laser with a wider mode-hop-free range"))
+        return info("mode_hop_free", f"the laser itself is not tuned (no limits.mode_hop_free); the sweep spans "
+                                     f"{si(span, 'Hz')}", span, "Hz")
+    return upper("mode_hop_free", span, lim.mode_hop_free, "Hz",
+                 f"the sweep spans {si(span, 'Hz')} of a {si(lim.mode_hop_free, 'Hz')} mode-hop-free range",
+                 "slow over a smaller velocity range, or use a laser with a wider mode-hop-free range")
+
+
+def _chirp_rates(lim, schedule) -> list[Finding]:
+    out = []
     for kind, rule, advice in (("chirp", "chirp_rate", "lower chirp.margin or light.saturation (gentler chirp)"),
                                ("return", "return_rate", "lengthen chirp.return_time")):
         if schedule.segment(kind) is None:
-            add(info(rule, f"no {kind} segment"))
+            out.append(info(rule, f"no {kind} segment"))
             continue
         r = schedule.max_abs_rate(kind)
-        add(upper(rule, r, lim.max_chirp_rate, "Hz/s",
-                  f"|dΔ/dt| during the {kind} reaches {_fmt(r, 'Hz/s')}; the laser allows {_fmt(lim.max_chirp_rate, 'Hz/s')}",
-                  advice))
-    add(within("actuator_range", dmin, dmax, lim.input_min, lim.input_max, unit,
-               f"the drive spans {dmin:.5g} to {dmax:.5g} {unit}; the actuator's safe input range is "
-               f"{lim.input_min:.5g} to {lim.input_max:.5g} {unit}",
-               "move the chain's set point (set_point / reference) so the sweep sits inside the safe range, "
-               "or slow over a smaller velocity range"))
-    slew = float(np.max(np.abs(gain * drate)))
+        out.append(upper(rule, r, lim.max_chirp_rate, "Hz/s",
+                         f"|dΔ/dt| during the {kind} reaches {si(r, 'Hz/s')}; the laser allows "
+                         f"{si(lim.max_chirp_rate, 'Hz/s')}", advice))
+    return out
+
+
+def _actuator_range(lim, playing) -> Finding:
+    dmin, dmax = playing.drive_range
+    unit = playing.drive_unit
+    return within("actuator_range", dmin, dmax, lim.input_min, lim.input_max, unit,
+                  f"the drive spans {dmin:.5g} to {dmax:.5g} {unit}; the actuator's safe input range is "
+                  f"{lim.input_min:.5g} to {lim.input_max:.5g} {unit}",
+                  "move the chain's set point (set_point / reference) so the sweep sits inside the safe range, "
+                  "or slow over a smaller velocity range")
+
+
+def _slew_rate(lim, unit, sweep) -> Finding:
+    slew = float(np.max(np.abs(sweep.gain * sweep.chirp_rate)))
     if lim.max_slew is None:
-        add(info("slew_rate", f"the drive changes at up to {_fmt(slew, unit + '/s')} (no limits.max_slew given)",
-                 slew, f"{unit}/s"))
-    else:
-        add(upper("slew_rate", slew, lim.max_slew, f"{unit}/s",
-                  f"the drive changes at up to {_fmt(slew, unit + '/s')}; the actuator allows "
-                  f"{_fmt(lim.max_slew, unit + '/s')}", "lengthen chirp.return_time or lower the chirp rate"))
-    for st, up in chain.upstream_values(det):
+        return info("slew_rate", f"the drive changes at up to {si(slew, unit + '/s')} (no limits.max_slew given)",
+                    slew, f"{unit}/s")
+    return upper("slew_rate", slew, lim.max_slew, f"{unit}/s",
+                 f"the drive changes at up to {si(slew, unit + '/s')}; the actuator allows "
+                 f"{si(lim.max_slew, unit + '/s')}", "lengthen chirp.return_time or lower the chirp rate")
+
+
+def _stage_ranges(chain, sweep) -> list[Finding]:
+    out = []
+    for st, up in chain.upstream_values(sweep.detuning):
         for r in st.ranges():
             vals = st.range_values(up, r)
-            add(within("stage_range", float(np.min(vals)), float(np.max(vals)), r.low, r.high, r.unit,
-                       f"{r.label}: {np.min(vals):.6g} to {np.max(vals):.6g} {r.unit}, range "
-                       f"{r.low:.6g} to {r.high:.6g} {r.unit}" + (f" ({r.key})" if r.key else ""),
-                       "move the set point of the stage, or narrow the sweep"))
+            out.append(within("stage_range", float(np.min(vals)), float(np.max(vals)), r.low, r.high, r.unit,
+                              f"{r.label}: {np.min(vals):.6g} to {np.max(vals):.6g} {r.unit}, range "
+                              f"{r.low:.6g} to {r.high:.6g} {r.unit}" + (f" ({r.key})" if r.key else ""),
+                              "move the set point of the stage, or narrow the sweep"))
+    return out
 
-    # -- generator -----------------------------------------------------------------
+
+# -- generator rules ---------------------------------------------------------------
+def output_kind_finding(playing) -> Finding:
+    """The generator's output is what the chain ends in: volts, or a frequency."""
+    unit, gen = playing.drive_unit, playing.generator
     out = gen.output
     want = "voltage" if unit == "V" else "frequency"
     if out.kind != want:
-        add(Finding("output_kind", "fail", None, None, "", None,
-                    f"the laser's chain ends in {unit} but generator '{gen.key}' has a {out.kind} output",
-                    f"use a generator with a {want} output"))
-        return
-    add(info("output_kind", f"{out.kind} output for a chain ending in {unit}"))
+        return Finding("output_kind", "fail", None, None, "", None,
+                       f"the laser's chain ends in {unit} but generator '{gen.key}' has a {out.kind} output",
+                       f"use a generator with a {want} output")
+    return info("output_kind", f"{out.kind} output for a chain ending in {unit}")
+
+
+def generator_findings(playing) -> list[Finding]:
+    """The generator's output range at the real load, its DDS, and the output channel."""
+    gen = playing.generator
+    out = [_generator_range(gen, playing.drive_range)]
+    dds = playing.laser.chain.dds
+    if dds is not None:
+        o = gen.output
+        same = o.kind == "frequency" and o.clock == dds.clock and o.word_bits == dds.bits
+        out.append(Finding("dds_match", "pass" if same else "fail", dds.clock, o.clock, "Hz", None,
+                           f"the chain's DDS stage has a {si(dds.clock, 'Hz')} clock and {dds.bits}-bit words; "
+                           f"generator '{gen.key}' has {si(o.clock, 'Hz') if o.clock else 'no clock'} and "
+                           f"{o.word_bits}-bit words", "" if same else
+                           "make the DDS stage of the laser profile and the generator profile describe the same DDS"))
+    ch_ok = playing.output <= gen.channels
+    out.append(Finding("channel", "pass" if ch_ok else "fail", playing.output, gen.channels, "", None,
+                       f"drive.channel {playing.output} of {gen.channels} channel(s)",
+                       "" if ch_ok else f"set drive.channel to 1..{gen.channels}"))
+    return out
+
+
+def _generator_range(gen, drive_range) -> Finding:
+    dmin, dmax = drive_range
+    out = gen.output
     if out.kind == "voltage":
         k = out.delivered_factor
-        add(within("generator_range", dmin, dmax, out.range_min * k, out.range_max * k, "V",
-                   f"the actuator needs {dmin:.5g} to {dmax:.5g} V; generator '{gen.key}' delivers "
-                   f"{out.range_min * k:.5g} to {out.range_max * k:.5g} V into the real load (programmed "
-                   f"{out.range_min:g} to {out.range_max:g} V, ×{k:g} at the load)",
-                   "check the generator's termination setting and the real load, or use a wider output"))
-    else:
-        add(within("generator_range", dmin, dmax, out.range_min, out.range_max, "Hz",
-                   f"the DDS must make {dmin / 1e6:.6g} to {dmax / 1e6:.6g} MHz; generator '{gen.key}' makes "
-                   f"{out.range_min / 1e6:g} to {out.range_max / 1e6:g} MHz",
-                   "change the offset lock's divider or reference so the DDS frequency fits"))
-    dds = chain.dds
-    if dds is not None:
-        same = out.kind == "frequency" and out.clock == dds.clock and out.word_bits == dds.bits
-        add(Finding("dds_match", "pass" if same else "fail", dds.clock, out.clock, "Hz", None,
-                    f"the chain's DDS stage has a {_fmt(dds.clock, 'Hz')} clock and {dds.bits}-bit words; generator "
-                    f"'{gen.key}' has {_fmt(out.clock, 'Hz') if out.clock else 'no clock'} and "
-                    f"{out.word_bits}-bit words", "" if same else
-                    "make the DDS stage of the laser profile and the generator profile describe the same DDS"))
-    ch_ok = sc.drive.channel <= gen.channels
-    add(Finding("channel", "pass" if ch_ok else "fail", sc.drive.channel, gen.channels, "", None,
-                f"drive.channel {sc.drive.channel} of {gen.channels} channel(s)",
-                "" if ch_ok else f"set drive.channel to 1..{gen.channels}"))
+        return within("generator_range", dmin, dmax, out.range_min * k, out.range_max * k, "V",
+                      f"the actuator needs {dmin:.5g} to {dmax:.5g} V; generator '{gen.key}' delivers "
+                      f"{out.range_min * k:.5g} to {out.range_max * k:.5g} V into the real load (programmed "
+                      f"{out.range_min:g} to {out.range_max:g} V, ×{k:g} at the load)",
+                      "check the generator's termination setting and the real load, or use a wider output")
+    return within("generator_range", dmin, dmax, out.range_min, out.range_max, "Hz",
+                  f"the DDS must make {dmin / 1e6:.6g} to {dmax / 1e6:.6g} MHz; generator '{gen.key}' makes "
+                  f"{out.range_min / 1e6:g} to {out.range_max / 1e6:g} MHz",
+                  "change the offset lock's divider or reference so the DDS frequency fits")
 
-    lw = sc.species.linewidth
-    try:
-        choice = sampling.choose_rate(schedule, chain, gen, sc.drive, linewidth=lw, strict=False, rate=rate)
-    except CheckFailed as exc:
-        add(Finding("sample_rate", "fail", None, None, "Sa/s", None, str(exc),
-                    "see the message: the limit that wins is named"))
-        return
-    report.rate = choice
+
+# -- sample-rate rules -------------------------------------------------------------
+def sample_rate_findings(playing) -> list[Finding]:
+    """The sample rate, the record length in memory, the granularity padding and the detuning step
+    per sample, for the rate ``playing`` chose."""
+    choice, gen = playing.rate_choice, playing.generator
     sm = gen.sampling
-    if choice.limited_by.startswith("fixed"):
-        if sm.rates is not None:
-            okr = sm.allows(choice.rate)
-            add(Finding("sample_rate", "pass" if okr else "fail", choice.rate, None, "Sa/s", None,
-                        f"{_fmt(choice.rate, 'Sa/s')} ({choice.limited_by}); generator '{gen.key}' plays "
-                        + ", ".join(_fmt(r, "Sa/s") for r in sm.rates),
-                        "" if okr else "pick one of the listed rates"))
-        else:
-            add(within("sample_rate", choice.rate, choice.rate, sm.rate_min, sm.rate_max, "Sa/s",
-                       f"{_fmt(choice.rate, 'Sa/s')} ({choice.limited_by}); generator '{gen.key}' plays "
-                       f"{_fmt(sm.rate_min, 'Sa/s')} to {_fmt(sm.rate_max, 'Sa/s')}",
-                       "pick a rate the generator plays, or remove drive.sample_rate for an automatic choice"))
-            if report.findings[-1].status != "fail":     # a fixed rate near a rate limit is fine
-                report.findings[-1].status = "pass"
-                report.findings[-1].margin = None
-                report.findings[-1].advice = ""
-    else:
-        add(info("sample_rate", choice.reason, choice.rate, "Sa/s"))
-    add(upper("record_length", choice.count, sm.memory, "samples",
-              f"one period is {choice.count} samples at {_fmt(choice.rate, 'Sa/s')}; the memory holds {sm.memory}",
-              f"lower the rate to at most {_fmt(sm.memory / schedule.period, 'Sa/s')} or shorten chirp.period"))
-    if report.findings[-1].status == "warn":            # filling the memory is not a hazard
-        report.findings[-1].status = "pass"
-        report.findings[-1].advice = ""
+    period = playing.schedule.period
+    record = upper("record_length", choice.count, sm.memory, "samples",
+                   f"one period is {choice.count} samples at {si(choice.rate, 'Sa/s')}; the memory holds {sm.memory}",
+                   f"lower the rate to at most {si(sm.memory / period, 'Sa/s')} or shorten chirp.period",
+                   warns=False)        # filling the memory is not a hazard
+    step = upper("step_per_sample", choice.step, choice.max_step, "Hz",
+                 f"the detuning moves up to {si(choice.step, 'Hz')} per sample at {si(choice.rate, 'Sa/s')}",
+                 "raise the sample rate, lengthen chirp.return_time, or raise drive.max_step")
+    return [_sample_rate(choice, gen), record, _granularity(choice, sm), step]
+
+
+def _sample_rate(choice, gen) -> Finding:
+    sm = gen.sampling
+    if not choice.limited_by.startswith("fixed"):
+        return info("sample_rate", choice.reason, choice.rate, "Sa/s")
+    if sm.rates is not None:
+        okr = sm.allows(choice.rate)
+        return Finding("sample_rate", "pass" if okr else "fail", choice.rate, None, "Sa/s", None,
+                       f"{si(choice.rate, 'Sa/s')} ({choice.limited_by}); generator '{gen.key}' plays "
+                       + ", ".join(si(r, "Sa/s") for r in sm.rates),
+                       "" if okr else "pick one of the listed rates")
+    # a rate fixed by the user near a rate limit is fine: no warning, and no margin to show
+    value, limit, margin, failed = _range_room(choice.rate, choice.rate, sm.rate_min, sm.rate_max)
+    return _finding("sample_rate", value, limit, "Sa/s", margin if failed else None, failed,
+                    f"{si(choice.rate, 'Sa/s')} ({choice.limited_by}); generator '{gen.key}' plays "
+                    f"{si(sm.rate_min, 'Sa/s')} to {si(sm.rate_max, 'Sa/s')}",
+                    "pick a rate the generator plays, or remove drive.sample_rate for an automatic choice",
+                    warns=False)
+
+
+def _granularity(choice, sm) -> Finding:
     if choice.padding or abs(choice.period_error) > 0:
-        add(Finding("granularity", "warn", choice.padding, 0, "samples", None,
-                    f"{choice.period_count} samples per period (table {choice.period_error * 1e9:+.3g} ns off the "
-                    f"period), padded to {choice.count} for granularity {sm.granularity} / minimum length "
-                    f"{sm.min_length}: play the table triggered once per period",
-                    "choose a rate at which one period is a multiple of the granularity"))
-    else:
-        add(info("granularity", f"{choice.count} samples = one period exactly, a multiple of {sm.granularity}",
-                 choice.padding, "samples"))
-    add(upper("step_per_sample", choice.step, choice.max_step, "Hz",
-              f"the detuning moves up to {_fmt(choice.step, 'Hz')} per sample at {_fmt(choice.rate, 'Sa/s')}",
-              "raise the sample rate, lengthen chirp.return_time, or raise drive.max_step"))
-
-    quant = None
-    failed_range = any(f.status == "fail" and f.rule in ("actuator_range", "generator_range")
-                       for f in report.findings)
-    if not failed_range:
-        try:
-            quant = sampling.quantisation(dmin, dmax, gen, chain)
-        except CheckFailed as exc:
-            add(Finding("generator_range", "fail", None, None, unit, None, str(exc), "see the message"))
-    report.quant = quant
-    if quant is not None:
-        with np.errstate(divide="ignore"):
-            per_code = float(np.max(np.abs(quant.code_scale / gain)))
-        what = "DAC code" if quant.output == "voltage" else "DDS word LSB"
-        add(upper("step_per_code", per_code, choice.max_step, "Hz",
-                  f"one {what} moves the detuning by up to {_fmt(per_code, 'Hz')} ({quant.bits} bits"
-                  + (f", {quant.amplitude:.4g} V peak-to-peak programmed" if quant.amplitude else "") + ")",
-                  "use a generator with more DAC bits, or a chain with less gain"))
-        if dds is not None and quant.output == "frequency":
-            err = np.abs(dds.rounding_error(drive) / gain)
-            worst = float(np.max(err))
-            add(upper("dds_rounding", worst, choice.max_step, "Hz",
-                      f"rounding to {dds.bits}-bit tuning words moves the detuning by up to {_fmt(worst, 'Hz')} "
-                      f"(word LSB {_fmt(dds.resolution, 'Hz')} at the DDS)",
-                      "use a longer tuning word"))
-
-    # -- tracking through the actuator response ------------------------------------
-    tracking_findings(report, schedule, choice.rate, quant)
+        return Finding("granularity", "warn", choice.padding, 0, "samples", None,
+                       f"{choice.period_count} samples per period (table {choice.period_error * 1e9:+.3g} ns off the "
+                       f"period), padded to {choice.count} for granularity {sm.granularity} / minimum length "
+                       f"{sm.min_length}: play the table triggered once per period",
+                       "choose a rate at which one period is a multiple of the granularity")
+    return info("granularity", f"{choice.count} samples = one period exactly, a multiple of {sm.granularity}",
+                choice.padding, "samples")
 
 
+# -- quantisation rules ------------------------------------------------------------
+def quantisation_findings(playing, quant, sweep: SweepSamples) -> list[Finding]:
+    """The detuning step of one DAC code (or DDS word), and the DDS word rounding."""
+    max_step = playing.rate_choice.max_step
+    with np.errstate(divide="ignore"):
+        per_code = float(np.max(np.abs(quant.code_scale / sweep.gain)))
+    what = "DAC code" if quant.output == "voltage" else "DDS word LSB"
+    out = [upper("step_per_code", per_code, max_step, "Hz",
+                 f"one {what} moves the detuning by up to {si(per_code, 'Hz')} ({quant.bits} bits"
+                 + (f", {quant.amplitude:.4g} V peak-to-peak programmed" if quant.amplitude else "") + ")",
+                 "use a generator with more DAC bits, or a chain with less gain")]
+    dds = playing.laser.chain.dds
+    if dds is not None and quant.output == "frequency":
+        worst = float(np.max(np.abs(dds.rounding_error(sweep.drive) / sweep.gain)))
+        out.append(upper("dds_rounding", worst, max_step, "Hz",
+                         f"rounding to {dds.bits}-bit tuning words moves the detuning by up to {si(worst, 'Hz')} "
+                         f"(word LSB {si(dds.resolution, 'Hz')} at the DDS)",
+                         "use a longer tuning word"))
+    return out
+
+
+# -- tracking through the actuator response ----------------------------------------
 def tracking_findings(report: CheckReport, schedule, rate: float, quant=None) -> None:
     from sweepgen.response import simulate
 
@@ -509,16 +555,16 @@ def tracking_findings(report: CheckReport, schedule, rate: float, quant=None) ->
     in_chirp = kinds == "chirp"
     model = laser.response.model
     desc = {"none": "an ideal actuator",
-            "first-order": f"a first-order response (corner {_fmt(laser.response.corner or 0, 'Hz')})",
-            "second-order": f"a second-order response (resonance {_fmt(laser.response.resonance or 0, 'Hz')}, "
+            "first-order": f"a first-order response (corner {si(laser.response.corner or 0, 'Hz')})",
+            "second-order": f"a second-order response (resonance {si(laser.response.resonance or 0, 'Hz')}, "
                             f"Q {laser.response.q})"}[model]
     if np.any(in_chirp):
         worst = float(np.max(err[in_chirp]))
         at = float(tr.time[in_chirp][np.argmax(err[in_chirp])])
         add(upper("tracking", worst, tol, "Hz",
-                  f"through {desc} the laser is off the planned detuning by up to {_fmt(worst, 'Hz')} during "
+                  f"through {desc} the laser is off the planned detuning by up to {si(worst, 'Hz')} during "
                   f"the chirp (at {at * 1e3:.4g} ms); tolerance {sc.drive.tracking_fraction:g} × the lag detuning "
-                  f"{_fmt(tol / sc.drive.tracking_fraction, 'Hz')}",
+                  f"{si(tol / sc.drive.tracking_fraction, 'Hz')}",
                   "lower the chirp rate (chirp.margin), use a faster actuator, or raise drive.tracking_fraction"))
     chirp = schedule.segment("chirp")
     ret = schedule.segment("return")
@@ -535,6 +581,6 @@ def tracking_findings(report: CheckReport, schedule, rate: float, quant=None) ->
         above = np.flatnonzero(seq[: max(int(round(rest * tr.rate)), 1)] > tol)
         settle = (above[-1] + 1) / tr.rate if above.size else 0.0
         add(upper("return_settling", value, tol, "Hz",
-                  f"when the next chirp starts the laser is {_fmt(value, 'Hz')} from the start detuning; it settles "
-                  f"within {_fmt(tol, 'Hz')} {_fmt(settle, 's') if settle else 'at once'} after the return ({rest * 1e3:.4g} ms available)",
+                  f"when the next chirp starts the laser is {si(value, 'Hz')} from the start detuning; it settles "
+                  f"within {si(tol, 'Hz')} {si(settle, 's') if settle else 'at once'} after the return ({rest * 1e3:.4g} ms available)",
                   "lengthen chirp.return_time or chirp.period, or use a better damped actuator"))

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from sweepgen._atomic import atomic_write_text
-from sweepgen._cli import si
+from sweepgen._format import si
 from sweepgen._json import dumps
 
 DEMO_SCENARIO = "rb87-chopped-oven"
@@ -37,76 +37,92 @@ def _write_json(path: Path, doc) -> Path:
 def run(directory, *, scenario: str = DEMO_SCENARIO, atoms: int = DEMO_ATOMS, seed: int = DEMO_SEED,
         echo=print) -> DemoResult:
     """Run the demo into ``directory``; ``echo`` receives one line per step."""
-    from sweepgen import drivers, plots, sidecar
-    from sweepgen.checker import check, require_playable
-    from sweepgen.drivers.base import Delivery
-    from sweepgen.render import render
-    from sweepgen.response import actuator_response
     from sweepgen.scenario import load_scenario
-    from sweepgen.simulate import simulate
-    from sweepgen.testing import upload_to_virtual_instrument
 
     start = time.perf_counter()
     out = Path(directory)
     out.mkdir(parents=True, exist_ok=True)
     res = DemoResult(out)
-    files = res.files
-
     sc = load_scenario(scenario)
     echo(f"scenario: {sc.title}")
+    pb = _check(sc, out, res.files, echo)
+    doc_sim = _simulate(pb, out, res.files, echo, atoms=atoms, seed=seed)
+    exported = _export(pb, out, res.files, echo)
+    uploaded = _upload(pb, out, res.files, echo)
+    res.ok = pb.ok and uploaded.verified
+    res.files["summary"] = _summary(out, pb, doc_sim, exported, uploaded)
+    res.seconds = time.perf_counter() - start
+    return res
 
-    # 1. check (plans the sweep on the way)
-    report = check(sc)
-    plan = report.plan
-    doc_plan = plan.to_json()
+
+def _check(sc, out: Path, files: dict, echo):
+    """1. Plan and check through the playback service; the plots of the sweep, the drive and the margins."""
+    from sweepgen import playback, plots
+
+    pb = playback.prepare(sc)
+    report = pb.report
+    doc_plan = pb.plan.to_json()
     files["plan"] = _write_json(out / "plan.json", doc_plan)
-    files["check"] = _write_json(out / "check.json", report.to_json())
+    files["check"] = _write_json(out / "check.json", pb.to_json())
     echo(f"  plan:     chirp {si(doc_plan['chirp_span'], 'Hz')} in {si(doc_plan['chirp_duration'], 's')}, "
          f"{si(doc_plan['capture_velocity'], 'm/s')}"
          f" → {si(doc_plan['end_velocity'], 'm/s')} over {si(doc_plan['slowing_distance'], 'm')}")
     n_fail, n_warn = len(report.failures()), len(report.warnings())
     echo(f"  check:    {'ok' if report.ok else 'FAILED'} ({n_fail} failed, {n_warn} warning(s), "
          f"{len(report.findings) - n_fail - n_warn} passed)")
-    require_playable(report)
-
-    files["sweep plot"] = plots.plot_plan(plan, out / "sweep.png",
-                                          response=actuator_response(plan, report.laser, report.generator))
+    pb.require_playable()
+    tracking = report.tracking            # the actuator as the checker simulated it, at the rate and codes played
+    files["sweep plot"] = plots.plot_plan(pb.plan, out / "sweep.png", response=(tracking.time, tracking.actual))
     files["drive plot"] = plots.plot_drive(report, out / "drive.png")
     files["margins plot"] = plots.plot_check(report, out / "margins.png")
+    return pb
 
-    # 2. simulate the atoms
-    sim = simulate(sc, atoms=atoms, seed=seed, plan=plan)
+
+def _simulate(pb, out: Path, files: dict, echo, *, atoms: int, seed: int) -> dict:
+    """2. Simulate the atoms through the planned sweep."""
+    from sweepgen import plots
+    from sweepgen.simulate import simulate
+
+    sim = simulate(pb.scenario, atoms=atoms, seed=seed, plan=pb.plan)
     doc_sim = sim.to_json()
     files["simulation"] = _write_json(out / "simulate.json", doc_sim)
     files["velocity plot"] = plots.plot_simulation(sim, out / "velocities.png")
     echo(f"  simulate: {100 * doc_sim['captured_fraction']:.2f} % of {atoms} atoms captured "
          f"(light held at the start detuning: {100 * doc_sim['baseline_fixed_frequency_fraction']:.2f} %)")
+    return doc_sim
 
-    # 3. render and export through the file driver registry
-    table = render(plan.schedule(), report.laser, report.generator, sc, rate_choice=report.rate)
-    driver = drivers.load("csv", kind="file")()
-    exported = driver.deliver(table, Delivery(destination=str(out / "table"), generator=report.generator,
-                                              options={"name": "sweep"},
-                                              sidecar=sidecar.provenance(sc, report.laser, report.generator)))
-    files["table"] = Path(exported["paths"][0])
-    files["sidecar"] = Path(exported["paths"][1])
+
+def _export(pb, out: Path, files: dict, echo):
+    """3. Render and export through the file driver registry."""
+    from sweepgen import playback
+
+    exported = pb.export(playback.file_format("csv"), out / "table", {"name": "sweep"})
+    files["table"] = Path(exported.report["paths"][0])
+    files["sidecar"] = Path(exported.report["paths"][1])
+    table = pb.table()
     echo(f"  export:   {table.info.count} samples at {si(table.info.sample_rate, 'Sa/s')} "
          f"(sha256 {table.sha256[:12]}…)")
-
-    # 4. upload to an in-process virtual instrument on a loopback socket, verify, leave unarmed
-    up = upload_to_virtual_instrument(table, report.generator)
-    files["upload"] = _write_json(out / "upload.json", up)
-    verified = bool((up.get("verification") or {}).get("ok"))
-    res.ok = report.ok and verified
-    echo(f"  upload:   {up.get('bytes', 0)} bytes to the virtual instrument, "
-         f"verification {'passed' if verified else 'FAILED'}, output left off (no --arm)")
-
-    files["summary"] = _summary(out, sc, report, doc_plan, doc_sim, table, exported, up, verified)
-    res.seconds = time.perf_counter() - start
-    return res
+    return exported
 
 
-def _summary(out, sc, report, doc_plan, doc_sim, table, exported, up, verified) -> Path:
+def _upload(pb, out: Path, files: dict, echo):
+    """4. Upload to an in-process virtual instrument on a loopback socket, verify, leave unarmed."""
+    from sweepgen.testing import instrument_server
+
+    with instrument_server(pb.generator) as server:
+        uploaded = pb.upload(pb.link(resource=server.resource))
+        doc = {**uploaded.to_json(), "instrument": {"outputs_on": server.instrument.outputs_on,
+                                                    "traces": sorted(server.instrument.traces)}}
+    files["upload"] = _write_json(out / "upload.json", doc)
+    echo(f"  upload:   {uploaded.report.get('bytes', 0)} bytes to the virtual instrument, "
+         f"verification {'passed' if uploaded.verified else 'FAILED'}, output left off (no --arm)")
+    return uploaded
+
+
+def _summary(out, pb, doc_sim, exported, uploaded) -> Path:
+    sc, report, doc_plan, table = pb.scenario, pb.report, pb.plan.to_json(), pb.table()
+    up, verified = uploaded.report, uploaded.verified
+    exported = exported.report
     lines = [f"# sweepgen demo: {sc.title}", "",
              f"Species `{sc.species.key}`, laser `{report.laser.key}`, generator `{report.generator.key}`.",
              "", "## The sweep (`plan.json`)", "", "| quantity | value |", "|---|---|"]

@@ -265,23 +265,19 @@ def drive_function(chain, det_lo: float, det_hi: float, code_step: float):
 # ---------------------------------------------------------------------------------------------
 # Render
 # ---------------------------------------------------------------------------------------------
-def render(schedule, laser, generator, scenario, rate_choice=None) -> RenderedTable:
-    """The table of generator codes for one period of ``schedule``, streamed in chunks.
+def render(playing, *, digest: str = "") -> RenderedTable:
+    """The table of generator codes for one period of what ``playing`` plays, streamed in chunks.
 
     Parameters
     ----------
-    schedule : sweepgen.schedule.Schedule
-        The sweep (detuning in Hz versus time over one period).
-    laser : sweepgen.laser.Laser
-        Its chain maps detuning to drive; ``limits.input_min/max`` is the
-        actuator's safe input range.
-    generator : sweepgen.generator.Generator
-        Sample rates, memory, granularity, output range and resolution.
-    scenario : sweepgen.scenario.Scenario
-        ``scenario.drive`` (sample rate or automatic, channel) and the digest.
-    rate_choice : sweepgen.sampling.RateChoice, optional
-        The sample rate and lengths; chosen by :func:`sweepgen.sampling.choose_rate`
-        from ``scenario.drive`` when not given.
+    playing : sweepgen.playback.ChannelPlayback
+        The schedule (detuning in Hz versus time over one period), the laser
+        (its chain maps detuning to drive; ``limits.input_min/max`` is the
+        actuator's safe input range), the generator, and what the playback
+        service chose for them: the exact drive range, the sample rate and
+        lengths, the quantisation.
+    digest : str
+        The scenario's digest, for the sidecar.
 
     Returns
     -------
@@ -292,95 +288,116 @@ def render(schedule, laser, generator, scenario, rate_choice=None) -> RenderedTa
     Raises
     ------
     CheckFailed
-        The drive would leave the actuator's safe input range or the
-        generator's output range (also raised mid-stream by the chunk check).
+        No sample rate or code window was found, or the drive would leave the
+        actuator's safe input range or the generator's output range (also
+        raised mid-stream by the chunk check).
     """
-    from sweepgen import sampling
-
-    chain = laser.chain
-    if rate_choice is None:
-        rate_choice = sampling.choose_rate(schedule, chain, generator, scenario.drive,
-                                           linewidth=scenario.species.linewidth)
-    rate = float(rate_choice.rate)
-    period_count = int(rate_choice.period_count)
-    count = int(rate_choice.count)
+    choice = playing.rate_choice
+    if choice is None:
+        raise CheckFailed(playing.rate_refusal or "no sample rate plays this sweep")
+    rate, period_count, count = float(choice.rate), int(choice.period_count), int(choice.count)
     if not (0 < period_count <= count):
         raise ValueError(f"inconsistent rate choice: period_count={period_count}, count={count}")
-    unit = chain.drive_unit
+    q, code_lo, code_hi = _safe_codes(playing)
+    chain = playing.laser.chain
+    source = PeriodFrames(playing.schedule, chain, q, rate, period_count)
+    choice_doc = {"rate": rate, "period_count": period_count, "count": count,
+                  "limited_by": getattr(choice, "limited_by", None), "reason": getattr(choice, "reason", None)}
+    extra = {
+        "period": playing.schedule.period,
+        "sampling": choice_doc,
+        "chain": {"description": chain.describe(), "drive_unit": chain.drive_unit, "stages": chain.info(),
+                  "evaluation": source.evaluation},
+        "quantisation": _quantisation_doc(q),
+        "drive_range": list(playing.drive_range),
+        "code_range": [code_lo, code_hi],
+        "safe_range": [playing.laser.limits.input_min, playing.laser.limits.input_max],
+        "detuning_scaling": detuning_scaling(chain, q, code_lo, code_hi),
+    }
+    info = TableInfo(sample_rate=rate, count=count, period_count=period_count, dtype=np.dtype(q.dtype).str,
+                     output=playing.generator.output.kind, drive_unit=chain.drive_unit,
+                     code_scale=float(q.code_scale), code_offset=float(q.code_offset), amplitude=q.amplitude,
+                     offset=q.offset, channel=playing.output, scenario_digest=digest, tool_version=__version__,
+                     extra=extra)
+    return RenderedTable(info, source)
 
-    lo, hi = drive_range(schedule, chain)
-    found = safety_findings(lo, hi, laser, generator, unit)
+
+def _safe_codes(playing):
+    """``(quantisation, lowest code, highest code)``, refusing any drive outside the safe input
+    or output range, before and after the codes are rounded."""
+    from sweepgen import sampling
+
+    laser, gen, unit = playing.laser, playing.generator, playing.drive_unit
+    lo, hi = playing.drive_range
+    found = safety_findings(lo, hi, laser, gen, unit)
     if found:
         _refuse(found)
-    q = sampling.quantisation(lo, hi, generator, chain)
-    # the quantised ends (codes are rounded) must be safe too
+    q = playing.quantisation
+    if q is None:
+        raise CheckFailed(playing.quantisation_refusal or "no code window plays this drive")
     end_codes = sampling.drive_to_codes(np.array([lo, hi]), q)
     qd = q.code_offset + q.code_scale * end_codes.astype(float)
-    found = safety_findings(float(qd.min()), float(qd.max()), laser, generator, unit)
+    found = safety_findings(float(qd.min()), float(qd.max()), laser, gen, unit)
     if found:
         _refuse(found)
     code_lo, code_hi = sorted(int(c) for c in end_codes)
+    return q, code_lo, code_hi
 
-    poly = SortedEvaluator(schedule.poly)
-    period = schedule.period
-    det_lo, det_hi = detuning_extremes(schedule)
-    to_drive, drive_eval = drive_function(chain, det_lo, det_hi, q.code_scale)
-    first_detuning = float(schedule.poly(0.0))
-    first_drive = float(np.asarray(chain.to_drive(np.array([first_detuning])))[0])
-    first_code = sampling.drive_to_codes(np.array([first_drive]), q)[0]
-    dtype = np.dtype(q.dtype)
 
-    def compute(start: int, stop: int, detuning, drive, codes) -> None:
+def _quantisation_doc(q) -> dict:
+    return {"dtype": np.dtype(q.dtype).str, "bits": int(q.bits),
+            "full_min": -int(q.full_scale) if q.output == "voltage" else 0,
+            "full_max": int(q.full_scale),
+            "code_min": int(q.code_min), "code_max": int(q.code_max),
+            "code_scale": float(q.code_scale), "code_offset": float(q.code_offset),
+            "amplitude": q.amplitude, "offset": q.offset,
+            "delivered_factor": float(q.delivered_factor)}
+
+
+class PeriodFrames:
+    """The frames of a table: samples of one period at ``rate``, then copies of the first sample.
+
+    Called with ``(start, stop)`` it computes those samples (time, detuning,
+    drive, codes) in blocks of :data:`BLOCK` that stay in the processor's cache.
+    """
+
+    def __init__(self, schedule, chain, q, rate: float, period_count: int):
+        from sweepgen import sampling
+
+        self._to_codes = sampling.drive_to_codes
+        self.q, self.rate, self.period_count = q, rate, period_count
+        self.period = schedule.period
+        self.poly = SortedEvaluator(schedule.poly)
+        det_lo, det_hi = detuning_extremes(schedule)
+        self.to_drive, self.evaluation = drive_function(chain, det_lo, det_hi, q.code_scale)
+        self.first_detuning = float(schedule.poly(0.0))
+        self.first_drive = float(np.asarray(chain.to_drive(np.array([self.first_detuning])))[0])
+        self.first_code = self._to_codes(np.array([self.first_drive]), q)[0]
+        self.dtype = np.dtype(q.dtype)
+
+    def _compute(self, start: int, stop: int, detuning, drive, codes) -> None:
         """Samples start..stop of the period (all < period_count) into the output slices."""
         t = np.arange(start, stop, dtype=np.float64)
-        t /= rate
-        if t[-1] >= period:                           # rounding of the rate: stay on the period's axis
-            np.mod(t, period, out=t)
-        poly(t, out=detuning)
-        to_drive(detuning, out=drive)
-        codes[:] = sampling.drive_to_codes(drive, q)  # refuses (CheckFailed) instead of clipping
+        t /= self.rate
+        if t[-1] >= self.period:                      # rounding of the rate: stay on the period's axis
+            np.mod(t, self.period, out=t)
+        self.poly(t, out=detuning)
+        self.to_drive(detuning, out=drive)
+        codes[:] = self._to_codes(drive, self.q)      # refuses (CheckFailed) instead of clipping
 
-    def frame_source(start: int, stop: int) -> Frame:
+    def __call__(self, start: int, stop: int) -> Frame:
         n = stop - start
         time = np.arange(start, stop, dtype=np.float64)
-        time /= rate
+        time /= self.rate
         detuning = np.empty(n)
         drive = np.empty(n)
-        codes = np.empty(n, dtype=dtype)
-        inner = max(0, min(stop, period_count) - start)
-        # work in blocks that stay in the processor's cache; the frame is only the output
+        codes = np.empty(n, dtype=self.dtype)
+        inner = max(0, min(stop, self.period_count) - start)
         for a in range(0, inner, BLOCK):
             b = min(a + BLOCK, inner)
-            compute(start + a, start + b, detuning[a:b], drive[a:b], codes[a:b])
+            self._compute(start + a, start + b, detuning[a:b], drive[a:b], codes[a:b])
         if inner < n:                                 # padding: the first sample again
-            detuning[inner:] = first_detuning
-            drive[inner:] = first_drive
-            codes[inner:] = first_code
+            detuning[inner:] = self.first_detuning
+            drive[inner:] = self.first_drive
+            codes[inner:] = self.first_code
         return Frame(start, time, detuning, drive, codes)
-
-    choice = {"rate": rate, "period_count": period_count, "count": count,
-              "limited_by": getattr(rate_choice, "limited_by", None),
-              "reason": getattr(rate_choice, "reason", None)}
-    extra = {
-        "period": period,
-        "sampling": choice,
-        "chain": {"description": chain.describe(), "drive_unit": unit, "stages": chain.info(),
-                  "evaluation": drive_eval},
-        "quantisation": {"dtype": dtype.str, "bits": int(q.bits),
-                         "full_min": -int(q.full_scale) if q.output == "voltage" else 0,
-                         "full_max": int(q.full_scale),
-                         "code_min": int(q.code_min), "code_max": int(q.code_max),
-                         "code_scale": float(q.code_scale), "code_offset": float(q.code_offset),
-                         "amplitude": q.amplitude, "offset": q.offset,
-                         "delivered_factor": float(q.delivered_factor)},
-        "drive_range": [lo, hi],
-        "code_range": [code_lo, code_hi],
-        "safe_range": [laser.limits.input_min, laser.limits.input_max],
-        "detuning_scaling": detuning_scaling(chain, q, code_lo, code_hi),
-    }
-    info = TableInfo(sample_rate=rate, count=count, period_count=period_count, dtype=dtype.str,
-                     output=generator.output.kind, drive_unit=unit, code_scale=float(q.code_scale),
-                     code_offset=float(q.code_offset), amplitude=q.amplitude, offset=q.offset,
-                     channel=scenario.drive.channel, scenario_digest=scenario.digest,
-                     tool_version=__version__, extra=extra)
-    return RenderedTable(info, frame_source)

@@ -233,34 +233,8 @@ def simulate(schedule, chain, response: Response, rate: float, *, quant=None,
     return Tracking(time=t, planned=planned, drive=drive, actual=actual, rate=sim_rate)
 
 
-def actuator_response(plan, laser, generator=None, *, rate: float | None = None):
-    """The simulated laser detuning over one period, ``(t, detuning_hz)``, for plots.
-
-    ``plots.plot_plan(plan, file, response=actuator_response(plan, laser, gen))``
-    overlays it on the planned sweep. The sample rate is the one the checker and
-    renderer choose for ``generator`` (or ``rate``; without either, 1000 points
-    per response time constant, at most :data:`MAX_SIM_POINTS` per period).
-    """
-    schedule = plan.schedule()
-    quant = None
-    if rate is None and generator is not None:
-        from sweepgen.sampling import choose_rate
-
-        choice = choose_rate(schedule, laser.chain, generator, plan.scenario.drive,
-                             linewidth=plan.species.linewidth, strict=False)
-        rate = choice.rate
-    if rate is None:
-        tau = laser.response.time_constant or schedule.period / 1e4
-        rate = min(1000.0 / tau, MAX_SIM_POINTS / schedule.period)
-    if generator is not None:
-        from sweepgen.errors import SweepgenError
-        from sweepgen.render import drive_range
-        from sweepgen.sampling import quantisation
-
-        lo, hi = drive_range(schedule, laser.chain)
-        try:
-            quant = quantisation(lo, hi, generator, laser.chain)
-        except SweepgenError:      # an unplayable sweep is still drawn, unquantised
-            quant = None
-    tr = simulate(schedule, laser.chain, laser.response, rate, quant=quant)
-    return tr.time, tr.actual
+def preview_rate(response: Response, period: float) -> float:
+    """A simulation rate for an actuator not tied to a generator: 1000 points per response time
+    constant (10^4 per period for an ideal actuator), at most :data:`MAX_SIM_POINTS` per period."""
+    tau = response.time_constant or period / 1e4
+    return min(1000.0 / tau, MAX_SIM_POINTS / period)

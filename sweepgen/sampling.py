@@ -36,6 +36,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from sweepgen._format import si
 from sweepgen.errors import CheckFailed
 
 #: Default tolerance on the detuning change per sample and per code: this
@@ -95,13 +96,6 @@ def _pad(n: int, sampling) -> int:
     return -(-n // g) * g
 
 
-def _fmt(rate: float) -> str:
-    for f, p in ((1e9, "G"), (1e6, "M"), (1e3, "k")):
-        if rate >= f:
-            return f"{rate / f:.6g} {p}Sa/s"
-    return f"{rate:.6g} Sa/s"
-
-
 def choose_rate(schedule, chain, generator, drive_options, *, linewidth: float | None = None,
                 strict: bool = True, rate: float | None = None) -> RateChoice:
     """Choose the sample rate and record length for one period of ``schedule``.
@@ -141,14 +135,14 @@ def choose_rate(schedule, chain, generator, drive_options, *, linewidth: float |
         count = _pad(n, sm)
         src = "--rate" if rate is not None else "drive.sample_rate"
         if strict and not sm.allows(fixed):
-            allowed = (", ".join(_fmt(r) for r in sm.rates) if sm.rates
-                       else f"{_fmt(sm.rate_min)} to {_fmt(sm.rate_max)}")
-            raise CheckFailed(f"{src} = {_fmt(fixed)} is not a rate generator '{generator.key}' plays "
+            allowed = (", ".join(si(r, 'Sa/s', 6) for r in sm.rates) if sm.rates
+                       else f"{si(sm.rate_min, 'Sa/s', 6)} to {si(sm.rate_max, 'Sa/s', 6)}")
+            raise CheckFailed(f"{src} = {si(fixed, 'Sa/s', 6)} is not a rate generator '{generator.key}' plays "
                               f"({allowed})")
         if strict and count > sm.memory:
-            raise CheckFailed(f"at {src} = {_fmt(fixed)} one period needs {count} samples but generator "
+            raise CheckFailed(f"at {src} = {si(fixed, 'Sa/s', 6)} one period needs {count} samples but generator "
                               f"'{generator.key}' holds {sm.memory}; lower the rate to at most "
-                              f"{_fmt(sm.memory / period)}")
+                              f"{si(sm.memory / period, 'Sa/s', 6)}")
         return RateChoice(fixed, n, count, f"fixed by {src}", f"rate fixed by {src}", tol,
                           sweep_rate / fixed, n / fixed - period)
 
@@ -190,7 +184,7 @@ def choose_rate(schedule, chain, generator, drive_options, *, linewidth: float |
     count = _pad(period_count, sm)
     step = sweep_rate / chosen
     err = period_count / chosen - period
-    reason = (f"{_fmt(chosen)}: steps of at most {step / 1e3:.4g} kHz per sample (tolerance "
+    reason = (f"{si(chosen, 'Sa/s', 6)}: steps of at most {step / 1e3:.4g} kHz per sample (tolerance "
               f"{tol / 1e3:.4g} kHz, {tol_src}); {period_count} samples per period"
               + (f", padded to {count}" if count != period_count else "")
               + (f"; the table lasts {err * 1e9:+.3g} ns longer than the period" if abs(err) > 1e-12 * period
@@ -202,15 +196,15 @@ def _no_rate_message(need, tol, tol_src, sweep_rate, sm, mem_rate, period, gener
     top = sm.rates[-1] if sm.rates else sm.rate_max
     head = (f"no sample rate of generator '{generator.key}' plays this sweep: keeping the detuning step "
             f"below {tol / 1e3:.4g} kHz ({tol_src}) at |dΔ/dt| up to {sweep_rate:.4g} Hz/s needs at least "
-            f"{_fmt(need)}")
+            f"{si(need, 'Sa/s', 6)}")
     if need > top and top <= mem_rate:
-        return head + f", but its fastest rate is {_fmt(top)} (the rate limit wins); raise drive.max_step, " \
+        return head + f", but its fastest rate is {si(top, 'Sa/s', 6)} (the rate limit wins); raise drive.max_step, " \
                       f"lengthen chirp.return_time, or use a faster generator"
     if need > mem_rate:
         return head + (f", but one period of {period * 1e3:.4g} ms fits in its memory of {sm.memory} samples "
-                       f"only up to {_fmt(mem_rate)} (the memory wins); shorten chirp.period, raise "
+                       f"only up to {si(mem_rate, 'Sa/s', 6)} (the memory wins); shorten chirp.period, raise "
                        f"drive.max_step, or use a generator with more memory")
-    return head + f"; its rates ({_fmt(sm.rate_min)} and up) overflow its memory of {sm.memory} samples " \
+    return head + f"; its rates ({si(sm.rate_min, 'Sa/s', 6)} and up) overflow its memory of {sm.memory} samples " \
                   f"for a period of {period * 1e3:.4g} ms (the memory wins)"
 
 

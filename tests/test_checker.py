@@ -10,8 +10,9 @@ import pytest
 from scipy import constants, signal
 
 from sweepgen import physics
-from sweepgen.checker import MIN_SURVIVAL, CheckReport, Finding, check, require_playable, upper, within
+from sweepgen.checker import MIN_SURVIVAL, CheckReport, Finding, require_playable, upper, within
 from sweepgen.errors import CheckFailed
+from sweepgen.playback import prepare
 from sweepgen.scenario import load_scenario
 
 
@@ -97,7 +98,7 @@ def run(tmp_path, scenario=None, laser=None, gen=None, rate=None):
     (tmp_path / "scenario.toml").write_text(dump(scenario or SCENARIO))
     (tmp_path / "laser.toml").write_text(dump(laser or LASER))
     (tmp_path / "gen.toml").write_text(dump(gen or GEN))
-    return check(load_scenario(str(tmp_path / "scenario.toml")), rate=rate)
+    return prepare(load_scenario(str(tmp_path / "scenario.toml")), sample_rate=rate).report
 
 
 def status(report, rule):
@@ -362,5 +363,5 @@ def test_margins_and_warn_band():
 
 @pytest.mark.parametrize("key", ["rb87-chopped-oven", "na23-continuous-focused", "caf-buffer-gas"])
 def test_shipped_scenarios_pass_with_their_hardware(key):
-    r = check(load_scenario(key))
+    r = prepare(load_scenario(key)).report
     assert r.ok, [(f.rule, f.message) for f in r.failures()]

@@ -18,7 +18,7 @@ from click.testing import CliRunner
 from sweepgen.emulators import board
 from sweepgen.wire import frames as fr
 from sweepgen.cli import main
-from sweepgen.commands.emulate import BOARD_FAULTS, FRAME_TYPES
+from sweepgen.cli.emulate import BOARD_FAULTS, FRAME_TYPES
 from sweepgen.drivers.base import Delivery
 from sweepgen.drivers.serial_board import SerialDriver
 from sweepgen.errors import InstrumentError

@@ -9,10 +9,8 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from sweepgen.checker import check
 from sweepgen.cli import main
-from sweepgen.render import render
-from sweepgen.scenario import load_scenario
+from sweepgen.playback import prepare
 from sweepgen.testing import virtual_board
 
 SCENARIO = "caf-buffer-gas"          # offset-locked laser set by a DDS on the demo ramp board
@@ -25,10 +23,8 @@ def run(*args):
 @pytest.fixture(scope="module")
 def rendered():
     """The table the upload command renders for the scenario (same pipeline, run here)."""
-    sc = load_scenario(SCENARIO)
-    report = check(sc)
-    table = render(report.plan.schedule(), report.laser, report.generator, sc, rate_choice=report.rate)
-    return table, report.generator
+    pb = prepare(SCENARIO)
+    return pb.table(), pb.generator
 
 
 def test_upload_commits_the_rendered_table_and_leaves_the_output_off(rendered):

@@ -15,6 +15,7 @@ from sweepgen.errors import CheckFailed
 from sweepgen.generator import load_generator
 from sweepgen.laser import load_laser
 from sweepgen.planner import plan
+from sweepgen.playback import channel_playback
 from sweepgen.render import (SortedEvaluator, detuning_extremes, detuning_scaling, drive_function,
                              drive_range, render)
 from sweepgen.sampling import RateChoice, drive_to_codes, quantisation
@@ -32,6 +33,14 @@ def setup(key):
     laser = load_laser(str(sc.laser_path()))
     gen = load_generator(str(sc.generator_path()))
     return sc, schedule, laser, gen
+
+
+def rendered(sc, schedule, laser, gen, rate_choice=None):
+    """The table of what the playback service chooses to play (or of ``rate_choice``)."""
+    playing = channel_playback(schedule, laser, gen, sc.drive, linewidth=sc.species.linewidth)
+    if rate_choice is not None:
+        playing = dataclasses.replace(playing, rate_choice=rate_choice)
+    return render(playing, digest=sc.digest)
 
 
 @pytest.fixture(scope="module", params=SCENARIOS)
@@ -115,7 +124,7 @@ def test_fast_drive_function_matches_the_chain(case):
 def test_render_equals_the_plain_pipeline(case):
     """The streamed codes equal schedule -> chain -> codes evaluated directly at t = i / rate."""
     sc, schedule, laser, gen = case
-    table = render(schedule, laser, gen, sc)
+    table = rendered(sc, schedule, laser, gen)
     info = table.info
     t = np.arange(info.period_count) / info.sample_rate
     drive = laser.chain.to_drive(schedule.detuning(t))
@@ -133,7 +142,7 @@ def test_render_equals_the_plain_pipeline(case):
 
 def test_frames_carry_time_detuning_drive(case):
     sc, schedule, laser, gen = case
-    table = render(schedule, laser, gen, sc)
+    table = rendered(sc, schedule, laser, gen)
     frame = list(table.frames(4096))[3]
     assert frame.start == 3 * 4096
     assert np.allclose(frame.time, (frame.start + np.arange(4096)) / table.info.sample_rate, rtol=1e-15)
@@ -145,7 +154,7 @@ def test_frames_carry_time_detuning_drive(case):
 @pytest.fixture(scope="module")
 def rb_table():
     sc, schedule, laser, gen = setup("rb87-chopped-oven")
-    table = render(schedule, laser, gen, sc)
+    table = rendered(sc, schedule, laser, gen)
     return table, table.codes()
 
 
@@ -159,7 +168,7 @@ def test_codes_do_not_depend_on_the_chunk_size(rb_table, size):
 def test_padding_repeats_the_first_sample():
     sc, schedule, laser, gen = setup("rb87-chopped-oven")
     rc = RateChoice(1e6, 20000, 20000 + 37, "test", "test", 1e6, 1.0)
-    table = render(schedule, laser, gen, sc, rc)
+    table = rendered(sc, schedule, laser, gen, rc)
     frames = list(table.frames(10000))
     codes = np.concatenate([f.codes for f in frames])
     det = np.concatenate([f.detuning for f in frames])
@@ -171,7 +180,7 @@ def test_memory_does_not_grow_with_the_table_length():
     sc, schedule, laser, gen = setup("rb87-chopped-oven")
     n = 1 << 22
     rc = RateChoice(n / schedule.period, n, n, "test", "test", 1e6, 1.0)
-    table = render(schedule, laser, gen, sc, rc)
+    table = rendered(sc, schedule, laser, gen, rc)
     tracemalloc.start()
     total = 0
     for chunk in table.chunks():
@@ -192,7 +201,7 @@ def test_a_drive_outside_the_safe_input_range_is_refused():
     sc, schedule, laser, gen = setup("rb87-chopped-oven")
     lo, hi = drive_range(schedule, laser.chain)
     with pytest.raises(CheckFailed) as err:
-        render(schedule, narrowed(laser, lo, hi - 0.01), gen, sc)
+        rendered(sc, schedule, narrowed(laser, lo, hi - 0.01), gen)
     assert [f["rule"] for f in err.value.findings] == ["render.safe_input"]
     assert "safe input range" in str(err.value)
 
@@ -202,7 +211,7 @@ def test_a_drive_outside_the_generator_output_is_refused():
     lo, hi = drive_range(schedule, laser.chain)
     small = dataclasses.replace(gen, output=dataclasses.replace(gen.output, range_min=-1.0, range_max=1.0))
     with pytest.raises(CheckFailed) as err:
-        render(schedule, laser, small, sc)
+        rendered(sc, schedule, laser, small)
     assert [f["rule"] for f in err.value.findings] == ["render.output_range"]
 
 
@@ -212,7 +221,7 @@ def test_fifty_ohm_setting_into_high_impedance_doubles_the_drive():
     lo, hi = drive_range(schedule, laser.chain)
     out = dataclasses.replace(gen.output, termination=50.0, range_min=-0.6 * max(abs(lo), abs(hi)),
                               range_max=0.6 * max(abs(lo), abs(hi)))
-    table = render(schedule, laser, dataclasses.replace(gen, output=out), sc)
+    table = rendered(sc, schedule, laser, dataclasses.replace(gen, output=out))
     assert table.info.amplitude == pytest.approx((hi - lo) / 2, rel=1e-3)   # programmed = half the drive
 
 
@@ -220,7 +229,7 @@ def test_the_range_check_is_exact_at_the_edge():
     sc, schedule, laser, gen = setup("rb87-chopped-oven")
     lo, hi = drive_range(schedule, laser.chain)
     step = 1e-3
-    table = render(schedule, narrowed(laser, lo - step, hi + step), gen, sc)
+    table = rendered(sc, schedule, narrowed(laser, lo - step, hi + step), gen)
     codes = table.codes()
     drive = table.info.code_offset + table.info.code_scale * codes.astype(float)
     assert drive.min() >= lo - step and drive.max() <= hi + step

@@ -10,7 +10,7 @@ from scipy import signal
 
 from sweepgen._config import Section
 from sweepgen.errors import InputError
-from sweepgen.response import Response, actuator_response, response_from_section, simulate
+from sweepgen.response import Response, response_from_section, simulate
 
 from conftest import examples
 
@@ -113,21 +113,3 @@ def test_simulate_ideal_actuator_follows_the_schedule():
     tr = simulate(sched, chain, Response(), 2e6)
     assert np.allclose(tr.actual, tr.planned, atol=1e-3)
     assert tr.time.size == round(sched.period * 2e6)
-
-
-def test_actuator_response_for_plots():
-    from sweepgen.generator import load_generator
-    from sweepgen.laser import load_laser
-    from sweepgen.planner import plan
-    from sweepgen.scenario import load_scenario
-
-    p = plan(load_scenario("rb87-chopped-oven"))
-    laser = load_laser("demo-ecdl-piezo")
-    t, d = actuator_response(p, laser, load_generator("virtual-awg"))
-    sched = p.schedule()
-    assert t.shape == d.shape and t[0] == 0 and t[-1] < sched.period
-    # the piezo follows within its ramp lag rate/(Q ω0) plus the transients (second-order lag, final-value theorem)
-    lag = laser.response.ramp_lag(sched.max_abs_rate("chirp"))
-    chirp = sched.kinds(t) == "chirp"
-    assert np.max(np.abs(d - sched.detuning(t))[chirp]) < 1.5 * lag
-    assert np.max(np.abs(d - sched.detuning(t))[chirp]) > 0.5 * lag

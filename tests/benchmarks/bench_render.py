@@ -23,6 +23,7 @@ Memory
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import subprocess
 import sys
@@ -33,6 +34,7 @@ def setup(key: str, count: int):
     from sweepgen.generator import load_generator
     from sweepgen.laser import load_laser
     from sweepgen.planner import plan
+    from sweepgen.playback import channel_playback
     from sweepgen.render import render
     from sweepgen.sampling import RateChoice
     from sweepgen.scenario import load_scenario
@@ -43,7 +45,9 @@ def setup(key: str, count: int):
     gen = load_generator(str(sc.generator_path()))
     rate = count / schedule.period
     choice = RateChoice(rate, count, count, "benchmark", "benchmark", 1.0, 1.0)
-    return schedule, render(schedule, laser, gen, sc, choice), rate
+    playing = channel_playback(schedule, laser, gen, sc.drive, linewidth=sc.species.linewidth)
+    playing = dataclasses.replace(playing, rate_choice=choice)
+    return schedule, render(playing, digest=sc.digest), rate
 
 
 def baseline(poly, count: int, rate: float, size: int) -> float:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from sweepgen._cli import handles_errors
+from sweepgen.cli._common import handles_errors
 
 
 @click.command(short_help="Run the whole job on built-in data.")

@@ -6,7 +6,7 @@ import contextlib
 
 import click
 
-from sweepgen._cli import handles_errors
+from sweepgen.cli._common import handles_errors
 from sweepgen.emulators.board import ALWAYS, FAULTS as BOARD_FAULTS
 from sweepgen.wire.frames import REQUESTS, type_name
 

@@ -4,28 +4,19 @@ from __future__ import annotations
 
 import click
 
-from sweepgen._cli import emit_json, handles_errors, json_option, si, table
+from sweepgen._format import si
+from sweepgen.cli._common import (emit_json, generator_option, handles_errors, json_option, laser_option,
+                                  prepare_playback, rate_option, table)
 
 _SYMBOL = {"fail": "FAIL", "warn": "warn", "pass": "ok"}
-
-
-def _value(v, unit):
-    if v is None:
-        return "—"
-    if unit in ("", None):
-        return f"{v:.4g}"
-    return si(v, unit)
 
 
 @click.command(short_help="Check a sweep against its laser and generator.")
 @click.argument("scenario")
 @json_option
-@click.option("--rate", "rate", default=None, metavar="RATE",
-              help="Sample rate to check, with its unit (e.g. '10 MSa/s'); overrides [drive] sample_rate.")
-@click.option("--laser", "laser_ref", default=None, metavar="LASER",
-              help="Laser profile (built-in key or path) instead of the scenario's.")
-@click.option("--generator", "generator_ref", default=None, metavar="GENERATOR",
-              help="Generator profile (built-in key or path) instead of the scenario's.")
+@rate_option
+@laser_option
+@generator_option
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
               help="Also draw each rule's margin as a bar (PNG or SVG by extension).")
 @click.option("--all", "show_all", is_flag=True, help="List passing rules too (default: failures and warnings, "
@@ -46,9 +37,7 @@ def command(scenario, as_json, rate, laser_ref, generator_ref, plot_file, show_a
       sweepgen check rb87-chopped-oven
       sweepgen check my-scenario.toml --laser ./my-laser.toml --json
     """
-    from sweepgen._cli import load_and_check
-
-    sc, report = load_and_check(scenario, rate=rate, laser_ref=laser_ref, generator_ref=generator_ref)
+    report = prepare_playback(scenario, rate=rate, laser_ref=laser_ref, generator_ref=generator_ref).report
     if plot_file:
         from sweepgen.plots import plot_check
 
@@ -73,7 +62,7 @@ def _print(report, show_all):
     shown = report.ordered() if show_all else [f for f in report.ordered() if f.status != "pass"]
     for f in shown:
         margin = "—" if f.margin is None else f"{f.margin * 100:.0f} %"
-        rows.append((_SYMBOL[f.status], f.rule, _value(f.value, f.unit), _value(f.limit, f.unit), margin,
+        rows.append((_SYMBOL[f.status], f.rule, si(f.value, f.unit), si(f.limit, f.unit), margin,
                      f.message))
     if rows:
         click.echo(table(rows, headers=("status", "rule", "value", "limit", "margin", "detail")))

@@ -1,9 +1,12 @@
-"""The ``sweepgen`` command line.
+"""The ``sweepgen`` command line: the one layer that imports click.
 
-Each command lives in its own module under :mod:`sweepgen.commands` and is
-imported only when it runs (or when help lists it), so that ``sweepgen --help``
-starts quickly. To add a command, write ``sweepgen/commands/NAME.py`` defining a
-click command called ``command`` and add it to ``COMMANDS`` below.
+Each command lives in its own module of this package and is imported only when
+it runs (or when help lists it), so that ``sweepgen --help`` starts quickly.
+Commands parse their options, call a service (mostly
+:mod:`sweepgen.playback`) and print; :mod:`sweepgen.cli._common` holds what
+they share (errors, JSON, tables, options, the progress bar). To add a command,
+write ``sweepgen/cli/NAME.py`` defining a click command called ``command`` and
+add it to ``COMMANDS`` below. Nothing outside this package imports from it.
 """
 
 from __future__ import annotations
@@ -14,7 +17,7 @@ import click
 
 from sweepgen import __version__
 
-#: command name -> (module under sweepgen.commands, one-line help shown in the listing)
+#: command name -> (module of this package, one-line help shown in the listing)
 COMMANDS = {
     "plan": ("plan", "Plan the sweep for a scenario and print its numbers."),
     "check": ("check", "Check a sweep against its laser and generator before switching on."),
@@ -36,7 +39,7 @@ class LazyGroup(click.Group):
     def get_command(self, ctx, name):
         if name not in COMMANDS:
             return None
-        module = importlib.import_module(f"sweepgen.commands.{COMMANDS[name][0]}")
+        module = importlib.import_module(f"{__name__}.{COMMANDS[name][0]}")
         return module.command
 
     def format_commands(self, ctx, formatter):

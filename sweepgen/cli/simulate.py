@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import click
 
-from sweepgen._cli import emit_json, handles_errors, json_option, si, table
+from sweepgen._format import si
+from sweepgen.cli._common import emit_json, handles_errors, json_option, table
 from sweepgen.errors import InputError
 from sweepgen.simulate import DEFAULT_ATOMS
 

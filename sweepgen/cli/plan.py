@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import click
 
-from sweepgen._cli import emit_json, handles_errors, json_option, si, table
+from sweepgen._format import si
+from sweepgen.cli._common import emit_json, handles_errors, json_option, table
 
 ROWS = [
     ("capture_velocity", "capture (start) velocity", "m/s"),
@@ -50,19 +51,11 @@ def command(scenario, as_json, plot_file):
     result = plan(sc)
     doc = result.to_json()
     if plot_file:
+        from sweepgen.playback import actuator_response
         from sweepgen.plots import plot_plan
 
-        response = None
-        if sc.laser_ref:   # overlay the actuator's simulated response when the laser is known
-            from sweepgen.generator import load_generator
-            from sweepgen.laser import load_laser
-            from sweepgen.response import actuator_response
-
-            laser = load_laser(sc.laser_ref, relative_to=sc.base_dir, file=str(sc.path), key="laser")
-            gen = (load_generator(sc.generator_ref, relative_to=sc.base_dir, file=str(sc.path), key="generator")
-                   if sc.generator_ref else None)
-            response = actuator_response(result, laser, gen)
-        plot_plan(result, plot_file, response=response)
+        # overlay the actuator's simulated response when the scenario names a laser
+        plot_plan(result, plot_file, response=actuator_response(result))
     if as_json:
         emit_json(doc)
         return

@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import click
 
-from sweepgen._cli import emit_json, handles_errors, json_option, si, table
+from sweepgen._format import si
+from sweepgen.cli._common import (emit_json, generator_option, handles_errors, json_option, laser_option,
+                                  prepare_playback, progress_bar, table)
 
 #: tables larger than this get a progress bar on stderr
 PROGRESS_BYTES = 1 << 20
@@ -27,10 +29,8 @@ CAUTION: switching the output on drives the laser.
               help="Serial device or pyserial URL of a ramp board (default: link.port of its profile).")
 @click.option("--backend", default=None, metavar="BACKEND",
               help="pyvisa backend: '@py' (pure Python, the default) or another, e.g. '@ivi'.")
-@click.option("--generator", "generator_ref", default=None, metavar="GENERATOR",
-              help="Generator profile (built-in key or path) instead of the scenario's.")
-@click.option("--laser", "laser_ref", default=None, metavar="LASER",
-              help="Laser profile (built-in key or path) instead of the scenario's.")
+@generator_option
+@laser_option
 @click.option("--dry-run", is_flag=True, help="Check and render, print the exact command log; connect to nothing.")
 @click.option("--arm", is_flag=True, help="Switch the output on after a verified upload (prints a caution first).")
 @json_option
@@ -52,69 +52,24 @@ def command(scenario, resource, serial_port, backend, generator_ref, laser_ref, 
       sweepgen upload rb87-chopped-oven --dry-run
       sweepgen upload rb87-chopped-oven --resource TCPIP::127.0.0.1::5025::SOCKET
     """
-    import sys
-
-    from sweepgen import drivers
-    from sweepgen._cli import load_and_check
-    from sweepgen.checker import require_playable
-    from sweepgen.drivers.base import Delivery
     from sweepgen.errors import InputError
-    from sweepgen.render import render
 
     if resource is not None and serial_port is not None:
         raise InputError("give either --resource (VISA) or --serial-port (ramp board), not both",
                          key="--serial-port")
-    sc, report = load_and_check(scenario, laser_ref=laser_ref, generator_ref=generator_ref)
-    require_playable(report)
-    gen = report.generator
-    name = "serial" if (serial_port is not None or gen.kind == "board") else "visa"
-    if name == "serial":
-        if gen.kind != "board":
-            raise InputError(f"generator '{gen.key}' is an arbitrary-waveform generator on a VISA link; "
-                             f"--serial-port is for ramp boards (use --resource)", key="--serial-port")
-        if resource is not None:
-            raise InputError(f"generator '{gen.key}' is a ramp board on a serial link; use --serial-port",
-                             key="--resource")
-        if backend is not None:
-            raise InputError("--backend chooses the VISA backend; a ramp board is reached through pyserial",
-                             key="--backend")
-        destination = serial_port or gen.link.address
-        options = {}
-    else:
-        destination = resource or gen.link.address
-        options = {"trigger_source": "EXT" if sc.pulsed else "IMM"}
-        if backend is not None:
-            options["backend"] = backend
-    driver = drivers.load(name)()
-    table_ = render(report.plan.schedule(), report.laser, gen, sc, rate_choice=report.rate)
-
+    pb = prepare_playback(scenario, laser_ref=laser_ref, generator_ref=generator_ref).require_playable()
+    link = pb.link(resource=resource, serial_port=serial_port, backend=backend)
+    info = pb.table().info
     if arm and not dry_run:
         click.echo(CAUTION, err=True)
-    bar = None
-    progress = None
-    if not dry_run and table_.info.nbytes > PROGRESS_BYTES:
-        bar = click.progressbar(length=table_.info.nbytes, label=f"uploading to {destination}",
-                                file=sys.stderr, show_eta=True)
-        bar.__enter__()
-        state = {"done": 0}
-
-        def progress(done, total):
-            bar.update(done - state["done"])
-            state["done"] = done
-
-    delivery = Delivery(destination=destination, generator=gen, arm=arm, dry_run=dry_run, progress=progress,
-                        options=options)
-    try:
-        result = driver.deliver(table_, delivery)
-    finally:
-        if bar is not None:
-            bar.__exit__(None, None, None)
-    doc = {"scenario": str(sc.path), "title": sc.title, "generator": gen.key, "laser": report.laser.key,
-           **result}
+    show = not dry_run and info.nbytes > PROGRESS_BYTES
+    with progress_bar(info.nbytes, f"uploading to {link.destination}", show=show) as progress:
+        result = pb.upload(link, arm=arm, dry_run=dry_run, progress=progress)
+    doc = result.to_json()
     if as_json:
         emit_json(doc)
         return
-    _print(doc, table_.info, dry_run, arm)
+    _print(doc, info, dry_run, arm)
 
 
 def _print(doc, info, dry_run, arm):

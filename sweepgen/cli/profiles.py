@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from sweepgen._cli import emit_json, handles_errors, json_option, table
+from sweepgen.cli._common import emit_json, handles_errors, json_option, table
 
 
 @click.command(short_help="List the built-in profiles.")

@@ -1,1 +1,0 @@
-"""One module per CLI command; each defines a click command named ``command``."""

@@ -1,0 +1,361 @@
+"""The playback service: a scenario, checked, becomes what the generator plays.
+
+One call, :func:`prepare`, runs the chain from the files to the verdict and
+keeps everything computed on the way::
+
+    scenario ─► laser and generator profiles ─► plan ─► design rules
+             ─► what each output plays (ChannelPlayback): drive range,
+                sample-rate choice, quantisation; computed here, once
+             ─► laser, generator, sample-rate, quantisation and tracking rules
+    Playback ─► table() ─► export(...) through a file driver
+                         └► upload(link(...)) to an instrument, with its trigger
+
+The commands ``check``, ``export``, ``upload`` and ``demo`` go through it: they
+parse their options, call it and print. Nothing is recomputed after
+:func:`prepare`; the checker's rules, the renderer and the deliveries read the
+same :class:`ChannelPlayback`.
+
+A scenario plays today on one output, the main channel (:data:`MAIN`, the
+slowing light's detuning sweep). :attr:`Playback.channels` maps channel names
+to what each plays, so further outputs take their place beside it. All
+numbers are SI (Hz, Sa/s, s, drive units V or Hz); result objects have
+``to_json()``.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from sweepgen import checker, sampling
+from sweepgen.errors import CheckFailed, InputError
+from sweepgen.generator import load_generator
+from sweepgen.laser import load_laser
+from sweepgen.render import drive_range, render
+from sweepgen.scenario import Scenario, load_scenario
+
+#: the name of the main channel: the slowing light's detuning sweep
+MAIN = "main"
+
+
+# ---------------------------------------------------------------------------------------------
+# Profiles: the one home of "which laser and generator play this scenario"
+# ---------------------------------------------------------------------------------------------
+def load_profile(kind: str, ref: str, *, key: str | None = None):
+    """A laser (``kind="laser"``) or generator profile a person named directly.
+
+    ``ref`` is a built-in key or a path from the current folder; ``key`` names
+    where it was given (an option, an argument) in error messages.
+    """
+    loaders = {"laser": load_laser, "generator": load_generator}
+    if kind not in loaders:
+        raise ValueError(f"no profile kind {kind!r}")
+    return loaders[kind](ref, key=key or kind)
+
+
+def scenario_profiles(scenario: Scenario, laser=None, generator=None, *, required: bool = True):
+    """``(laser, generator)`` that play ``scenario``: the ones given, else the ones it names.
+
+    Profiles a scenario names are found relative to its folder
+    (:meth:`Scenario.laser_path`). With ``required`` a scenario that names no
+    laser or generator is an :class:`InputError`; without it that profile is None.
+    """
+    if laser is None and (required or scenario.laser_ref is not None):
+        laser = load_laser(str(scenario.laser_path()))
+    if generator is None and (required or scenario.generator_ref is not None):
+        generator = load_generator(str(scenario.generator_path()))
+    return laser, generator
+
+
+# ---------------------------------------------------------------------------------------------
+# What one output plays
+# ---------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class ChannelPlayback:
+    """What one generator output plays over one period (SI units).
+
+    ``drive_range`` is exact (the schedule's extremes through the chain);
+    ``rate_choice`` is None when no sample rate plays the sweep and
+    ``quantisation`` None when no code window does (the drive leaves the safe
+    input or the output range, or the output kind does not fit the chain); the
+    refusals say why. The checker judges these, the renderer plays them.
+    """
+
+    name: str                                   # channel name (MAIN for the slowing light)
+    output: int                                 # generator output number (1-based)
+    schedule: object                            # sweepgen.schedule.Schedule
+    laser: object                               # sweepgen.laser.Laser
+    generator: object                           # sweepgen.generator.Generator
+    drive_range: tuple[float, float]            # drive units (V at the actuator, or Hz)
+    rate_choice: sampling.RateChoice | None
+    quantisation: sampling.Quantisation | None
+    rate_refusal: str = ""
+    quantisation_refusal: str = ""
+
+    @property
+    def drive_unit(self) -> str:
+        return self.laser.chain.drive_unit
+
+
+def channel_playback(schedule, laser, generator, drive, *, linewidth: float | None = None,
+                     sample_rate: float | None = None, name: str = MAIN) -> ChannelPlayback:
+    """Drive range, sample-rate choice and quantisation of ``schedule`` on ``generator``.
+
+    ``drive`` is the scenario's ``[drive]`` options (:class:`sweepgen.scenario.Drive`);
+    ``sample_rate`` (Sa/s) overrides its ``sample_rate``; ``linewidth`` (Hz)
+    sets the default detuning step tolerance. A fixed rate the generator does
+    not play is kept (the checker fails it with the numbers).
+    """
+    chain = laser.chain
+    lo, hi = drive_range(schedule, chain)
+    choice, rate_refusal = None, ""
+    try:
+        choice = sampling.choose_rate(schedule, chain, generator, drive, linewidth=linewidth, strict=False,
+                                      rate=sample_rate)
+    except CheckFailed as exc:
+        rate_refusal = str(exc)
+    quant, quant_refusal = None, ""
+    try:
+        quant = sampling.quantisation(lo, hi, generator, chain)
+    except CheckFailed as exc:
+        quant_refusal = str(exc)
+    return ChannelPlayback(name, drive.channel, schedule, laser, generator, (lo, hi), choice, quant,
+                           rate_refusal, quant_refusal)
+
+
+# ---------------------------------------------------------------------------------------------
+# The service
+# ---------------------------------------------------------------------------------------------
+def prepare(scenario, *, laser=None, generator=None, sample_rate: float | None = None) -> "Playback":
+    """Check ``scenario`` and work out what it plays.
+
+    Parameters
+    ----------
+    scenario : Scenario or str
+        A loaded scenario, a built-in key or a path.
+    laser, generator : optional
+        Loaded profiles used instead of the scenario's (see :func:`load_profile`).
+    sample_rate : float, optional
+        Sa/s, instead of the scenario's ``[drive] sample_rate``.
+
+    Returns
+    -------
+    Playback
+        ``ok`` is False when a rule fails; bad input (unreadable files, a
+        profile missing) raises :class:`sweepgen.errors.InputError` instead.
+    """
+    sc = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
+    laser, generator = scenario_profiles(sc, laser, generator)
+    report = checker.CheckReport([], scenario=sc, laser=laser, generator=generator)
+    plan = checker.check_design(report)
+    channels = {}
+    if plan is not None:
+        main = channel_playback(plan.schedule(), laser, generator, sc.drive, linewidth=sc.species.linewidth,
+                                sample_rate=sample_rate)
+        checker.check_hardware(report, main)
+        channels[MAIN] = main
+    return Playback(sc, laser, generator, report, channels)
+
+
+@dataclass(frozen=True)
+class Link:
+    """How an upload reaches its instrument: driver, destination, trigger.
+
+    ``trigger_source`` is ``EXT`` for a pulsed source (each period starts on
+    the source's trigger) and ``IMM`` for a continuous beam (free running);
+    ramp boards are triggered by their own firmware (None).
+    """
+
+    driver: str                          # "visa" | "serial"
+    destination: str                     # VISA resource string or pyserial URL
+    trigger_source: str | None = None
+    backend: str | None = None           # pyvisa backend (None: the driver's default)
+
+    def options(self) -> dict:
+        """The driver options (``Delivery.options``)."""
+        out = {}
+        if self.trigger_source is not None:
+            out["trigger_source"] = self.trigger_source
+        if self.backend is not None:
+            out["backend"] = self.backend
+        return out
+
+
+@dataclass
+class Playback:
+    """A checked scenario and what it plays; :func:`prepare` makes it."""
+
+    scenario: Scenario
+    laser: object
+    generator: object
+    report: checker.CheckReport
+    channels: dict                       # name -> ChannelPlayback (empty when the design itself fails)
+    _tables: dict = field(default_factory=dict, repr=False)
+
+    @property
+    def ok(self) -> bool:
+        return self.report.ok
+
+    @property
+    def plan(self):
+        return self.report.plan
+
+    @property
+    def main(self) -> ChannelPlayback | None:
+        return self.channels.get(MAIN)
+
+    def to_json(self) -> dict:
+        """The ``check --json`` document: ``ok``, ``findings`` and ``playback``."""
+        return self.report.to_json()
+
+    def require_playable(self) -> "Playback":
+        """Raise :class:`CheckFailed` (exit 1) unless no rule fails."""
+        checker.require_playable(self.report)
+        return self
+
+    def table(self, channel: str = MAIN):
+        """The rendered table of one channel (:class:`sweepgen.table.RenderedTable`), made once.
+
+        Refuses (:class:`CheckFailed`) when a rule fails: nothing unsafe is rendered.
+        """
+        if channel not in self._tables:
+            self.require_playable()
+            self._tables[channel] = render(self.channels[channel], digest=self.scenario.digest)
+        return self._tables[channel]
+
+    # -- delivery ---------------------------------------------------------------------------
+    def export(self, file_format: "FileFormat", directory, options: dict, *, progress=None) -> "Delivered":
+        """Write the main table and its sidecar into ``directory`` with a file driver.
+
+        ``options`` are the driver's; ``name`` is the file name without
+        extension (see :func:`default_file_name`).
+        """
+        from sweepgen import sidecar
+        from sweepgen.drivers.base import Delivery
+
+        table = self.table()
+        delivery = Delivery(destination=str(directory), generator=self.generator, options=dict(options),
+                            progress=progress, sidecar=sidecar.provenance(self.scenario, self.laser, self.generator))
+        report = file_format.driver.deliver(table, delivery)
+        return Delivered(self, "file", file_format.name, str(directory), table.info, report)
+
+    def link(self, *, resource: str | None = None, serial_port: str | None = None,
+             backend: str | None = None) -> Link:
+        """The link an upload takes: a ramp board over serial, any other generator over VISA.
+
+        ``resource`` / ``serial_port`` replace the profile's ``[link]`` address;
+        ``backend`` chooses the pyvisa backend. A contradiction is an :class:`InputError`.
+        """
+        gen = self.generator
+        if serial_port is None and gen.kind != "board":
+            return Link("visa", resource or gen.link.address,
+                        trigger_source="EXT" if self.scenario.pulsed else "IMM", backend=backend)
+        if gen.kind != "board":
+            raise InputError(f"generator '{gen.key}' is an arbitrary-waveform generator on a VISA link; "
+                             f"--serial-port is for ramp boards (use --resource)", key="--serial-port")
+        if resource is not None:
+            raise InputError(f"generator '{gen.key}' is a ramp board on a serial link; use --serial-port",
+                             key="--resource")
+        if backend is not None:
+            raise InputError("--backend chooses the VISA backend; a ramp board is reached through pyserial",
+                             key="--backend")
+        return Link("serial", serial_port or gen.link.address)
+
+    def upload(self, link: Link, *, arm: bool = False, dry_run: bool = False, progress=None) -> "Delivered":
+        """Upload the main table over ``link``, verified; outputs switch on only with ``arm``."""
+        from sweepgen import drivers
+        from sweepgen.drivers.base import Delivery
+
+        driver = drivers.load(link.driver)()
+        table = self.table()
+        delivery = Delivery(destination=link.destination, generator=self.generator, arm=arm, dry_run=dry_run,
+                            progress=progress, options=link.options())
+        report = driver.deliver(table, delivery)
+        return Delivered(self, "instrument", link.driver, link.destination, table.info, report)
+
+
+@dataclass(frozen=True)
+class FileFormat:
+    """A file format: the name it is registered under and its driver (an instance)."""
+
+    name: str
+    driver: object
+
+    def check_options(self, options: dict) -> None:
+        """Refuse options the driver does not know, before any work (:class:`InputError`)."""
+        if hasattr(self.driver, "check_options"):
+            self.driver.check_options(options)
+
+
+def file_format(name: str) -> FileFormat:
+    """The file driver registered as ``name`` (entry-point group ``sweepgen.drivers``)."""
+    from sweepgen import drivers
+
+    return FileFormat(name, drivers.load(name, kind="file")())
+
+
+def default_file_name(scenario: Scenario) -> str:
+    """The scenario's file name, reduced to characters every file system takes."""
+    stem = re.sub(r"[^A-Za-z0-9_.+-]+", "-", Path(str(scenario.path)).stem).strip(".-")
+    return stem or "sweep"
+
+
+@dataclass(frozen=True)
+class Delivered:
+    """What one delivery did: the table's facts (SI) and the driver's report."""
+
+    playback: Playback
+    kind: str                   # "file" | "instrument"
+    driver: str
+    destination: str
+    info: object                # sweepgen.table.TableInfo of the delivered table
+    report: dict                # the driver's own report (files, bytes, steps, verification, ...)
+
+    @property
+    def verified(self) -> bool:
+        return bool((self.report.get("verification") or {}).get("ok"))
+
+    def to_json(self) -> dict:
+        """The ``export --json`` or ``upload --json`` document."""
+        pb, info = self.playback, self.info
+        head = {"scenario": str(pb.scenario.path), "title": pb.scenario.title}
+        if self.kind != "file":
+            return {**head, "generator": pb.generator.key, "laser": pb.laser.key, **self.report}
+        return {"ok": True, "written": True, **head, "laser": pb.laser.key, "generator": pb.generator.key,
+                "format": self.driver, **self.report,
+                "period_count": info.period_count, "padding": info.count - info.period_count,
+                "drive_unit": info.drive_unit, "code_scale": info.code_scale, "code_offset": info.code_offset,
+                "amplitude": info.amplitude, "offset": info.offset,
+                "warnings": [f.to_json() for f in pb.report.warnings()]}
+
+
+# ---------------------------------------------------------------------------------------------
+# The actuator's response, for plots of a plan
+# ---------------------------------------------------------------------------------------------
+def actuator_response(plan, laser=None, generator=None):
+    """The simulated laser detuning over one period, ``(t, detuning_hz)``, or None without a laser.
+
+    ``laser`` and ``generator`` default to the ones the plan's scenario names.
+    With a generator the drive is played as it would be (its sample rate and
+    codes, the same :func:`channel_playback` the checker judges); without one
+    it is simulated unquantised at :func:`sweepgen.response.preview_rate`.
+    ``plots.plot_plan(plan, file, response=actuator_response(plan))`` overlays it.
+    """
+    from sweepgen import response
+
+    laser, generator = scenario_profiles(plan.scenario, laser, generator, required=False)
+    if laser is None:
+        return None
+    schedule = plan.schedule()
+    quant = None
+    if generator is None:
+        rate = response.preview_rate(laser.response, schedule.period)
+    else:
+        playing = channel_playback(schedule, laser, generator, plan.scenario.drive,
+                                   linewidth=plan.species.linewidth)
+        if playing.rate_choice is None:
+            raise CheckFailed(playing.rate_refusal)
+        rate, quant = playing.rate_choice.rate, playing.quantisation
+    tr = response.simulate(schedule, laser.chain, laser.response, rate, quant=quant)
+    return tr.time, tr.actual
