@@ -124,88 +124,124 @@ def choose_rate(schedule, chain, generator, drive_options, *, linewidth: float |
         message says which limit wins.
     """
     sm = generator.sampling
-    period = schedule.period
     tol, tol_src = step_tolerance(drive_options, linewidth)
-    sweep_rate = schedule.max_abs_rate()
-    need = sweep_rate / tol if sweep_rate > 0 else 0.0
+    demand = _Demand(schedule.period, schedule.max_abs_rate(), tol, tol_src)
     fixed = rate if rate is not None else getattr(drive_options, "sample_rate", None)
-
     if fixed is not None:
-        n = max(int(round(period * fixed)), 1)
-        count = _pad(n, sm)
-        src = "--rate" if rate is not None else "drive.sample_rate"
-        if strict and not sm.allows(fixed):
-            allowed = (", ".join(si(r, 'Sa/s', 6) for r in sm.rates) if sm.rates
-                       else f"{si(sm.rate_min, 'Sa/s', 6)} to {si(sm.rate_max, 'Sa/s', 6)}")
-            raise CheckFailed(f"{src} = {si(fixed, 'Sa/s', 6)} is not a rate generator '{generator.key}' plays "
-                              f"({allowed})")
-        if strict and count > sm.memory:
-            raise CheckFailed(f"at {src} = {si(fixed, 'Sa/s', 6)} one period needs {count} samples but generator "
-                              f"'{generator.key}' holds {sm.memory}; lower the rate to at most "
-                              f"{si(sm.memory / period, 'Sa/s', 6)}")
-        return RateChoice(fixed, n, count, f"fixed by {src}", f"rate fixed by {src}", tol,
-                          sweep_rate / fixed, n / fixed - period)
-
-    mem_rate = (sm.memory // sm.granularity) * sm.granularity / period   # fastest rate that fits
+        return _fixed_choice(fixed, "--rate" if rate is not None else "drive.sample_rate", demand, generator,
+                             strict)
     if sm.rates is None:
-        upper = min(sm.rate_max, mem_rate)
-        lower = max(need, sm.rate_min, sm.min_length / period)
-        if lower > upper * (1 + 1e-12):
-            raise CheckFailed(_no_rate_message(need, tol, tol_src, sweep_rate, sm, mem_rate, period, generator))
-        target = max(need * HEADROOM, sm.rate_min, sm.min_length / period)
-        chosen = _nice_up(target)
-        limited = ("detuning step tolerance" if target == need * HEADROOM else
-                   "generator minimum rate" if target == sm.rate_min else "generator minimum record length")
-        if chosen > upper:
-            chosen = upper
-            limited = "generator memory" if mem_rate < sm.rate_max else "generator maximum rate"
-        # a whole number of samples per period, a multiple of the granularity
-        g = sm.granularity
-        n = math.ceil(round(period * chosen, 6) / g) * g
-        if n / period > upper * (1 + 1e-12):
-            n = math.floor(round(period * chosen, 6) / g) * g
-        if n >= 1 and lower * (1 - 1e-12) <= n / period <= upper * (1 + 1e-12):
-            chosen = n / period
-        else:
-            n = max(int(round(period * chosen)), 1)
-        period_count = n
+        chosen, period_count, limited = _ranged_rate(demand, generator)
     else:
-        fits = [r for r in sm.rates if _pad(max(int(round(period * r)), 1), sm) <= sm.memory]
-        good = [r for r in fits if r >= need * (1 - 1e-12)]
-        if not good:
-            raise CheckFailed(_no_rate_message(need, tol, tol_src, sweep_rate, sm, mem_rate, period, generator))
-        comfy = [r for r in good if r >= need * HEADROOM]
-        chosen = comfy[0] if comfy else good[-1]
-        limited = ("detuning step tolerance" if chosen == good[0] and need > 0 else
-                   "generator's listed rates")
-        if not comfy and len(good) and good[-1] == chosen and chosen != sm.rates[-1]:
-            limited = "generator memory"
-        period_count = max(int(round(period * chosen)), 1)
+        chosen, period_count, limited = _listed_rate(demand, generator)
     count = _pad(period_count, sm)
-    step = sweep_rate / chosen
-    err = period_count / chosen - period
+    step = demand.sweep_rate / chosen
+    err = period_count / chosen - demand.period
     reason = (f"{si(chosen, 'Sa/s', 6)}: steps of at most {step / 1e3:.4g} kHz per sample (tolerance "
               f"{tol / 1e3:.4g} kHz, {tol_src}); {period_count} samples per period"
               + (f", padded to {count}" if count != period_count else "")
-              + (f"; the table lasts {err * 1e9:+.3g} ns longer than the period" if abs(err) > 1e-12 * period
-                 else "") + f"; decided by the {limited}")
+              + (f"; the table lasts {err * 1e9:+.3g} ns longer than the period"
+                 if abs(err) > 1e-12 * demand.period else "") + f"; decided by the {limited}")
     return RateChoice(chosen, period_count, count, limited, reason, tol, step, err)
 
 
-def _no_rate_message(need, tol, tol_src, sweep_rate, sm, mem_rate, period, generator) -> str:
+@dataclass(frozen=True)
+class _Demand:
+    """What the sweep asks of the sample rate: the detuning step per sample stays within ``tolerance``."""
+
+    period: float            # s
+    sweep_rate: float        # Hz/s, the largest |dΔ/dt| over the period
+    tolerance: float         # Hz per sample
+    source: str              # where the tolerance comes from
+
+    @property
+    def need(self) -> float:
+        """The lowest rate (Sa/s) that keeps the step within the tolerance."""
+        return self.sweep_rate / self.tolerance if self.sweep_rate > 0 else 0.0
+
+    def memory_rate(self, sm) -> float:
+        """The fastest rate at which one period (a whole number of granules) fits in the memory."""
+        return (sm.memory // sm.granularity) * sm.granularity / self.period
+
+
+def _fixed_choice(fixed: float, src: str, demand: _Demand, generator, strict: bool) -> RateChoice:
+    """A rate the person fixed; ``strict`` refuses one the generator does not play or hold."""
+    sm, period = generator.sampling, demand.period
+    n = max(int(round(period * fixed)), 1)
+    count = _pad(n, sm)
+    if strict and not sm.allows(fixed):
+        allowed = (", ".join(si(r, "Sa/s", 6) for r in sm.rates) if sm.rates
+                   else f"{si(sm.rate_min, 'Sa/s', 6)} to {si(sm.rate_max, 'Sa/s', 6)}")
+        raise CheckFailed(f"{src} = {si(fixed, 'Sa/s', 6)} is not a rate generator '{generator.key}' plays "
+                          f"({allowed})")
+    if strict and count > sm.memory:
+        raise CheckFailed(f"at {src} = {si(fixed, 'Sa/s', 6)} one period needs {count} samples but generator "
+                          f"'{generator.key}' holds {sm.memory}; lower the rate to at most "
+                          f"{si(sm.memory / period, 'Sa/s', 6)}")
+    return RateChoice(fixed, n, count, f"fixed by {src}", f"rate fixed by {src}", demand.tolerance,
+                      demand.sweep_rate / fixed, n / fixed - period)
+
+
+def _ranged_rate(demand: _Demand, generator) -> tuple[float, int, str]:
+    """``(rate, period_count, deciding limit)`` on a generator that plays any rate in a range:
+    the rounded-up rate with room (:data:`HEADROOM`), nudged to a whole number of granules per period."""
+    sm, period, need = generator.sampling, demand.period, demand.need
+    mem_rate = demand.memory_rate(sm)
+    upper = min(sm.rate_max, mem_rate)
+    lower = max(need, sm.rate_min, sm.min_length / period)
+    if lower > upper * (1 + 1e-12):
+        raise CheckFailed(_no_rate_message(demand, sm, generator))
+    target = max(need * HEADROOM, sm.rate_min, sm.min_length / period)
+    chosen = _nice_up(target)
+    limited = ("detuning step tolerance" if target == need * HEADROOM else
+               "generator minimum rate" if target == sm.rate_min else "generator minimum record length")
+    if chosen > upper:
+        chosen = upper
+        limited = "generator memory" if mem_rate < sm.rate_max else "generator maximum rate"
+    # a whole number of samples per period, a multiple of the granularity
+    g = sm.granularity
+    n = math.ceil(round(period * chosen, 6) / g) * g
+    if n / period > upper * (1 + 1e-12):
+        n = math.floor(round(period * chosen, 6) / g) * g
+    if n >= 1 and lower * (1 - 1e-12) <= n / period <= upper * (1 + 1e-12):
+        chosen = n / period
+    else:
+        n = max(int(round(period * chosen)), 1)
+    return chosen, n, limited
+
+
+def _listed_rate(demand: _Demand, generator) -> tuple[float, int, str]:
+    """``(rate, period_count, deciding limit)`` on a generator that plays only listed rates: the
+    slowest with room whose period fits in memory, else the fastest that fits."""
+    sm, period, need = generator.sampling, demand.period, demand.need
+    fits = [r for r in sm.rates if _pad(max(int(round(period * r)), 1), sm) <= sm.memory]
+    good = [r for r in fits if r >= need * (1 - 1e-12)]
+    if not good:
+        raise CheckFailed(_no_rate_message(demand, sm, generator))
+    comfy = [r for r in good if r >= need * HEADROOM]
+    chosen = comfy[0] if comfy else good[-1]
+    limited = ("detuning step tolerance" if chosen == good[0] and need > 0 else
+               "generator's listed rates")
+    if not comfy and len(good) and good[-1] == chosen and chosen != sm.rates[-1]:
+        limited = "generator memory"
+    return chosen, max(int(round(period * chosen)), 1), limited
+
+
+def _no_rate_message(demand: _Demand, sm, generator) -> str:
+    need, period, mem_rate = demand.need, demand.period, demand.memory_rate(sm)
     top = sm.rates[-1] if sm.rates else sm.rate_max
     head = (f"no sample rate of generator '{generator.key}' plays this sweep: keeping the detuning step "
-            f"below {tol / 1e3:.4g} kHz ({tol_src}) at |dΔ/dt| up to {sweep_rate:.4g} Hz/s needs at least "
-            f"{si(need, 'Sa/s', 6)}")
+            f"below {demand.tolerance / 1e3:.4g} kHz ({demand.source}) at |dΔ/dt| up to "
+            f"{demand.sweep_rate:.4g} Hz/s needs at least {si(need, 'Sa/s', 6)}")
     if need > top and top <= mem_rate:
-        return head + f", but its fastest rate is {si(top, 'Sa/s', 6)} (the rate limit wins); raise drive.max_step, " \
-                      f"lengthen chirp.return_time, or use a faster generator"
+        return head + (f", but its fastest rate is {si(top, 'Sa/s', 6)} (the rate limit wins); raise "
+                       f"drive.max_step, lengthen chirp.return_time, or use a faster generator")
     if need > mem_rate:
         return head + (f", but one period of {period * 1e3:.4g} ms fits in its memory of {sm.memory} samples "
                        f"only up to {si(mem_rate, 'Sa/s', 6)} (the memory wins); shorten chirp.period, raise "
                        f"drive.max_step, or use a generator with more memory")
-    return head + f"; its rates ({si(sm.rate_min, 'Sa/s', 6)} and up) overflow its memory of {sm.memory} samples " \
-                  f"for a period of {period * 1e3:.4g} ms (the memory wins)"
+    return head + (f"; its rates ({si(sm.rate_min, 'Sa/s', 6)} and up) overflow its memory of {sm.memory} "
+                   f"samples for a period of {period * 1e3:.4g} ms (the memory wins)")
 
 
 # ----------------------------------------------------------------------------------
