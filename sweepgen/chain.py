@@ -132,77 +132,84 @@ class AnalogStage(LinearMap):
 
 
 class Calibration:
-    """A monotone least-squares polynomial ``upstream = P(downstream)`` from measured points.
+    """A monotone polynomial ``upstream = poly(drive)`` over a calibrated drive range.
 
-    Parameters
-    ----------
-    drive, value : array_like
-        Measured downstream values (V) and the upstream frequency (Hz) at each.
-    degree : int, optional
-        Polynomial degree; default ``min(3, n - 2)``. At least ``degree + 2``
-        points are needed so that the residuals mean something.
+    Built from measured points (:meth:`from_points`: a profile's ``drive`` /
+    ``detuning`` lists, fitted by :func:`sweepgen.calibration.fit_points`) or
+    from a fit written into a profile by ``sweepgen calibrate``
+    (:meth:`from_coefficients`). Outside the range the curve is continued
+    linearly (and the checker fails a sweep that goes there). ``stats`` holds
+    what the fit is judged by, frequencies in Hz: ``points``, ``rms_residual``,
+    ``max_residual``, and for a measured calibration ``uncertainty``,
+    ``outliers``, ``hysteresis``, ``method`` and where the measurements came from.
 
     Raises
     ------
     ValueError
         With the reason: too few points, repeated drive values, measured values
-        that are not monotone, or a fit that is not monotone over the range.
+        that are not monotone, or a curve that is not monotone over the range.
     """
 
     GRID = 4097
 
-    def __init__(self, drive, value, degree: int | None = None):
-        u = np.asarray(drive, dtype=float)
-        x = np.asarray(value, dtype=float)
-        n = len(u)
-        if n != len(x):
-            raise ValueError(f"{n} drive values but {len(x)} measured values; give one per point")
-        if n < 3:
-            raise ValueError(f"too short: {n} point(s); a calibration needs at least 3 measured points")
-        if degree is None:
-            degree = min(3, n - 2)
-        if degree < 1:
-            raise ValueError(f"degree must be at least 1, got {degree}")
-        if n < degree + 2:
-            raise ValueError(f"too short: {n} points for a degree-{degree} fit; give at least {degree + 2} "
-                             f"(one more than the fit's coefficients, so the residuals mean something)")
-        order = np.argsort(u)
-        u, x = u[order], x[order]
-        if np.any(np.diff(u) == 0):
-            raise ValueError(f"the drive value {u[np.flatnonzero(np.diff(u) == 0)[0]]:g} appears twice")
-        dx = np.diff(x)
-        if not (np.all(dx > 0) or np.all(dx < 0)):
-            i = int(np.flatnonzero(np.sign(dx) != np.sign(dx[0]))[0]) if np.any(dx != 0) else 0
-            raise ValueError(f"not monotone: the measured value turns between drive {u[i]:g} and "
-                             f"{u[i + 1]:g} (and {u[min(i + 2, n - 1)]:g}); a tuning curve must rise or fall "
-                             f"throughout (re-measure, or calibrate a narrower range)")
-        from numpy.polynomial import Polynomial
+    def __init__(self, poly, u_min: float, u_max: float, stats: dict | None = None):
+        from sweepgen.calibration import turning_point
 
-        self.poly = Polynomial.fit(u, x, degree)
-        self.dpoly = self.poly.deriv()
-        self.degree = degree
-        self.u_min, self.u_max = float(u[0]), float(u[-1])
+        self.poly = poly
+        self.dpoly = poly.deriv()
+        self.u_min, self.u_max = float(u_min), float(u_max)
+        if not self.u_max > self.u_min:
+            raise ValueError(f"the calibrated range {self.u_min:g} to {self.u_max:g} is empty")
+        turn = turning_point(poly, self.u_min, self.u_max)
+        if turn is not None:
+            raise ValueError(f"the degree-{self.degree} fit is not monotone near drive {turn:g} (its slope "
+                             f"changes sign inside the calibrated range); lower 'degree' or add points")
+        self.stats = dict(stats or {})
         grid = np.linspace(self.u_min, self.u_max, self.GRID)
         slope = self.dpoly(grid)
-        self.increasing = bool(dx[0] > 0)
-        if not (np.all(slope > 0) if self.increasing else np.all(slope < 0)):
-            bad = grid[(slope <= 0) if self.increasing else (slope >= 0)][0]
-            raise ValueError(f"the degree-{degree} fit is not monotone near drive {bad:g} (its slope changes "
-                             f"sign inside the calibrated range); lower 'degree' or add points")
-        self.residuals = x - self.poly(u)
-        self.points = (u, x)
+        self.increasing = bool(slope[self.GRID // 2] > 0)
         self._grid_u = grid
-        self._grid_x = self.poly(grid)
-        self.x_lo, self.x_hi = float(self.poly(self.u_min)), float(self.poly(self.u_max))
+        self._grid_x = poly(grid)
+        self.x_lo, self.x_hi = float(poly(self.u_min)), float(poly(self.u_max))
         self.slope_lo, self.slope_hi = float(slope[0]), float(slope[-1])
 
-    @property
-    def rms_residual(self) -> float:
-        return float(np.sqrt(np.mean(self.residuals ** 2)))
+    @classmethod
+    def from_points(cls, drive, value, degree: int | None = None) -> "Calibration":
+        """Fit measured ``(drive, value)`` points (see :func:`sweepgen.calibration.fit_points`)."""
+        from sweepgen.calibration import fit_points
+
+        fit = fit_points(drive, value, degree)
+        cal = cls(fit.poly, fit.drive_min, fit.drive_max,
+                  {"points": fit.points, "rms_residual": fit.residual_rms, "max_residual": fit.residual_max,
+                   "method": fit.method})
+        cal.residuals = fit.residuals
+        return cal
+
+    @classmethod
+    def from_coefficients(cls, coefficients, u_min: float, u_max: float, stats: dict | None = None):
+        """The polynomial ``sum c_k x^k``, ``x = (2u − (u_min + u_max)) / (u_max − u_min)``."""
+        from numpy.polynomial import Polynomial
+
+        poly = Polynomial(np.asarray(coefficients, dtype=float), domain=[u_min, u_max], window=[-1.0, 1.0])
+        return cls(poly, u_min, u_max, stats)
 
     @property
-    def max_residual(self) -> float:
-        return float(np.max(np.abs(self.residuals)))
+    def degree(self) -> int:
+        return len(self.poly.coef) - 1
+
+    @property
+    def coefficients(self) -> list:
+        """Coefficients in the scaled drive ``x`` in [-1, 1] (Hz), lowest power first."""
+        return [float(c) for c in self.poly.coef]
+
+    @property
+    def rms_residual(self) -> float | None:
+        """RMS of the fit's residuals (Hz of the stage's upstream frequency), None if unknown."""
+        return self.stats.get("rms_residual")
+
+    @property
+    def max_residual(self) -> float | None:
+        return self.stats.get("max_residual")
 
     def value(self, u):
         """Upstream frequency at downstream values ``u`` (linear continuation outside the range)."""
@@ -256,9 +263,14 @@ class CalibratedMap(Stage):
 
     def info(self):
         c = self.calibration
-        return {**super().info(), "degree": c.degree, "points": len(c.residuals),
-                "rms_residual": c.rms_residual, "max_residual": c.max_residual,
-                "range": [c.u_min, c.u_max], "unit": self.down_unit}
+        doc = {**super().info(), "degree": c.degree, "coefficients": c.coefficients,
+               "range": [c.u_min, c.u_max], "range_unit": self.down_unit,
+               "residual_unit": "Hz", "residual_of": self.upstream_label}
+        doc.update({k: v for k, v in c.stats.items() if k not in doc})
+        return doc
+
+    #: what the stage's upstream frequency is (the residuals are in Hz of it)
+    upstream_label = "optical detuning"
 
 
 class CalibratedStage(CalibratedMap):
@@ -350,6 +362,7 @@ class VcoLinear(LinearMap):
 
 class VcoCalibrated(CalibratedMap):
     kind = "vco"
+    upstream_label = "RF frequency"
 
 
 class DdsStage(Stage):
@@ -468,24 +481,49 @@ _DEFAULT_NAMES = {"analog": "analog input", "calibrated": "calibrated input", "a
                   "offset_lock": "offset lock", "vco": "VCO", "dds": "DDS"}
 
 
-def _quantities(sec: Section, name: str, unit: str, example: str) -> np.ndarray:
-    from sweepgen import units
-
-    raw = sec.raw(name)
-    if not isinstance(raw, list):
-        raise sec.error(name, f"expected a list of values such as [\"{example}\", ...], got {raw!r}")
-    return np.array([units.parse(v, unit, file=sec.file, key=f"{sec.key(name)}[{i}]", example=example)
-                     for i, v in enumerate(raw)])
+#: keys a calibrated stage written by ``sweepgen calibrate`` may carry besides the fit itself
+#: (what the fit is judged by and where it came from; reported, carried into sidecars)
+RECORD_QUANTITIES = ("rms_residual", "max_residual", "uncertainty", "hysteresis")
+RECORD_NUMBERS = ("points", "outliers")
+RECORD_TEXTS = ("method", "measurements", "measurements_sha256", "calibrated")
 
 
 def _calibration(sec: Section, drive_name: str, drive_unit: str, value_name: str) -> Calibration:
-    u = _quantities(sec, drive_name, drive_unit, f"1.5 {drive_unit}")
-    x = _quantities(sec, value_name, "Hz", "-120 MHz")
+    if sec.has("coefficients"):
+        return _fitted_calibration(sec, drive_unit)
+    from sweepgen import units
+
+    u = units.parse_many(sec.raw(drive_name), drive_unit, file=sec.file, key=sec.key(drive_name),
+                         example=f"1.5 {drive_unit}")
+    x = units.parse_many(sec.raw(value_name), "Hz", file=sec.file, key=sec.key(value_name), example="-120 MHz")
     degree = sec.number("degree", None, integer=True, minimum=1, maximum=7)
     try:
-        return Calibration(u, x, degree)
+        return Calibration.from_points(u, x, degree)
     except ValueError as exc:
         raise sec.error(value_name, f"calibration refused: {exc}") from None
+
+
+def _fitted_calibration(sec: Section, drive_unit: str) -> Calibration:
+    """A fit written by ``sweepgen calibrate``: ``fit``, ``range``, ``coefficients`` and its record."""
+    from sweepgen import units
+
+    sec.string("fit", choices=("polynomial",))
+    ends = units.parse_many(sec.raw("range"), drive_unit, file=sec.file, key=sec.key("range"),
+                            example=f"0 {drive_unit}")
+    if len(ends) != 2 or not ends[1] > ends[0]:
+        raise sec.error("range", f"expected [low, high], two drive values in {drive_unit} with low < high")
+    lo, hi = float(ends[0]), float(ends[1])
+    coef = units.parse_many(sec.raw("coefficients"), "Hz", file=sec.file, key=sec.key("coefficients"),
+                            example="-120 MHz")
+    if len(coef) < 2 or len(coef) > 8:
+        raise sec.error("coefficients", f"expected 2 to 8 coefficients (degree 1 to 7), got {len(coef)}")
+    stats = {k: sec.quantity(k, "Hz", None, nonnegative=True) for k in RECORD_QUANTITIES}
+    stats.update({k: sec.number(k, None, integer=True, nonnegative=True) for k in RECORD_NUMBERS})
+    stats.update({k: sec.string(k, None) for k in RECORD_TEXTS})
+    try:
+        return Calibration.from_coefficients(coef, lo, hi, {k: v for k, v in stats.items() if v is not None})
+    except ValueError as exc:
+        raise sec.error("coefficients", f"calibration refused: {exc}") from None
 
 
 def _sign(sec: Section, name: str) -> int:
@@ -538,7 +576,7 @@ def stage_from_section(sec: Section) -> Stage:
             beat = (lo, hi)
         st = OffsetLockStage(name, reference, sign, mult, div, beat, key=sec.key("beat_min"))
     elif kind == "vco":
-        if isinstance(sec.data.get("voltage"), list):
+        if isinstance(sec.data.get("voltage"), list) or sec.has("coefficients"):
             st = VcoCalibrated(name, _calibration(sec, "voltage", "V", "frequency"), "V", sec.key("voltage"))
         else:
             coef = sec.quantity("coefficient", "Hz/V", example="40 MHz/V")

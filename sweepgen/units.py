@@ -113,3 +113,44 @@ def _has_angle(ureg, unit) -> bool:
 def _short(exc: Exception) -> str:
     text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
     return text[:120]
+
+
+def parse_many(values, unit: str, *, file=None, key=None, example: str | None = None):
+    """Parse a list of quantity strings into a NumPy array of floats in ``unit``.
+
+    The same rules as :func:`parse`, but pint is asked once per distinct unit
+    text instead of once per value, so a list of 100 000 measured points reads in
+    a fraction of a second. A value that does not fit the fast path (no number,
+    an offset unit, anything unusual) goes through :func:`parse`, whose error
+    names ``key[i]``.
+    """
+    import numpy as np
+
+    if not isinstance(values, (list, tuple)):
+        raise InputError(f"expected a list of values such as [\"{example or '1 ' + unit}\", ...], got {values!r}",
+                         file=file, key=key)
+    out = np.empty(len(values), dtype=float)
+    factors: dict[str, float | None] = {}
+    for i, value in enumerate(values):
+        match = _NUMBER_UNIT.match(value) if isinstance(value, str) else None
+        factor = None
+        if match and match.group(2) and not re.search(r"(?i)\b(nan|inf|infinity)\b", value):
+            text = match.group(2)
+            if text not in factors:
+                factors[text] = _linear_factor(text, unit)
+            factor = factors[text]
+        if factor is None:
+            out[i] = parse(value, unit, file=file, key=f"{key}[{i}]" if key else None, example=example)
+        else:
+            out[i] = float(match.group(1)) * factor
+    return out
+
+
+def _linear_factor(text: str, unit: str) -> float | None:
+    """The factor from ``text`` to ``unit`` if the conversion is a plain scaling, else None."""
+    try:
+        one = parse(f"1 {text}", unit)
+        zero = parse(f"0 {text}", unit)
+    except InputError:
+        return None
+    return one if zero == 0.0 else None

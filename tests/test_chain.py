@@ -111,7 +111,7 @@ def _cal_points(n=11, noise=0.2e6, seed=3):
 
 def test_calibrated_round_trip_within_fit_residual():
     u, x = _cal_points()
-    cal = Calibration(u, x, 3)
+    cal = Calibration.from_points(u, x, 3)
     # the fit reproduces the measurements within its own residuals
     assert np.max(np.abs(cal.value(u) - x)) == pytest.approx(cal.max_residual)
     assert cal.rms_residual < 0.5e6
@@ -125,13 +125,13 @@ def test_calibrated_round_trip_within_fit_residual():
 
 def test_calibration_refused_when_too_short_or_not_monotone():
     with pytest.raises(ValueError, match="too short"):
-        Calibration([0, 1], [0, 1e6])
+        Calibration.from_points([0, 1], [0, 1e6])
     with pytest.raises(ValueError, match="too short"):
-        Calibration([0, 1, 2, 3], [0, 1e6, 2e6, 3e6], degree=3)
+        Calibration.from_points([0, 1, 2, 3], [0, 1e6, 2e6, 3e6], degree=3)
     with pytest.raises(ValueError, match="not monotone"):
-        Calibration([0, 1, 2, 3, 4], [0, 1e6, 2e6, 1.5e6, 3e6])
+        Calibration.from_points([0, 1, 2, 3, 4], [0, 1e6, 2e6, 1.5e6, 3e6])
     with pytest.raises(ValueError, match="twice"):
-        Calibration([0, 1, 1, 3], [0, 1e6, 2e6, 3e6])
+        Calibration.from_points([0, 1, 1, 3], [0, 1e6, 2e6, 3e6])
 
 
 def test_calibrated_stage_from_profile_reports_reason():
