@@ -103,3 +103,39 @@ def describe() -> list[dict]:
             rows.append({"name": name, "kind": "?", "description": f"failed to load: {exc}",
                          "options": {}, "module": ep.value})
     return rows
+
+
+def read_table(source):
+    """Read back a table file with the driver that wrote it: a :class:`sweepgen.readback.ReadTable`.
+
+    The driver is the one the JSON sidecar names (``FILE.json`` beside the file,
+    or the sidecar itself); without a sidecar, a self-describing format whose
+    file extension matches (HDF5).
+    """
+    from pathlib import Path
+
+    from sweepgen import readback
+
+    data, side = readback.locate(source)
+    if side is not None:
+        name = readback.load_sidecar(side)["driver"]
+        return _reader(name, str(side)).read(str(side))
+    for name, ep in available().items():
+        try:
+            cls = ep.load()
+        except Exception:
+            continue
+        ext = getattr(cls, "extension", "")
+        if getattr(cls, "self_describing", False) and ext and Path(data).suffix.lower() in (f".{ext}",
+                                                                                          *getattr(cls, "suffixes", ())):
+            return cls().read(str(data))
+    raise InputError(f"no sidecar {Path(data).name}.json beside the table, and no installed driver reads "
+                     f"'{Path(data).suffix}' files on their own", file=str(data))
+
+
+def _reader(name: str, where: str):
+    try:
+        return load(name)()
+    except InputError:
+        raise InputError(f"the sidecar names driver {name!r}, which is not installed (registered: "
+                         f"{', '.join(available()) or 'none'})", file=where, key="driver") from None

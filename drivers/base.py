@@ -66,6 +66,15 @@ class Driver(abc.ABC):
     def deliver(self, table, delivery: Delivery) -> dict:
         """Deliver ``table``; return a report (steps, bytes, files, verification)."""
 
+    def read(self, source: str, delivery: Delivery | None = None):
+        """Read back a table this driver delivered: a :class:`sweepgen.readback.ReadTable`.
+
+        ``source`` is a file (or its sidecar) for file drivers, a VISA resource
+        or a serial URL for instrument drivers (with ``delivery.generator``).
+        The default says the driver cannot read back.
+        """
+        raise DriverError(f"driver {self.name!r} cannot read a table back")
+
 
 # ---------------------------------------------------------------------------------------------
 # Atomic groups of files
@@ -140,6 +149,13 @@ class AtomicFileSet:
             raise DriverError(f"{target}: cannot write ({exc.strerror})") from None
         self._entries.append((target, Path(tmp), handle))
         return handle
+
+    def temporary(self, name: str) -> Path:
+        """The temporary path behind ``folder/name`` (for libraries that write files by name)."""
+        for target, tmp, _ in self._entries:
+            if target.name == name:
+                return tmp
+        raise KeyError(name)
 
     @property
     def targets(self) -> list[Path]:
@@ -284,16 +300,29 @@ class FileDriver(Driver):
     def layout(self, table, options: dict) -> dict:
         """Validate ``options`` against the table; describe the stored values (see class doc)."""
 
-    @abc.abstractmethod
     def write(self, table, out: HashingWriter, layout: dict, delivery: Delivery) -> None:
-        """Write the data to ``out`` (a binary writer); raise on failure."""
+        """Write the data to ``out`` (a binary writer); raise on failure. Every file driver
+        implements this or, with ``writes_path``, :meth:`write_path`."""
+        raise NotImplementedError
 
     def file_names(self, options: dict) -> tuple[str, str]:
         data = f"{options['name']}.{self.extension}"
         return data, data + ".json"
 
+    #: True for formats written by a library that opens the file by name (HDF5): the driver
+    #: implements :meth:`write_path` instead of :meth:`write`
+    writes_path: ClassVar[bool] = False
+    #: True for self-describing formats that :meth:`read` understands without a JSON sidecar
+    self_describing: ClassVar[bool] = False
+
+    def write_path(self, table, path: Path, layout: dict, delivery: Delivery, fields: dict) -> None:
+        """Write the data to ``path`` (only for ``writes_path`` drivers); ``fields`` is the sidecar
+        document without the file's own size and digest."""
+        raise NotImplementedError
+
     def deliver(self, table, delivery: Delivery) -> dict:
         from sweepgen import sidecar
+        from sweepgen.table import DigestingTable
 
         options = self.check_options(dict(delivery.options))
         layout = self.layout(table, options)
@@ -304,19 +333,54 @@ class FileDriver(Driver):
                   "dtype": layout["dtype"], "dry_run": bool(delivery.dry_run)}
         if delivery.dry_run:
             return report
+        seen = DigestingTable(table)
+
+        def document(sha, nbytes, digest):
+            return sidecar.build(table.info, driver=self.name, data_file=data_name, sha256=sha, nbytes=nbytes,
+                                 layout=layout, provenance=delivery.sidecar, table_sha256=digest)
+
         try:
             with AtomicFileSet(folder) as files:
                 handle = files.open(data_name, "wb")
-                out = HashingWriter(handle, delivery.progress, layout.get("expected_bytes") or 0)
-                self.write(table, out, layout, delivery)
-                doc = sidecar.build(table.info, driver=self.name, data_file=data_name,
-                                    sha256=out.hexdigest(), nbytes=out.bytes, layout=layout,
-                                    provenance=delivery.sidecar)
+                if self.writes_path:
+                    handle.close()
+                    tmp = files.temporary(data_name)
+                    self.write_path(seen, tmp, layout, delivery, document(None, 0, None))
+                    sha, nbytes = sidecar.file_digest(tmp), tmp.stat().st_size
+                else:
+                    out = HashingWriter(handle, delivery.progress, layout.get("expected_bytes") or 0)
+                    self.write(seen, out, layout, delivery)
+                    sha, nbytes = out.hexdigest(), out.bytes
+                doc = document(sha, nbytes, seen.hexdigest())
                 files.open(sidecar_name, "w", encoding="utf-8").write(sidecar.dumps(doc))
                 files.commit()         # data file first, sidecar last; all or nothing
         except OSError as exc:
             raise DriverError(f"{exc.filename or folder}: write failed ({exc.strerror or exc}); "
                               f"the folder was left as it was") from None
-        report.update(bytes=out.bytes, sha256=out.hexdigest(),
+        report.update(bytes=nbytes, sha256=sha, table_sha256=doc["table_sha256"],
                       paths=[str(folder / data_name), str(folder / sidecar_name)])
         return report
+
+    # -- reading back ----------------------------------------------------------------------------
+    def load_values(self, path: Path, doc: dict):
+        """The stored values of a data file this driver wrote, as the sidecar ``doc`` describes them."""
+        raise DriverError(f"driver {self.name!r} cannot read a table back")
+
+    def read(self, source, delivery: Delivery | None = None):
+        """Read a data file (named directly or through its sidecar), verify and return it."""
+        from sweepgen import readback
+
+        data, side = readback.locate(source)
+        if side is None:
+            raise InputError(f"no sidecar {data.name}.json beside the table; it says how to decode the "
+                             f"values (sample rate, scaling)", file=str(data))
+        doc = readback.load_sidecar(side)
+        checks = readback.file_checks(data, doc)
+        try:
+            values = self.load_values(data, doc)
+        except (ValueError, OSError) as exc:
+            raise InputError(f"cannot read the values as the sidecar describes them ({exc})",
+                             file=str(data)) from None
+        table = readback.ReadTable(data, doc, values, self.name, checks)
+        table.checks += readback.value_checks(table)
+        return table

@@ -49,3 +49,9 @@ class CsvDriver(FileDriver):
             done += len(frame.codes)
             if delivery.progress is not None:
                 delivery.progress(done, table.info.count)
+
+    def load_values(self, path, doc):
+        names = [c["name"] for c in doc["columns"]]
+        dtype = np.dtype(doc["numpy_dtype"]).newbyteorder("=")
+        return np.loadtxt(path, delimiter=doc["delimiter"], skiprows=int(doc["header_lines"]),
+                          usecols=names.index(doc["value_column"]), dtype=dtype, ndmin=1)

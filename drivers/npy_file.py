@@ -48,3 +48,6 @@ class NpyDriver(FileDriver):
         out.write(layout["_header"])
         for chunk in table.chunks():
             out.write(np.ascontiguousarray(chunk, dtype=dtype))
+
+    def load_values(self, path, doc):
+        return np.load(path, allow_pickle=False)

@@ -113,3 +113,7 @@ class RawDriver(FileDriver):
         spec = layout["_spec"]
         for chunk in table.chunks():
             out.write(convert(chunk, spec))
+
+    def load_values(self, path, doc):
+        return np.fromfile(path, dtype=np.dtype(doc["numpy_dtype"]), count=int(doc["count"]),
+                           offset=int(doc.get("header_bytes") or 0))

@@ -9,7 +9,11 @@ sweepgen. Its keys (SI units; frequencies and detunings in Hz):
     ``{"name": "sweepgen", "version": ...}``.
 ``driver``, ``data_file``, ``data_bytes``, ``sha256``
     The driver that wrote the data file, its name (same folder), size and the
-    SHA-256 of its bytes as written (the whole file). Format-specific keys
+    SHA-256 of its bytes as written (the whole file).
+``table_sha256``
+    SHA-256 of the generator codes as little-endian bytes of
+    ``generator.code_dtype``, whatever the file format: the digest an upload
+    records for the table it sends, so a file and an upload can be matched. Format-specific keys
     follow (csv: ``columns``, ``value_column``, ``delimiter``,
     ``header_lines``; npy: ``npy_format``; raw float32: ``normalised``).
 ``sample_rate``, ``count``, ``period_count``, ``padding``, ``duration``, ``period``
@@ -103,8 +107,8 @@ def scaling(info, value_to_code: dict) -> dict:
     return out
 
 
-def build(info, *, driver: str, data_file: str, sha256: str, nbytes: int, layout: dict,
-          provenance: dict | None = None) -> dict:
+def build(info, *, driver: str, data_file: str, sha256: str | None, nbytes: int, layout: dict,
+          provenance: dict | None = None, table_sha256: str | None = None) -> dict:
     """The sidecar document for one data file.
 
     Parameters
@@ -129,6 +133,7 @@ def build(info, *, driver: str, data_file: str, sha256: str, nbytes: int, layout
         "data_file": data_file,
         "data_bytes": int(nbytes),
         "sha256": sha256,
+        "table_sha256": table_sha256,
         "sample_rate": float(info.sample_rate),
         "count": int(info.count),
         "period_count": int(info.period_count),

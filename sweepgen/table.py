@@ -126,3 +126,42 @@ class RenderedTable:
     def crc32(self) -> int:
         """CRC-32 (``zlib.crc32``) of the code bytes in ``info.dtype``."""
         return self._digest()[1]
+
+
+class DigestingTable:
+    """A view of a :class:`RenderedTable` that hashes the codes as a driver reads them.
+
+    The codes pass through unchanged; :meth:`hexdigest` is the SHA-256 of the
+    codes as little-endian bytes of ``info.dtype`` (equal to
+    :attr:`RenderedTable.sha256`) once one whole pass has been read in order,
+    else None. A file driver thus records the table's digest without rendering
+    the table twice.
+    """
+
+    def __init__(self, table: RenderedTable):
+        self.info = table.info
+        self._table = table
+        self._sha = hashlib.sha256()
+        self._done = 0
+        self._complete = False
+
+    def frames(self, size: int | None = None) -> Iterator[Frame]:
+        first = not self._complete and self._done == 0
+        dtype = np.dtype(self.info.dtype).newbyteorder("<")
+        for frame in self._table.frames(size):
+            if first and frame.start == self._done:
+                self._sha.update(np.ascontiguousarray(frame.codes, dtype=dtype).tobytes())
+                self._done += len(frame.codes)
+            yield frame
+        if first and self._done == self.info.count:
+            self._complete = True
+
+    def chunks(self, size: int | None = None) -> Iterator[np.ndarray]:
+        for frame in self.frames(size):
+            yield frame.codes
+
+    def codes(self) -> np.ndarray:
+        return np.concatenate(list(self.chunks())) if self.info.count else np.empty(0, self.info.dtype)
+
+    def hexdigest(self) -> str | None:
+        return self._sha.hexdigest() if self._complete else None

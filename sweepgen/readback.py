@@ -1,0 +1,299 @@
+"""Tables read back from files: verification, decoding, the sweep's numbers, a schedule.
+
+A driver's ``read`` method (:meth:`sweepgen.drivers.base.Driver.read`) returns a
+:class:`ReadTable`: the stored values as read and the sidecar that describes
+them (from the JSON sidecar, or from the file's own attributes for a
+self-describing format). From the sidecar alone this module
+
+* verifies the file (size and SHA-256 of its bytes; the SHA-256 of the codes,
+  ``table_sha256``, which is also what an upload records);
+* decodes the values to generator codes, drive (V at the actuator, or Hz) and
+  optical detuning (Hz) versus time ``t = index / sample_rate``;
+* finds the sweep's parts (rest, chirp, hold, return) and the numbers a
+  physicist checks it by (:func:`analyse`);
+* makes a :class:`sweepgen.schedule.Schedule` of what the table plays, for
+  ``check --table`` and ``simulate --table`` (:func:`table_schedule`).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from sweepgen.errors import InputError
+
+#: most pieces of the piecewise-linear schedule made from a table (longer tables are averaged down)
+MAX_NODES = 1 << 16
+#: the chirp-rate estimate averages over windows long enough that one code step moves it by at
+#: most this fraction of the largest step per sample
+RATE_QUANTISATION = 0.01
+
+
+@dataclass
+class ReadTable:
+    """A table read back: the stored values and the sidecar that describes them."""
+
+    path: Path
+    sidecar: dict
+    values: np.ndarray
+    driver: str
+    checks: list = field(default_factory=list)     # [{"check", "ok", "expected", "found"}]
+
+    @property
+    def verified(self) -> bool:
+        return all(c["ok"] for c in self.checks)
+
+    @property
+    def count(self) -> int:
+        return int(self.sidecar["count"])
+
+    @property
+    def sample_rate(self) -> float:
+        return float(self.sidecar["sample_rate"])
+
+    @property
+    def drive_unit(self) -> str:
+        return self.sidecar["scaling"]["drive"].get("unit", "V")
+
+    def time(self) -> np.ndarray:
+        return np.arange(len(self.values)) / self.sample_rate
+
+    def codes(self) -> np.ndarray:
+        """Generator codes (DAC codes or DDS tuning words) in the generator's code dtype."""
+        sc = self.sidecar["scaling"]["code"]
+        dtype = np.dtype(self.sidecar["generator"]["code_dtype"])
+        if sc["offset"] == 0 and sc["scale"] == 1 and self.values.dtype.kind in "iu":
+            return self.values.astype(dtype)
+        return np.rint(sc["offset"] + sc["scale"] * self.values.astype(float)).astype(dtype)
+
+    def _exact(self) -> np.ndarray:
+        """The stored values recomputed from the integer codes (removes float32 storage rounding)."""
+        sc = self.sidecar["scaling"]["code"]
+        if self.values.dtype.kind == "f" and np.dtype(self.sidecar["generator"]["code_dtype"]).kind in "iu":
+            return (self.codes().astype(float) - sc["offset"]) / sc["scale"]
+        return self.values.astype(float)
+
+    def drive(self) -> np.ndarray:
+        sc = self.sidecar["scaling"]["drive"]
+        return sc["offset"] + sc["scale"] * self._exact()
+
+    def detuning(self) -> np.ndarray:
+        """Optical detuning (Hz) by the chain the table was made for (the sidecar's scaling)."""
+        det = self.sidecar["scaling"].get("detuning")
+        if det is None:
+            raise InputError("the sidecar has no detuning scaling", file=str(self.path), key="scaling.detuning")
+        v = self._exact()
+        if det["kind"] == "linear":
+            return det["offset"] + det["scale"] * v
+        return np.interp(v, det["value"], det["detuning"])
+
+    def table_sha256(self) -> str:
+        """SHA-256 of the codes as little-endian bytes of the code dtype (what uploads record)."""
+        return codes_digest(self.codes())
+
+
+def codes_digest(codes) -> str:
+    """SHA-256 of codes as little-endian bytes of their dtype (``RenderedTable.sha256``)."""
+    codes = np.asarray(codes)
+    return hashlib.sha256(np.ascontiguousarray(codes, dtype=codes.dtype.newbyteorder("<")).tobytes()).hexdigest()
+
+
+def locate(source) -> tuple[Path, Path | None]:
+    """``(data file, JSON sidecar or None)`` for a path naming either of them."""
+    path = Path(source)
+    if path.suffix == ".json" and path.is_file():
+        doc = load_sidecar(path)
+        data = path.parent / str(doc.get("data_file", ""))
+        return data, path
+    side = path.with_name(path.name + ".json")
+    if not path.is_file():
+        raise InputError("file not found", file=str(path))
+    return path, side if side.is_file() else None
+
+
+def load_sidecar(path) -> dict:
+    """A JSON sidecar, checked for the keys a reader needs."""
+    path = Path(path)
+    try:
+        doc = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise InputError(f"not a readable JSON sidecar ({exc})", file=str(path)) from None
+    require_keys(doc, path)
+    return doc
+
+
+def require_keys(doc: dict, path) -> None:
+    if not isinstance(doc, dict) or "sweepgen_sidecar" not in doc:
+        raise InputError("not a sweepgen sidecar (no 'sweepgen_sidecar' key)", file=str(path))
+    for key in ("driver", "data_file", "sample_rate", "count", "numpy_dtype", "scaling", "generator"):
+        if key not in doc:
+            raise InputError("missing from the sidecar (required to read the table)", file=str(path), key=key)
+
+
+def file_checks(data: Path, doc: dict) -> list:
+    """Size and SHA-256 of the data file against its sidecar."""
+    from sweepgen.sidecar import file_digest
+
+    if not data.is_file():
+        raise InputError(f"the data file {data.name} named by the sidecar is missing", file=str(data))
+    checks = [{"check": "data_bytes", "expected": doc.get("data_bytes"), "found": data.stat().st_size}]
+    checks.append({"check": "sha256", "expected": doc.get("sha256"), "found": file_digest(data)})
+    for c in checks:
+        c["ok"] = c["expected"] is not None and c["expected"] == c["found"]
+    return checks
+
+
+def value_checks(table: ReadTable) -> list:
+    """Count of values and the digest of the codes against the sidecar (once the values are read)."""
+    out = [{"check": "count", "expected": table.count, "found": int(len(table.values))}]
+    expected = table.sidecar.get("table_sha256")
+    if expected is not None and len(table.values) == table.count:
+        out.append({"check": "table_sha256", "expected": expected, "found": table.table_sha256()})
+    for c in out:
+        c["ok"] = c["expected"] == c["found"]
+    return out
+
+
+# ---------------------------------------------------------------------------------------------
+# The sweep's parts and numbers
+# ---------------------------------------------------------------------------------------------
+def parts(detuning, step: float) -> dict:
+    """Sample indices of the sweep's parts: rest at the first value, chirp to the far extreme,
+    hold there, return, rest (``None`` for a table without a chirp).
+
+    ``step`` (Hz) is how far a sample may sit from a level and still be on it.
+    """
+    d = np.asarray(detuning, dtype=float)
+    start = d[0]
+    far = int(np.argmax(np.abs(d - start)))
+    end = d[far]
+    tol = max(step, 1e-9 * max(abs(start), abs(end), 1.0))
+    if abs(end - start) <= tol:
+        return {"chirp": None}
+    at_end = np.flatnonzero(np.abs(d - end) <= tol)
+    at_start = np.flatnonzero(np.abs(d - start) <= tol)
+    chirp_end = int(at_end[0])
+    before = at_start[at_start < chirp_end]
+    chirp_start = int(before[-1]) if before.size else 0
+    run = np.flatnonzero(np.abs(d[chirp_end:] - end) > tol)
+    hold_end = chirp_end + (int(run[0]) if run.size else len(d) - chirp_end)
+    back = at_start[at_start >= hold_end]
+    return_end = int(back[0]) if back.size else len(d)
+    return {"chirp": (chirp_start, chirp_end), "hold": (chirp_end, hold_end), "return": (hold_end, return_end),
+            "start_level": float(start), "end_level": float(end), "tolerance": tol}
+
+
+def windowed_rate(d, rate: float, window: int) -> np.ndarray:
+    """|dΔ/dt| from differences over ``window`` samples (Hz/s)."""
+    if len(d) <= window:
+        return np.array([abs(d[-1] - d[0]) * rate / max(len(d) - 1, 1)])
+    return np.abs(d[window:] - d[:-window]) * rate / window
+
+
+def rate_window(d, step: float) -> int:
+    """Samples per window so that one code step of ``step`` Hz is at most RATE_QUANTISATION of the
+    mean change per sample over ``d`` (a chirp)."""
+    per_sample = abs(float(d[-1]) - float(d[0])) / (len(d) - 1) if len(d) > 1 else 0.0
+    if per_sample <= 0 or step <= 0:
+        return 1
+    return max(1, int(np.ceil(step / (RATE_QUANTISATION * per_sample))))
+
+
+def analyse(table: ReadTable) -> dict:
+    """The numbers of the sweep a table plays (SI units, Hz for detunings), like ``plan``'s."""
+    doc = table.sidecar
+    d = table.detuning()[: int(doc.get("period_count", table.count))]
+    rate = table.sample_rate
+    det = doc["scaling"]["detuning"] or {}
+    step = float(det.get("step") or abs(det.get("scale", 0.0)) or 0.0)
+    p = parts(d, step)
+    drive = table.drive()
+    out = {"sample_rate": rate, "count": table.count, "period_count": int(doc.get("period_count", table.count)),
+           "padding": int(doc.get("padding", 0)), "duration": table.count / rate, "period": doc.get("period"),
+           "detuning_min": float(d.min()), "detuning_max": float(d.max()),
+           "drive_min": float(drive.min()), "drive_max": float(drive.max()), "drive_unit": table.drive_unit,
+           "code_min": int(table.codes().min()), "code_max": int(table.codes().max()),
+           "detuning_step": step}
+    if p["chirp"] is None:
+        out.update({"start_detuning": float(d[0]), "end_detuning": None, "chirp_span": 0.0, "chirp_rate_max": 0.0,
+                    "chirp_duration": 0.0, "chirp_start": None, "return_duration": None, "return_rate_max": None})
+        return out
+    a, b = p["chirp"]
+    r0, r1 = p["return"]
+    chirp = d[a:b + 1]
+    window = rate_window(chirp, step)
+    out.update({
+        "start_detuning": p["start_level"], "end_detuning": p["end_level"],
+        "chirp_span": p["end_level"] - p["start_level"],
+        "chirp_start": a / rate, "chirp_duration": (b - a) / rate, "hold": (p["hold"][1] - b) / rate,
+        "chirp_rate_max": float(windowed_rate(chirp, rate, window).max()),
+        "chirp_rate_mean": abs(p["end_level"] - p["start_level"]) * rate / max(b - a, 1),
+        "return_duration": (r1 - r0) / rate,
+        "return_rate_max": float(windowed_rate(d[max(r0 - 1, 0):r1 + 1], rate, window).max()) if r1 > r0 else 0.0,
+        "rate_window": window,
+    })
+    return out
+
+
+# ---------------------------------------------------------------------------------------------
+# A schedule of what the table plays
+# ---------------------------------------------------------------------------------------------
+def _nodes(d, csum, a: int, b: int, window: int):
+    """Node indices in samples ``a..b-1`` every ``window`` (the next part's first node ends the last
+    piece), with the mean of the
+    samples within half a window around each node (symmetric, so a ramp is not biased; narrower near
+    the part's ends, never reaching outside the part)."""
+    idx = np.arange(a, b, window)
+    if len(idx) > 1 and b - idx[-1] < window / 2:
+        idx = idx[:-1]                       # no short last piece: its slope would be a code step's
+    half = np.minimum(np.minimum(window // 2, idx - a), b - 1 - idx)
+    lo, hi = idx - half, idx + half + 1
+    return idx, (csum[hi] - csum[lo]) / (hi - lo)
+
+
+def table_schedule(detuning, sample_rate: float, period_count: int, step: float = 0.0):
+    """A :class:`sweepgen.schedule.Schedule`: piecewise linear through the table's samples.
+
+    Within each part of the sweep (rest, chirp, hold, return) the samples are
+    averaged over a window long enough that one code step (``step``, Hz) moves
+    the slope by at most :data:`RATE_QUANTISATION` of the part's own rate, and
+    no table gives more than about :data:`MAX_NODES` pieces; parts are never
+    averaged across their boundaries. Returns ``(schedule, representation_error)``:
+    the largest difference (Hz) between the schedule and the table's samples.
+    """
+    from scipy.interpolate import PPoly
+
+    from sweepgen.schedule import Schedule, Segment
+
+    d = np.asarray(detuning, dtype=float)[:period_count]
+    n = len(d)
+    period = n / sample_rate
+    least = int(np.ceil(n / MAX_NODES))
+    csum = np.concatenate([[0.0], np.cumsum(d)])
+    p = parts(d, step)
+    if p["chirp"] is None:
+        cuts, kinds = [0, n], ["rest"]
+        start = end = float(d[0])
+    else:
+        (a, b), (r0, r1) = p["chirp"], p["return"]
+        cuts, kinds = [0, a, b, r0, r1, n], ["rest", "chirp", "hold", "return", "rest"]
+        start, end = p["start_level"], p["end_level"]
+    idx, values = [], []
+    for lo, hi in zip(cuts[:-1], cuts[1:]):
+        if hi > lo:
+            w = max(least, rate_window(d[lo:hi], step) if step and hi - lo > 1 else 1)
+            i, v = _nodes(d, csum, lo, hi, w)
+            idx.append(i)
+            values.append(v)
+    t = np.concatenate([np.concatenate(idx) / sample_rate, [period]])
+    v = np.concatenate(values + [values[0][:1]])
+    slope = np.diff(v) / np.diff(t)
+    poly = PPoly(np.vstack([slope, v[:-1]]), t, extrapolate=True)
+    error = float(np.max(np.abs(poly(np.arange(n) / sample_rate) - d)))
+    segments = [Segment(k, cuts[i] / sample_rate, cuts[i + 1] / sample_rate)
+                for i, k in enumerate(kinds) if cuts[i + 1] > cuts[i]]
+    return Schedule(segments, poly, period, start, end), error
