@@ -548,8 +548,7 @@ def tracking_findings(report: CheckReport, schedule, rate: float, quant=None) ->
     add = report.findings.append
     tr = simulate(schedule, laser.chain, laser.response, rate, quant=quant)
     report.tracking = tr
-    lag_det = np.asarray(plan.trajectory.lag) / sc.species.wavelength
-    tol = sc.drive.tracking_fraction * float(np.min(lag_det))
+    tol = tracking_tolerance(plan)
     kinds = schedule.kinds(tr.time)
     err = np.abs(tr.error)
     in_chirp = kinds == "chirp"
@@ -584,3 +583,10 @@ def tracking_findings(report: CheckReport, schedule, rate: float, quant=None) ->
                   f"when the next chirp starts the laser is {si(value, 'Hz')} from the start detuning; it settles "
                   f"within {si(tol, 'Hz')} {si(settle, 's') if settle else 'at once'} after the return ({rest * 1e3:.4g} ms available)",
                   "lengthen chirp.return_time or chirp.period, or use a better damped actuator"))
+
+
+def tracking_tolerance(plan) -> float:
+    """Largest allowed difference (Hz) between the laser's detuning and the plan during the chirp:
+    ``[drive] tracking_fraction`` × the smallest lag detuning ``Δv_lag / λ`` along the chirp."""
+    sc = plan.scenario
+    return sc.drive.tracking_fraction * float(np.min(np.asarray(plan.trajectory.lag))) / sc.species.wavelength

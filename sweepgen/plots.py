@@ -194,3 +194,81 @@ def plot_drive(report, file) -> Path:
     ax.legend(fontsize=7, loc="best")
     ax.grid(alpha=0.3)
     return save(fig, file)
+
+
+def plot_calibration(result, file) -> Path:
+    """Measured points, the fitted tuning curve with its uncertainty band, and the residuals in
+    frequency (``sweepgen.recalibration.Result``); outliers and up/down sweeps marked."""
+    plt = _pyplot()
+    fit = result.fit
+    u, x = result.drive, result.upstream
+    grid = np.linspace(fit.drive_min, fit.drive_max, 801)
+    unc = fit.fit.uncertainty(grid)
+    fig, (ax, axr) = plt.subplots(2, 1, figsize=(8, 6.5), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
+    used = fit.used
+    ax.plot(u[used], x[used] / 1e6, ".", ms=2, color=COLORS["sweep"], alpha=0.5, label="measured")
+    if (~used).any():
+        ax.plot(u[~used], x[~used] / 1e6, "x", color=COLORS["limit"], label=f"outliers ({(~used).sum()}, left out)")
+    ax.plot(grid, fit.poly(grid) / 1e6, color=COLORS["design"], lw=1.5, label=f"fit, degree {fit.degree}")
+    ax.set_ylabel(("RF frequency" if result.index else "detuning") + " (MHz)")
+    ax.set_title(f"{result.stage_name}: {result.request.measurements}", fontsize=10)
+    ax.legend(fontsize=8)
+    ax.grid(alpha=0.3)
+    res = fit.residuals
+    axr.plot(u[used], res[used] / 1e3, ".", ms=2, color=COLORS["sweep"], alpha=0.5, label="residual")
+    axr.fill_between(grid, -unc / 1e3, unc / 1e3, color=COLORS["design"], alpha=0.3,
+                     label="fit uncertainty (1σ)")
+    if fit.hysteresis is not None:
+        axr.axhline(fit.hysteresis["max"] / 2e3, color=COLORS["band"], ls="--", lw=1,
+                    label="half the up − down hysteresis")
+        axr.axhline(-fit.hysteresis["max"] / 2e3, color=COLORS["band"], ls="--", lw=1)
+    axr.set_xlabel(f"drive ({result.drive_unit})")
+    axr.set_ylabel("residual (kHz)")
+    axr.legend(fontsize=8)
+    axr.grid(alpha=0.3)
+    return save(fig, file)
+
+
+def plot_table(table, numbers, file) -> Path:
+    """A table read back (``sweepgen.readback.ReadTable``): detuning and drive versus time."""
+    plt = _pyplot()
+    t = table.time()
+    step = max(1, len(t) // 20000)
+    fig, (ax, axd) = plt.subplots(2, 1, figsize=(8, 6), sharex=True)
+    ax.plot(t[::step] * 1e3, table.detuning()[::step] / 1e6, color=COLORS["sweep"], lw=1.2)
+    if numbers.get("chirp_start") is not None:
+        a = numbers["chirp_start"]
+        ax.axvspan(a * 1e3, (a + numbers["chirp_duration"]) * 1e3, color=COLORS["sweep"], alpha=0.06)
+    ax.set_ylabel("detuning (MHz)")
+    ax.set_title(f"{table.path.name} ({table.driver}, {table.count} samples)", fontsize=10)
+    ax.grid(alpha=0.3)
+    axd.plot(t[::step] * 1e3, table.drive()[::step], color=COLORS["design"], lw=1.2)
+    axd.set_ylabel(f"drive ({table.drive_unit})")
+    axd.set_xlabel("time after trigger (ms)")
+    axd.grid(alpha=0.3)
+    return save(fig, file)
+
+
+def plot_compare(cmp, file) -> Path:
+    """Measured and planned detuning on the schedule's time axis, and the tracking error with the
+    tolerance (``sweepgen.compare.Comparison``)."""
+    plt = _pyplot()
+    t = (cmp.trace.time + cmp.lag) * 1e3
+    fig, (ax, axe) = plt.subplots(2, 1, figsize=(8, 6.5), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
+    ax.plot(t, cmp.planned / 1e6, color=COLORS["design"], lw=1.5, label="planned")
+    ax.plot(t, cmp.trace.detuning / 1e6, color=COLORS["sweep"], lw=0.8, label="measured (aligned)")
+    ax.set_ylabel("detuning (MHz)")
+    ax.set_title(f"{cmp.trace.path}: {cmp.alignment['method']}, lag {cmp.lag * 1e3:.6g} ms", fontsize=10)
+    ax.legend(fontsize=8)
+    ax.grid(alpha=0.3)
+    err = cmp.error
+    axe.plot(t, err / 1e6, color=COLORS["muted"], lw=0.6, label="error, whole trace")
+    axe.plot(t[cmp.in_chirp], err[cmp.in_chirp] / 1e6, ".", ms=1.5, color=COLORS["sweep"], label="error in the chirp")
+    for sign in (1, -1):
+        axe.axhline(sign * cmp.tolerance / 1e6, color=COLORS["limit"], ls="--", lw=1,
+                    label="tolerance" if sign > 0 else None)
+    axe.set_ylabel("measured − planned (MHz)")
+    axe.set_xlabel("time after trigger, schedule axis (ms)")
+    axe.legend(fontsize=8)
+    axe.grid(alpha=0.3)
+    return save(fig, file)
