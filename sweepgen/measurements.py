@@ -3,7 +3,7 @@
 Formats:
 
 * **delimited text** (``.csv``, ``.tsv``, ``.txt``, ``.dat``, anything else):
-  comma, semicolon, tab or white space between values (found from the header
+  values separated by commas, semicolons, tabs or spaces (found from the header
   line); lines starting with ``#`` are comments; the first other line is the
   header, naming each column and its unit as ``name (unit)``, ``name [unit]`` or
   ``name_unit`` (so ``time_s,detuning_Hz,drive_V`` as ``sweepgen export`` writes
