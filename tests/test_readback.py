@@ -12,11 +12,7 @@ import pytest
 from sweepgen import drivers, readback
 from sweepgen.drivers.base import Delivery
 from sweepgen.errors import InputError
-from sweepgen.generator import load_generator
-from sweepgen.laser import load_laser
-from sweepgen.planner import plan
-from sweepgen.render import render
-from sweepgen.scenario import load_scenario
+from sweepgen.playback import prepare
 
 FORMATS = [("csv", {}), ("raw", {}), ("raw", {"dtype": "uint16", "byte_order": "big"}),
            ("raw", {"dtype": "float32"}), ("npy", {"byte_order": "big"}), ("hdf5", {}),
@@ -25,10 +21,8 @@ FORMATS = [("csv", {}), ("raw", {}), ("raw", {"dtype": "uint16", "byte_order": "
 
 @pytest.fixture(scope="module")
 def rendered():
-    sc = load_scenario("rb87-chopped-oven")
-    p = plan(sc)
-    table = render(p.schedule(), load_laser("demo-ecdl-piezo"), load_generator("virtual-awg"), sc)
-    return sc, p, table
+    played = prepare("rb87-chopped-oven")
+    return played.scenario, played.plan, played.table()
 
 
 def export(table, fmt, options, folder):

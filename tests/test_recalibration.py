@@ -4,10 +4,10 @@ import numpy as np
 import pytest
 from scipy import constants
 
-from sweepgen.checker import check
 from sweepgen.errors import InputError
 from sweepgen.laser import load_laser
 from sweepgen.measurements import read
+from sweepgen.playback import prepare
 from sweepgen.recalibration import Request, calibrate, to_json, write
 from sweepgen.scenario import load_scenario
 
@@ -46,7 +46,7 @@ def test_calibrated_profile_is_written_loads_and_checks(tmp_path):
     assert "# A piezo-tuned extended-cavity diode laser" in path.read_text()
     # the new profile plans and checks a built-in scenario
     sc = load_scenario("rb87-chopped-oven")
-    report = check(sc, laser)
+    report = prepare(sc, laser=laser).report
     assert report.finding("stage_range") is not None
     assert report.plan is not None
 
