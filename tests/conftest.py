@@ -1,9 +1,21 @@
-"""Shared test helpers: Hypothesis profiles, small scenario files written into ``tmp_path``."""
+"""Shared test helpers, one home each: Hypothesis profiles; scenario, laser and generator
+files; a third-party driver plug-in; sample tables and a reader that knows only the sidecar;
+loopback ports, pseudo-terminals and VISA sessions; the command line in-process."""
 
 from __future__ import annotations
 
+import contextlib
 import copy
+import dataclasses
+import functools
+import hashlib
+import json
+import os
+import socket
+import tty
+from typing import NamedTuple
 
+import numpy as np
 import pytest
 from hypothesis import settings
 
@@ -22,6 +34,8 @@ def examples(n: int) -> int:
     scaled = round(n * settings.default.max_examples / THOROUGH_EXAMPLES)
     return max(min(n, 2), scaled)
 
+
+# -- scenario, laser and generator files --------------------------------------------------------
 BASE_SCENARIO = {
     "title": "test scenario",
     "species": "rb87-d2",
@@ -45,12 +59,19 @@ def _value(v) -> str:
     return str(v)
 
 
+def _is_table_array(value) -> bool:
+    return isinstance(value, list) and bool(value) and all(isinstance(x, dict) for x in value)
+
+
 def to_toml(data: dict) -> str:
-    """A small TOML writer for test fixtures (scalars, lists, one or two levels of tables)."""
-    lines, tables = [], []
+    """A small TOML writer for test fixtures: scalars, lists, tables one or two levels deep and
+    arrays of tables (``[[chain]]``)."""
+    lines, tables, arrays = [], [], []
     for key, value in data.items():
         if isinstance(value, dict):
             tables.append((key, value))
+        elif _is_table_array(value):
+            arrays.append((key, value))
         else:
             lines.append(f"{key} = {_value(value)}")
     for name, table in tables:
@@ -64,39 +85,289 @@ def to_toml(data: dict) -> str:
         for sub, content in subtables:
             lines.append(f"\n[{name}.{sub}]")
             lines.extend(f"{k} = {_value(v)}" for k, v in content.items())
+    for name, array in arrays:
+        for table in array:
+            lines.append(f"\n[[{name}]]")
+            lines.extend(f"{k} = {_value(v)}" for k, v in table.items())
     return "\n".join(lines) + "\n"
 
 
-def scenario_dict(**sections) -> dict:
-    """BASE_SCENARIO with sections updated: ``scenario_dict(chirp={"margin": 0.5})``.
-    A value of ``None`` removes a key (or a whole section)."""
-    data = copy.deepcopy(BASE_SCENARIO)
+def merged(base: dict, **sections) -> dict:
+    """A deep copy of ``base`` with sections updated: a dict updates that table, another value
+    replaces it; ``None`` removes a key (or a whole section)."""
+    data = copy.deepcopy(base)
     for name, change in sections.items():
         if change is None:
             data.pop(name, None)
-        elif isinstance(change, dict):
-            section = data.setdefault(name, {})
+        elif isinstance(change, dict) and isinstance(data.get(name), dict):
+            section = data[name]
             for key, value in change.items():
                 if value is None:
                     section.pop(key, None)
                 else:
                     section[key] = value
         else:
-            data[name] = change
+            data[name] = copy.deepcopy(change)
     return data
 
 
-def install_driver_plugin(root, module: str, source: str, entries: str):
-    """Make ``root`` hold a real third-party distribution: ``module.py`` with ``source`` and a
-    ``*.dist-info`` whose ``entry_points.txt`` registers ``entries`` (lines ``name = module:Class``)
-    in the group ``sweepgen.drivers``. Put ``root`` on sys.path or PYTHONPATH to install it."""
+def scenario_dict(**sections) -> dict:
+    """BASE_SCENARIO with sections updated: ``scenario_dict(chirp={"margin": 0.5})``
+    (see :func:`merged`)."""
+    return merged(BASE_SCENARIO, **sections)
+
+
+def make_scenario(**sections):
+    """A loaded Scenario from scenario_dict(**sections), without a file."""
+    from sweepgen.scenario import scenario_from_dict
+
+    return scenario_from_dict(scenario_dict(**sections), "test.toml")
+
+
+# A continuous beam checked against its own laser and generator profiles (laser.toml and
+# gen.toml beside it, written by write_checked): a piezo-tuned laser on a 14-bit voltage board.
+# Invented test hardware; the species data are rb87-d2's.
+CHECKED_SCENARIO = scenario_dict(
+    title="test: continuous Rb beam", laser="laser.toml", generator="gen.toml",
+    source={"pulse_time": None},
+    chirp={"start_velocity": "200 m/s", "start_time": None, "hold": "0.2 ms", "return_time": "0.5 ms",
+           "period": "6 ms"})
+PIEZO_LASER = {
+    "title": "test piezo laser",
+    "limits": {"mode_hop_free": "1 GHz", "max_chirp_rate": "3 GHz/ms", "input_min": "-10 V", "input_max": "10 V",
+               "max_slew": "100 V/ms"},
+    "response": {"model": "first-order", "corner": "200 kHz"},
+    "chain": [{"stage": "analog", "coefficient": "40 MHz/V", "set_point": "-140 MHz"}],
+}
+VOLTAGE_BOARD = {
+    "title": "test generator", "kind": "board", "channels": 1,
+    "sampling": {"rate_min": "1 kSa/s", "rate_max": "20 MSa/s", "memory": 1 << 20, "granularity": 8,
+                 "min_length": 32},
+    "output": {"kind": "voltage", "range_min": "-10 V", "range_max": "10 V", "dac_bits": 14,
+               "termination": "high-z", "load": "high-z"},
+    "link": {"kind": "serial", "port": "loop://", "throughput": "1 MB/s"},
+}
+
+
+def write_checked(folder, scenario=None, laser=None, gen=None):
+    """Write ``scenario.toml``, ``laser.toml`` and ``gen.toml`` (by default CHECKED_SCENARIO,
+    PIEZO_LASER and VOLTAGE_BOARD) into ``folder``; returns the scenario's path."""
+    (folder / "laser.toml").write_text(to_toml(laser or PIEZO_LASER))
+    (folder / "gen.toml").write_text(to_toml(gen or VOLTAGE_BOARD))
+    path = folder / "scenario.toml"
+    path.write_text(to_toml(scenario or CHECKED_SCENARIO))
+    return path
+
+
+# An AWG with another dialect: long forms, SOURce1/OUTPut1 suffixes, DATA instead of TRACe,
+# big-endian blocks, a checksum query instead of a readback (all standard SCPI, but the checksum
+# node, which is the virtual instrument's own extension). Invented test profile.
+OTHER_DIALECT = {
+    "title": "AWG with another dialect (test profile)", "kind": "awg", "channels": 1,
+    "sampling": {"rate_min": "1 kSa/s", "rate_max": "50 MSa/s", "memory": 1048576, "granularity": 8,
+                 "min_length": 32},
+    "output": {"kind": "voltage", "range_min": "-10 V", "range_max": "10 V", "dac_bits": 14},
+    "link": {"kind": "visa", "resource": "TCPIP::127.0.0.1::5025::SOCKET", "throughput": "5 MB/s",
+             "timeout": "2 s"},
+    "commands": {
+        "identify": "*IDN?", "identity_pattern": "^sweepgen,other-awg,", "clear": "*CLS",
+        "reset": "*RST",
+        "output_off": "OUTPut{channel}:STATe 0",
+        "format": "FORMat:DATA {type},{bits};BORDer {border}",
+        "byte_order": "big", "upload_mode": "block", "trace_name": "CHIRP_A",
+        "upload": "DATA:DATA {name},{data}",
+        "wait": "*OPC?", "error_query": "SYSTem:ERRor:NEXT?", "no_error_pattern": '^[+]?0,"No error"',
+        "checksum": "DATA:CRC? {name}",
+        "function": "SOURce{channel}:FUNCtion:SHAPe USER;USER {name}",
+        "rate": "SOURce{channel}:FREQuency:CW {frequency}",
+        "amplitude": "SOURce{channel}:VOLTage:LEVel:IMMediate:AMPLitude {amplitude}",
+        "offset": "SOURce{channel}:VOLTage:LEVel:IMMediate:OFFSet {offset}",
+        "trigger": "TRIGger:SEQuence:SOURce {trigger_source}",
+        "output_on": "OUTPut{channel}:STATe 1",
+    },
+}
+OTHER_IDENTITY = "sweepgen,other-awg,42,1.0"
+
+
+@functools.cache
+def quick_ramp_board():
+    """The built-in demo-ramp-board (32-bit tuning words, 1 GHz clock, 1-400 MHz, 0.1-1 MSa/s)
+    with a 0.2 s reply timeout on the driver's side, so that dropped and stalled frames are
+    retried quickly (the board's own gap timeout, 0.1 s, stays below it)."""
+    from sweepgen.generator import load_generator
+
+    board = load_generator("demo-ramp-board")
+    return dataclasses.replace(board, link=dataclasses.replace(board.link, timeout=0.2))
+
+
+def deliver_to_board(table, url, generator=None, **delivery):
+    """Upload ``table`` with the serial driver to the board at ``url`` (a ``socket://`` URL or a
+    device path) in 1 KiB frames; ``generator`` defaults to quick_ramp_board(), ``options`` adds to
+    the driver options, other keywords go to the Delivery. Returns the driver's report."""
+    from sweepgen.drivers.base import Delivery
+    from sweepgen.drivers.serial_board import SerialDriver
+
+    options = {"frame_bytes": 1024, **delivery.pop("options", {})}
+    return SerialDriver().deliver(table, Delivery(url, generator or quick_ramp_board(), options=options, **delivery))
+
+
+# -- a third-party driver plug-in ----------------------------------------------------------------
+PLUGIN_SOURCE = '''
+from sweepgen.drivers.base import Driver, FileDriver
+from sweepgen.errors import DriverError
+
+
+class TextCodes(FileDriver):
+    name = "textcodes"
+    extension = "txt"
+    description = "codes as decimal text, one per line (test plug-in)"
+
+    def layout(self, table, options):
+        return {"dtype": table.info.dtype, "header_bytes": None, "value_to_code": {"offset": 0, "scale": 1}}
+
+    def write(self, table, out, layout, delivery):
+        for chunk in table.chunks():
+            out.write("".join(f"{c}\\n" for c in chunk.tolist()).encode())
+
+
+class Exploding(TextCodes):
+    name = "exploding"
+
+    def write(self, table, out, layout, delivery):
+        for n, chunk in enumerate(table.chunks()):
+            if n == 1:
+                raise DriverError("the disk filled up after the first chunk (test plug-in)")
+            out.write(chunk.tobytes())
+
+
+class Scope(Driver):
+    name = "scope"
+    kind = "instrument"
+
+    def deliver(self, table, delivery):
+        return {}
+
+
+NOT_A_DRIVER = 42
+'''
+
+
+def install_driver_plugin(root, module: str, entries: str):
+    """Make ``root`` hold a real third-party distribution: ``module.py`` with PLUGIN_SOURCE (drivers
+    ``TextCodes``, ``Exploding``, ``Scope`` and a ``NOT_A_DRIVER``) and a ``*.dist-info`` whose
+    ``entry_points.txt`` registers ``entries`` (lines ``name = module:Class``) in the group
+    ``sweepgen.drivers``. Put ``root`` on sys.path or PYTHONPATH to install it."""
     root.mkdir(parents=True, exist_ok=True)
-    (root / f"{module}.py").write_text(source)
+    (root / f"{module}.py").write_text(PLUGIN_SOURCE)
     info = root / f"{module}-1.0.dist-info"
     info.mkdir()
     (info / "METADATA").write_text(f"Metadata-Version: 2.1\nName: {module}\nVersion: 1.0\n")
     (info / "entry_points.txt").write_text("[sweepgen.drivers]\n" + entries)
     return root
+
+
+# -- sample tables, and a reader that knows only the sidecar -------------------------------------
+def sine_codes(count: int, bits: int = 14, dtype="<i2"):
+    """One period of a full-scale sine as signed DAC codes (demo data)."""
+    full_scale = 2 ** (bits - 1) - 1
+    return np.round(full_scale * np.sin(np.linspace(0, 2 * np.pi, count, endpoint=False))).astype(dtype)
+
+
+def dds_table(count=3000, rate=1e6, f0=20e6, f1=180e6, clock=1e9, bits=32, dtype="<u4"):
+    """A frequency ramp from f0 to f1 as DDS tuning words (demo data); returns (table, words).
+    FTW = round(f 2^N / f_clock) (common practice)."""
+    from sweepgen.table import Frame, RenderedTable, TableInfo
+
+    freqs = np.linspace(f0, f1, count)
+    words = np.round(freqs * 2.0**bits / clock).astype(dtype)
+    info = TableInfo(sample_rate=rate, count=count, period_count=count, dtype=dtype, output="frequency",
+                     drive_unit="Hz", code_scale=clock / 2.0**bits, code_offset=0.0, amplitude=None, offset=None)
+
+    def source(start, stop):
+        return Frame(start, np.arange(start, stop) / rate, freqs[start:stop], freqs[start:stop], words[start:stop])
+
+    return RenderedTable(info, source), words
+
+
+class SidecarRead(NamedTuple):
+    values: np.ndarray       # the numbers in the data file, as floats
+    codes: np.ndarray
+    drive: np.ndarray
+    detuning: np.ndarray
+    side: dict               # the sidecar document
+    times: np.ndarray        # sample times from the sample rate
+
+
+def read_by_sidecar(sidecar_path) -> SidecarRead:
+    """Decode a data file using only its sidecar (NumPy, json and hashlib: no sweepgen code)."""
+    side = json.loads(sidecar_path.read_text())
+    path = sidecar_path.parent / side["data_file"]
+    raw = path.read_bytes()
+    assert hashlib.sha256(raw).hexdigest() == side["sha256"]       # reference: hashlib
+    assert len(raw) == side["data_bytes"]
+    if side["header_bytes"] is None:                                # text: the value column
+        rows = np.loadtxt(path, delimiter=side["delimiter"], skiprows=side["header_lines"], ndmin=2)
+        values = rows[:, [c["name"] for c in side["columns"]].index(side["value_column"])]
+    else:
+        values = np.frombuffer(raw, dtype=np.dtype(side["numpy_dtype"]), offset=side["header_bytes"])
+    scaling = side["scaling"]
+    values = values.astype(float)
+    codes = scaling["code"]["offset"] + scaling["code"]["scale"] * values
+    drive = scaling["drive"]["offset"] + scaling["drive"]["scale"] * values
+    det = scaling["detuning"]
+    if det["kind"] == "linear":
+        detuning = det["offset"] + det["scale"] * values
+    else:
+        detuning = np.interp(values, det["value"], det["detuning"])
+    return SidecarRead(values, codes, drive, detuning, side, np.arange(side["count"]) / side["sample_rate"])
+
+
+# -- links: loopback ports, pseudo-terminals, VISA sessions ----------------------------------------
+@contextlib.contextmanager
+def refused_port():
+    """A loopback TCP port that is bound but not listening: connecting to it is refused."""
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        yield sock.getsockname()[1]
+
+
+def socket_address(url: str) -> tuple[str, int]:
+    """(host, port) of a pyserial ``socket://HOST:PORT`` URL."""
+    host, port = url[len("socket://"):].rsplit(":", 1)
+    return host, int(port)
+
+
+def raw_pty():
+    """A real pseudo-terminal pair (master, slave) with the slave in raw mode; close both."""
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    return master, slave
+
+
+@pytest.fixture(scope="module")
+def rm():
+    """A pyvisa resource manager on the pure-Python backend, one per test module (pyvisa shares
+    one session per backend, and a driver closing its own manager would close a longer-lived one)."""
+    import pyvisa
+
+    manager = pyvisa.ResourceManager("@py")
+    yield manager
+    manager.close()
+
+
+def open_visa(rm, resource: str, timeout_ms=2000):
+    """A VISA session on ``resource`` with newline terminations."""
+    return rm.open_resource(resource, read_termination="\n", write_termination="\n", timeout=timeout_ms)
+
+
+# -- the command line, in-process --------------------------------------------------------------
+def run_cli(*args):
+    """``sweepgen ARGS`` through click's test runner (stdout and stderr apart)."""
+    from click.testing import CliRunner
+
+    from sweepgen.cli import main
+
+    return CliRunner().invoke(main, [str(a) for a in args])
 
 
 @pytest.fixture(autouse=True)

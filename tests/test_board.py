@@ -6,7 +6,6 @@ import os
 import select
 import socket
 import threading
-import tty
 import zlib
 
 import numpy as np
@@ -19,7 +18,7 @@ from sweepgen.errors import InputError
 from sweepgen.generator import load_generator
 from sweepgen.testing import virtual_board
 
-from conftest import examples
+from conftest import examples, raw_pty, socket_address
 
 T = fr.MsgType
 R = fr.Reason
@@ -375,8 +374,7 @@ def test_serve_forever_calls_ready_with_its_port_and_stops_on_request():
 
 
 def test_board_serves_a_pseudo_terminal():
-    master, slave = os.openpty()
-    tty.setraw(slave)
+    master, slave = raw_pty()
     board = BoardEmulator(GEN)
     try:
         with board.start_fd(master):
@@ -396,8 +394,8 @@ def test_virtual_board_yields_a_pyserial_url_carrying_the_board():
     with virtual_board("demo-ramp-board", faults={"drop": 1}) as url:
         assert isinstance(url, str) and url.startswith("socket://127.0.0.1:")
         assert url.board.faults.counts == {"drop": 1}
-        port = int(url.rsplit(":", 1)[1])
-        with socket.create_connection(("127.0.0.1", port), timeout=5):
+        address = socket_address(url)
+        with socket.create_connection(address, timeout=5):
             pass
     with pytest.raises(OSError):
-        socket.create_connection(("127.0.0.1", port), timeout=1).close()
+        socket.create_connection(address, timeout=1).close()

@@ -1,7 +1,6 @@
 """The checker: each rule fails on a profile crafted to violate it, with the right
 number, and passes on a compliant one. Profiles are written into tmp_path."""
 
-import copy
 import json
 import math
 
@@ -15,60 +14,8 @@ from sweepgen.errors import CheckFailed
 from sweepgen.playback import prepare
 from sweepgen.scenario import load_scenario
 
+from conftest import CHECKED_SCENARIO, PIEZO_LASER, VOLTAGE_BOARD, merged, write_checked
 
-# -- a tiny TOML writer for the test profiles --------------------------------------
-def _val(v):
-    if isinstance(v, str):
-        return json.dumps(v)
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, list):
-        return "[" + ", ".join(_val(x) for x in v) + "]"
-    return repr(v)
-
-
-def dump(data: dict) -> str:
-    lines, tables, arrays = [], [], []
-    for k, v in data.items():
-        if isinstance(v, dict):
-            tables.append((k, v))
-        elif isinstance(v, list) and v and isinstance(v[0], dict):
-            arrays.append((k, v))
-        else:
-            lines.append(f"{k} = {_val(v)}")
-    for k, t in tables:
-        lines.append(f"[{k}]")
-        lines += [f"{kk} = {_val(vv)}" for kk, vv in t.items()]
-    for k, arr in arrays:
-        for t in arr:
-            lines.append(f"[[{k}]]")
-            lines += [f"{kk} = {_val(vv)}" for kk, vv in t.items()]
-    return "\n".join(lines) + "\n"
-
-
-SCENARIO = {
-    "title": "test: continuous Rb beam", "species": "rb87-d2", "laser": "laser.toml", "generator": "gen.toml",
-    "source": {"model": "effusive", "temperature": "390 K"},
-    "light": {"saturation": 3.0, "start": "0.05 m"},
-    "target": {"distance": "1.0 m", "capture_velocity": "20 m/s"},
-    "chirp": {"start_velocity": "200 m/s", "end_velocity": "15 m/s", "margin": 0.6, "hold": "0.2 ms",
-              "return_time": "0.5 ms", "period": "6 ms"},
-}
-LASER = {
-    "title": "test piezo laser",
-    "limits": {"mode_hop_free": "1 GHz", "max_chirp_rate": "3 GHz/ms", "input_min": "-10 V", "input_max": "10 V",
-               "max_slew": "100 V/ms"},
-    "response": {"model": "first-order", "corner": "200 kHz"},
-    "chain": [{"stage": "analog", "coefficient": "40 MHz/V", "set_point": "-140 MHz"}],
-}
-GEN = {
-    "title": "test generator", "kind": "board", "channels": 1,
-    "sampling": {"rate_min": "1 kSa/s", "rate_max": "20 MSa/s", "memory": 1 << 20, "granularity": 8,
-                 "min_length": 32},
-    "output": {"kind": "voltage", "range_min": "-10 V", "range_max": "10 V", "dac_bits": 14,
-               "termination": "high-z", "load": "high-z"},
-    "link": {"kind": "serial", "port": "loop://", "throughput": "1 MB/s"},
-}
 DDS_LASER = {
     "title": "test offset-locked laser",
     "limits": {"mode_hop_free": "1 GHz", "max_chirp_rate": "3 GHz/ms", "input_min": "100 MHz",
@@ -77,28 +24,14 @@ DDS_LASER = {
     "chain": [{"stage": "offset_lock", "reference": "-1.6 GHz", "sign": 1, "divider": 8},
               {"stage": "dds", "clock": "1 GHz", "bits": 32}],
 }
-DDS_GEN = dict(GEN, output={"kind": "frequency", "clock": "1 GHz", "word_bits": 32, "range_min": "1 MHz",
-                            "range_max": "400 MHz"})
+DDS_GEN = dict(VOLTAGE_BOARD, output={"kind": "frequency", "clock": "1 GHz", "word_bits": 32, "range_min": "1 MHz",
+                                      "range_max": "400 MHz"})
 
 RB_LAMBDA = 780.241209686e-9     # 87Rb D2 vacuum wavelength (D. A. Steck, Rubidium 87 D Line Data, recalled)
 
 
-def merged(base, **sections):
-    out = copy.deepcopy(base)
-    for k, v in sections.items():
-        if isinstance(v, dict) and isinstance(out.get(k), dict):
-            out[k] = {**out[k], **v}
-            out[k] = {kk: vv for kk, vv in out[k].items() if vv is not None}
-        else:
-            out[k] = v
-    return out
-
-
 def run(tmp_path, scenario=None, laser=None, gen=None, rate=None):
-    (tmp_path / "scenario.toml").write_text(dump(scenario or SCENARIO))
-    (tmp_path / "laser.toml").write_text(dump(laser or LASER))
-    (tmp_path / "gen.toml").write_text(dump(gen or GEN))
-    return prepare(load_scenario(str(tmp_path / "scenario.toml")), sample_rate=rate).report
+    return prepare(load_scenario(str(write_checked(tmp_path, scenario, laser, gen))), sample_rate=rate).report
 
 
 def status(report, rule):
@@ -128,7 +61,7 @@ def _a_design():
 
 
 def test_mode_hop_free_fails_with_the_span(tmp_path):
-    r = run(tmp_path, laser=merged(LASER, limits={"mode_hop_free": "200 MHz"}))
+    r = run(tmp_path, laser=merged(PIEZO_LASER, limits={"mode_hop_free": "200 MHz"}))
     f = r.finding("mode_hop_free")
     assert f.status == "fail" and f.limit == pytest.approx(200e6)
     # span (v1 − v2)/λ (constant-deceleration closed form, Foot 2005 §9.3.1): the lag is the same at both ends for uniform light
@@ -137,14 +70,14 @@ def test_mode_hop_free_fails_with_the_span(tmp_path):
 
 
 def test_chirp_rate_fails_with_a_over_lambda(tmp_path):
-    r = run(tmp_path, laser=merged(LASER, limits={"max_chirp_rate": "50 GHz/s"}))
+    r = run(tmp_path, laser=merged(PIEZO_LASER, limits={"max_chirp_rate": "50 GHz/s"}))
     a, sp = _a_design()
     f = r.finding("chirp_rate")
     assert f.status == "fail" and f.value == pytest.approx(a / RB_LAMBDA, rel=1e-6)   # chirp rate a/λ
 
 
 def test_return_rate_fails_alone_with_the_smoothstep_peak(tmp_path):
-    r = run(tmp_path, laser=merged(LASER, limits={"max_chirp_rate": "0.5 GHz/ms"}))
+    r = run(tmp_path, laser=merged(PIEZO_LASER, limits={"max_chirp_rate": "0.5 GHz/ms"}))
     assert status(r, "chirp_rate") == ["pass"]
     f = r.finding("return_rate")
     # 3x² − 2x³ has its steepest slope 3/2 at x = 1/2 (calculus): peak rate 1.5·span/T_return
@@ -152,7 +85,7 @@ def test_return_rate_fails_alone_with_the_smoothstep_peak(tmp_path):
 
 
 def test_actuator_range_fails_and_is_never_playable(tmp_path):
-    r = run(tmp_path, laser=merged(LASER, limits={"input_max": "2 V"}))
+    r = run(tmp_path, laser=merged(PIEZO_LASER, limits={"input_max": "2 V"}))
     f = r.finding("actuator_range")
     end = -(15 + physics.lag_velocity(3.0, 0.6, r.scenario.species.gamma, RB_LAMBDA)) / RB_LAMBDA
     assert f.status == "fail" and f.limit == 2.0
@@ -165,13 +98,13 @@ def test_actuator_range_fails_and_is_never_playable(tmp_path):
 def test_fifty_ohm_doubling_decides_the_generator_range(tmp_path):
     # the drive needs -3.03 to 2.90 V at the actuator; the generator is programmed within ±2 V
     small = {"range_min": "-2 V", "range_max": "2 V"}
-    hz = run(tmp_path, gen=merged(GEN, output=small))
+    hz = run(tmp_path, gen=merged(VOLTAGE_BOARD, output=small))
     lag = physics.lag_velocity(3.0, 0.6, hz.scenario.species.gamma, RB_LAMBDA)
     lo, hi = [(-(v + lag) / RB_LAMBDA + 140e6) / 40e6 for v in (200, 15)]   # drive = (Δ − set point)/coefficient
     f = hz.finding("generator_range")
     assert f.status == "fail" and f.limit == pytest.approx(-2.0) and f.value == pytest.approx(lo, rel=1e-6)
     # set for 50 Ω but driving a high-impedance input: twice the programmed voltage arrives (common practice)
-    doubled = run(tmp_path, gen=merged(GEN, output=dict(small, termination="50 ohm")))
+    doubled = run(tmp_path, gen=merged(VOLTAGE_BOARD, output=dict(small, termination="50 ohm")))
     g = doubled.finding("generator_range")
     assert g.status == "pass" and g.limit == pytest.approx(-4.0)
     q = doubled.quant
@@ -182,14 +115,14 @@ def test_fifty_ohm_doubling_decides_the_generator_range(tmp_path):
 
 
 def test_slew_rate_fails_with_rate_over_coefficient(tmp_path):
-    r = run(tmp_path, laser=merged(LASER, limits={"max_slew": "10 V/ms"}))
+    r = run(tmp_path, laser=merged(PIEZO_LASER, limits={"max_slew": "10 V/ms"}))
     f = r.finding("slew_rate")
     assert f.status == "fail" and f.unit == "V/s"
     assert f.value == pytest.approx(1.5 * (185 / RB_LAMBDA) / 0.5e-3 / 40e6, rel=1e-4)
 
 
 def test_stage_range_fails_for_a_narrow_aom_band(tmp_path):
-    laser = merged(LASER, chain=[
+    laser = merged(PIEZO_LASER, chain=[
         {"stage": "aom", "passes": 2, "order": -1, "centre": "200 MHz", "set_point": "-140 MHz",
          "rf_min": "150 MHz", "rf_max": "250 MHz"},
         {"stage": "vco", "coefficient": "50 MHz/V", "frequency": "50 MHz", "voltage": "1 V"}])
@@ -201,7 +134,7 @@ def test_stage_range_fails_for_a_narrow_aom_band(tmp_path):
 
 
 def test_tracking_fails_for_a_slow_actuator_with_rate_times_tau(tmp_path):
-    r = run(tmp_path, laser=merged(LASER, response={"corner": "2 kHz"}))
+    r = run(tmp_path, laser=merged(PIEZO_LASER, response={"corner": "2 kHz"}))
     f = r.finding("tracking")
     a, sp = _a_design()
     tau = 1 / (2 * math.pi * 2e3)
@@ -212,7 +145,7 @@ def test_tracking_fails_for_a_slow_actuator_with_rate_times_tau(tmp_path):
 
 
 def test_tracking_agrees_with_scipy_lsim(tmp_path):
-    laser = merged(LASER, response={"model": "second-order", "resonance": "8 kHz", "q": 2.0, "corner": None})
+    laser = merged(PIEZO_LASER, response={"model": "second-order", "resonance": "8 kHz", "q": 2.0, "corner": None})
     r = run(tmp_path, laser=laser)
     tr = r.tracking
     # reference implementation: scipy.signal.lsim of H(s) over three periods of the played drive
@@ -227,7 +160,7 @@ def test_tracking_agrees_with_scipy_lsim(tmp_path):
 
 
 def test_return_settling_fails_for_a_ringing_actuator(tmp_path):
-    laser = merged(LASER, response={"model": "second-order", "resonance": "1.5 kHz", "q": 40.0, "corner": None})
+    laser = merged(PIEZO_LASER, response={"model": "second-order", "resonance": "1.5 kHz", "q": 40.0, "corner": None})
     r = run(tmp_path, laser=laser)
     f = r.finding("return_settling")
     assert f.status == "fail" and f.value > f.limit
@@ -236,7 +169,7 @@ def test_return_settling_fails_for_a_ringing_actuator(tmp_path):
 
 
 def test_step_per_sample_fails_at_a_slow_fixed_rate(tmp_path):
-    r = run(tmp_path, scenario=merged(SCENARIO, drive={"sample_rate": "100 kSa/s"}))
+    r = run(tmp_path, scenario=merged(CHECKED_SCENARIO, drive={"sample_rate": "100 kSa/s"}))
     f = r.finding("step_per_sample")
     assert f.status == "fail"
     assert f.value == pytest.approx(1.5 * (185 / RB_LAMBDA) / 0.5e-3 / 1e5, rel=1e-4)
@@ -244,7 +177,7 @@ def test_step_per_sample_fails_at_a_slow_fixed_rate(tmp_path):
 
 
 def test_step_per_code_fails_with_few_dac_bits(tmp_path):
-    r = run(tmp_path, gen=merged(GEN, output={"dac_bits": 6}))
+    r = run(tmp_path, gen=merged(VOLTAGE_BOARD, output={"dac_bits": 6}))
     f = r.finding("step_per_code")
     assert f.status == "fail"
     # one code = amplitude/(2·(2^5 − 1)) volts = that × 40 MHz/V of detuning
@@ -252,13 +185,13 @@ def test_step_per_code_fails_with_few_dac_bits(tmp_path):
 
 
 def test_record_length_and_sample_rate_rules(tmp_path):
-    r = run(tmp_path, gen=merged(GEN, sampling={"memory": 4096}), rate=1e6)
+    r = run(tmp_path, gen=merged(VOLTAGE_BOARD, sampling={"memory": 4096}), rate=1e6)
     f = r.finding("record_length")
     assert f.status == "fail" and f.value == 6000 and f.limit == 4096
-    auto = run(tmp_path, gen=merged(GEN, sampling={"memory": 1024}))
+    auto = run(tmp_path, gen=merged(VOLTAGE_BOARD, sampling={"memory": 1024}))
     g = auto.finding("sample_rate")
     assert g.status == "fail" and "memory wins" in g.message
-    listed = run(tmp_path, gen=merged(GEN, sampling={"rates": ["1 MSa/s", "4 MSa/s"], "rate_min": None,
+    listed = run(tmp_path, gen=merged(VOLTAGE_BOARD, sampling={"rates": ["1 MSa/s", "4 MSa/s"], "rate_min": None,
                                                      "rate_max": None}), rate=2e6)
     assert status(listed, "sample_rate") == ["fail"]
     fast = run(tmp_path, rate=40e6)
@@ -266,21 +199,21 @@ def test_record_length_and_sample_rate_rules(tmp_path):
 
 
 def test_granularity_warns_when_padding(tmp_path):
-    r = run(tmp_path, gen=merged(GEN, sampling={"granularity": 7}), rate=4e6)
+    r = run(tmp_path, gen=merged(VOLTAGE_BOARD, sampling={"granularity": 7}), rate=4e6)
     f = r.finding("granularity")
     assert f.status == "warn" and f.value == 3 and r.rate.count == 24003     # 24000 samples -> 7·3429
     assert r.ok
 
 
 def test_channel_and_output_kind(tmp_path):
-    r = run(tmp_path, scenario=merged(SCENARIO, drive={"channel": 2}))
+    r = run(tmp_path, scenario=merged(CHECKED_SCENARIO, drive={"channel": 2}))
     assert status(r, "channel") == ["fail"]
     r = run(tmp_path, gen=DDS_GEN)
     assert status(r, "output_kind") == ["fail"]
 
 
 def test_dds_chain_matches_the_generator(tmp_path):
-    sc = merged(SCENARIO)
+    sc = merged(CHECKED_SCENARIO)
     ok = run(tmp_path, scenario=sc, laser=DDS_LASER, gen=DDS_GEN)
     assert ok.ok and status(ok, "dds_match") == ["pass"]
     f = ok.finding("dds_rounding")
@@ -299,7 +232,7 @@ def test_dds_chain_matches_the_generator(tmp_path):
 
 
 def test_period_rule_fails_instead_of_crashing(tmp_path):
-    r = run(tmp_path, scenario=merged(SCENARIO, chirp={"period": "4 ms"}))
+    r = run(tmp_path, scenario=merged(CHECKED_SCENARIO, chirp={"period": "4 ms"}))
     f = r.finding("period")
     a, _ = _a_design()
     # chirp duration (v1 − v2)/a (constant-deceleration closed form, Foot 2005 §9.3.1) + hold + return
@@ -308,7 +241,7 @@ def test_period_rule_fails_instead_of_crashing(tmp_path):
 
 
 def test_slowing_distance_fails_with_the_closed_form(tmp_path):
-    r = run(tmp_path, scenario=merged(SCENARIO, target={"distance": "0.3 m"}))
+    r = run(tmp_path, scenario=merged(CHECKED_SCENARIO, target={"distance": "0.3 m"}))
     f = r.finding("slowing_distance")
     a, _ = _a_design()
     assert f.status == "fail"
@@ -317,17 +250,17 @@ def test_slowing_distance_fails_with_the_closed_form(tmp_path):
 
 
 def test_chirp_start_before_the_light_fails(tmp_path):
-    sc = merged(SCENARIO, source={"pulse_time": "0 ms"}, chirp={"start_time": "0.1 ms"})
+    sc = merged(CHECKED_SCENARIO, source={"pulse_time": "0 ms"}, chirp={"start_time": "0.1 ms"})
     r = run(tmp_path, scenario=sc)
     assert status(r, "chirp_start") == ["fail"]
 
 
 def test_end_velocity_and_deceleration(tmp_path):
-    r = run(tmp_path, scenario=merged(SCENARIO, target={"capture_velocity": "10 m/s"}))
+    r = run(tmp_path, scenario=merged(CHECKED_SCENARIO, target={"capture_velocity": "10 m/s"}))
     f = r.finding("end_velocity")
     assert f.status == "fail" and f.value == 15 and f.limit == 10
     # η > 0.8 leaves less than 20 % of the force in reserve: a warning (η < 1 is enforced by the loader)
-    r = run(tmp_path, scenario=merged(SCENARIO, chirp={"margin": 0.9}))
+    r = run(tmp_path, scenario=merged(CHECKED_SCENARIO, chirp={"margin": 0.9}))
     g = r.finding("deceleration")
     assert g.status == "warn" and g.value == pytest.approx(0.9)
 
@@ -337,7 +270,7 @@ def test_photon_budget_for_a_lossy_molecule(tmp_path):
 
     text = files("sweepgen.profiles").joinpath("species/caf-a-x.toml").read_text()
     (tmp_path / "lossy.toml").write_text(text.replace("value = 2e-5", "value = 1e-4"))
-    sc = merged(SCENARIO, species="lossy.toml", chirp={"start_velocity": "150 m/s", "end_velocity": "10 m/s",
+    sc = merged(CHECKED_SCENARIO, species="lossy.toml", chirp={"start_velocity": "150 m/s", "end_velocity": "10 m/s",
                                                          "margin": 0.3, "period": "20 ms"},
                 target={"capture_velocity": "12 m/s"})
     r = run(tmp_path, scenario=sc)

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import dataclasses
 import signal
 import socket
 import subprocess
@@ -10,20 +9,15 @@ import sys
 import time
 import zlib
 
-import numpy as np
 import pytest
 import pyvisa
-from click.testing import CliRunner
 
+from sweepgen.cli.emulate import BOARD_FAULTS, FRAME_TYPES
 from sweepgen.emulators import board
 from sweepgen.wire import frames as fr
-from sweepgen.cli import main
-from sweepgen.cli.emulate import BOARD_FAULTS, FRAME_TYPES
-from sweepgen.drivers.base import Delivery
-from sweepgen.drivers.serial_board import SerialDriver
 from sweepgen.errors import InstrumentError
-from sweepgen.generator import load_generator
-from sweepgen.table import Frame, RenderedTable, TableInfo
+
+from conftest import dds_table, deliver_to_board, open_visa, run_cli, socket_address
 
 
 class Emulator:
@@ -52,15 +46,10 @@ class Emulator:
         self.stop()
 
 
-def visa(resource, timeout_ms=3000):
-    return pyvisa.ResourceManager("@py").open_resource(resource, read_termination="\n", write_termination="\n",
-                                                         timeout=timeout_ms)
-
-
-def test_serves_the_virtual_instrument_on_loopback_until_ctrl_c():
+def test_serves_the_virtual_instrument_on_loopback_until_ctrl_c(rm):
     with Emulator() as emulator:
         assert emulator.address.startswith("TCPIP::127.0.0.1::") and emulator.address.endswith("::SOCKET")
-        inst = visa(emulator.address)
+        inst = open_visa(rm, emulator.address, timeout_ms=3000)
         assert inst.query("*IDN?").startswith("sweepgen,virtual-awg,")
         inst.write("SOUR:VOLT 100")                       # beyond virtual-awg's 20 V span
         assert inst.query("SYST:ERR?").startswith("-222,")
@@ -71,16 +60,16 @@ def test_serves_the_virtual_instrument_on_loopback_until_ctrl_c():
 
 
 @pytest.mark.slow
-def test_fault_switches_and_identity_from_the_command_line():
+def test_fault_switches_and_identity_from_the_command_line(rm):
     with Emulator("--mute", "--identity", "sweepgen,other-awg,1,0") as emulator:
-        inst = visa(emulator.address, timeout_ms=300)
+        inst = open_visa(rm, emulator.address, timeout_ms=300)
         with pytest.raises(pyvisa.errors.VisaIOError):
             inst.query("*IDN?")
         inst.close()
         _, err = emulator.stop()
     assert "never answer" in err
     with Emulator("--identity", "sweepgen,other-awg,1,0", "--delay", "0.05") as emulator:
-        inst = visa(emulator.address)
+        inst = open_visa(rm, emulator.address, timeout_ms=3000)
         assert inst.query("*IDN?") == "sweepgen,other-awg,1,0"
         inst.close()
 
@@ -89,33 +78,17 @@ def test_fault_switches_and_identity_from_the_command_line():
 def test_board_emulator():
     with Emulator("--board") as emulator:
         assert emulator.address.startswith("socket://127.0.0.1:")
-        host, port = emulator.address[len("socket://"):].rsplit(":", 1)
-        with socket.create_connection((host, int(port)), timeout=3):
+        with socket.create_connection(socket_address(emulator.address), timeout=3):
             pass
         code, err = emulator.stop()
     assert code == 0 and "ramp-board emulator" in err
 
 
 # --- the ramp-board emulator's fault switches on the command line -------------------------------------
-BOARD = load_generator("demo-ramp-board")     # 32-bit tuning words, 1 GHz clock, rates 0.1-1 MSa/s
-# the driver's side with a short reply timeout, so dropped and stalled frames are retried quickly
-FAST_BOARD = dataclasses.replace(BOARD, link=dataclasses.replace(BOARD.link, timeout=0.2))
-
-
-def dds_table(count=4000, rate=1e6):
-    """A frequency ramp as DDS tuning words (demo data): FTW = round(f 2^N / f_clock), common practice."""
-    freqs = np.linspace(20e6, 180e6, count)
-    words = np.round(freqs * 2.0**32 / 1e9).astype("<u4")
-    info = TableInfo(sample_rate=rate, count=count, period_count=count, dtype="<u4", output="frequency",
-                     drive_unit="Hz", code_scale=1e9 / 2.0**32, code_offset=0.0, amplitude=None, offset=None)
-    return RenderedTable(info, lambda a, b: Frame(a, freqs[a:b], freqs[a:b], freqs[a:b], words[a:b])), words
-
-
 def board_status(url: str) -> fr.Status:
     """Ask the board for its STATUS over a fresh connection (the frame protocol, by hand)."""
-    host, port = url[len("socket://"):].rsplit(":", 1)
     decoder = fr.Decoder()
-    with socket.create_connection((host, int(port)), timeout=5) as sock:
+    with socket.create_connection(socket_address(url), timeout=5) as sock:
         deadline = time.monotonic() + 5
         while time.monotonic() < deadline:      # a stalled reply from the previous host may come first
             sock.sendall(fr.encode(fr.MsgType.STATUS, 0x5A))
@@ -133,14 +106,10 @@ def board_status(url: str) -> fr.Status:
     raise AssertionError("the board did not answer STATUS")
 
 
-def upload_to(url, table, **options):
-    return SerialDriver().deliver(table, Delivery(url, FAST_BOARD, options={"frame_bytes": 1024, **options}))
-
-
 def test_every_board_fault_switch_has_an_option():
     assert set(BOARD_FAULTS) == set(board.FAULT_KINDS)
     assert set(FRAME_TYPES) == {fr.type_name(t) for t in fr.REQUESTS}
-    result = CliRunner().invoke(main, ["emulate", "--help"])
+    result = run_cli("emulate", "--help")
     for kind in board.FAULT_KINDS:
         assert f"--{kind.replace('_', '-')} COUNT" in result.output
     assert "--fault-on TYPE" in result.output and "--stall-time SECONDS" in result.output
@@ -163,9 +132,9 @@ BOARD_TRANSIENT = [
 @pytest.mark.parametrize("args, counter, shown", BOARD_TRANSIENT,
                          ids=[*(a[0][2:] for a, _, _ in BOARD_TRANSIENT[:-1]), "refuse-hello"])
 def test_board_transient_fault_from_the_command_line_is_retried(args, counter, shown):
-    table, words = dds_table()
+    table, words = dds_table(4000)
     with Emulator("--board", *args) as emulator:
-        report = upload_to(emulator.address, table)
+        report = deliver_to_board(table, emulator.address)
         status = board_status(emulator.address)
         code, err = emulator.stop()
     assert report[counter] >= 1                       # the fault struck, and the driver went round it
@@ -183,10 +152,10 @@ def test_board_transient_fault_from_the_command_line_is_retried(args, counter, s
     (["--corrupt-memory", "always"], "END refused with TABLE_CRC"),
 ], ids=["refuse", "corrupt-memory"])
 def test_board_persistent_fault_from_the_command_line_fails_and_commits_nothing(args, message):
-    table, _ = dds_table()
+    table, _ = dds_table(4000)
     with Emulator("--board", *args) as emulator:
         with pytest.raises(InstrumentError) as info:
-            upload_to(emulator.address, table, retries=2, restarts=1)
+            deliver_to_board(table, emulator.address, options={"retries": 2, "restarts": 1})
         status = board_status(emulator.address)
         _, err = emulator.stop()
     assert message in str(info.value) and info.value.exit_code == 1
@@ -209,7 +178,7 @@ def test_board_persistent_fault_from_the_command_line_fails_and_commits_nothing(
     (["--generator", "no-such-generator"], "generator"),
 ])
 def test_usage_errors(args, key):
-    result = CliRunner().invoke(main, ["emulate", "--port", "0", *args])
+    result = run_cli("emulate", "--port", "0", *args)
     assert result.exit_code == 2
     assert key in result.stderr
 
@@ -217,5 +186,5 @@ def test_usage_errors(args, key):
 def test_port_in_use_is_a_usage_error():
     with socket.create_server(("127.0.0.1", 0)) as busy:
         port = busy.getsockname()[1]
-        result = CliRunner().invoke(main, ["emulate", "--port", str(port)])
+        result = run_cli("emulate", "--port", port)
     assert result.exit_code == 2 and "cannot listen" in result.stderr

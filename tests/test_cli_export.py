@@ -12,57 +12,23 @@ import textwrap
 
 import numpy as np
 import pytest
-from click.testing import CliRunner
 from scipy import constants
 
-from sweepgen.cli import main
+from conftest import install_driver_plugin, read_by_sidecar, run_cli as run, scenario_dict, to_toml
 
-from conftest import install_driver_plugin
-
-SCENARIO = """\
-title = "Rb-87 pulsed, explicit chirp start (test data)"
-species = "rb87-d2"
-laser = "{laser}"
-generator = "{generator}"
-
-[source]
-model = "effusive"
-temperature = "390 K"
-pulse_time = "0 ms"
-
-[light]
-saturation = 3.0
-start = "0.05 m"
-
-[target]
-distance = "1.0 m"
-capture_velocity = "20 m/s"
-
-[chirp]
-start_velocity = "260 m/s"
-end_velocity = "15 m/s"
-margin = 0.6
-start_time = "1 ms"
-hold = "0.5 ms"
-return_time = "0.3 ms"
-period = "10 ms"
-"""
+# a pulsed Rb beam with an explicit chirp start (test data)
+EXPLICIT_START = {"chirp": {"start_time": "1 ms", "period": "10 ms"}}
 
 
 def write_scenario(folder, laser="demo-ecdl-piezo", generator="virtual-awg", name="rb-explicit.toml"):
     path = folder / name
-    path.write_text(SCENARIO.format(laser=laser, generator=generator))
+    path.write_text(to_toml(scenario_dict(laser=laser, generator=generator, **EXPLICIT_START)))
     return path
 
 
-def run(*args):
-    result = CliRunner().invoke(main, [str(a) for a in args])
-    return result
-
-
-# -- an independent computation of the sweep and a reader that knows only the sidecar ----------------
+# -- an independent computation of the sweep --------------------------------------------------------
 def expected_detuning(t):
-    """The sweep of SCENARIO from the closed forms of README.md, Physics background (uniform light: a straight chirp).
+    """The sweep of the EXPLICIT_START scenario from the closed forms of README.md, Physics background (uniform light: a straight chirp).
 
     Inputs: 87Rb D2 wavelength, mass and lifetime from D. A. Steck, "Rubidium 87 D Line Data"
     (D. A. Steck, Rubidium 87 D Line Data, recalled); ħ from CODATA via scipy.constants.
@@ -86,25 +52,6 @@ def expected_detuning(t):
                      d0)
 
 
-def decode(sidecar_path):
-    """Sample times and detunings from a data file, using only its sidecar (NumPy and json)."""
-    side = json.loads(sidecar_path.read_text())
-    data = (sidecar_path.parent / side["data_file"]).read_bytes()
-    assert hashlib.sha256(data).hexdigest() == side["sha256"]
-    if side["header_bytes"] is None:
-        rows = np.loadtxt(sidecar_path.parent / side["data_file"], delimiter=side["delimiter"],
-                          skiprows=side["header_lines"], ndmin=2)
-        values = rows[:, [c["name"] for c in side["columns"]].index(side["value_column"])]
-    else:
-        values = np.frombuffer(data, dtype=side["numpy_dtype"], offset=side["header_bytes"]).astype(float)
-    det = side["scaling"]["detuning"]
-    if det["kind"] == "linear":
-        detuning = det["offset"] + det["scale"] * values
-    else:
-        detuning = np.interp(values, det["value"], det["detuning"])
-    return np.arange(side["count"]) / side["sample_rate"], detuning, values, side
-
-
 @pytest.mark.parametrize("fmt,options", [("raw", []), ("raw", ["-O", "dtype=uint16", "-O", "byte_order=big"]),
                                          ("raw", ["-O", "dtype=float32"]), ("npy", []), ("csv", [])])
 def test_an_exported_table_matches_an_independent_computation(tmp_path, fmt, options):
@@ -112,7 +59,7 @@ def test_an_exported_table_matches_an_independent_computation(tmp_path, fmt, opt
     result = run("export", scenario, "--format", fmt, "-o", tmp_path / "out", *options)
     assert result.exit_code == 0, result.output
     sidecar = next((tmp_path / "out").glob("*.json"))
-    t, detuning, values, side = decode(sidecar)
+    values, _, _, detuning, side, t = read_by_sidecar(sidecar)
     step = abs(side["scaling"]["detuning"]["scale"])              # Hz of detuning per DAC code
     assert side["period_count"] / side["sample_rate"] == pytest.approx(10e-3)
     assert len(values) == side["count"] == side["period_count"] + side["padding"]
@@ -133,7 +80,7 @@ def test_a_dds_table_decodes_through_the_laser_profile(tmp_path):
 
     result = run("export", "caf-buffer-gas", "-f", "npy", "-o", tmp_path)
     assert result.exit_code == 0, result.output
-    t, detuning, words, side = decode(tmp_path / "caf-buffer-gas.npy.json")
+    words, _, _, detuning, side, t = read_by_sidecar(tmp_path / "caf-buffer-gas.npy.json")
     assert side["numpy_dtype"] == "<u4"
     words = np.load(tmp_path / "caf-buffer-gas.npy").astype(float)
     independent = -1.6e9 + 8 * words * 1e9 / 2**32
@@ -148,7 +95,7 @@ def test_a_non_linear_chain_ships_a_lookup_within_one_step(tmp_path):
 
     result = run("export", "na23-continuous-focused", "-f", "raw", "-o", tmp_path)
     assert result.exit_code == 0, result.output
-    t, detuning, _, side = decode(tmp_path / "na23-continuous-focused.bin.json")
+    _, _, _, detuning, side, t = read_by_sidecar(tmp_path / "na23-continuous-focused.bin.json")
     assert side["scaling"]["detuning"]["kind"] == "lookup"
     schedule = plan(load_scenario("na23-continuous-focused")).schedule()
     # one DAC step in detuning, at its largest over the range (the VCO curve is not straight)
@@ -183,7 +130,7 @@ def test_padding_to_the_granularity_of_a_generator_with_listed_rates(tmp_path):
     assert result.exit_code == 0, result.output
     doc = json.loads(result.stdout)
     assert doc["count"] % 64 == 0 and doc["count"] == 50048 and doc["period_count"] == 50000
-    t, detuning, values, side = decode(tmp_path / "out" / "rb-explicit.bin.json")
+    values, _, _, detuning, side, t = read_by_sidecar(tmp_path / "out" / "rb-explicit.bin.json")
     assert side["padding"] == 48 and np.all(values[50000:] == values[0])
 
 
@@ -249,38 +196,9 @@ def test_json_output_is_one_document(tmp_path):
 
 
 # -- plug-ins through the entry-point group, in a fresh interpreter --------------------------------
-PLUGIN = '''
-from sweepgen.drivers.base import FileDriver
-from sweepgen.errors import DriverError
-
-
-class TextCodes(FileDriver):
-    name = "textcodes"
-    extension = "txt"
-    description = "codes as decimal text, one per line (test plug-in)"
-
-    def layout(self, table, options):
-        return {"dtype": table.info.dtype, "header_bytes": None, "value_to_code": {"offset": 0, "scale": 1}}
-
-    def write(self, table, out, layout, delivery):
-        for chunk in table.chunks():
-            out.write("".join(f"{c}\\n" for c in chunk.tolist()).encode())
-
-
-class Exploding(TextCodes):
-    name = "exploding"
-
-    def write(self, table, out, layout, delivery):
-        for n, chunk in enumerate(table.chunks()):
-            if n == 1:
-                raise DriverError("the disk filled up after the first chunk (test plug-in)")
-            out.write(chunk.tobytes())
-'''
-
-
 @pytest.fixture
 def plugin_path(tmp_path):
-    return install_driver_plugin(tmp_path / "plugins", "sg_cli_plugin", PLUGIN,
+    return install_driver_plugin(tmp_path / "plugins", "sg_cli_plugin",
                                  "textcodes = sg_cli_plugin:TextCodes\nexploding = sg_cli_plugin:Exploding\n")
 
 

@@ -6,20 +6,13 @@ import subprocess
 import sys
 
 import pytest
-from click.testing import CliRunner
 
-from sweepgen.cli import main
-
-from conftest import scenario_dict, to_toml
+from conftest import run_cli as run, scenario_dict, to_toml
 
 PLAN_KEYS = {"capture_velocity", "end_velocity", "margin", "deceleration_min", "deceleration_max",
              "lag_velocity_start", "start_detuning", "end_detuning", "chirp_span", "chirp_rate_max",
              "chirp_duration", "slowing_distance", "start_time", "arrival_time", "photons_per_atom",
              "doppler_limit", "recoil_velocity", "start_position", "end_position", "survival_fraction"}
-
-
-def run(*args):
-    return CliRunner().invoke(main, list(args))
 
 
 def test_plan_json_has_the_contract_keys(write_scenario):

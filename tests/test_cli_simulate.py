@@ -4,11 +4,8 @@ same document, plots by extension, and refusals (exit 2, one line, no traceback)
 import json
 
 import pytest
-from click.testing import CliRunner
 
-from sweepgen.cli import main
-
-from conftest import scenario_dict
+from conftest import run_cli as run, scenario_dict
 
 KEYS = {"atoms", "seed", "captured_fraction", "band_fraction", "final_velocity_mean", "final_velocity_spread",
         "final_temperature", "photons_mean", "lost_fraction", "lost_by_reason", "baseline_no_light_fraction",
@@ -18,10 +15,6 @@ FAST = {"source": {"model": "gaussian", "mean_velocity": "150 m/s", "velocity_sp
                    "pulse_time": "0 ms", "temperature": None, "divergence": "5 mrad"},
         "target": {"aperture": "10 mm"},
         "chirp": {"hold": "0 ms", "period": "100 ms"}}
-
-
-def run(*args):
-    return CliRunner().invoke(main, [str(a) for a in args])
 
 
 @pytest.fixture

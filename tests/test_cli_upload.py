@@ -3,33 +3,24 @@
 from __future__ import annotations
 
 import json
-import socket
 
 import pytest
-from click.testing import CliRunner
 
-from sweepgen.cli import main
 from sweepgen.emulators.instrument import Faults
-from sweepgen.testing import instrument_server
+from sweepgen.testing import instrument_server, virtual_board
 
-from conftest import to_toml
-from test_drivers_visa import OTHER_DIALECT, OTHER_IDENTITY
+from conftest import OTHER_DIALECT, OTHER_IDENTITY, refused_port, run_cli, to_toml
 
 SCENARIO = "rb87-chopped-oven"          # built in: pulsed source, virtual-awg, 160000 samples at 8 MSa/s
 
 
 def run(*args):
-    return CliRunner().invoke(main, ["upload", *args])
-
-
-def closed_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
+    return run_cli("upload", *args)
 
 
 def test_dry_run_prints_the_command_log_and_connects_to_nothing():
-    result = run(SCENARIO, "--dry-run", "--resource", f"TCPIP::127.0.0.1::{closed_port()}::SOCKET")
+    with refused_port() as port:
+        result = run(SCENARIO, "--dry-run", "--resource", f"TCPIP::127.0.0.1::{port}::SOCKET")
     assert result.exit_code == 0, result.output
     out = result.stdout
     assert "TRAC:DATA SWEEP,#6320000<320000 bytes of data>" in out
@@ -149,15 +140,10 @@ def test_unknown_backend_is_a_usage_error():
 
 
 def test_board_generator_goes_to_the_serial_driver():
-    from sweepgen.emulators.board import BoardServer
-
-    server = BoardServer("demo-ramp-board").start()
-    try:
-        result = run("caf-buffer-gas", "--serial-port", server.url, "--json")
-    finally:
-        server.stop()
+    with virtual_board("demo-ramp-board") as url:
+        result = run("caf-buffer-gas", "--serial-port", url, "--json")
     assert result.exit_code == 0, result.output
     doc = json.loads(result.stdout)
     assert doc["driver"] == "serial" and doc["armed"] is False
-    assert doc["verification"]["ok"] is True and server.board.committed.crc == doc["table"]["crc32"]
-    assert not server.board.armed
+    assert doc["verification"]["ok"] is True and url.board.committed.crc == doc["table"]["crc32"]
+    assert not url.board.armed

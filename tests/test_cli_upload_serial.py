@@ -3,21 +3,16 @@
 from __future__ import annotations
 
 import json
-import socket
 
 import numpy as np
 import pytest
-from click.testing import CliRunner
 
-from sweepgen.cli import main
 from sweepgen.playback import prepare
 from sweepgen.testing import virtual_board
 
+from conftest import refused_port, run_cli as run
+
 SCENARIO = "caf-buffer-gas"          # offset-locked laser set by a DDS on the demo ramp board
-
-
-def run(*args):
-    return CliRunner().invoke(main, list(args))
 
 
 @pytest.fixture(scope="module")
@@ -81,9 +76,8 @@ def test_persistent_fault_exits_1_with_one_clear_line_and_commits_nothing(render
 
 
 def test_no_board_at_the_port_exits_1_naming_the_open_step():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        result = run("upload", SCENARIO, "--serial-port", f"socket://127.0.0.1:{s.getsockname()[1]}")
+    with refused_port() as port:
+        result = run("upload", SCENARIO, "--serial-port", f"socket://127.0.0.1:{port}")
     assert result.exit_code == 1
     assert result.stderr.strip().splitlines()[-1].startswith("sweepgen: error: step 'open': cannot open")
 

@@ -3,9 +3,8 @@
 import json
 
 import pytest
-from click.testing import CliRunner
 
-from sweepgen.cli import main
+from conftest import run_cli
 
 PNG = b"\x89PNG\r\n\x1a\n"
 
@@ -13,7 +12,7 @@ PNG = b"\x89PNG\r\n\x1a\n"
 @pytest.mark.slow
 def test_demo_writes_the_whole_report(tmp_path):
     out = tmp_path / "demo"
-    result = CliRunner().invoke(main, ["demo", str(out)])
+    result = run_cli("demo", out)
     assert result.exit_code == 0, result.output
     for name in ("sweep.png", "drive.png", "margins.png", "velocities.png"):
         assert (out / name).read_bytes()[:8] == PNG

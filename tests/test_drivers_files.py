@@ -1,12 +1,11 @@
 """The csv, raw and npy file drivers: round trips read back with NumPy alone, atomic writes.
 
-The reader in this file uses only ``json``, ``hashlib`` and NumPy and takes
-everything from the sidecar, as a user's own script would.
+The reader (``conftest.read_by_sidecar``) uses only ``json``, ``hashlib`` and NumPy and
+takes everything from the sidecar, as a user's own script would.
 """
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 
@@ -21,7 +20,7 @@ from sweepgen.drivers.raw_file import RawDriver, convert, storage
 from sweepgen.errors import DriverError, InputError
 from sweepgen.table import Frame, RenderedTable, TableInfo
 
-from conftest import examples
+from conftest import examples, read_by_sidecar
 
 
 # -- a small table built directly (demo numbers) ------------------------------------------------
@@ -51,31 +50,6 @@ def make_table(count=1000, padding=8, *, dtype="<i2", code_min=-8192, code_max=8
     return RenderedTable.from_arrays(info, codes, detuning=detuning), codes, detuning, step
 
 
-def read_back(folder, sidecar_name):
-    """Decode a data file from its sidecar alone: (values, codes, drive, detuning, sidecar)."""
-    side = json.loads((folder / sidecar_name).read_text())
-    path = folder / side["data_file"]
-    raw = path.read_bytes()
-    assert hashlib.sha256(raw).hexdigest() == side["sha256"]       # reference: hashlib
-    assert len(raw) == side["data_bytes"]
-    if side["header_bytes"] is None:                                # text: the value column
-        table = np.loadtxt(path, delimiter=side["delimiter"], skiprows=side["header_lines"], ndmin=2)
-        names = [c["name"] for c in side["columns"]]
-        values = table[:, names.index(side["value_column"])]
-    else:
-        values = np.frombuffer(raw, dtype=np.dtype(side["numpy_dtype"]), offset=side["header_bytes"])
-    sc = side["scaling"]
-    values = values.astype(float)
-    codes = sc["code"]["offset"] + sc["code"]["scale"] * values
-    drive = sc["drive"]["offset"] + sc["drive"]["scale"] * values
-    det = sc["detuning"]
-    if det["kind"] == "linear":
-        detuning = det["offset"] + det["scale"] * values
-    else:
-        detuning = np.interp(values, det["value"], det["detuning"])
-    return values, codes, drive, detuning, side
-
-
 CASES = [(CsvDriver, {}), (NpyDriver, {}), (NpyDriver, {"byte_order": "big"}),
          (RawDriver, {}), (RawDriver, {"dtype": "int16", "byte_order": "big"}),
          (RawDriver, {"dtype": "uint16"}), (RawDriver, {"dtype": "float32"})]
@@ -87,7 +61,7 @@ def test_round_trip_from_the_sidecar_alone(tmp_path, driver_cls, options, lookup
     table, codes, detuning, step = make_table(lookup=lookup)
     report = driver_cls().deliver(table, Delivery(str(tmp_path), options=dict(options, name="t")))
     sidecar_name = report["files"][1]
-    values, got_codes, drive, got_det, side = read_back(tmp_path, sidecar_name)
+    values, got_codes, drive, got_det, side, _ = read_by_sidecar(tmp_path / sidecar_name)
     assert len(values) == side["count"] == table.info.count
     assert side["period_count"] + side["padding"] == side["count"]
     assert np.allclose(got_codes, codes, atol=1e-3)                   # exact codes (float32: < 1e-3)
@@ -132,7 +106,7 @@ def test_dds_words_keep_every_bit_in_native_and_are_refused_in_16_bits(tmp_path)
     table, codes, _, _ = make_table(dtype="<u4", code_min=4_294_967, code_max=1_717_986_918,
                                     output="frequency", unit="Hz")
     RawDriver().deliver(table, Delivery(str(tmp_path)))
-    _, got, _, _, side = read_back(tmp_path, "sweep.bin.json")
+    _, got, _, _, side, _ = read_by_sidecar(tmp_path / "sweep.bin.json")
     assert side["numpy_dtype"] == "<u4"
     assert np.array_equal(got.astype(np.uint64), codes.astype(np.uint64))
     for dtype in ("int16", "uint16", "float32"):

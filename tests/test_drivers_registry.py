@@ -16,35 +16,9 @@ from sweepgen.errors import DriverError, InputError
 
 from conftest import install_driver_plugin
 
-PLUGIN = '''
-import numpy as np
-from sweepgen.drivers.base import Driver, FileDriver
-
-class TextCodes(FileDriver):
-    name = "textcodes"
-    extension = "txt"
-    description = "codes as decimal text, one per line (test plug-in)"
-
-    def layout(self, table, options):
-        return {"dtype": table.info.dtype, "header_bytes": None, "value_to_code": {"offset": 0, "scale": 1}}
-
-    def write(self, table, out, layout, delivery):
-        for chunk in table.chunks():
-            out.write("".join(f"{c}\\n" for c in chunk.tolist()).encode())
-
-class Scope(Driver):
-    name = "scope"
-    kind = "instrument"
-    def deliver(self, table, delivery):
-        return {}
-
-NOT_A_DRIVER = 42
-'''
-
-
 def install_plugin(root, entries: str, module="sg_test_plugin"):
-    """Write a module and a distribution registering ``entries`` under sweepgen.drivers."""
-    install_driver_plugin(root, module, PLUGIN, textwrap.dedent(entries))
+    """Write the test plug-in module and a distribution registering ``entries`` under sweepgen.drivers."""
+    install_driver_plugin(root, module, textwrap.dedent(entries))
 
 
 def test_built_in_file_drivers_are_registered():

@@ -13,7 +13,6 @@ import select
 import socket
 import struct
 import threading
-import tty
 import zlib
 
 import numpy as np
@@ -23,37 +22,15 @@ from hypothesis import given, settings, strategies as st
 from sweepgen.wire import frames as fr
 from sweepgen.emulators.board import BoardEmulator, FaultPlan
 from sweepgen.drivers import load
-from sweepgen.drivers.base import Delivery
 from sweepgen.drivers.serial_board import SerialDriver, _Plan, _TableBytes
 from sweepgen.errors import CheckFailed, InputError, InstrumentError
 from sweepgen.generator import load_generator
 from sweepgen.table import Frame, RenderedTable, TableInfo
 from sweepgen.testing import virtual_board
 
-from conftest import examples
+from conftest import dds_table, deliver_to_board, examples, quick_ramp_board, raw_pty, refused_port
 
-BASE = load_generator("demo-ramp-board")      # 32-bit words, 1 GHz clock, 1-400 MHz, rates 0.1-1 MSa/s
-# short timeouts keep the fault tests fast; the board's gap timeout (0.1 s) stays below them
-GEN = dataclasses.replace(BASE, link=dataclasses.replace(BASE.link, timeout=0.2))
-FAST = {"frame_bytes": 1024}
-
-
-def dds_table(count=3000, rate=1e6, f0=20e6, f1=180e6, clock=1e9, bits=32, dtype="<u4"):
-    freqs = np.linspace(f0, f1, count)
-    # DDS frequency tuning word FTW = round(f 2^N / f_clock) (common practice)
-    words = np.round(freqs * 2.0**bits / clock).astype(dtype)
-    info = TableInfo(sample_rate=rate, count=count, period_count=count, dtype=dtype, output="frequency",
-                     drive_unit="Hz", code_scale=clock / 2.0**bits, code_offset=0.0, amplitude=None, offset=None)
-
-    def source(start, stop):
-        return Frame(start, np.arange(start, stop) / rate, freqs[start:stop], freqs[start:stop], words[start:stop])
-
-    return RenderedTable(info, source), words
-
-
-def deliver(table, url, generator=GEN, **kwargs):
-    options = {**FAST, **kwargs.pop("options", {})}
-    return SerialDriver().deliver(table, Delivery(url, generator, options=options, **kwargs))
+GEN = quick_ramp_board()
 
 
 def test_registered_as_serial_instrument_driver():
@@ -65,7 +42,7 @@ def test_upload_over_a_socket_url_commits_the_rendered_table():
     table, words = dds_table()
     seen = []
     with virtual_board(GEN) as url:
-        report = deliver(table, url, progress=lambda done, total: seen.append((done, total)))
+        report = deliver_to_board(table, url, progress=lambda done, total: seen.append((done, total)))
         committed = url.board.committed
         assert np.array_equal(committed.codes(), words)
         assert committed.crc == table.crc32 == zlib.crc32(words.tobytes())
@@ -85,27 +62,21 @@ def test_upload_over_a_socket_url_commits_the_rendered_table():
 def test_arm_only_when_asked():
     table, _ = dds_table(500)
     with virtual_board(GEN) as url:
-        deliver(table, url)
+        deliver_to_board(table, url)
         assert not url.board.armed
-        report = deliver(table, url, arm=True)
+        report = deliver_to_board(table, url, arm=True)
         assert url.board.armed and report["armed"] and report["steps"][-1]["step"] == "arm"
-        deliver(table, url)                      # a new upload switches the output off first
+        deliver_to_board(table, url)                      # a new upload switches the output off first
         assert not url.board.armed
-
-
-def _pty():
-    master, slave = os.openpty()
-    tty.setraw(slave)
-    return master, slave
 
 
 def test_upload_through_a_pseudo_terminal_device():
     table, words = dds_table(5000)
-    master, slave = _pty()
+    master, slave = raw_pty()
     board = BoardEmulator(GEN)
     try:
         with board.start_fd(master):
-            report = deliver(table, os.ttyname(slave), arm=True)
+            report = deliver_to_board(table, os.ttyname(slave), arm=True)
     finally:
         os.close(slave)
         os.close(master)
@@ -116,7 +87,7 @@ def test_upload_through_a_pseudo_terminal_device():
 def test_the_board_announces_a_smaller_payload_and_the_driver_follows():
     table, words = dds_table(700)
     with virtual_board(GEN, max_payload=100) as url:
-        report = deliver(table, url, options={"frame_bytes": 4096})
+        report = deliver_to_board(table, url, options={"frame_bytes": 4096})
         assert np.array_equal(url.board.committed.codes(), words)
     data_step = next(s for s in report["steps"] if s["step"] == "data")
     assert data_step["frame_bytes"] == 96          # 100 - 4 offset bytes, whole 4-byte words
@@ -148,7 +119,7 @@ timeout = "0.2 s"
     table = RenderedTable(info, lambda a, b: Frame(a, np.arange(a, b) / 200e3, codes[a:b] * 0.0,
                                                    codes[a:b] * 5 / 32767, codes[a:b]))
     with virtual_board(gen) as url:
-        report = deliver(table, url, gen)
+        report = deliver_to_board(table, url, gen)
         assert np.array_equal(url.board.committed.codes(), codes)
     assert report["table"]["format"] == "int16"
     assert report["board"]["dac_bits"] == 16 and report["board"]["formats"] == ["int16", "uint16"]
@@ -158,7 +129,7 @@ def test_48_bit_tuning_words_travel_as_uint64(tmp_path):
     gen = dataclasses.replace(GEN, output=dataclasses.replace(GEN.output, word_bits=48))
     table, words = dds_table(1000, bits=48, dtype="<u8")
     with virtual_board(gen) as url:
-        report = deliver(table, url, gen)
+        report = deliver_to_board(table, url, gen)
         assert np.array_equal(url.board.committed.codes(), words)
     assert report["table"]["format"] == "uint64" and report["board"]["word_bits"] == 48
 
@@ -182,7 +153,7 @@ TRANSIENT = [
 def test_transient_fault_is_retried_and_the_upload_succeeds(faults, counter):
     table, words = dds_table(4000)
     with virtual_board(GEN, faults=faults) as url:
-        report = deliver(table, url, arm=True)
+        report = deliver_to_board(table, url, arm=True)
         board = url.board
         assert np.array_equal(board.committed.codes(), words)
         assert board.committed.crc == table.crc32 and board.armed
@@ -210,11 +181,11 @@ def test_persistent_fault_fails_clearly_commits_nothing_and_leaves_the_board_dis
     old, old_words = dds_table(300, f0=5e6, f1=6e6)
     table, _ = dds_table(4000)
     with virtual_board(GEN) as url:
-        deliver(old, url, arm=True)
+        deliver_to_board(old, url, arm=True)
         assert url.board.armed
         url.board.faults = FaultPlan.parse({kind: "always", "stall_time": 1.0})   # > 3 reply timeouts
         with pytest.raises(InstrumentError) as err:
-            deliver(table, url, arm=True, options={"retries": 2, "restarts": 1})
+            deliver_to_board(table, url, arm=True, options={"retries": 2, "restarts": 1})
         board = url.board
         assert not board.armed
         assert np.array_equal(board.committed.codes(), old_words) and board.commits == 1
@@ -240,7 +211,7 @@ def test_board_asking_for_an_earlier_offset_gets_the_bytes_again():
     table, words = dds_table(2000)
     board = Forgetful(GEN)
     with virtual_board(GEN, board=board) as url:
-        report = deliver(table, url)
+        report = deliver_to_board(table, url)
     assert board.forgot and np.array_equal(board.committed.codes(), words)
     assert report["retries"] == 1
     refusals = [e[1] for e in board.events if e[0] == "refuse"]
@@ -252,7 +223,7 @@ def test_a_board_that_does_not_match_the_profile_is_refused_before_anything_is_s
     table, _ = dds_table(100)
     with virtual_board(other) as url:
         with pytest.raises(InstrumentError, match="step 'hello'.*DDS clock is 1200000000 Hz, the profile says 1e"):
-            deliver(table, url)
+            deliver_to_board(table, url)
         assert url.board.committed is None
         assert not any(e[0] == "begin" for e in url.board.events)
 
@@ -262,14 +233,14 @@ def test_a_board_with_less_memory_than_the_table_is_refused():
     table, _ = dds_table(2000)
     with virtual_board(small) as url:
         with pytest.raises(InstrumentError, match="2000 samples exceed its memory of 1000"):
-            deliver(table, url)
+            deliver_to_board(table, url)
 
 
 def test_words_outside_the_output_range_are_never_sent():
     table, _ = dds_table(1000, f0=100e6, f1=450e6)          # the board plays 1-400 MHz
     with virtual_board(GEN) as url:
         with pytest.raises(CheckFailed, match=r"sample 857: tuning word .* is 4\.0\d+e\+08 Hz, outside"):
-            deliver(table, url)
+            deliver_to_board(table, url)
         assert url.server.connections == 0
 
 
@@ -287,7 +258,7 @@ def test_tables_the_board_cannot_take_are_refused_before_connecting(change, erro
                      offset=None)
     table = RenderedTable(info, lambda a, b: Frame(a, None, None, None, np.full(b - a, 100_000_000, dtype)))
     with pytest.raises(error, match=match):
-        deliver(table, "socket://127.0.0.1:9")
+        deliver_to_board(table, "socket://127.0.0.1:9")
 
 
 @settings(max_examples=examples(60))
@@ -306,21 +277,19 @@ def test_bad_options_are_input_errors():
     for options in ({"retries": -1}, {"frame_bytes": 2}, {"restarts": "many"}, {"retries": True},
                     {"backend": "@py"}):
         with pytest.raises(InputError, match="--option"):
-            deliver(table, "socket://127.0.0.1:9", options=options)
+            deliver_to_board(table, "socket://127.0.0.1:9", options=options)
 
 
 def test_an_unreachable_port_is_an_instrument_error_at_open():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]            # bound but not listening: connection refused
+    with refused_port() as port:             # bound but not listening: connection refused
         table, _ = dds_table(10)
         with pytest.raises(InstrumentError, match="step 'open': cannot open"):
-            deliver(table, f"socket://127.0.0.1:{port}")
+            deliver_to_board(table, f"socket://127.0.0.1:{port}")
 
 
 def test_dry_run_checks_and_reports_the_frames_without_connecting():
     table, words = dds_table(3000)
-    report = deliver(table, "socket://127.0.0.1:9", dry_run=True, arm=True)
+    report = deliver_to_board(table, "socket://127.0.0.1:9", dry_run=True, arm=True)
     assert report["dry_run"] and report["table"]["crc32"] == zlib.crc32(words.tobytes())
     log = report["log"]
     assert [e["message"] for e in log] == ["HELLO", "DISARM", "BEGIN", "DATA", "END", "COMMIT", "STATUS",
@@ -336,7 +305,7 @@ def test_after_a_failure_the_driver_sends_disarm_before_raising():
     table, _ = dds_table(3000)
     with virtual_board(GEN, faults={"refuse": "always", "on": "end", "skip": 0}) as url:
         with pytest.raises(InstrumentError, match="step 'verify'.*BUSY"):
-            deliver(table, url, options={"retries": 1})
+            deliver_to_board(table, url, options={"retries": 1})
         events = [e[0] for e in url.board.events]
     assert events[-1] == "disarm" and events.count("disarm") == 2      # before BEGIN, and after the failure
     assert url.board.committed is None
@@ -362,7 +331,7 @@ def test_a_link_that_dies_mid_transfer_is_an_instrument_error():
     try:
         with pytest.raises(InstrumentError, match=r"step 'data at byte \d+': the link failed.*"
                                                   r"could not confirm that the board's output is off"):
-            deliver(table, f"socket://127.0.0.1:{listener.getsockname()[1]}")
+            deliver_to_board(table, f"socket://127.0.0.1:{listener.getsockname()[1]}")
     finally:
         thread.join(5)
         listener.close()
@@ -519,7 +488,7 @@ def test_an_independent_board_written_from_the_document_accepts_an_upload(link):
     board = DocBoard()
     stop = threading.Event()
     if link == "pty":
-        master, slave = _pty()
+        master, slave = raw_pty()
         url, fds = os.ttyname(slave), (master, slave)
         thread = threading.Thread(target=_serve_doc_board, args=(board, master, stop), daemon=True)
     else:
@@ -533,7 +502,7 @@ def test_an_independent_board_written_from_the_document_accepts_an_upload(link):
         thread = threading.Thread(target=serve, daemon=True)
     thread.start()
     try:
-        report = deliver(table, url, arm=True, options={"frame_bytes": 4096})
+        report = deliver_to_board(table, url, arm=True, options={"frame_bytes": 4096})
     finally:
         stop.set()
         thread.join(5)

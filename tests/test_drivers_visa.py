@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import socket
 import zlib
 
 import numpy as np
@@ -17,41 +16,11 @@ from sweepgen.emulators.instrument import Faults
 from sweepgen.table import Frame, RenderedTable, TableInfo
 from sweepgen.testing import instrument_server, upload_to_virtual_instrument
 
-from conftest import to_toml
-
-# An instrument with another dialect: long forms, SOURce1/OUTPut1 suffixes, DATA instead of TRACe,
-# big-endian blocks, a checksum query instead of a readback (all standard SCPI, but the checksum node,
-# which is the virtual instrument's own extension).
-OTHER_DIALECT = {
-    "title": "AWG with another dialect (test profile)", "kind": "awg", "channels": 1,
-    "sampling": {"rate_min": "1 kSa/s", "rate_max": "50 MSa/s", "memory": 1048576, "granularity": 8,
-                 "min_length": 32},
-    "output": {"kind": "voltage", "range_min": "-10 V", "range_max": "10 V", "dac_bits": 14},
-    "link": {"kind": "visa", "resource": "TCPIP::127.0.0.1::5025::SOCKET", "throughput": "5 MB/s",
-             "timeout": "2 s"},
-    "commands": {
-        "identify": "*IDN?", "identity_pattern": "^sweepgen,other-awg,", "clear": "*CLS",
-        "reset": "*RST",
-        "output_off": "OUTPut{channel}:STATe 0",
-        "format": "FORMat:DATA {type},{bits};BORDer {border}",
-        "byte_order": "big", "upload_mode": "block", "trace_name": "CHIRP_A",
-        "upload": "DATA:DATA {name},{data}",
-        "wait": "*OPC?", "error_query": "SYSTem:ERRor:NEXT?", "no_error_pattern": '^[+]?0,"No error"',
-        "checksum": "DATA:CRC? {name}",
-        "function": "SOURce{channel}:FUNCtion:SHAPe USER;USER {name}",
-        "rate": "SOURce{channel}:FREQuency:CW {frequency}",
-        "amplitude": "SOURce{channel}:VOLTage:LEVel:IMMediate:AMPLitude {amplitude}",
-        "offset": "SOURce{channel}:VOLTage:LEVel:IMMediate:OFFSet {offset}",
-        "trigger": "TRIGger:SEQuence:SOURce {trigger_source}",
-        "output_on": "OUTPut{channel}:STATe 1",
-    },
-}
-OTHER_IDENTITY = "sweepgen,other-awg,42,1.0"
-
+from conftest import OTHER_DIALECT, OTHER_IDENTITY, refused_port, sine_codes, to_toml
 
 def make_table(count=1024, rate=1e6, amplitude=2.0, offset=0.5, dtype="<i2", channel=1, bits=14):
     fs = 2 ** (bits - 1) - 1
-    codes = np.round(fs * np.sin(np.linspace(0, 2 * np.pi, count, endpoint=False))).astype(dtype)  # demo data
+    codes = sine_codes(count, bits, dtype)
     info = TableInfo(sample_rate=rate, count=count, period_count=count, dtype=dtype, output="voltage",
                      drive_unit="V", code_scale=amplitude / 2 / fs, code_offset=offset, amplitude=amplitude,
                      offset=offset, channel=channel)
@@ -164,11 +133,9 @@ def test_a_readback_that_is_not_a_block_is_named_as_such_at_once(tmp_path):
 def test_dry_run_prints_the_exact_log_without_connecting():
     table, _ = make_table(count=1024)
     gen = load_generator("virtual-awg")
-    with socket.socket() as s:                 # a port nobody listens on
-        s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]
-    report = VisaDriver().deliver(table, Delivery(destination=f"TCPIP::127.0.0.1::{port}::SOCKET",
-                                                  generator=gen, dry_run=True, arm=True))
+    with refused_port() as port:               # a port nobody listens on
+        report = VisaDriver().deliver(table, Delivery(destination=f"TCPIP::127.0.0.1::{port}::SOCKET",
+                                                      generator=gen, dry_run=True, arm=True))
     upload = next(e for e in report["log"] if e["step"] == "upload" and e["kind"] == "write")
     assert upload["command"] == "TRAC:DATA SWEEP,#42048<2048 bytes of data>"
     assert upload["bytes"] == len(b"TRAC:DATA SWEEP,#42048") + 2048 + 1
@@ -348,12 +315,9 @@ def test_bad_options_are_input_errors(options, key):
 
 
 def test_connection_refused_is_an_instrument_error():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]
     table, _ = make_table()
     gen = load_generator("virtual-awg")
-    with pytest.raises(InstrumentError, match="connection refused") as info:
+    with refused_port() as port, pytest.raises(InstrumentError, match="connection refused") as info:
         VisaDriver().deliver(table, Delivery(destination=f"TCPIP::127.0.0.1::{port}::SOCKET", generator=gen))
     assert info.value.step == "identify"
 

@@ -15,7 +15,7 @@ from sweepgen.generator import generator_from_dict, load_generator
 from sweepgen.emulators.instrument import Faults
 from sweepgen.testing import instrument_server
 
-from conftest import examples
+from conftest import examples, open_visa, sine_codes
 
 SMALL = {   # a small instrument: its limits are easy to cross (demo data)
     "title": "small test generator", "kind": "awg", "channels": 2,
@@ -28,17 +28,6 @@ SMALL = {   # a small instrument: its limits are easy to cross (demo data)
                  "output_off": "OUTP OFF", "upload": "TRAC:DATA {name},{data}", "wait": "*OPC?",
                  "error_query": "SYST:ERR?", "no_error_pattern": "^[+]?0,", "output_on": "OUTP ON"},
 }
-
-
-@pytest.fixture(scope="module")
-def rm():
-    manager = pyvisa.ResourceManager("@py")
-    yield manager
-    manager.close()
-
-
-def connect(rm, server, timeout_ms=2000):
-    return rm.open_resource(server.resource, read_termination="\n", write_termination="\n", timeout=timeout_ms)
 
 
 @pytest.fixture
@@ -64,13 +53,8 @@ def errors(inst) -> list[str]:
     raise AssertionError("error queue does not empty")
 
 
-def codes_of(n, bits=12):
-    fs = 2 ** (bits - 1) - 1
-    return np.round(fs * np.sin(np.linspace(0, 2 * np.pi, n, endpoint=False))).astype(np.int16)
-
-
 def test_identity_and_empty_error_queue(rm, awg):
-    inst = connect(rm, awg)
+    inst = open_visa(rm, awg.resource)
     assert inst.query("*IDN?").startswith("sweepgen,virtual-awg,0,")
     # SCPI-1999 SYSTem:ERRor[:NEXT]? replies 0,"No error" when the queue is empty (SCPI-1999 standard, SCPI Consortium)
     assert inst.query("SYST:ERR?") == '0,"No error"'
@@ -81,8 +65,8 @@ def test_identity_and_empty_error_queue(rm, awg):
 
 @pytest.mark.parametrize("order, border, letter_big", [("<i2", "SWAP", False), (">i2", "NORM", True)])
 def test_block_upload_readback_and_checksum(rm, small, order, border, letter_big):
-    inst = connect(rm, small)
-    data = codes_of(256)
+    inst = open_visa(rm, small.resource)
+    data = sine_codes(256, bits=12)
     inst.write(f"FORM:DATA INT,16;:FORM:BORD {border}")
     # pyvisa builds the IEEE 488.2 block itself here (reference implementation)
     inst.write_binary_values("TRAC:DATA SWEEP,", data.tolist(), datatype="h", is_big_endian=letter_big)
@@ -98,8 +82,8 @@ def test_block_upload_readback_and_checksum(rm, small, order, border, letter_big
 
 
 def test_ascii_list_upload_and_readback(rm, small):
-    inst = connect(rm, small)
-    data = codes_of(64)
+    inst = open_visa(rm, small.resource)
+    data = sine_codes(64, bits=12)
     inst.write("FORMat:DATA ASCii")
     inst.write("DATA:DATA RAMP2," + ",".join(map(str, data.tolist())))       # DATA is TRACe's alias
     assert errors(inst) == []
@@ -109,9 +93,9 @@ def test_ascii_list_upload_and_readback(rm, small):
 
 
 def test_long_short_forms_optional_nodes_suffixes_and_compound_paths(rm, small):
-    inst = connect(rm, small)
+    inst = open_visa(rm, small.resource)
     inst.write("FORM:DATA INT,16;BORD SWAP")
-    inst.write_binary_values("TRAC:DATA A1,", codes_of(64).tolist(), datatype="h")
+    inst.write_binary_values("TRAC:DATA A1,", sine_codes(64, bits=12).tolist(), datatype="h")
     inst.write("SOURce2:FUNCtion:USER A1;SHAPe USER")          # relative: SOURce2:FUNCtion:SHAPe
     inst.write("SOUR2:FREQ 50;SOUR2:FREQ 60")                  # relative: SOUR2:SOUR2:FREQ is unknown
     assert errors(inst)[0].startswith("-113,") and small.instrument.channels[2].frequency == 50
@@ -151,7 +135,7 @@ def test_long_short_forms_optional_nodes_suffixes_and_compound_paths(rm, small):
 ])
 def test_refusals_carry_scpi_error_numbers(rm, small, commands, code):
     # error numbers of SCPI-1999 vol. 2 ch. 21 / IEEE 488.2 (recalled)
-    inst = connect(rm, small)
+    inst = open_visa(rm, small.resource)
     for command in commands:
         inst.write_raw(command.encode("latin-1") + b"\n")
     found = errors(inst)
@@ -162,7 +146,7 @@ def test_refusals_carry_scpi_error_numbers(rm, small, commands, code):
 
 
 def test_range_checks_use_the_profile(rm, small):
-    inst = connect(rm, small)
+    inst = open_visa(rm, small.resource)
     inst.write("FORM:DATA ASC")
     inst.write("TRAC:DATA T," + ",".join(["0"] * 64))
     inst.write("FUNC:USER T;SHAP USER")
@@ -178,7 +162,7 @@ def test_range_checks_use_the_profile(rm, small):
 
 def test_injected_commands_never_run(rm, small):
     """A command error discards the rest of its message (IEEE 488.2), so nothing smuggled after it runs."""
-    inst = connect(rm, small)
+    inst = open_visa(rm, small.resource)
     inst.write("FORM:DATA ASC")
     inst.write("TRAC:DATA T," + ",".join(["0"] * 64) + ";:FUNC:USER T;SHAP USER;:FREQ 1e3")
     assert errors(inst) == []
@@ -193,7 +177,7 @@ def test_injected_commands_never_run(rm, small):
 @settings(max_examples=examples(25), suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(st.binary(min_size=1, max_size=300))
 def test_garbage_is_refused_and_the_instrument_keeps_serving(rm, small, garbage):
-    inst = connect(rm, small)
+    inst = open_visa(rm, small.resource)
     inst.write_raw(garbage + b"\n")
     inst.clear()
     inst.write_raw(b"\n*CLS\n")
@@ -203,7 +187,7 @@ def test_garbage_is_refused_and_the_instrument_keeps_serving(rm, small, garbage)
 
 
 def test_overlong_message_is_refused(rm, small):
-    inst = connect(rm, small)
+    inst = open_visa(rm, small.resource)
     inst.write_raw(b"SOUR:VOLT " + b"1" * 50000 + b"\n")          # max_line is 20000 in the fixture
     assert errors(inst)[0].startswith("-223,")
     inst.write_raw(b"#9999999999\n")                                 # a block larger than any memory
@@ -213,7 +197,7 @@ def test_overlong_message_is_refused(rm, small):
 
 
 def test_error_queue_overflow_and_event_status(rm, small):
-    inst = connect(rm, small)
+    inst = open_visa(rm, small.resource)
     for _ in range(20):
         inst.write("NOPE")
     # SCPI-1999: a full queue replaces its newest entry by -350,"Queue overflow"
@@ -230,9 +214,9 @@ def test_error_queue_overflow_and_event_status(rm, small):
 
 
 def test_clients_are_served_one_at_a_time(rm, small):
-    first = connect(rm, small)
+    first = open_visa(rm, small.resource)
     assert first.query("*IDN?").startswith("sweepgen,")
-    second = connect(rm, small, timeout_ms=300)
+    second = open_visa(rm, small.resource, timeout_ms=300)
     second.write("*OPC?")
     with pytest.raises(pyvisa.errors.VisaIOError):                  # waits while the first is connected
         second.read()
@@ -247,15 +231,15 @@ def test_clients_are_served_one_at_a_time(rm, small):
 def test_fault_delay_and_mute(rm, tmp_path):
     gen = generator_from_dict(SMALL, tmp_path / "small.toml")
     with instrument_server(gen, faults=Faults(delay=0.5)) as server:
-        inst = connect(rm, server, timeout_ms=150)
+        inst = open_visa(rm, server.resource, timeout_ms=150)
         with pytest.raises(pyvisa.errors.VisaIOError):
             inst.query("*IDN?")
         inst.close()
-        inst = connect(rm, server, timeout_ms=3000)
+        inst = open_visa(rm, server.resource, timeout_ms=3000)
         assert inst.query("*OPC?") == "1"
         inst.close()
     with instrument_server(gen, faults=Faults(mute=True)) as server:
-        inst = connect(rm, server, timeout_ms=200)
+        inst = open_visa(rm, server.resource, timeout_ms=200)
         inst.write("OUTP OFF")
         with pytest.raises(pyvisa.errors.VisaIOError):
             inst.query("*IDN?")
@@ -272,16 +256,16 @@ def test_fault_drop_after_bytes_then_serves_the_next_client(rm, tmp_path):
                 sock.sendall(b"FORM:DATA ASC;" + b"0" * 100 + b"\n")
                 sock.recv(1)
         sock.close()
-        inst = connect(rm, server)
+        inst = open_visa(rm, server.resource)
         assert inst.query("*IDN?").startswith("sweepgen,")
         inst.close()
 
 
 def test_fault_error_after_upload_and_corrupt_readback(rm, tmp_path):
     gen = generator_from_dict(SMALL, tmp_path / "small.toml")
-    data = codes_of(64)
+    data = sine_codes(64, bits=12)
     with instrument_server(gen, faults=Faults(error_after_upload=True, corrupt_readback=True)) as server:
-        inst = connect(rm, server)
+        inst = open_visa(rm, server.resource)
         inst.write("FORM:DATA INT,16;:FORM:BORD SWAP")
         inst.write_binary_values("TRAC:DATA T,", data.tolist(), datatype="h")
         assert errors(inst)[0].startswith("-240,")
@@ -292,11 +276,10 @@ def test_fault_error_after_upload_and_corrupt_readback(rm, tmp_path):
         inst.close()
 
 
-def test_builtin_profile_limits_and_identity():
+def test_builtin_profile_limits_and_identity(rm):
     gen = load_generator("virtual-awg")
     with instrument_server(gen, identity="sweepgen,virtual-awg-b,7,2.0") as server:
         assert server.instrument.max_block == 8 * gen.sampling.memory
-        inst = pyvisa.ResourceManager("@py").open_resource(server.resource, read_termination="\n",
-                                                             write_termination="\n", timeout=2000)
+        inst = open_visa(rm, server.resource)
         assert inst.query("*IDN?") == "sweepgen,virtual-awg-b,7,2.0"
         inst.close()

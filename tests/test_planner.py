@@ -15,15 +15,11 @@ from sweepgen.errors import PlanError
 from sweepgen.planner import plan
 from sweepgen.scenario import load_scenario, scenario_from_dict
 
-from conftest import examples, scenario_dict
-
-
-def make(**sections):
-    return scenario_from_dict(scenario_dict(**sections), "test.toml")
+from conftest import examples, make_scenario, scenario_dict
 
 
 def test_uniform_light_matches_closed_form():
-    sc = make(source={"pulse_time": None}, chirp={"start_time": None})
+    sc = make_scenario(source={"pulse_time": None}, chirp={"start_time": None})
     p = plan(sc)
     sp = sc.species
     a = 0.6 * physics.max_deceleration(3.0, sp.gamma, sp.wavelength, sp.mass)
@@ -42,7 +38,7 @@ def test_uniform_light_matches_closed_form():
 
 def test_reference_example_through_the_planner():
     # constant-deceleration closed form (Foot 2005 §9.3.1), worked example: 87Rb, s → ∞, η = 0.5, 300 → 10 m/s: 5.172 ms, 0.8016 m, 371.68 MHz, 71.87 MHz/ms
-    sc = make(source={"pulse_time": None}, light={"saturation": 1e9, "start": "0 m"},
+    sc = make_scenario(source={"pulse_time": None}, light={"saturation": 1e9, "start": "0 m"},
               target={"distance": "2 m"},
               chirp={"start_time": None, "margin": 0.5, "start_velocity": "300 m/s", "end_velocity": "10 m/s"})
     doc = plan(sc).to_json()
@@ -53,7 +49,7 @@ def test_reference_example_through_the_planner():
 
 
 def test_pulsed_auto_ends_at_target_and_times():
-    sc = make()
+    sc = make_scenario()
     p = plan(sc)
     doc = p.to_json()
     assert p.z_end == pytest.approx(1.0, abs=1e-9)
@@ -67,7 +63,7 @@ def test_pulsed_auto_ends_at_target_and_times():
 
 
 def test_pulsed_explicit_start_time():
-    sc = make(chirp={"start_time": "1 ms"}, source={"pulse_time": "0.5 ms"})
+    sc = make_scenario(chirp={"start_time": "1 ms"}, source={"pulse_time": "0.5 ms"})
     p = plan(sc)
     assert p.z_start == pytest.approx(260.0 * 0.5e-3)
     d = p.slowing_distance
@@ -75,7 +71,7 @@ def test_pulsed_explicit_start_time():
 
 
 def test_explicit_start_too_late_says_how_to_fix():
-    sc = make(chirp={"start_time": "2 ms"}, source={"pulse_time": "0.5 ms"})
+    sc = make_scenario(chirp={"start_time": "2 ms"}, source={"pulse_time": "0.5 ms"})
     with pytest.raises(PlanError) as info:
         plan(sc)
     msg = str(info.value)
@@ -85,7 +81,7 @@ def test_explicit_start_too_late_says_how_to_fix():
 def test_no_earlier_start_is_offered_when_it_would_lie_before_the_light():
     # pulse at 10 ms, target 0.70 m: the 0.6675 m slowing distance fits only if the design atom starts
     # at 0.0325 m, before the light start (0.05 m), so no earlier start time can help
-    sc = make(source={"pulse_time": "10 ms"}, target={"distance": "0.7 m"},
+    sc = make_scenario(source={"pulse_time": "10 ms"}, target={"distance": "0.7 m"},
               chirp={"start_time": "10.5 ms", "period": "40 ms"})
     with pytest.raises(PlanError) as info:
         plan(sc)
@@ -95,7 +91,7 @@ def test_no_earlier_start_is_offered_when_it_would_lie_before_the_light():
 
 
 def test_explicit_start_before_light_is_refused_with_numbers():
-    sc = make(chirp={"start_time": "0.1 ms"})
+    sc = make_scenario(chirp={"start_time": "0.1 ms"})
     with pytest.raises(PlanError) as info:
         plan(sc)
     msg = str(info.value)
@@ -103,7 +99,7 @@ def test_explicit_start_before_light_is_refused_with_numbers():
 
 
 def test_distance_too_short_is_refused_with_both_lengths():
-    sc = make(target={"distance": "0.5 m"})
+    sc = make_scenario(target={"distance": "0.5 m"})
     with pytest.raises(PlanError) as info:
         plan(sc)
     msg = str(info.value)
@@ -135,7 +131,7 @@ def test_focused_light_matches_independent_position_domain_integral():
 
 
 def test_focused_auto_start_root_find():
-    sc = make(light={"saturation": 4.0, "waist": "0.6 mm", "focus": "0.2 m"})
+    sc = make_scenario(light={"saturation": 4.0, "waist": "0.6 mm", "focus": "0.2 m"})
     p = plan(sc)
     assert p.z_end == pytest.approx(1.0, abs=1e-6)
     L, t = _focused_reference(4.0, 0.6e-3, 0.2, p.z_start, 260.0, 15.0, 0.6, sc.species)

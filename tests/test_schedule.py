@@ -7,14 +7,13 @@ from hypothesis import strategies as st
 
 from sweepgen.errors import PlanError
 from sweepgen.planner import plan
-from sweepgen.scenario import scenario_from_dict
 
-from conftest import examples, scenario_dict
+from conftest import examples, make_scenario
 
 
 @pytest.fixture(scope="module")
 def pulsed():
-    p = plan(scenario_from_dict(scenario_dict(), "s.toml"))
+    p = plan(make_scenario())
     return p, p.schedule()
 
 
@@ -75,14 +74,13 @@ def test_vectorised_shapes(pulsed):
 
 
 def test_period_too_short_is_refused():
-    p = plan(scenario_from_dict(scenario_dict(chirp={"period": "5 ms"}), "short.toml"))
+    p = plan(make_scenario(chirp={"period": "5 ms"}))
     with pytest.raises(PlanError) as info:
         p.schedule()
     assert "chirp.period" in str(info.value) and "6.933 ms" in str(info.value)
 
 
 def test_zero_hold_and_continuous_source_start_with_the_chirp():
-    sc = scenario_from_dict(scenario_dict(source={"pulse_time": None}, chirp={"start_time": None, "hold": "0 s"}),
-                            "c.toml")
+    sc = make_scenario(source={"pulse_time": None}, chirp={"start_time": None, "hold": "0 s"})
     s = plan(sc).schedule()
     assert [seg.kind for seg in s.segments] == ["chirp", "return", "rest"]

@@ -29,11 +29,11 @@ from scipy import stats
 
 from sweepgen import physics
 from sweepgen.planner import plan
-from sweepgen.scenario import load_scenario, scenario_from_dict
+from sweepgen.scenario import load_scenario
 from sweepgen.simulate import (ARRIVED, DARK, HORIZON_FACTOR, STEP_FRACTION, Atoms, DetuningProgram, _clock_counts,
                                draw_atoms, expected_counts, propagate, simulate, velocity_width)
 
-from conftest import examples, scenario_dict
+from conftest import examples, make_scenario
 
 # A pulsed narrow beam well inside the chirp's band (15 .. 260 m/s); no hold, and a long
 # period so that slowed atoms arrive before the next chirp.
@@ -42,17 +42,13 @@ NARROW = {"model": "gaussian", "mean_velocity": "150 m/s", "velocity_spread": "5
 QUIET = {"hold": "0 ms", "period": "100 ms"}
 
 
-def make(**sections):
-    return scenario_from_dict(scenario_dict(**sections), "test.toml")
-
-
 def binomial_sigma(f, n):
     return math.sqrt(max(f * (1.0 - f), 1.0 / n) / n)
 
 
 # -- the detuning the atoms see -----------------------------------------------------------
 def test_detuning_program_is_the_schedule():
-    sc = make()
+    sc = make_scenario()
     sched = plan(sc).schedule()
     prog = DetuningProgram(sched)
     t = np.random.default_rng(5).uniform(-0.03, 0.07, 3000)
@@ -67,7 +63,7 @@ def test_detuning_program_is_the_schedule():
             assert lo >= sched.start_detuning - 1e-3 and hi <= sched.end_detuning + 1e-3
 
 
-_SCHED = plan(make()).schedule()
+_SCHED = plan(make_scenario()).schedule()
 
 
 @settings(max_examples=examples(60))
@@ -95,7 +91,7 @@ def test_expected_counts_are_the_scattering_rate_times_the_step(atoms, detuning,
     light = {"saturation": s0, "start": "0.05 m"}
     if focused:
         light.update(waist="0.4 mm", focus="0.1 m")
-    sc = make(light=light)
+    sc = make_scenario(light=light)
     sp, lt = sc.species, sc.light
     v = np.array([a[0] for a in atoms])
     z = np.array([a[1] for a in atoms])
@@ -125,9 +121,9 @@ def test_a_clock_that_ran_out_gives_one_plus_poisson_photons_and_a_fresh_clock(o
 @pytest.mark.parametrize("pulsed", [True, False])
 def test_with_the_light_off_every_atom_keeps_its_speed(pulsed):
     if pulsed:
-        sc = make()
+        sc = make_scenario()
     else:
-        sc = make(source={"pulse_time": None}, chirp={"start_time": None})
+        sc = make_scenario(source={"pulse_time": None}, chirp={"start_time": None})
     rng = np.random.default_rng(11)
     atoms = draw_atoms(sc, 2000, rng)
     flight = propagate(sc, atoms, DetuningProgram(plan(sc).schedule()), rng, light=False)
@@ -147,7 +143,7 @@ def test_with_the_light_off_every_atom_keeps_its_speed(pulsed):
 @given(st.lists(st.floats(5.0, 2000.0), min_size=1, max_size=40),
        st.lists(st.floats(0.0, 0.0199), min_size=1, max_size=40))
 def test_light_off_property_any_velocities_and_emission_times(speeds, times):
-    sc = make(source={"pulse_time": None}, chirp={"start_time": None})
+    sc = make_scenario(source={"pulse_time": None}, chirp={"start_time": None})
     n = min(len(speeds), len(times))
     v = np.array(speeds[:n])
     te = np.array(times[:n])
@@ -164,7 +160,7 @@ def test_light_off_property_any_velocities_and_emission_times(speeds, times):
 def test_light_off_transverse_positions_follow_the_rayleigh_law():
     # Point source, angles N(0, θ) per axis; no light, so no kicks: r = D·|θ| is Rayleigh with scale Dθ.
     theta, aperture = 8e-3, 10e-3
-    sc = make(source={"divergence": "8 mrad"}, target={"aperture": "10 mm"})
+    sc = make_scenario(source={"divergence": "8 mrad"}, target={"aperture": "10 mm"})
     n = 4000
     r = simulate(sc, atoms=n, seed=3)
     doc = r.to_json()
@@ -183,7 +179,7 @@ def test_light_off_transverse_positions_follow_the_rayleigh_law():
 # -- capture by the chirp -------------------------------------------------------------------
 @pytest.fixture(scope="module")
 def narrow_run():
-    sc = make(source=NARROW, chirp=QUIET)
+    sc = make_scenario(source=NARROW, chirp=QUIET)
     return sc, simulate(sc, atoms=1500, seed=7)
 
 
@@ -225,7 +221,7 @@ def test_photons_per_slowed_atom_follow_momentum_conservation(narrow_run):
 def test_emission_recoil_heats_the_transverse_motion_as_n_over_three(tmp_path):
     # Divergence so small that the ballistic part is negligible: v_x at the target is the sum of
     # the emission recoils' x components, variance N v_r²/3 (isotropic emission).
-    sc = make(source={**NARROW, "divergence": "1e-9 rad"}, chirp=QUIET)
+    sc = make_scenario(source={**NARROW, "divergence": "1e-9 rad"}, chirp=QUIET)
     n = 1200
     r = simulate(sc, atoms=n, seed=21, baselines=False)
     cap = r.captured()
@@ -245,12 +241,12 @@ def test_atoms_a_bit_above_the_start_velocity_are_pulled_in_before_the_chirp():
     # Its power-broadened line (full width λΓ/2π·sqrt(1+s) = 9.5 m/s here) reaches above the
     # start velocity and brakes atoms there into the chirp's reach: they are captured although
     # they start faster than the start velocity. Atoms many widths above it are not.
-    sc = make()
+    sc = make_scenario()
     lag = physics.lag_velocity(3.0, 0.6, sc.species.gamma, sc.species.wavelength)
     v_res = sc.chirp.start_velocity + lag       # resonant velocity of the light before the chirp
-    above = make(source={**NARROW, "mean_velocity": f"{v_res + 3.0} m/s", "velocity_spread": "0.5 m/s"},
+    above = make_scenario(source={**NARROW, "mean_velocity": f"{v_res + 3.0} m/s", "velocity_spread": "0.5 m/s"},
                  chirp=QUIET)
-    far = make(source={**NARROW, "mean_velocity": "330 m/s", "velocity_spread": "0.5 m/s"}, chirp=QUIET)
+    far = make_scenario(source={**NARROW, "mean_velocity": "330 m/s", "velocity_spread": "0.5 m/s"}, chirp=QUIET)
     n = 600
     got_above = simulate(above, atoms=n, seed=2, baselines=False).to_json()
     got_far = simulate(far, atoms=n, seed=2, baselines=False).to_json()
@@ -260,7 +256,7 @@ def test_atoms_a_bit_above_the_start_velocity_are_pulled_in_before_the_chirp():
 
 
 def test_molecules_survive_as_one_minus_p_to_the_n():
-    sc = make(species="caf-a-x", source={**NARROW, "mean_velocity": "160 m/s", "velocity_spread": "2 m/s"},
+    sc = make_scenario(species="caf-a-x", source={**NARROW, "mean_velocity": "160 m/s", "velocity_spread": "2 m/s"},
               light={"saturation": 1.5, "start": "0.15 m"}, target={"distance": "1.3 m", "capture_velocity": "12 m/s"},
               chirp={"start_velocity": "200 m/s", "end_velocity": "10 m/s", "margin": 0.3, "hold": "0 ms",
                      "return_time": "0.1 ms", "period": "100 ms"})
@@ -283,7 +279,7 @@ def test_molecules_survive_as_one_minus_p_to_the_n():
 
 # -- the run as a whole -----------------------------------------------------------------------
 def test_same_seed_same_result_and_another_seed_differs():
-    sc = make(source={"divergence": "5 mrad"}, target={"aperture": "8 mm"})
+    sc = make_scenario(source={"divergence": "5 mrad"}, target={"aperture": "8 mm"})
     a = simulate(sc, atoms=300, seed=9).to_json()
     b = simulate(sc, atoms=300, seed=9).to_json()
     c = simulate(sc, atoms=300, seed=10).to_json()
@@ -294,7 +290,7 @@ def test_same_seed_same_result_and_another_seed_differs():
 
 
 def test_json_keys_and_units():
-    sc = make()
+    sc = make_scenario()
     r = simulate(sc, atoms=400, seed=1)
     doc = r.to_json()
     for key in ("atoms", "seed", "captured_fraction", "band_fraction", "final_velocity_mean",
@@ -319,7 +315,7 @@ def test_json_keys_and_units():
 
 
 def test_the_time_step_follows_the_rule_and_halving_it_changes_nothing_beyond_statistics():
-    sc = make(chirp={"hold": "0 ms"})
+    sc = make_scenario(chirp={"hold": "0 ms"})
     sp = sc.species
     rng = np.random.default_rng(8)
     atoms = draw_atoms(sc, 1500, rng)
