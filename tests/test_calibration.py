@@ -21,6 +21,7 @@ def noisy(n=600, sigma=0.3e6, seed=7, lo=-4.0, hi=4.0):
     return u, curve(u) + rng.normal(0.0, sigma, n)
 
 
+@pytest.mark.slow
 def test_known_curve_recovered_within_the_stated_uncertainty():
     u, x = noisy()
     fit = fit_measurements(u, x)

@@ -128,6 +128,7 @@ def test_actuator_response_for_plots():
     assert np.max(np.abs(d - sched.detuning(t))[chirp]) > 0.5 * lag
 
 
+@pytest.mark.slow
 def test_actuator_response_follows_the_scenarios_profiles(write_scenario):
     p = plan(load_scenario("rb87-chopped-oven"))
     t, d = actuator_response(p)                            # the scenario names laser and generator
