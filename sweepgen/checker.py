@@ -590,3 +590,37 @@ def tracking_tolerance(plan) -> float:
     ``[drive] tracking_fraction`` × the smallest lag detuning ``Δv_lag / λ`` along the chirp."""
     sc = plan.scenario
     return sc.drive.tracking_fraction * float(np.min(np.asarray(plan.trajectory.lag))) / sc.species.wavelength
+
+
+# ----------------------------------------------------------------------------------
+# A table read back, in place of the plan's sweep
+# ----------------------------------------------------------------------------------
+def table_findings(plan, table, sweep) -> list[Finding]:
+    """Rules for a table read back (``check --table``).
+
+    ``table_integrity``: the file matches its sidecar (size, SHA-256, count, codes).
+    ``table_match``: the detuning the table plays through TODAY's laser (``sweep``, a
+    :class:`sweepgen.playback.TableSweep`) against the plan during the plan's chirp, within the
+    tracking tolerance.
+    """
+    from sweepgen._format import si
+
+    bad = [c["check"] for c in table.checks if not c["ok"]]
+    out = [Finding("table_integrity", "fail" if bad else "pass", None, None, "", None,
+                   (f"{table.path.name} does not match its sidecar: {', '.join(bad)} differ; it was changed or "
+                    f"damaged after it was written" if bad else
+                    f"{table.path.name}: size, SHA-256, sample count and codes match the sidecar"),
+                   "export the table again" if bad else "")]
+    if plan is None:
+        return out
+    planned = plan.schedule()
+    seg = planned.segment("chirp")
+    t = np.linspace(seg.start, np.nextafter(seg.end, seg.start), GRID)
+    diff = np.abs(sweep.schedule.detuning(t) - planned.detuning(t))
+    worst, at = float(diff.max()), float(t[int(np.argmax(diff))])
+    out.append(upper("table_match", worst, tracking_tolerance(plan), "Hz",
+                     f"played through laser '{sweep.laser.key}', the table is off the plan by up to {si(worst, 'Hz')} "
+                     f"during the chirp (at {at * 1e3:.4g} ms; table sampled at {si(sweep.sample_rate, 'Sa/s')}, "
+                     f"represented within {si(sweep.error, 'Hz')})",
+                     "export a new table from the scenario, or recalibrate the laser (sweepgen calibrate)"))
+    return out

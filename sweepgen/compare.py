@@ -177,7 +177,7 @@ def compare(plan, trace: Trace, *, marker: str | None = None, marker_time: float
     ec = err[in_chirp]
     i = int(np.argmax(np.abs(ec)))
     cmp.stats = {"samples": int(len(err)), "chirp_samples": int(in_chirp.sum()),
-                 "chirp_error_max": float(np.abs(ec).max()), "chirp_error_at": float(t[in_chirp][i]),
+                 "chirp_error_max": float(np.abs(ec).max()), "chirp_error_at": float(t[in_chirp][i] % sched.period),
                  "chirp_error_rms": float(np.sqrt(np.mean(ec ** 2))), "chirp_error_mean": float(ec.mean()),
                  "error_max": float(np.abs(err).max()), "error_rms": float(np.sqrt(np.mean(err ** 2)))}
     return cmp

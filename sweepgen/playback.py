@@ -28,6 +28,8 @@ import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
+
 from sweepgen import checker, sampling
 from sweepgen.errors import CheckFailed, InputError
 from sweepgen.generator import load_generator
@@ -156,6 +158,64 @@ def prepare(scenario, *, laser=None, generator=None, sample_rate: float | None =
         checker.check_hardware(report, main)
         channels[MAIN] = main
     return Playback(sc, laser, generator, report, channels)
+
+
+# ---------------------------------------------------------------------------------------------
+# A table read back, played by today's laser
+# ---------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class TableSweep:
+    """What an old table plays through a laser: its drive mapped by the laser's chain TODAY."""
+
+    table: object              # sweepgen.readback.ReadTable
+    laser: object
+    schedule: object           # sweepgen.schedule.Schedule of the detuning it plays
+    error: float               # Hz: the schedule's largest difference from the table's samples
+    sample_rate: float
+
+
+def table_sweep(table, laser) -> TableSweep:
+    """The detuning ``table`` plays through ``laser``: its drive (from the sidecar's scaling, V at the
+    actuator or Hz) through the laser's chain as it is now, as a schedule over one period."""
+    from sweepgen import readback
+
+    doc = table.sidecar
+    unit = table.drive_unit
+    if unit != laser.chain.drive_unit:
+        raise InputError(f"the table drives in {unit} but laser '{laser.key}' takes {laser.chain.drive_unit}",
+                         file=str(table.path), key="scaling.drive.unit")
+    n = int(doc.get("period_count", table.count))
+    detuning = laser.chain.to_detuning(table.drive()[:n])
+    gain = np.abs(laser.chain.gain(np.array([detuning.min(), detuning.max()])))
+    step = abs(doc["scaling"]["drive"]["scale"]) / float(gain.min())       # Hz of detuning per code
+    schedule, error = readback.table_schedule(detuning, table.sample_rate, n, step)
+    return TableSweep(table, laser, schedule, error, table.sample_rate)
+
+
+def prepare_table(scenario, table, *, laser=None, generator=None) -> "Playback":
+    """Check an old table (read back) in place of the scenario's own sweep, against today's profiles.
+
+    The design rules judge the scenario's plan; the hardware rules judge what the
+    table plays through today's laser at its own sample rate; ``table_integrity``
+    and ``table_match`` say whether the file is intact and still follows the plan.
+    """
+    sc = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
+    laser, generator = scenario_profiles(sc, laser, generator)
+    report = checker.CheckReport([], scenario=sc, laser=laser, generator=generator)
+    plan = checker.check_design(report)
+    sweep = table_sweep(table, laser)
+    report.findings.extend(checker.table_findings(plan or report.plan, table, sweep))
+    main = channel_playback(sweep.schedule, laser, generator, sc.drive, linewidth=sc.species.linewidth,
+                            sample_rate=table.sample_rate)
+    if main.rate_choice is not None:
+        import dataclasses
+
+        where = f"the table {table.path.name}"
+        main = dataclasses.replace(main, rate_choice=dataclasses.replace(
+            main.rate_choice, limited_by=f"fixed by {where}",
+            reason=main.rate_choice.reason.replace("--rate", where)))
+    checker.check_hardware(report, main)
+    return Playback(sc, laser, generator, report, {MAIN: main})
 
 
 @dataclass(frozen=True)

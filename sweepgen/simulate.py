@@ -348,7 +348,7 @@ class SimulationResult:
 
 # ----------------------------------------------------------------------------------
 def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None,
-             baselines: bool = True) -> SimulationResult:
+             baselines: bool = True, schedule=None) -> SimulationResult:
     """Run the Monte Carlo for ``scenario`` and its two baselines.
 
     Parameters
@@ -363,6 +363,9 @@ def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None,
     baselines : bool
         Also run the no-light and fixed-frequency baselines (otherwise their
         fractions are reported as zero atoms captured; for tests that need only the run).
+    schedule : sweepgen.schedule.Schedule, optional
+        The detuning the atoms see (default: the plan's), e.g. what a table read
+        back plays (:func:`sweepgen.playback.table_sweep`).
     """
     from sweepgen.planner import plan as make_plan
 
@@ -372,7 +375,7 @@ def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None,
         raise InputError(f"expected a seed of zero or more, got {seed!r}", key="--seed")
     atoms, seed = int(atoms), int(seed)
     p = make_plan(scenario) if plan is None else plan
-    schedule = p.schedule()
+    schedule = p.schedule() if schedule is None else schedule
     streams = np.random.SeedSequence(seed).spawn(4)
     initial = draw_atoms(scenario, atoms, np.random.default_rng(streams[0]))
     flight = propagate(scenario, initial, DetuningProgram(schedule), np.random.default_rng(streams[1]))

@@ -25,6 +25,9 @@ COMMANDS = {
     "export": ("export", "Write the sample table (csv, raw, npy or a plug-in format) and its sidecar."),
     "upload": ("upload", "Upload the sweep to a generator (SCPI over VISA, or a ramp board), verified."),
     "emulate": ("emulate", "Serve the virtual instrument (or ramp-board emulator) on a TCP port."),
+    "calibrate": ("calibrate", "Fit a stage of a laser's tuning chain to measurements; write a new profile."),
+    "inspect": ("inspect", "Read a table back: verify it, decode it, print its numbers."),
+    "compare": ("compare", "Compare a measured frequency trace with the planned sweep."),
     "profiles": ("profiles", "List the built-in species, lasers, generators and scenarios."),
     "demo": ("demo", "Run the whole job on built-in data and write a report."),
 }

@@ -112,3 +112,22 @@ def prepare_playback(scenario, *, rate=None, laser_ref=None, generator_ref=None)
     laser = playback.load_profile("laser", laser_ref, key="--laser") if laser_ref else None
     gen = playback.load_profile("generator", generator_ref, key="--generator") if generator_ref else None
     return playback.prepare(sc, laser=laser, generator=gen, sample_rate=sample_rate)
+
+
+def read_table_file(table_file):
+    """A table read back for ``--table`` (:class:`sweepgen.readback.ReadTable`)."""
+    from sweepgen import drivers
+
+    return drivers.read_table(table_file)
+
+
+def prepare_table_playback(scenario, table_file, *, rate=None, laser_ref=None, generator_ref=None):
+    """The playback service for ``check --table``: an old table against today's profiles."""
+    from sweepgen import playback
+    from sweepgen.errors import InputError
+
+    if rate is not None:
+        raise InputError("a table plays at its own sample rate; --rate does not go with --table", key="--rate")
+    laser = playback.load_profile("laser", laser_ref, key="--laser") if laser_ref else None
+    gen = playback.load_profile("generator", generator_ref, key="--generator") if generator_ref else None
+    return playback.prepare_table(scenario, read_table_file(table_file), laser=laser, generator=gen)

@@ -6,7 +6,8 @@ import click
 
 from sweepgen._format import si
 from sweepgen.cli._common import (emit_json, generator_option, handles_errors, json_option, laser_option,
-                                  prepare_playback, rate_option, table)
+                                  prepare_playback, prepare_table_playback, rate_option,
+                                  table)
 
 _SYMBOL = {"fail": "FAIL", "warn": "warn", "pass": "ok"}
 
@@ -19,10 +20,13 @@ _SYMBOL = {"fail": "FAIL", "warn": "warn", "pass": "ok"}
 @generator_option
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
               help="Also draw each rule's margin as a bar (PNG or SVG by extension).")
+@click.option("--table", "table_file", default=None, type=click.Path(dir_okay=False), metavar="FILE",
+              help="Check a table written earlier (any installed format, or its sidecar) in place of the "
+                   "scenario's own sweep: what it plays through today's laser and generator.")
 @click.option("--all", "show_all", is_flag=True, help="List passing rules too (default: failures and warnings, "
                                                       "then a count of passes).")
 @handles_errors
-def command(scenario, as_json, rate, laser_ref, generator_ref, plot_file, show_all):
+def command(scenario, as_json, rate, laser_ref, generator_ref, plot_file, table_file, show_all):
     """Check SCENARIO (a built-in key or a path) against its laser and generator
     profiles before anything is switched on: laser limits (mode-hop-free range,
     chirp and return rates, the actuator's safe input range, slew, tracking
@@ -36,8 +40,13 @@ def command(scenario, as_json, rate, laser_ref, generator_ref, plot_file, show_a
     Example:
       sweepgen check rb87-chopped-oven
       sweepgen check my-scenario.toml --laser ./my-laser.toml --json
+      sweepgen check my-scenario.toml --table tables/last-month.bin
     """
-    report = prepare_playback(scenario, rate=rate, laser_ref=laser_ref, generator_ref=generator_ref).report
+    if table_file is not None:
+        report = prepare_table_playback(scenario, table_file, rate=rate, laser_ref=laser_ref,
+                                        generator_ref=generator_ref).report
+    else:
+        report = prepare_playback(scenario, rate=rate, laser_ref=laser_ref, generator_ref=generator_ref).report
     if plot_file:
         from sweepgen.plots import plot_check
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import emit_json, handles_errors, json_option, table
+from sweepgen.cli._common import emit_json, handles_errors, json_option, laser_option, table
 from sweepgen.errors import InputError
 from sweepgen.simulate import DEFAULT_ATOMS
 
@@ -24,8 +24,12 @@ def _pct(x) -> str:
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
               help="Also draw the velocity (and, for pulsed sources, arrival-time) distributions "
                    "(PNG or SVG by extension).")
+@click.option("--table", "table_file", default=None, type=click.Path(dir_okay=False), metavar="FILE",
+              help="Fly the atoms through what a table written earlier plays (through the scenario's laser, "
+                   "or --laser) instead of the planned sweep.")
+@laser_option
 @handles_errors
-def command(scenario, atoms, seed, as_json, plot_file):
+def command(scenario, atoms, seed, as_json, plot_file, table_file, laser_ref):
     """Fly atoms from the source of SCENARIO (a built-in key or a path) through
     the slowing light with the planned sweep, and report how many reach the
     target slow enough to be held, with what velocity spread, and what is lost
@@ -43,8 +47,12 @@ def command(scenario, atoms, seed, as_json, plot_file):
         # refuse before a long run (the same rule as sweepgen.plots.save)
         raise InputError(f"plot file must end in .png or .svg, got {plot_file!r}", key="--plot")
     sc = load_scenario(scenario)
-    result = simulate(sc, atoms=atoms, seed=seed)
+    played = _table_sweep(sc, table_file, laser_ref) if table_file else None
+    result = simulate(sc, atoms=atoms, seed=seed, schedule=played.schedule if played else None)
     doc = result.to_json()
+    if played is not None:
+        doc["table"] = {"file": str(played.table.path), "table_sha256": played.table.table_sha256(),
+                        "laser": played.laser.key, "representation_error": played.error}
     if plot_file:
         from sweepgen.plots import plot_simulation
 
@@ -53,6 +61,8 @@ def command(scenario, atoms, seed, as_json, plot_file):
         emit_json(doc)
         return
     lost = doc["lost_by_reason"]
+    if played is not None:
+        click.echo(f"sweep: {played.table.path} through laser '{played.laser.key}'")
     click.echo(f"{sc.title}  [{sc.species.key}, {'pulsed' if sc.pulsed else 'continuous'} source, "
                f"{doc['atoms']} atoms, seed {doc['seed']}]")
     rows = [
@@ -79,3 +89,21 @@ def command(scenario, atoms, seed, as_json, plot_file):
     click.echo(table(rows))
     if plot_file:
         click.echo(f"plot: {plot_file}", err=True)
+
+
+def _table_sweep(sc, table_file, laser_ref):
+    """What a table read back plays through the laser; a table that does not verify is refused."""
+    from sweepgen import playback
+    from sweepgen.cli._common import read_table_file
+    from sweepgen.errors import CheckFailed
+
+    read = read_table_file(table_file)
+    if not read.verified:
+        bad = ", ".join(c["check"] for c in read.checks if not c["ok"])
+        raise CheckFailed(f"{read.path}: does not match its sidecar ({bad}); it was changed or damaged")
+    laser = (playback.load_profile("laser", laser_ref, key="--laser") if laser_ref
+             else playback.scenario_profiles(sc, required=False)[0])
+    if laser is None:
+        raise InputError("a table is played through a laser: name one with --laser or in the scenario",
+                         key="--laser")
+    return playback.table_sweep(read, laser)
