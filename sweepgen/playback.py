@@ -331,8 +331,26 @@ class Playback:
         table = self.table()
         delivery = Delivery(destination=link.destination, generator=self.generator, arm=arm, dry_run=dry_run,
                             progress=progress, options=link.options())
-        report = driver.deliver(table, delivery)
+        report = self.record(driver.deliver(table, delivery), table)
         return Delivered(self, "instrument", link.driver, link.destination, table.info, report)
+
+    def provenance(self, table) -> dict:
+        """What was played, by digest: the table's codes (``table_sha256``, as in sidecars) and the
+        scenario and profile files (SHA-256 of each), to tie a measured trace to them."""
+        from sweepgen import sidecar
+
+        return {"table_sha256": table.sha256,
+                "provenance": {"scenario_digest": self.scenario.digest,
+                               **sidecar.provenance(self.scenario, self.laser, self.generator)}}
+
+    def record(self, report: dict, table) -> dict:
+        """An upload report with the provenance added, in the JSON and first in its log."""
+        prov = self.provenance(table)
+        files = "; ".join(f"{k} {v['file']} sha256 {v['sha256']}" for k, v in prov["provenance"].items()
+                          if isinstance(v, dict))
+        text = f"table sha256 {prov['table_sha256']}; {files}"
+        entry = {"step": "provenance", "kind": "record", "bytes": 0, "command": text, "message": text}
+        return {**report, **prov, "log": [entry, *report.get("log", [])]}
 
 
 @dataclass(frozen=True)

@@ -78,6 +78,11 @@ def _print(doc, info, dry_run, arm):
             f"({si(info.duration, 's')} per period), {si(info.nbytes, 'B')}; generator {doc['generator']}, "
             f"driver {doc['driver']}")
     click.echo(head)
+    prov = doc.get("provenance") or {}
+    click.echo(f"  table sha256 {doc.get('table_sha256')}")
+    for what in ("scenario", "laser", "generator"):
+        if isinstance(prov.get(what), dict):
+            click.echo(f"  {what} {prov[what]['file']} sha256 {prov[what]['sha256']}")
     if dry_run:
         click.echo(f"dry run: nothing was sent; the command log for {where}:")
         rows = []
