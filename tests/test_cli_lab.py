@@ -1,0 +1,126 @@
+"""The lab commands end to end: calibrate, inspect, check/simulate --table, compare (demo data,
+invented numbers), with their exit codes and JSON documents."""
+
+import json
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from sweepgen.cli import main
+from sweepgen.planner import plan
+from sweepgen.scenario import load_scenario
+
+SCENARIO = "rb87-chopped-oven"
+
+
+def run(*args):
+    return CliRunner().invoke(main, [str(a) for a in args])
+
+
+def piezo(u):
+    return -180e6 + 41e6 * u + 0.6e6 * u ** 2          # a little off the profile's 40 MHz/V (invented)
+
+
+@pytest.fixture()
+def measurement(tmp_path):
+    rng = np.random.default_rng(8)
+    u = np.concatenate([np.linspace(-5, 5, 300), np.linspace(5, -5, 300)])
+    x = piezo(u) + rng.normal(0, 0.2e6, u.size)
+    path = tmp_path / "piezo.csv"
+    path.write_text("drive (V),detuning (MHz)\n" + "".join(f"{a:.6f},{b / 1e6:.6f}\n" for a, b in zip(u, x)))
+    return path
+
+
+@pytest.fixture()
+def exported(tmp_path):
+    result = run("export", SCENARIO, "-f", "raw", "-o", tmp_path / "tables", "--name", "old", "--json")
+    assert result.exit_code == 0, result.output
+    return tmp_path / "tables" / "old.bin", json.loads(result.stdout)
+
+
+def test_calibrate_writes_a_profile_that_checks(tmp_path, measurement):
+    out = tmp_path / "laser-new.toml"
+    result = run("calibrate", measurement, "--laser", "demo-ecdl-piezo", "--stage", "analog", "-o", out, "--json")
+    assert result.exit_code == 0, result.output
+    doc = json.loads(result.stdout)
+    assert doc["residual_of"] == "optical detuning"
+    assert doc["residual_rms"] == pytest.approx(0.2e6, rel=0.2)     # Hz: the generating noise
+    assert doc["hysteresis"] is not None and doc["degree"] == 2
+    assert (tmp_path / "laser-new.png").stat().st_size > 0
+    again = run("calibrate", measurement, "--laser", "demo-ecdl-piezo", "--stage", "analog", "-o", out)
+    assert again.exit_code == 2 and "exists" in again.stderr and again.stderr.count("\n") == 1
+    checked = run("check", SCENARIO, "--laser", out, "--json")
+    assert checked.exit_code == 0, checked.output
+    assert any(f["rule"] == "stage_range" for f in json.loads(checked.stdout)["findings"])
+
+
+def test_calibrate_refuses_with_exit_2(tmp_path):
+    u = np.linspace(0, 5, 100)
+    bad = tmp_path / "bad.csv"
+    bad.write_text("drive (s),detuning (MHz)\n" + "".join(f"{a},{a * 40}\n" for a in u))
+    result = run("calibrate", bad, "--laser", "demo-ecdl-piezo", "--stage", "1", "-o", tmp_path / "x.toml")
+    assert result.exit_code == 2 and "wrong unit" in result.stderr
+    bump = tmp_path / "bump.csv"
+    bump.write_text("drive (V),detuning (MHz)\n" + "".join(f"{a},{40 * a - 80 * np.exp(-(a - 2.5) ** 2 / 0.1)}\n"
+                                                           for a in u))
+    result = run("calibrate", bump, "--laser", "demo-ecdl-piezo", "--stage", "1", "-o", tmp_path / "x.toml")
+    assert result.exit_code == 2 and "not monotone" in result.stderr
+    assert not (tmp_path / "x.toml").exists()
+
+
+def test_inspect_reports_and_verifies(exported):
+    path, written = exported
+    result = run("inspect", path, "--json")
+    assert result.exit_code == 0, result.output
+    doc = json.loads(result.stdout)
+    p = plan(load_scenario(SCENARIO))
+    assert doc["verified"] and doc["table_sha256"] == written["table_sha256"]
+    assert doc["start_detuning"] == pytest.approx(p.start_detuning, abs=doc["detuning_step"])
+    assert doc["chirp_rate_max"] == pytest.approx(p.chirp_rate_max, rel=0.01)
+    human = run("inspect", path)
+    assert "verified" in human.stdout and "largest chirp rate" in human.stdout
+    data = bytearray(path.read_bytes())
+    data[-1] ^= 0x40
+    path.write_bytes(bytes(data))
+    damaged = run("inspect", path)
+    assert damaged.exit_code == 1 and "NOT VERIFIED" in damaged.stdout
+
+
+def test_check_and_simulate_an_old_table(tmp_path, exported, measurement):
+    path, _ = exported
+    ok = run("check", SCENARIO, "--table", path, "--json")
+    assert ok.exit_code == 0, ok.output
+    rules = {f["rule"]: f for f in json.loads(ok.stdout)["findings"]}
+    assert rules["table_integrity"]["status"] == "pass" and rules["table_match"]["status"] == "pass"
+    assert "the table" in json.loads(ok.stdout)["playback"]["rate_limited_by"]
+    # today's laser is calibrated anew (41 MHz/V instead of 40): the old table no longer follows the plan
+    new = tmp_path / "new.toml"
+    assert run("calibrate", measurement, "--laser", "demo-ecdl-piezo", "--stage", "1", "-o", new).exit_code == 0
+    moved = run("check", SCENARIO, "--table", path, "--laser", new, "--json")
+    assert moved.exit_code == 1
+    assert {f["rule"]: f for f in json.loads(moved.stdout)["findings"]}["table_match"]["status"] == "fail"
+    assert run("check", SCENARIO, "--table", path, "--rate", "8 MSa/s").exit_code == 2
+    sim = run("simulate", SCENARIO, "--table", path, "--atoms", 500, "--json")
+    assert sim.exit_code == 0, sim.output
+    assert json.loads(sim.stdout)["table"]["file"] == str(path)
+
+
+def test_compare_catches_an_injected_error(tmp_path):
+    s = plan(load_scenario(SCENARIO)).schedule()
+    rng = np.random.default_rng(4)
+    t = np.arange(0, 0.04, 4e-6)
+    det = s.detuning(t + 0.003) + rng.normal(0, 40e3, t.size)
+    good = tmp_path / "good.csv"
+    good.write_text("time (s),detuning (Hz)\n" + "".join(f"{a:.7f},{b:.1f}\n" for a, b in zip(t, det)))
+    result = run("compare", SCENARIO, good, "--json", "--plot", tmp_path / "c.png")
+    assert result.exit_code == 0, result.output
+    doc = json.loads(result.stdout)
+    assert doc["ok"] and doc["lag"] == pytest.approx(0.003, abs=1e-6)
+    chirp = s.segment("chirp")
+    inside = np.abs((t + 0.003) % s.period - (chirp.start + 1e-3)) < 1e-4
+    det[inside] += 2 * doc["tolerance"]
+    bad = tmp_path / "bad.csv"
+    bad.write_text("time (s),detuning (Hz)\n" + "".join(f"{a:.7f},{b:.1f}\n" for a, b in zip(t, det)))
+    result = run("compare", SCENARIO, bad)
+    assert result.exit_code == 1 and "EXCEEDED" in result.stdout
