@@ -110,22 +110,34 @@ def cross_validation(u, value, max_degree: int = MAX_DEGREE, folds: int = FOLDS)
     The points, sorted by drive, are dealt to the folds in turn (point i to fold
     i mod K), so every fold spans the whole range and the result is repeatable.
     Degrees that would leave a training set without two spare points are skipped.
+    Each training fit solves the normal equations in the Legendre basis of the
+    scaled drive (well conditioned up to :data:`MAX_DEGREE`), built from the
+    whole set's sums minus the fold's, so 100 000 points cost a few passes.
     """
+    from numpy.polynomial import legendre
+
     u = np.asarray(u, dtype=float)
     value = np.asarray(value, dtype=float)
     n = len(u)
     k = min(folds, n)
     fold = np.arange(n) % k
     lo, hi = float(u.min()), float(u.max())
+    x = (2.0 * u - (lo + hi)) / (hi - lo)
+    top = max(1, min(max_degree, n - math.ceil(n / k) - 3))
+    a = legendre.legvander(x, top)
+    parts = [(a[fold == j], value[fold == j]) for j in range(k)]
+    gram = [(af.T @ af, af.T @ yf) for af, yf in parts]
+    g_all = sum(g for g, _ in gram)
+    b_all = sum(b for _, b in gram)
     rows = []
     for degree in range(1, max_degree + 1):
         if n - math.ceil(n / k) < degree + 3:
             break
+        m = degree + 1
         errs = []
-        for j in range(k):
-            test = fold == j
-            fit = poly_fit(u[~test], value[~test], degree, domain=(lo, hi))
-            errs.append(np.mean((value[test] - fit.poly(u[test])) ** 2))
+        for (af, yf), (g, b) in zip(parts, gram):
+            coef = np.linalg.solve((g_all - g)[:m, :m], (b_all - b)[:m])
+            errs.append(np.mean((yf - af[:, :m] @ coef) ** 2))
         errs = np.asarray(errs)
         rows.append({"degree": degree, "mse": float(errs.mean()),
                      "se": float(errs.std(ddof=1) / math.sqrt(k)) if k > 1 else 0.0})
