@@ -3,13 +3,14 @@
 :func:`check` plans the scenario, maps the sweep through the laser's tuning
 chain, picks the sample rate and codes for the generator, simulates the
 actuator, and returns one :class:`Finding` per rule, each with the value, the
-limit, the unit, the margin and a status:
+limit, the unit, the headroom and a status:
 
 * ``fail``: the limit is exceeded;
-* ``warn``: within 20 % of the limit (:data:`WARN_MARGIN`);
+* ``warn``: within 20 % of the limit (:data:`WARN_HEADROOM`);
 * ``pass``: otherwise.
 
-Margins: for an upper limit ``(limit − value)/limit``; for a lower limit
+Headroom (a finding's relative distance to its limit; negative when the limit
+is exceeded): for an upper limit ``(limit − value)/limit``; for a lower limit
 ``(value − limit)/limit``; for a range ``[lo, hi]`` the headroom to the nearer
 edge divided by half the range width (so "within 20 % of a limit" means the
 last fifth of the way from the centre to an edge).
@@ -63,11 +64,11 @@ if TYPE_CHECKING:
     from sweepgen.laser import Laser
     from sweepgen.planner import Plan
     from sweepgen.response import Tracking
-    from sweepgen.sampling import Quantisation, RateChoice
+    from sweepgen.sampling import Quantisation, SampleRateChoice
     from sweepgen.scenario import Scenario
 
-#: A finding warns when its margin is below this fraction.
-WARN_MARGIN = 0.2
+#: A finding warns when its headroom is below this fraction.
+WARN_HEADROOM = 0.2
 #: Smallest surviving fraction of molecules after the photons needed to slow them
 #: (a design choice of this tool: losing more than half the molecules to dark
 #: states calls for more repumping, or a smaller velocity change).
@@ -83,59 +84,59 @@ class Finding:
     value: float | None
     limit: float | None
     unit: str
-    margin: float | None
+    headroom: float | None
     message: str
     advice: str = ""
 
     def to_json(self) -> dict:
         return {"rule": self.rule, "status": self.status, "value": self.value, "limit": self.limit,
-                "unit": self.unit, "margin": self.margin, "message": self.message, "advice": self.advice}
+                "unit": self.unit, "headroom": self.headroom, "message": self.message, "advice": self.advice}
 
 
-def _finding(rule, value, limit, unit, margin, failed, message, advice="", warns=True) -> Finding:
+def _finding(rule, value, limit, unit, headroom, failed, message, advice="", warns=True) -> Finding:
     """The one place a status is decided: fail, else warn when near the limit (and ``warns``), else pass."""
-    near = warns and margin is not None and margin < WARN_MARGIN
+    near = warns and headroom is not None and headroom < WARN_HEADROOM
     status = "fail" if failed else "warn" if near else "pass"
-    return Finding(rule, status, value, limit, unit, margin, message, advice if failed or near else "")
+    return Finding(rule, status, value, limit, unit, headroom, message, advice if failed or near else "")
 
 
 def _upper_room(value: float, limit: float) -> tuple[float, bool]:
-    """``(margin, failed)`` of ``value ≤ limit``."""
-    margin = (limit - value) / abs(limit) if limit else (0.0 if value <= 0 else -math.inf)
-    return margin, value > limit * (1 + 1e-12) + (0 if limit else 1e-300)
+    """``(headroom, failed)`` of ``value ≤ limit``."""
+    headroom = (limit - value) / abs(limit) if limit else (0.0 if value <= 0 else -math.inf)
+    return headroom, value > limit * (1 + 1e-12) + (0 if limit else 1e-300)
 
 
 def _range_room(vmin: float, vmax: float, lo: float, hi: float) -> tuple[float, float, float, bool]:
-    """``(value, limit, margin, failed)`` of ``lo ≤ vmin ≤ vmax ≤ hi``: the extreme nearer its edge."""
+    """``(value, limit, headroom, failed)`` of ``lo ≤ vmin ≤ vmax ≤ hi``: the extreme nearer its edge."""
     half = (hi - lo) / 2.0 if math.isfinite(hi - lo) else math.inf
     room_hi, room_lo = hi - vmax, vmin - lo
     if room_hi <= room_lo:
         value, limit, room = vmax, hi, room_hi
     else:
         value, limit, room = vmin, lo, room_lo
-    margin = room / half if math.isfinite(half) and half > 0 else (math.inf if room >= 0 else -math.inf)
+    headroom = room / half if math.isfinite(half) and half > 0 else (math.inf if room >= 0 else -math.inf)
     tol = 1e-12 * max(abs(lo), abs(hi) if math.isfinite(hi) else 0.0, 1e-300)
-    return value, limit, margin, room < -tol
+    return value, limit, headroom, room < -tol
 
 
 def upper(rule, value, limit, unit, message, advice="", *, warns=True) -> Finding:
     """A finding for ``value ≤ limit``; with ``warns=False`` nearness to the limit is no warning."""
     value, limit = float(value), float(limit)
-    margin, failed = _upper_room(value, limit)
-    return _finding(rule, value, limit, unit, margin, failed, message, advice, warns)
+    headroom, failed = _upper_room(value, limit)
+    return _finding(rule, value, limit, unit, headroom, failed, message, advice, warns)
 
 
 def lower(rule, value, limit, unit, message, advice="") -> Finding:
     """A finding for ``value ≥ limit``."""
     value, limit = float(value), float(limit)
-    margin = (value - limit) / abs(limit) if limit else math.inf
-    return _finding(rule, value, limit, unit, margin, value < limit * (1 - 1e-12), message, advice)
+    headroom = (value - limit) / abs(limit) if limit else math.inf
+    return _finding(rule, value, limit, unit, headroom, value < limit * (1 - 1e-12), message, advice)
 
 
 def within(rule, vmin, vmax, lo, hi, unit, message, advice="") -> Finding:
     """A finding for ``lo ≤ vmin ≤ vmax ≤ hi``; value and limit are the extreme nearer its edge."""
-    value, limit, margin, failed = _range_room(float(vmin), float(vmax), float(lo), float(hi))
-    return _finding(rule, value, limit, unit, margin, failed, message, advice)
+    value, limit, headroom, failed = _range_room(float(vmin), float(vmax), float(lo), float(hi))
+    return _finding(rule, value, limit, unit, headroom, failed, message, advice)
 
 
 def info(rule, message, value=None, unit="") -> Finding:
@@ -152,8 +153,8 @@ class CheckReport:
     plan: Plan | None = None
     laser: Laser | None = None
     generator: Generator | None = None
-    rate: RateChoice | None = None              # the sample rate judged (None: no rate plays the sweep)
-    quant: Quantisation | None = None           # the codes judged (None: no safe code window)
+    rate_choice: SampleRateChoice | None = None     # the sample rate judged (None: no rate plays the sweep)
+    quantisation: Quantisation | None = None        # the codes judged (None: no safe code window)
     tracking: Tracking | None = None            # the simulated actuator over one period
 
     @property
@@ -179,14 +180,15 @@ class CheckReport:
 
     def to_json(self) -> dict:
         doc = {"ok": self.ok, "findings": [f.to_json() for f in self.findings]}
-        if self.rate is not None:
+        choice = self.rate_choice
+        if choice is not None:
             doc["playback"] = {
-                "sample_rate": self.rate.rate, "count": self.rate.count, "period_count": self.rate.period_count,
-                "rate_limited_by": self.rate.limited_by, "rate_reason": self.rate.reason,
+                "sample_rate": choice.sample_rate, "count": choice.count, "period_count": choice.period_count,
+                "sample_rate_limited_by": choice.limited_by, "sample_rate_reason": choice.reason,
                 "drive_unit": self.laser.chain.drive_unit if self.laser else None,
             }
-            if self.quant is not None:
-                q = self.quant
+            if self.quantisation is not None:
+                q = self.quantisation
                 doc["playback"].update({"dtype": q.dtype, "code_scale": q.code_scale, "code_offset": q.code_offset,
                                         "amplitude": q.amplitude, "offset": q.offset,
                                         "delivered_factor": q.delivered_factor})
@@ -243,8 +245,8 @@ def _plan_failure(scenario, exc: PlanError) -> Finding:
             limit = scenario.target.distance - scenario.light.start
         except PlanError:
             value = limit = None
-    margin = None if value is None else (limit - value) / limit
-    return Finding(rule, "fail", value, limit, "m" if value is not None else "", margin, exc.detail,
+    headroom = None if value is None else (limit - value) / limit
+    return Finding(rule, "fail", value, limit, "m" if value is not None else "", headroom, exc.detail,
                    "see the message: change the scenario's chirp or light")
 
 
@@ -260,7 +262,7 @@ def physics_findings(plan) -> list:
     out.append(upper("slowing_distance", plan.slowing_distance, sc.target.distance - z_from, "m",
                      f"the design atom needs {plan.slowing_distance:.4g} m; {sc.target.distance - z_from:.4g} m lie "
                      f"between {'its start' if explicit else 'the light start'} and the target",
-                     "lower chirp.start_velocity, raise chirp.margin or light.saturation, or move the target"))
+                     "lower chirp.start_velocity, raise chirp.force_fraction or light.saturation, or move the target"))
     tr = plan.trajectory
     a_avail = physics.max_deceleration(tr.saturation, sp.gamma, sp.wavelength, sp.mass)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -270,7 +272,7 @@ def physics_findings(plan) -> list:
     out.append(upper("deceleration", worst, 1.0, "",
                      f"design deceleration is {worst:.3g} of the largest force the light gives (at z = "
                      f"{tr.position[i]:.3g} m, s = {tr.saturation[i]:.3g}); common practice keeps it to 0.5-0.75",
-                     "lower chirp.margin (η) for more reserve against intensity and alignment drifts"))
+                     "lower chirp.force_fraction (η) for more reserve against intensity and alignment drifts"))
     out.append(upper("end_velocity", sc.chirp.end_velocity, sc.target.capture_velocity, "m/s",
                      f"atoms leave the chirp at {sc.chirp.end_velocity:g} m/s; the target holds up to "
                      f"{sc.target.capture_velocity:g} m/s",
@@ -314,7 +316,7 @@ class SweepSamples:
         t = np.concatenate([np.linspace(seg.start, np.nextafter(seg.end, seg.start), n)
                             for seg in schedule.segments])
         det = schedule.detuning(t)
-        return cls(t, det, schedule.rate(t), chain.to_drive(det), chain.gain(det))
+        return cls(t, det, schedule.chirp_rate(t), chain.to_drive(det), chain.gain(det))
 
 
 def check_hardware(report: CheckReport, playing) -> None:
@@ -337,12 +339,12 @@ def check_hardware(report: CheckReport, playing) -> None:
         report.findings.append(Finding("sample_rate", "fail", None, None, "Sa/s", None, playing.rate_refusal,
                                        "see the message: the limit that wins is named"))
         return
-    report.rate = choice
+    report.rate_choice = choice
     add(sample_rate_findings(playing))
-    report.quant = quant = _judged_quantisation(report, playing)
+    report.quantisation = quant = _judged_quantisation(report, playing)
     if quant is not None:
         add(quantisation_findings(playing, quant, sweep))
-    tracking_findings(report, playing.schedule, choice.rate, quant)
+    tracking_findings(report, playing.schedule, choice.sample_rate, quant)
 
 
 def _judged_quantisation(report: CheckReport, playing):
@@ -378,12 +380,12 @@ def _mode_hop_free(lim, sweep) -> Finding:
 
 def _chirp_rates(lim, schedule) -> list[Finding]:
     out = []
-    for kind, rule, advice in (("chirp", "chirp_rate", "lower chirp.margin or light.saturation (gentler chirp)"),
+    for kind, rule, advice in (("chirp", "chirp_rate", "lower chirp.force_fraction or light.saturation (gentler chirp)"),
                                ("return", "return_rate", "lengthen chirp.return_time")):
         if schedule.segment(kind) is None:
             out.append(info(rule, f"no {kind} segment"))
             continue
-        r = schedule.max_abs_rate(kind)
+        r = schedule.max_abs_chirp_rate(kind)
         out.append(upper(rule, r, lim.max_chirp_rate, "Hz/s",
                          f"|dΔ/dt| during the {kind} reaches {si(r, 'Hz/s')}; the laser allows "
                          f"{si(lim.max_chirp_rate, 'Hz/s')}", advice))
@@ -479,11 +481,11 @@ def sample_rate_findings(playing) -> list[Finding]:
     sm = gen.sampling
     period = playing.schedule.period
     record = upper("record_length", choice.count, sm.memory, "samples",
-                   f"one period is {choice.count} samples at {si(choice.rate, 'Sa/s')}; the memory holds {sm.memory}",
+                   f"one period is {choice.count} samples at {si(choice.sample_rate, 'Sa/s')}; the memory holds {sm.memory}",
                    f"lower the rate to at most {si(sm.memory / period, 'Sa/s')} or shorten chirp.period",
                    warns=False)        # filling the memory is not a hazard
     step = upper("step_per_sample", choice.step, choice.max_step, "Hz",
-                 f"the detuning moves up to {si(choice.step, 'Hz')} per sample at {si(choice.rate, 'Sa/s')}",
+                 f"the detuning moves up to {si(choice.step, 'Hz')} per sample at {si(choice.sample_rate, 'Sa/s')}",
                  "raise the sample rate, lengthen chirp.return_time, or raise drive.max_step")
     return [_sample_rate(choice, gen), record, _granularity(choice, sm), step]
 
@@ -491,17 +493,17 @@ def sample_rate_findings(playing) -> list[Finding]:
 def _sample_rate(choice, gen) -> Finding:
     sm = gen.sampling
     if not choice.limited_by.startswith("fixed"):
-        return info("sample_rate", choice.reason, choice.rate, "Sa/s")
+        return info("sample_rate", choice.reason, choice.sample_rate, "Sa/s")
     if sm.rates is not None:
-        okr = sm.allows(choice.rate)
-        return Finding("sample_rate", "pass" if okr else "fail", choice.rate, None, "Sa/s", None,
-                       f"{si(choice.rate, 'Sa/s')} ({choice.limited_by}); generator '{gen.key}' plays "
+        okr = sm.allows(choice.sample_rate)
+        return Finding("sample_rate", "pass" if okr else "fail", choice.sample_rate, None, "Sa/s", None,
+                       f"{si(choice.sample_rate, 'Sa/s')} ({choice.limited_by}); generator '{gen.key}' plays "
                        + ", ".join(si(r, "Sa/s") for r in sm.rates),
                        "" if okr else "pick one of the listed rates")
-    # a rate fixed by the user near a rate limit is fine: no warning, and no margin to show
-    value, limit, margin, failed = _range_room(choice.rate, choice.rate, sm.rate_min, sm.rate_max)
-    return _finding("sample_rate", value, limit, "Sa/s", margin if failed else None, failed,
-                    f"{si(choice.rate, 'Sa/s')} ({choice.limited_by}); generator '{gen.key}' plays "
+    # a rate fixed by the user near a rate limit is fine: no warning, and no headroom to show
+    value, limit, headroom, failed = _range_room(choice.sample_rate, choice.sample_rate, sm.rate_min, sm.rate_max)
+    return _finding("sample_rate", value, limit, "Sa/s", headroom if failed else None, failed,
+                    f"{si(choice.sample_rate, 'Sa/s')} ({choice.limited_by}); generator '{gen.key}' plays "
                     f"{si(sm.rate_min, 'Sa/s')} to {si(sm.rate_max, 'Sa/s')}",
                     "pick a rate the generator plays, or remove drive.sample_rate for an automatic choice",
                     warns=False)
@@ -540,13 +542,15 @@ def quantisation_findings(playing, quant, sweep: SweepSamples) -> list[Finding]:
 
 
 # -- tracking through the actuator response ----------------------------------------
-def tracking_findings(report: CheckReport, schedule, rate: float, quant=None) -> None:
-    from sweepgen.response import simulate
+def tracking_findings(report: CheckReport, schedule, sample_rate: float, quant=None) -> None:
+    """How the laser tracks the sweep through its actuator: ``tracking`` during the chirp and
+    ``return_settling`` before the next chirp starts."""
+    from sweepgen.response import track
 
     plan, laser = report.plan, report.laser
     sc = plan.scenario
     add = report.findings.append
-    tr = simulate(schedule, laser.chain, laser.response, rate, quant=quant)
+    tr = track(schedule, laser.chain, laser.response, sample_rate, quant=quant)
     report.tracking = tr
     tol = tracking_tolerance(plan)
     kinds = schedule.kinds(tr.time)
@@ -564,21 +568,21 @@ def tracking_findings(report: CheckReport, schedule, rate: float, quant=None) ->
                   f"through {desc} the laser is off the planned detuning by up to {si(worst, 'Hz')} during "
                   f"the chirp (at {at * 1e3:.4g} ms); tolerance {sc.drive.tracking_fraction:g} × the lag detuning "
                   f"{si(tol / sc.drive.tracking_fraction, 'Hz')}",
-                  "lower the chirp rate (chirp.margin), use a faster actuator, or raise drive.tracking_fraction"))
+                  "lower the chirp rate (chirp.force_fraction), use a faster actuator, or raise drive.tracking_fraction"))
     chirp = schedule.segment("chirp")
     ret = schedule.segment("return")
     if chirp is not None and ret is not None:
         n = len(tr.time)
-        i0 = int(round(chirp.start * tr.rate)) % n
+        i0 = int(round(chirp.start * tr.sample_rate)) % n
         before = err[i0 - 1] if i0 > 0 else err[n - 1]
         value = float(max(err[i0], before))
         # settling time after the end of the return
-        i_end = int(math.ceil(ret.end * tr.rate))
+        i_end = int(math.ceil(ret.end * tr.sample_rate))
         idx = (np.arange(i_end, i_end + n) % n)
         seq = err[idx]
         rest = (chirp.start + schedule.period - ret.end) % schedule.period or schedule.period
-        above = np.flatnonzero(seq[: max(int(round(rest * tr.rate)), 1)] > tol)
-        settle = (above[-1] + 1) / tr.rate if above.size else 0.0
+        above = np.flatnonzero(seq[: max(int(round(rest * tr.sample_rate)), 1)] > tol)
+        settle = (above[-1] + 1) / tr.sample_rate if above.size else 0.0
         add(upper("return_settling", value, tol, "Hz",
                   f"when the next chirp starts the laser is {si(value, 'Hz')} from the start detuning; it settles "
                   f"within {si(tol, 'Hz')} {si(settle, 's') if settle else 'at once'} after the return ({rest * 1e3:.4g} ms available)",

@@ -56,7 +56,7 @@ def run(directory, *, scenario: str = DEMO_SCENARIO, atoms: int = DEMO_ATOMS, se
 
 
 def _check(sc, out: Path, files: dict, echo):
-    """1. Plan and check through the playback service; the plots of the sweep, the drive and the margins."""
+    """1. Plan and check through the playback service; the plots of the sweep, the drive and the headroom."""
     from sweepgen import playback, plots
 
     pb = playback.prepare(sc)
@@ -65,7 +65,7 @@ def _check(sc, out: Path, files: dict, echo):
     files["plan"] = _write_json(out / "plan.json", doc_plan)
     files["check"] = _write_json(out / "check.json", pb.to_json())
     echo(f"  plan:     chirp {si(doc_plan['chirp_span'], 'Hz')} in {si(doc_plan['chirp_duration'], 's')}, "
-         f"{si(doc_plan['capture_velocity'], 'm/s')}"
+         f"{si(doc_plan['start_velocity'], 'm/s')}"
          f" → {si(doc_plan['end_velocity'], 'm/s')} over {si(doc_plan['slowing_distance'], 'm')}")
     n_fail, n_warn = len(report.failures()), len(report.warnings())
     echo(f"  check:    {'ok' if report.ok else 'FAILED'} ({n_fail} failed, {n_warn} warning(s), "
@@ -74,7 +74,7 @@ def _check(sc, out: Path, files: dict, echo):
     tracking = report.tracking            # the actuator as the checker simulated it, at the rate and codes played
     files["sweep plot"] = plots.plot_plan(pb.plan, out / "sweep.png", response=(tracking.time, tracking.actual))
     files["drive plot"] = plots.plot_drive(report, out / "drive.png")
-    files["margins plot"] = plots.plot_check(report, out / "margins.png")
+    files["headroom plot"] = plots.plot_check(report, out / "headroom.png")
     return pb
 
 
@@ -126,9 +126,9 @@ def _summary(out, pb, doc_sim, exported, uploaded) -> Path:
     lines = [f"# sweepgen demo: {sc.title}", "",
              f"Species `{sc.species.key}`, laser `{report.laser.key}`, generator `{report.generator.key}`.",
              "", "## The sweep (`plan.json`)", "", "| quantity | value |", "|---|---|"]
-    rows = [("capture (start) velocity", si(doc_plan["capture_velocity"], "m/s")),
+    rows = [("start velocity", si(doc_plan["start_velocity"], "m/s")),
             ("end velocity", si(doc_plan["end_velocity"], "m/s")),
-            ("margin η", f"{doc_plan['margin']:g}"),
+            ("force fraction η", f"{doc_plan['force_fraction']:g}"),
             ("design deceleration", si(doc_plan["deceleration_max"], "m/s²")),
             ("start / end detuning", f"{si(doc_plan['start_detuning'], 'Hz')} / {si(doc_plan['end_detuning'], 'Hz')}"),
             ("chirp span, largest rate", f"{si(doc_plan['chirp_span'], 'Hz')}, {si(doc_plan['chirp_rate_max'], 'Hz/s')}"),
@@ -141,13 +141,13 @@ def _summary(out, pb, doc_sim, exported, uploaded) -> Path:
     lines += ["", "![sweep](sweep.png)", "", "## The check (`check.json`)", "",
               f"{'No rule fails' if report.ok else 'Some rules FAIL'}: "
               f"{len(report.failures())} failed, {len(report.warnings())} warning(s).", "",
-              "| status | rule | value | limit | margin |", "|---|---|---|---|---|"]
+              "| status | rule | value | limit | headroom |", "|---|---|---|---|---|"]
     for f in report.ordered():
-        margin = "" if f.margin is None else f"{100 * f.margin:.0f} %"
+        headroom = "" if f.headroom is None else f"{100 * f.headroom:.0f} %"
         value = "" if f.value is None else si(f.value, f.unit)
         limit = "" if f.limit is None else si(f.limit, f.unit)
-        lines.append(f"| {f.status} | {f.rule} | {value} | {limit} | {margin} |")
-    lines += ["", "![drive](drive.png)", "", "![margins](margins.png)", "",
+        lines.append(f"| {f.status} | {f.rule} | {value} | {limit} | {headroom} |")
+    lines += ["", "![drive](drive.png)", "", "![headroom](headroom.png)", "",
               "## The atoms (`simulate.json`)", "",
               f"{doc_sim['atoms']} atoms, seed {doc_sim['seed']}: "
               f"{100 * doc_sim['captured_fraction']:.2f} % reach the target at or below "

@@ -8,6 +8,9 @@ The CLI maps them to exit codes without a traceback:
   sweep would not be safe or playable).
 * :class:`InstrumentError` (exit 1): an instrument or link refused, timed out or
   answered wrongly. ``step`` names the step of the sequence that failed.
+
+:class:`DeprecatedKey` is a warning, not an error: a user file used a key's old
+name; the command line prints it as one line on stderr, once.
 """
 
 from __future__ import annotations
@@ -64,6 +67,18 @@ class InstrumentError(SweepgenError):
         if reply:
             text += f" (instrument said: {reply})"
         super().__init__(text)
+
+
+class DeprecatedKey(FutureWarning):
+    """A key of a user file read under its old name; the command line prints it once on stderr."""
+
+    def __init__(self, file: str | None, key: str, replacement: str):
+        self.file = file
+        self.key = key
+        self.replacement = replacement
+        where = f"{file}: " if file else ""
+        super().__init__(f"{where}key '{key}' is deprecated: write '{replacement}' instead "
+                         f"(the same value under its new name)")
 
 
 class DriverError(SweepgenError):

@@ -63,15 +63,15 @@ def max_deceleration(saturation, gamma, wavelength, mass):
     return C.hbar * k * gamma / (2.0 * mass) * saturation / (1.0 + saturation)
 
 
-def lag_velocity(saturation, margin, gamma, wavelength):
+def lag_velocity(saturation, force_fraction, gamma, wavelength):
     """Velocity lag of the design atom behind the light's resonant velocity.
 
-    Setting the scattering rate to ``η · R_max(s)`` and solving the Lorentzian on
+    Setting the scattering rate to ``η · R_max(s)`` (η = ``force_fraction``) and solving the Lorentzian on
     its low-velocity (stable) side gives a detuning ``δ = (Γ/2) sqrt((1+s)(1/η-1))``
     (rad/s), i.e. a velocity lag ``Δv = (λΓ/4π) sqrt((1+s)(1/η-1))``
     (Metcalf & van der Straten 1999, §6.2; Foot 2005, §9.3.1).
     """
-    return wavelength * gamma / (4.0 * math.pi) * np.sqrt((1.0 + saturation) * (1.0 / margin - 1.0))
+    return wavelength * gamma / (4.0 * math.pi) * np.sqrt((1.0 + saturation) * (1.0 / force_fraction - 1.0))
 
 
 def recoil_velocity(mass, wavelength):
@@ -135,12 +135,12 @@ def closed_form_slowing(v_start, v_end, deceleration, wavelength):
     """Constant-deceleration kinematics from ``v_start`` to ``v_end``.
 
     Returns a dict with ``duration = (v1-v2)/a``, ``distance = (v1²-v2²)/2a``,
-    ``span = (v1-v2)/λ`` (Hz) and ``rate = a/λ`` (Hz/s), the textbook results
+    ``span = (v1-v2)/λ`` (Hz) and ``chirp_rate = a/λ`` (Hz/s), the textbook results
     for uniform deceleration (Foot 2005, §9.3.1).
     """
     return {
         "duration": (v_start - v_end) / deceleration,
         "distance": (v_start ** 2 - v_end ** 2) / (2.0 * deceleration),
         "span": (v_start - v_end) / wavelength,
-        "rate": deceleration / wavelength,
+        "chirp_rate": deceleration / wavelength,
     }

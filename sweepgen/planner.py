@@ -41,7 +41,7 @@ class Trajectory:
     saturation: np.ndarray    # s(z)
     lag: np.ndarray           # m/s, Δv_lag(z)
     detuning: np.ndarray      # Hz
-    rate: np.ndarray          # Hz/s, dΔ/dt
+    chirp_rate: np.ndarray    # Hz/s, dΔ/dt
 
 
 @dataclass(frozen=True)
@@ -70,8 +70,9 @@ class Plan:
         return self.scenario.chirp.end_velocity
 
     @property
-    def margin(self) -> float:
-        return self.scenario.chirp.margin
+    def force_fraction(self) -> float:
+        """η, the fraction of the largest force the design uses."""
+        return self.scenario.chirp.force_fraction
 
     @property
     def chirp_duration(self) -> float:
@@ -96,7 +97,7 @@ class Plan:
     @property
     def chirp_rate_max(self) -> float:
         """Largest |dΔ/dt| during the chirp (Hz/s)."""
-        return float(np.max(np.abs(self.trajectory.rate)))
+        return float(np.max(np.abs(self.trajectory.chirp_rate)))
 
     @property
     def photons_per_atom(self) -> float:
@@ -108,9 +109,9 @@ class Plan:
         sp = self.species
         tr = self.trajectory
         return {
-            "capture_velocity": self.start_velocity,
+            "start_velocity": self.start_velocity,
             "end_velocity": self.end_velocity,
-            "margin": self.margin,
+            "force_fraction": self.force_fraction,
             "deceleration_min": float(np.min(tr.deceleration)),
             "deceleration_max": float(np.max(tr.deceleration)),
             "lag_velocity_start": float(tr.lag[0]),
@@ -152,7 +153,7 @@ def _integrate(scenario: Scenario, z0: float, *, dense: bool):
     sp = scenario.species
     ch = scenario.chirp
     light = scenario.light
-    eta = ch.margin
+    eta = ch.force_fraction
 
     def accel(z):
         return eta * physics.max_deceleration(float(light.saturation_at(z)), sp.gamma, sp.wavelength, sp.mass)
@@ -194,7 +195,7 @@ def _fit_message(scenario, needed, available, z_from, what) -> str:
     ch = scenario.chirp
     return (f"the slowing distance is {needed:.4g} m but only {available:.4g} m lie between {what} "
             f"({z_from:.4g} m) and the target ({scenario.target.distance:.4g} m); lower chirp.start_velocity "
-            f"(now {ch.start_velocity:g} m/s), raise chirp.margin (now {ch.margin:g}) or light.saturation, "
+            f"(now {ch.start_velocity:g} m/s), raise chirp.force_fraction (now {ch.force_fraction:g}) or light.saturation, "
             f"or move the target further away")
 
 
@@ -263,7 +264,7 @@ def plan(scenario: Scenario) -> Plan:
 def _sample(scenario: Scenario, sol, duration: float) -> Trajectory:
     sp = scenario.species
     light = scenario.light
-    eta = scenario.chirp.margin
+    eta = scenario.chirp.force_fraction
     t = np.linspace(0.0, duration, CHIRP_NODES)
     z, v = sol.sol(t)
     v[-1] = scenario.chirp.end_velocity       # the event's value, exactly
@@ -275,6 +276,6 @@ def _sample(scenario: Scenario, sol, duration: float) -> Trajectory:
     # d(lag)/dz = (λΓ/4π) sqrt(1/η - 1) · (ds/dz) / (2 sqrt(1+s))
     dlag_dz = (sp.wavelength * sp.gamma / (4.0 * math.pi) * math.sqrt(1.0 / eta - 1.0)
                * light.saturation_slope(z) / (2.0 * np.sqrt(1.0 + s)))
-    rate = (a - v * dlag_dz) / sp.wavelength
+    chirp_rate = (a - v * dlag_dz) / sp.wavelength
     return Trajectory(time=t, position=z, velocity=v, deceleration=a, saturation=s, lag=lag,
-                      detuning=detuning, rate=rate)
+                      detuning=detuning, chirp_rate=chirp_rate)

@@ -90,7 +90,7 @@ class ChannelPlayback:
     laser: object                               # sweepgen.laser.Laser
     generator: object                           # sweepgen.generator.Generator
     drive_range: tuple[float, float]            # drive units (V at the actuator, or Hz)
-    rate_choice: sampling.RateChoice | None
+    rate_choice: sampling.SampleRateChoice | None
     quantisation: sampling.Quantisation | None
     rate_refusal: str = ""
     quantisation_refusal: str = ""
@@ -106,15 +106,15 @@ def channel_playback(schedule, laser, generator, drive, *, linewidth: float | No
 
     ``drive`` is the scenario's ``[drive]`` options (:class:`sweepgen.scenario.Drive`);
     ``sample_rate`` (Sa/s) overrides its ``sample_rate``; ``linewidth`` (Hz)
-    sets the default detuning step tolerance. A fixed rate the generator does
+    sets the default detuning step tolerance. A fixed sample rate the generator does
     not play is kept (the checker fails it with the numbers).
     """
     chain = laser.chain
     lo, hi = drive_range(schedule, chain)
     choice, rate_refusal = None, ""
     try:
-        choice = sampling.choose_rate(schedule, chain, generator, drive, linewidth=linewidth, strict=False,
-                                      rate=sample_rate)
+        choice = sampling.choose_sample_rate(schedule, chain, generator, drive, linewidth=linewidth,
+                                             strict=False, sample_rate=sample_rate)
     except CheckFailed as exc:
         rate_refusal = str(exc)
     quant, quant_refusal = None, ""
@@ -417,7 +417,7 @@ def actuator_response(plan, laser=None, generator=None):
     ``laser`` and ``generator`` default to the ones the plan's scenario names.
     With a generator the drive is played as it would be (its sample rate and
     codes, the same :func:`channel_playback` the checker judges); without one
-    it is simulated unquantised at :func:`sweepgen.response.preview_rate`.
+    it is simulated unquantised at :func:`sweepgen.response.preview_sample_rate`.
     ``plots.plot_plan(plan, file, response=actuator_response(plan))`` overlays it.
     """
     from sweepgen import response
@@ -428,12 +428,12 @@ def actuator_response(plan, laser=None, generator=None):
     schedule = plan.schedule()
     quant = None
     if generator is None:
-        rate = response.preview_rate(laser.response, schedule.period)
+        sample_rate = response.preview_sample_rate(laser.response, schedule.period)
     else:
         playing = channel_playback(schedule, laser, generator, plan.scenario.drive,
                                    linewidth=plan.species.linewidth)
         if playing.rate_choice is None:
             raise CheckFailed(playing.rate_refusal)
-        rate, quant = playing.rate_choice.rate, playing.quantisation
-    tr = response.simulate(schedule, laser.chain, laser.response, rate, quant=quant)
+        sample_rate, quant = playing.rate_choice.sample_rate, playing.quantisation
+    tr = response.track(schedule, laser.chain, laser.response, sample_rate, quant=quant)
     return tr.time, tr.actual

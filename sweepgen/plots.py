@@ -76,25 +76,25 @@ def plot_plan(plan, file, *, response=None) -> Path:
 
 
 def plot_check(report, file) -> Path:
-    """The checker's margins as horizontal bars, one per rule with a limit
+    """Each finding's headroom to its limit as a horizontal bar, one per rule with a limit
     (``sweepgen.checker.CheckReport``): failures red, warnings orange, passes
-    green; the dashed line marks the 20 % warning margin."""
-    from sweepgen.checker import WARN_MARGIN
+    green; the dashed line marks where a rule starts to warn (20 % headroom)."""
+    from sweepgen.checker import WARN_HEADROOM
 
     plt = _pyplot()
-    rows = [f for f in report.findings if f.margin is not None and np.isfinite(f.margin)]
+    rows = [f for f in report.findings if f.headroom is not None and np.isfinite(f.headroom)]
     color = {"fail": COLORS["limit"], "warn": COLORS["design"], "pass": COLORS["response"]}
     fig, ax = plt.subplots(figsize=(8, 0.32 * max(len(rows), 3) + 1.2))
     labels = [f.rule if f.rule != "stage_range" else f"stage_range: {f.message.split(':')[0]}" for f in rows]
-    margins = [max(min(f.margin, 1.0), -1.0) * 100 for f in rows]
+    headroom = [max(min(f.headroom, 1.0), -1.0) * 100 for f in rows]
     y = np.arange(len(rows))[::-1]
-    ax.barh(y, margins, color=[color[f.status] for f in rows], height=0.7)
+    ax.barh(y, headroom, color=[color[f.status] for f in rows], height=0.7)
     ax.set_yticks(y)
     ax.set_yticklabels(labels, fontsize=8)
     ax.axvline(0, color="black", lw=0.8)
-    ax.axvline(WARN_MARGIN * 100, color=COLORS["muted"], lw=0.8, ls="--")
+    ax.axvline(WARN_HEADROOM * 100, color=COLORS["muted"], lw=0.8, ls="--")
     ax.set_xlim(-100, 100)
-    ax.set_xlabel("margin to the limit (%; below 0 = limit exceeded, clipped to ±100 %)")
+    ax.set_xlabel("headroom to the limit (%; below 0 = limit exceeded, clipped to ±100 %)")
     ok = "no rule fails" if report.ok else f"{len(report.failures())} rule(s) fail"
     title = getattr(getattr(report, "scenario", None), "title", "")
     ax.set_title(f"{title}\n{ok}", fontsize=9)

@@ -1,8 +1,8 @@
-"""Render the sweep: the schedule sampled at the generator's rate, as generator codes.
+"""Render the sweep: the schedule sampled at the generator's sample rate, as generator codes.
 
 :func:`render` returns a :class:`sweepgen.table.RenderedTable` whose codes are
 computed chunk by chunk when a driver iterates it, so memory does not grow with
-the table's length. Sample ``i`` plays at ``t_i = i / rate``:
+the table's length. Sample ``i`` plays at ``t_i = i / sample_rate``:
 
 * for ``i < period_count`` (one period of the schedule) the optical detuning
   ``Δ(t_i)`` comes from :class:`sweepgen.schedule.Schedule`, the drive from the
@@ -13,10 +13,11 @@ the table's length. Sample ``i`` plays at ``t_i = i / rate``:
   generator's record granularity with the first sample, so that the table
   loops without a jump.
 
-Safety: before anything is iterated, the drive range of the whole period is
-found exactly (the schedule is a piecewise cubic: its extremes lie at piece
-boundaries or at roots of its derivative, and the chain is monotone), and a
-table whose drive would leave the actuator's safe input range or the
+Safety: the drive range of the whole period is found exactly by
+:func:`drive_range` (the schedule is a piecewise cubic: its extremes lie at
+piece boundaries or at roots of its derivative, and the chain is monotone; the
+playback service computes it once), and before anything is iterated a table
+whose drive would leave the actuator's safe input range or the
 generator's output range is refused with :class:`CheckFailed`; nothing is
 ever clipped. Every chunk is checked again as it is computed.
 """
@@ -295,13 +296,13 @@ def render(playing, *, digest: str = "") -> RenderedTable:
     choice = playing.rate_choice
     if choice is None:
         raise CheckFailed(playing.rate_refusal or "no sample rate plays this sweep")
-    rate, period_count, count = float(choice.rate), int(choice.period_count), int(choice.count)
+    sample_rate, period_count, count = float(choice.sample_rate), int(choice.period_count), int(choice.count)
     if not (0 < period_count <= count):
-        raise ValueError(f"inconsistent rate choice: period_count={period_count}, count={count}")
+        raise ValueError(f"inconsistent sample-rate choice: period_count={period_count}, count={count}")
     q, code_lo, code_hi = _safe_codes(playing)
     chain = playing.laser.chain
-    source = PeriodFrames(playing.schedule, chain, q, rate, period_count)
-    choice_doc = {"rate": rate, "period_count": period_count, "count": count,
+    source = PeriodFrames(playing.schedule, chain, q, sample_rate, period_count)
+    choice_doc = {"sample_rate": sample_rate, "period_count": period_count, "count": count,
                   "limited_by": getattr(choice, "limited_by", None), "reason": getattr(choice, "reason", None)}
     extra = {
         "period": playing.schedule.period,
@@ -314,7 +315,7 @@ def render(playing, *, digest: str = "") -> RenderedTable:
         "safe_range": [playing.laser.limits.input_min, playing.laser.limits.input_max],
         "detuning_scaling": detuning_scaling(chain, q, code_lo, code_hi),
     }
-    info = TableInfo(sample_rate=rate, count=count, period_count=period_count, dtype=np.dtype(q.dtype).str,
+    info = TableInfo(sample_rate=sample_rate, count=count, period_count=period_count, dtype=np.dtype(q.dtype).str,
                      output=playing.generator.output.kind, drive_unit=chain.drive_unit,
                      code_scale=float(q.code_scale), code_offset=float(q.code_offset), amplitude=q.amplitude,
                      offset=q.offset, channel=playing.output, scenario_digest=digest, tool_version=__version__,
@@ -355,17 +356,17 @@ def _quantisation_doc(q) -> dict:
 
 
 class PeriodFrames:
-    """The frames of a table: samples of one period at ``rate``, then copies of the first sample.
+    """The frames of a table: samples of one period at ``sample_rate``, then copies of the first sample.
 
     Called with ``(start, stop)`` it computes those samples (time, detuning,
     drive, codes) in blocks of :data:`BLOCK` that stay in the processor's cache.
     """
 
-    def __init__(self, schedule, chain, q, rate: float, period_count: int):
+    def __init__(self, schedule, chain, q, sample_rate: float, period_count: int):
         from sweepgen import sampling
 
         self._to_codes = sampling.drive_to_codes
-        self.q, self.rate, self.period_count = q, rate, period_count
+        self.q, self.sample_rate, self.period_count = q, sample_rate, period_count
         self.period = schedule.period
         self.poly = SortedEvaluator(schedule.poly)
         det_lo, det_hi = detuning_extremes(schedule)
@@ -378,8 +379,8 @@ class PeriodFrames:
     def _compute(self, start: int, stop: int, detuning, drive, codes) -> None:
         """Samples start..stop of the period (all < period_count) into the output slices."""
         t = np.arange(start, stop, dtype=np.float64)
-        t /= self.rate
-        if t[-1] >= self.period:                      # rounding of the rate: stay on the period's axis
+        t /= self.sample_rate
+        if t[-1] >= self.period:                      # rounding of the sample rate: stay on the period's axis
             np.mod(t, self.period, out=t)
         self.poly(t, out=detuning)
         self.to_drive(detuning, out=drive)
@@ -388,7 +389,7 @@ class PeriodFrames:
     def __call__(self, start: int, stop: int) -> Frame:
         n = stop - start
         time = np.arange(start, stop, dtype=np.float64)
-        time /= self.rate
+        time /= self.sample_rate
         detuning = np.empty(n)
         drive = np.empty(n)
         codes = np.empty(n, dtype=self.dtype)

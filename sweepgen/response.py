@@ -72,13 +72,13 @@ class Response:
             return np.array([w0 * w0]), np.array([1.0, w0 / self.q, w0 * w0])
         return np.array([1.0]), np.array([1.0])
 
-    def ramp_lag(self, rate: float) -> float:
-        """Steady-state lag behind a ramp of slope ``rate``: ``rate·τ`` (first order),
-        ``rate/(Q ω_0)`` (second order); final-value theorem on ``(1 − H(s))/s²``."""
+    def ramp_lag(self, slope: float) -> float:
+        """Steady-state lag behind a ramp of slope ``slope``: ``slope·τ`` (first order),
+        ``slope/(Q ω_0)`` (second order); final-value theorem on ``(1 − H(s))/s²``."""
         if self.model == "first-order":
-            return rate / (2.0 * math.pi * self.corner)
+            return slope / (2.0 * math.pi * self.corner)
         if self.model == "second-order":
-            return rate / (self.q * 2.0 * math.pi * self.resonance)
+            return slope / (self.q * 2.0 * math.pi * self.resonance)
         return 0.0
 
     def step(self, t):
@@ -113,18 +113,18 @@ class Response:
         return np.where(pos, y, 0.0)
 
     # -- sampled signals ---------------------------------------------------------------
-    def discrete(self, rate: float):
-        """``(b, a)`` of the zero-order-hold discretisation at ``rate`` samples/s."""
+    def discrete(self, sample_rate: float):
+        """``(b, a)`` of the zero-order-hold discretisation at ``sample_rate`` samples/s."""
         from scipy.signal import cont2discrete
 
         if self.model == "none":
             return np.array([1.0]), np.array([1.0])
         num, den = self.transfer()
-        b, a, _ = cont2discrete((num, den), 1.0 / rate, method="zoh")
+        b, a, _ = cont2discrete((num, den), 1.0 / sample_rate, method="zoh")
         b = np.atleast_1d(np.squeeze(b))
         return b / a[0], a / a[0]
 
-    def filter(self, x, rate: float, *, periodic: bool = False):
+    def filter(self, x, sample_rate: float, *, periodic: bool = False):
         """Response to the sampled drive ``x`` held between samples, at the sample instants.
 
         Starts from rest at ``x[0]``; with ``periodic=True`` the input is taken to
@@ -135,7 +135,7 @@ class Response:
         x = np.asarray(x, dtype=float)
         if self.model == "none" or x.size == 0:
             return x.copy()
-        b, a = self.discrete(rate)
+        b, a = self.discrete(sample_rate)
         # Filter the deviation from the first value: better conditioned for large offsets.
         x0 = float(x[0])
         d = x - x0
@@ -185,13 +185,13 @@ def response_from_section(sec: Section | None) -> Response:
 
 @dataclass
 class Tracking:
-    """The simulated laser over one period, sampled at ``rate`` (SI units)."""
+    """The simulated laser over one period, sampled at ``sample_rate`` (SI units)."""
 
     time: np.ndarray          # s
     planned: np.ndarray       # Hz, the schedule's detuning
     drive: np.ndarray         # drive units, as played (after quantisation when given)
     actual: np.ndarray        # Hz, the detuning the laser really has (chain inverse of the response)
-    rate: float               # samples/s of the simulation
+    sample_rate: float        # samples/s of the simulation
 
     @property
     def error(self) -> np.ndarray:
@@ -203,9 +203,10 @@ class Tracking:
 MAX_SIM_POINTS = 1 << 21
 
 
-def simulate(schedule, chain, response: Response, rate: float, *, quant=None,
-             max_points: int = MAX_SIM_POINTS) -> Tracking:
-    """Play one period of ``schedule`` at ``rate`` through ``chain`` and ``response``.
+def track(schedule, chain, response: Response, sample_rate: float, *, quant=None,
+          max_points: int = MAX_SIM_POINTS) -> Tracking:
+    """How the laser tracks one period of ``schedule`` played at ``sample_rate`` through ``chain``
+    and ``response``.
 
     The drive is the chain's drive for the planned detuning at each sample
     (quantised to the generator's codes when ``quant`` is given, see
@@ -214,27 +215,27 @@ def simulate(schedule, chain, response: Response, rate: float, *, quant=None,
     inverse. The response is applied to the drive at the actuator (the one
     place where the profile states it).
     """
-    n = int(round(schedule.period * rate))
-    sim_rate = rate
+    n = int(round(schedule.period * sample_rate))
+    sim_sample_rate = sample_rate
     if n > max_points:
         step = math.ceil(n / max_points)
-        sim_rate = rate / step
-        n = int(round(schedule.period * sim_rate))
+        sim_sample_rate = sample_rate / step
+        n = int(round(schedule.period * sim_sample_rate))
     n = max(n, 2)
-    t = np.arange(n) / sim_rate
+    t = np.arange(n) / sim_sample_rate
     planned = schedule.detuning(t)
     drive = chain.to_drive(planned)
     if quant is not None:
         from sweepgen.sampling import codes_to_drive, drive_to_codes
 
         drive = codes_to_drive(drive_to_codes(drive, quant), quant)
-    played = response.filter(drive, sim_rate, periodic=True)
+    played = response.filter(drive, sim_sample_rate, periodic=True)
     actual = chain.to_detuning(played)
-    return Tracking(time=t, planned=planned, drive=drive, actual=actual, rate=sim_rate)
+    return Tracking(time=t, planned=planned, drive=drive, actual=actual, sample_rate=sim_sample_rate)
 
 
-def preview_rate(response: Response, period: float) -> float:
-    """A simulation rate for an actuator not tied to a generator: 1000 points per response time
+def preview_sample_rate(response: Response, period: float) -> float:
+    """A simulation sample rate for an actuator not tied to a generator: 1000 points per response time
     constant (10^4 per period for an ideal actuator), at most :data:`MAX_SIM_POINTS` per period."""
     tau = response.time_constant or period / 1e4
     return min(1000.0 / tau, MAX_SIM_POINTS / period)

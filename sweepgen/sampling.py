@@ -1,7 +1,7 @@
 """Sampling the sweep in time (the generator's sample rate) and in value (its codes).
 
 Time
-    :func:`choose_rate` picks the sample rate. Fixed by the user
+    :func:`choose_sample_rate` picks the sample rate. Fixed by the user
     (``[drive] sample_rate`` in the scenario, or ``--rate``), or automatic: the
     lowest rate that keeps the detuning change per sample at most half the
     tolerance (``[drive] max_step``; default :data:`DEFAULT_STEP_FRACTION` of the
@@ -9,9 +9,9 @@ Time
     generator's maximum rate or the rate at which one period still fits in its
     memory. When the generator plays any rate in a range, the rate is then
     nudged so that one period is a whole number of samples and a multiple of the
-    record granularity (``rate = period_count / period`` exactly). When it plays
+    record granularity (``sample_rate = period_count / period`` exactly). When it plays
     only listed rates, ``period_count = round(period · rate)`` and the table
-    lasts ``period_count / rate``, off the period by less than half a sample
+    lasts ``period_count / sample_rate``, off the period by less than half a sample
     (reported as ``period_error``); the record is padded up to the granularity
     and minimum length (``count − period_count`` samples, which the renderer
     fills with the period's first value, the start detuning: play such a table
@@ -46,23 +46,23 @@ DEFAULT_STEP_FRACTION = 0.1
 #: Tolerance used when no linewidth is known (Hz): a design choice of this tool,
 #: 0.1 × a 10 MHz line, the order of the alkali D lines' natural widths.
 FALLBACK_STEP = 1.0e6
-#: Automatic rates aim at steps of at most tolerance / HEADROOM.
-HEADROOM = 2.0
+#: Automatic rates aim at steps of at most tolerance / STEP_DIVISOR.
+STEP_DIVISOR = 2.0
 _NICE = (1.0, 2.0, 2.5, 4.0, 5.0, 8.0, 10.0)
 
 
 @dataclass(frozen=True)
-class RateChoice:
-    """The chosen sample rate and record length (SI units)."""
+class SampleRateChoice:
+    """The decision about the sample rate: the rate, the record length, its padding and why (SI units)."""
 
-    rate: float              # samples/s
+    sample_rate: float       # samples/s
     period_count: int        # samples covering one period
     count: int               # samples in the record (padded to granularity and min_length)
     limited_by: str          # which limit decided the rate
     reason: str              # one sentence for people
     max_step: float          # Hz, detuning tolerance per sample used
     step: float              # Hz, largest detuning change per sample at this rate
-    period_error: float = 0.0  # s, period_count/rate − period
+    period_error: float = 0.0  # s, period_count/sample_rate − period
 
     @property
     def padding(self) -> int:
@@ -96,8 +96,8 @@ def _pad(n: int, sampling) -> int:
     return -(-n // g) * g
 
 
-def choose_rate(schedule, chain, generator, drive_options, *, linewidth: float | None = None,
-                strict: bool = True, rate: float | None = None) -> RateChoice:
+def choose_sample_rate(schedule, chain, generator, drive_options, *, linewidth: float | None = None,
+                       strict: bool = True, sample_rate: float | None = None) -> SampleRateChoice:
     """Choose the sample rate and record length for one period of ``schedule``.
 
     Parameters
@@ -114,7 +114,7 @@ def choose_rate(schedule, chain, generator, drive_options, *, linewidth: float |
         Raise :class:`CheckFailed` when a fixed rate is not playable (not a rate
         of the generator, or the period does not fit in memory). The checker
         passes False and reports those as failed rules instead.
-    rate : float, optional
+    sample_rate : float, optional
         Overrides ``drive_options.sample_rate`` (the ``--rate`` option).
 
     Raises
@@ -125,24 +125,24 @@ def choose_rate(schedule, chain, generator, drive_options, *, linewidth: float |
     """
     sm = generator.sampling
     tol, tol_src = step_tolerance(drive_options, linewidth)
-    demand = _Demand(schedule.period, schedule.max_abs_rate(), tol, tol_src)
-    fixed = rate if rate is not None else getattr(drive_options, "sample_rate", None)
+    demand = _Demand(schedule.period, schedule.max_abs_chirp_rate(), tol, tol_src)
+    fixed = sample_rate if sample_rate is not None else getattr(drive_options, "sample_rate", None)
     if fixed is not None:
-        return _fixed_choice(fixed, "--rate" if rate is not None else "drive.sample_rate", demand, generator,
-                             strict)
+        return _fixed_choice(fixed, "--rate" if sample_rate is not None else "drive.sample_rate", demand,
+                             generator, strict)
     if sm.rates is None:
-        chosen, period_count, limited = _ranged_rate(demand, generator)
+        chosen, period_count, limited = _sample_rate_in_range(demand, generator)
     else:
-        chosen, period_count, limited = _listed_rate(demand, generator)
+        chosen, period_count, limited = _listed_sample_rate(demand, generator)
     count = _pad(period_count, sm)
-    step = demand.sweep_rate / chosen
+    step = demand.chirp_rate / chosen
     err = period_count / chosen - demand.period
     reason = (f"{si(chosen, 'Sa/s', 6)}: steps of at most {step / 1e3:.4g} kHz per sample (tolerance "
               f"{tol / 1e3:.4g} kHz, {tol_src}); {period_count} samples per period"
               + (f", padded to {count}" if count != period_count else "")
               + (f"; the table lasts {err * 1e9:+.3g} ns longer than the period"
                  if abs(err) > 1e-12 * demand.period else "") + f"; decided by the {limited}")
-    return RateChoice(chosen, period_count, count, limited, reason, tol, step, err)
+    return SampleRateChoice(chosen, period_count, count, limited, reason, tol, step, err)
 
 
 @dataclass(frozen=True)
@@ -150,21 +150,21 @@ class _Demand:
     """What the sweep asks of the sample rate: the detuning step per sample stays within ``tolerance``."""
 
     period: float            # s
-    sweep_rate: float        # Hz/s, the largest |dΔ/dt| over the period
+    chirp_rate: float        # Hz/s, the largest |dΔ/dt| over the period
     tolerance: float         # Hz per sample
     source: str              # where the tolerance comes from
 
     @property
     def need(self) -> float:
         """The lowest rate (Sa/s) that keeps the step within the tolerance."""
-        return self.sweep_rate / self.tolerance if self.sweep_rate > 0 else 0.0
+        return self.chirp_rate / self.tolerance if self.chirp_rate > 0 else 0.0
 
-    def memory_rate(self, sm) -> float:
+    def memory_sample_rate(self, sm) -> float:
         """The fastest rate at which one period (a whole number of granules) fits in the memory."""
         return (sm.memory // sm.granularity) * sm.granularity / self.period
 
 
-def _fixed_choice(fixed: float, src: str, demand: _Demand, generator, strict: bool) -> RateChoice:
+def _fixed_choice(fixed: float, src: str, demand: _Demand, generator, strict: bool) -> SampleRateChoice:
     """A rate the person fixed; ``strict`` refuses one the generator does not play or hold."""
     sm, period = generator.sampling, demand.period
     n = max(int(round(period * fixed)), 1)
@@ -178,22 +178,22 @@ def _fixed_choice(fixed: float, src: str, demand: _Demand, generator, strict: bo
         raise CheckFailed(f"at {src} = {si(fixed, 'Sa/s', 6)} one period needs {count} samples but generator "
                           f"'{generator.key}' holds {sm.memory}; lower the rate to at most "
                           f"{si(sm.memory / period, 'Sa/s', 6)}")
-    return RateChoice(fixed, n, count, f"fixed by {src}", f"rate fixed by {src}", demand.tolerance,
-                      demand.sweep_rate / fixed, n / fixed - period)
+    return SampleRateChoice(fixed, n, count, f"fixed by {src}", f"rate fixed by {src}", demand.tolerance,
+                            demand.chirp_rate / fixed, n / fixed - period)
 
 
-def _ranged_rate(demand: _Demand, generator) -> tuple[float, int, str]:
+def _sample_rate_in_range(demand: _Demand, generator) -> tuple[float, int, str]:
     """``(rate, period_count, deciding limit)`` on a generator that plays any rate in a range:
-    the rounded-up rate with room (:data:`HEADROOM`), nudged to a whole number of granules per period."""
+    the rounded-up rate with room (:data:`STEP_DIVISOR`), nudged to a whole number of granules per period."""
     sm, period, need = generator.sampling, demand.period, demand.need
-    mem_rate = demand.memory_rate(sm)
+    mem_rate = demand.memory_sample_rate(sm)
     upper = min(sm.rate_max, mem_rate)
     lower = max(need, sm.rate_min, sm.min_length / period)
     if lower > upper * (1 + 1e-12):
         raise CheckFailed(_no_rate_message(demand, sm, generator))
-    target = max(need * HEADROOM, sm.rate_min, sm.min_length / period)
+    target = max(need * STEP_DIVISOR, sm.rate_min, sm.min_length / period)
     chosen = _nice_up(target)
-    limited = ("detuning step tolerance" if target == need * HEADROOM else
+    limited = ("detuning step tolerance" if target == need * STEP_DIVISOR else
                "generator minimum rate" if target == sm.rate_min else "generator minimum record length")
     if chosen > upper:
         chosen = upper
@@ -210,7 +210,7 @@ def _ranged_rate(demand: _Demand, generator) -> tuple[float, int, str]:
     return chosen, n, limited
 
 
-def _listed_rate(demand: _Demand, generator) -> tuple[float, int, str]:
+def _listed_sample_rate(demand: _Demand, generator) -> tuple[float, int, str]:
     """``(rate, period_count, deciding limit)`` on a generator that plays only listed rates: the
     slowest with room whose period fits in memory, else the fastest that fits."""
     sm, period, need = generator.sampling, demand.period, demand.need
@@ -218,7 +218,7 @@ def _listed_rate(demand: _Demand, generator) -> tuple[float, int, str]:
     good = [r for r in fits if r >= need * (1 - 1e-12)]
     if not good:
         raise CheckFailed(_no_rate_message(demand, sm, generator))
-    comfy = [r for r in good if r >= need * HEADROOM]
+    comfy = [r for r in good if r >= need * STEP_DIVISOR]
     chosen = comfy[0] if comfy else good[-1]
     limited = ("detuning step tolerance" if chosen == good[0] and need > 0 else
                "generator's listed rates")
@@ -228,11 +228,11 @@ def _listed_rate(demand: _Demand, generator) -> tuple[float, int, str]:
 
 
 def _no_rate_message(demand: _Demand, sm, generator) -> str:
-    need, period, mem_rate = demand.need, demand.period, demand.memory_rate(sm)
+    need, period, mem_rate = demand.need, demand.period, demand.memory_sample_rate(sm)
     top = sm.rates[-1] if sm.rates else sm.rate_max
     head = (f"no sample rate of generator '{generator.key}' plays this sweep: keeping the detuning step "
             f"below {demand.tolerance / 1e3:.4g} kHz ({demand.source}) at |dΔ/dt| up to "
-            f"{demand.sweep_rate:.4g} Hz/s needs at least {si(need, 'Sa/s', 6)}")
+            f"{demand.chirp_rate:.4g} Hz/s needs at least {si(need, 'Sa/s', 6)}")
     if need > top and top <= mem_rate:
         return head + (f", but its fastest rate is {si(top, 'Sa/s', 6)} (the rate limit wins); raise "
                        f"drive.max_step, lengthen chirp.return_time, or use a faster generator")

@@ -1,21 +1,22 @@
 """The scenario file: what the user wants to slow, where, and how hard.
 
 Loading parses every value once (units to SI floats) and validates ranges and
-relations that do not need the physics (end below start velocity, margin in
-(0, 1), a start time only for pulsed sources, ...). Relations that need the
-physics (does the slowing distance fit?) are the planner's.
+relations that do not need the physics (end below start velocity, force
+fraction η in (0, 1), a start time only for pulsed sources, ...). Relations
+that need the physics (does the slowing distance fit?) are the planner's.
 """
 
 from __future__ import annotations
 
 import hashlib
 import json
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from sweepgen import catalog
 from sweepgen._config import Section, load_toml_bytes
-from sweepgen.errors import InputError
+from sweepgen.errors import DeprecatedKey, InputError
 from sweepgen.physics import gaussian_beam_saturation, rayleigh_range
 from sweepgen.sources import EffusiveSource, GaussianSource
 from sweepgen.species import Species, load_species
@@ -72,7 +73,7 @@ class Target:
 class Chirp:
     start_velocity: float       # m/s
     end_velocity: float         # m/s
-    margin: float               # η
+    force_fraction: float       # η, the fraction of the largest force the design uses
     start_time: object          # None (continuous), "auto", or float seconds
     hold: float                 # s
     return_time: float          # s
@@ -212,7 +213,7 @@ def _read_chirp(ch: Section, pulse_time: float | None, file: str) -> Chirp:
     if not v2 < v1:
         raise ch.error("end_velocity", f"expected an end velocity below the start velocity "
                                        f"({v1:g} m/s), got {ch.data['end_velocity']!r}")
-    margin = ch.number("margin", minimum=0.0, maximum=1.0, exclusive=True)
+    force_fraction = _read_force_fraction(ch)
     if ch.has("start_time"):
         start_raw = ch.raw("start_time")
         if pulse_time is None:
@@ -232,8 +233,19 @@ def _read_chirp(ch: Section, pulse_time: float | None, file: str) -> Chirp:
         raise InputError(f"the source pulse at {pulse_time:g} s lies outside the period ({period:g} s); "
                          f"set source.pulse_time below chirp.period or lengthen chirp.period",
                          file=file, key="source.pulse_time")
-    return Chirp(start_velocity=v1, end_velocity=v2, margin=margin, start_time=start_time,
+    return Chirp(start_velocity=v1, end_velocity=v2, force_fraction=force_fraction, start_time=start_time,
                  hold=hold, return_time=return_time, period=period)
+
+
+def _read_force_fraction(ch: Section) -> float:
+    """η from ``force_fraction``, or from its old name ``margin`` (still read, with a
+    :class:`sweepgen.errors.DeprecatedKey` warning)."""
+    if not ch.has("margin"):
+        return ch.number("force_fraction", minimum=0.0, maximum=1.0, exclusive=True)
+    if ch.has("force_fraction"):
+        raise ch.error("margin", "give only force_fraction (margin is its old name)")
+    warnings.warn(DeprecatedKey(ch.file, ch.key("margin"), ch.key("force_fraction")), stacklevel=2)
+    return ch.number("margin", minimum=0.0, maximum=1.0, exclusive=True)
 
 
 def _read_drive(dv: Section | None) -> Drive:

@@ -45,7 +45,7 @@ class Schedule:
         self.period = float(period)
         self.start_detuning = float(start_detuning)
         self.end_detuning = float(end_detuning)
-        self._rate = poly.derivative()
+        self._chirp_rate = poly.derivative()
 
     # -- construction ------------------------------------------------------------
     @classmethod
@@ -71,7 +71,7 @@ class Schedule:
                 cs.append(np.array([0.0, 0.0, 0.0, value]))
 
         const(0.0, t0, d0)
-        chirp = CubicHermiteSpline(tr.time + t0, tr.detuning, tr.rate)
+        chirp = CubicHermiteSpline(tr.time + t0, tr.detuning, tr.chirp_rate)
         for i in range(len(chirp.x) - 1):
             xs.append((chirp.x[i], chirp.x[i + 1]))
             cs.append(chirp.c[:, i].copy())
@@ -100,9 +100,9 @@ class Schedule:
 
     __call__ = detuning
 
-    def rate(self, t):
-        """dΔ/dt in Hz/s at times ``t``."""
-        return self._rate(self._wrap(t))
+    def chirp_rate(self, t):
+        """The chirp rate dΔ/dt in Hz/s at times ``t``."""
+        return self._chirp_rate(self._wrap(t))
 
     def segment(self, kind: str) -> Segment | None:
         """The first segment of a kind, or None."""
@@ -120,14 +120,14 @@ class Schedule:
         out[t >= self.segments[-1].end] = self.segments[-1].kind
         return out
 
-    def max_abs_rate(self, kind: str | None = None, samples: int = 20001) -> float:
+    def max_abs_chirp_rate(self, kind: str | None = None, samples: int = 20001) -> float:
         """Largest |dΔ/dt| over one segment kind (or the whole period)."""
         segs = [s for s in self.segments if kind is None or s.kind == kind]
         best = 0.0
         for seg in segs:
             t = np.linspace(seg.start, seg.end, samples)
             t[-1] = np.nextafter(seg.end, seg.start)
-            best = max(best, float(np.max(np.abs(self._rate(t)))))
+            best = max(best, float(np.max(np.abs(self._chirp_rate(t)))))
         return best
 
     @property

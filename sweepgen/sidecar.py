@@ -4,7 +4,8 @@ A sidecar lets a reader decode the data file with NumPy alone, without
 sweepgen. Its keys (SI units; frequencies and detunings in Hz):
 
 ``sweepgen_sidecar``
-    Version of this layout (an integer, currently 1).
+    Version of this layout (an integer, currently 2; version 2 renamed
+    ``sampling.rate`` to ``sampling.sample_rate``).
 ``tool``
     ``{"name": "sweepgen", "version": ...}``.
 ``driver``, ``data_file``, ``data_bytes``, ``sha256``
@@ -65,7 +66,7 @@ import numpy as np
 
 from sweepgen import __version__, _json
 
-LAYOUT_VERSION = 1
+LAYOUT_VERSION = 2
 
 _ORDER = {"<": "little", ">": "big", "|": "not applicable"}
 

@@ -42,7 +42,7 @@ BASE_SCENARIO = {
     "source": {"model": "effusive", "temperature": "390 K", "pulse_time": "0 ms"},
     "light": {"saturation": 3.0, "start": "0.05 m"},
     "target": {"distance": "1.0 m", "capture_velocity": "20 m/s"},
-    "chirp": {"start_velocity": "260 m/s", "end_velocity": "15 m/s", "margin": 0.6, "start_time": "auto",
+    "chirp": {"start_velocity": "260 m/s", "end_velocity": "15 m/s", "force_fraction": 0.6, "start_time": "auto",
               "hold": "0.5 ms", "return_time": "0.3 ms", "period": "20 ms"},
 }
 
@@ -112,7 +112,7 @@ def merged(base: dict, **sections) -> dict:
 
 
 def scenario_dict(**sections) -> dict:
-    """BASE_SCENARIO with sections updated: ``scenario_dict(chirp={"margin": 0.5})``
+    """BASE_SCENARIO with sections updated: ``scenario_dict(chirp={"force_fraction": 0.5})``
     (see :func:`merged`)."""
     return merged(BASE_SCENARIO, **sections)
 

@@ -92,7 +92,7 @@ def test_actuator_range_fails_and_is_never_playable(tmp_path):
     assert f.value == pytest.approx((end + 140e6) / 40e6, rel=1e-6)      # drive = (Δ − set point)/coefficient
     with pytest.raises(CheckFailed, match="actuator_range"):
         require_playable(r)
-    assert r.quant is None                                  # no codes are made for an unsafe drive
+    assert r.quantisation is None                                  # no codes are made for an unsafe drive
 
 
 def test_fifty_ohm_doubling_decides_the_generator_range(tmp_path):
@@ -107,7 +107,7 @@ def test_fifty_ohm_doubling_decides_the_generator_range(tmp_path):
     doubled = run(tmp_path, gen=merged(VOLTAGE_BOARD, output=dict(small, termination="50 ohm")))
     g = doubled.finding("generator_range")
     assert g.status == "pass" and g.limit == pytest.approx(-4.0)
-    q = doubled.quant
+    q = doubled.quantisation
     assert q.delivered_factor == 2.0
     # programmed peak-to-peak is half the span needed at the actuator
     assert q.amplitude == pytest.approx((hi - lo) / 2, rel=2e-3)
@@ -152,7 +152,7 @@ def test_tracking_agrees_with_scipy_lsim(tmp_path):
     w0 = 2 * math.pi * 8e3
     sys = signal.lti([w0 ** 2], [1, w0 / 2.0, w0 ** 2])
     u = np.tile(tr.drive, 3)
-    t = np.arange(u.size) / tr.rate
+    t = np.arange(u.size) / tr.sample_rate
     _, y, _ = signal.lsim(sys, u, t, X0=None, interp=False)     # zero-order hold, like the generator
     ref = y[-tr.drive.size:]
     mine = r.laser.chain.to_drive(tr.actual)
@@ -181,7 +181,7 @@ def test_step_per_code_fails_with_few_dac_bits(tmp_path):
     f = r.finding("step_per_code")
     assert f.status == "fail"
     # one code = amplitude/(2·(2^5 − 1)) volts = that × 40 MHz/V of detuning
-    assert f.value == pytest.approx(r.quant.amplitude / (2 * 31) * 40e6, rel=1e-9)
+    assert f.value == pytest.approx(r.quantisation.amplitude / (2 * 31) * 40e6, rel=1e-9)
 
 
 def test_record_length_and_sample_rate_rules(tmp_path):
@@ -201,7 +201,7 @@ def test_record_length_and_sample_rate_rules(tmp_path):
 def test_granularity_warns_when_padding(tmp_path):
     r = run(tmp_path, gen=merged(VOLTAGE_BOARD, sampling={"granularity": 7}), rate=4e6)
     f = r.finding("granularity")
-    assert f.status == "warn" and f.value == 3 and r.rate.count == 24003     # 24000 samples -> 7·3429
+    assert f.status == "warn" and f.value == 3 and r.rate_choice.count == 24003     # 24000 samples -> 7·3429
     assert r.ok
 
 
@@ -260,7 +260,7 @@ def test_end_velocity_and_deceleration(tmp_path):
     f = r.finding("end_velocity")
     assert f.status == "fail" and f.value == 15 and f.limit == 10
     # η > 0.8 leaves less than 20 % of the force in reserve: a warning (η < 1 is enforced by the loader)
-    r = run(tmp_path, scenario=merged(CHECKED_SCENARIO, chirp={"margin": 0.9}))
+    r = run(tmp_path, scenario=merged(CHECKED_SCENARIO, chirp={"force_fraction": 0.9}))
     g = r.finding("deceleration")
     assert g.status == "warn" and g.value == pytest.approx(0.9)
 
@@ -271,7 +271,7 @@ def test_photon_budget_for_a_lossy_molecule(tmp_path):
     text = files("sweepgen.profiles").joinpath("species/caf-a-x.toml").read_text()
     (tmp_path / "lossy.toml").write_text(text.replace("value = 2e-5", "value = 1e-4"))
     sc = merged(CHECKED_SCENARIO, species="lossy.toml", chirp={"start_velocity": "150 m/s", "end_velocity": "10 m/s",
-                                                         "margin": 0.3, "period": "20 ms"},
+                                                         "force_fraction": 0.3, "period": "20 ms"},
                 target={"capture_velocity": "12 m/s"})
     r = run(tmp_path, scenario=sc)
     f = r.finding("photon_budget")
@@ -282,12 +282,12 @@ def test_photon_budget_for_a_lossy_molecule(tmp_path):
     assert f.limit == MIN_SURVIVAL
 
 
-def test_margins_and_warn_band():
+def test_headroom_and_warn_band():
     assert upper("x", 79, 100, "", "").status == "pass"
     assert upper("x", 81, 100, "", "").status == "warn"
     assert upper("x", 101, 100, "", "").status == "fail"
     f = within("x", -1, 8.5, -10, 10, "V", "")
-    assert f.status == "warn" and f.value == 8.5 and f.limit == 10 and f.margin == pytest.approx(0.15)
+    assert f.status == "warn" and f.value == 8.5 and f.limit == 10 and f.headroom == pytest.approx(0.15)
     assert within("x", -11, 0, -10, 10, "V", "").status == "fail"
     rep = CheckReport([Finding("a", "pass", 1, 2, "", 0.5, ""), Finding("b", "fail", 3, 2, "", -0.5, "")])
     assert [f.rule for f in rep.ordered()] == ["b", "a"] and not rep.ok

@@ -93,7 +93,7 @@ def test_check_and_simulate_an_old_table(tmp_path, exported, measurement):
     assert ok.exit_code == 0, ok.output
     rules = {f["rule"]: f for f in json.loads(ok.stdout)["findings"]}
     assert rules["table_integrity"]["status"] == "pass" and rules["table_match"]["status"] == "pass"
-    assert "the table" in json.loads(ok.stdout)["playback"]["rate_limited_by"]
+    assert "the table" in json.loads(ok.stdout)["playback"]["sample_rate_limited_by"]
     # today's laser is calibrated anew (41 MHz/V instead of 40): the old table no longer follows the plan
     new = tmp_path / "new.toml"
     assert run("calibrate", measurement, "--laser", "demo-ecdl-piezo", "--stage", "1", "-o", new).exit_code == 0

@@ -9,7 +9,7 @@ import pytest
 
 from conftest import run_cli as run, scenario_dict, to_toml
 
-PLAN_KEYS = {"capture_velocity", "end_velocity", "margin", "deceleration_min", "deceleration_max",
+PLAN_KEYS = {"start_velocity", "end_velocity", "force_fraction", "deceleration_min", "deceleration_max",
              "lag_velocity_start", "start_detuning", "end_detuning", "chirp_span", "chirp_rate_max",
              "chirp_duration", "slowing_distance", "start_time", "arrival_time", "photons_per_atom",
              "doppler_limit", "recoil_velocity", "start_position", "end_position", "survival_fraction"}
@@ -20,8 +20,20 @@ def test_plan_json_has_the_contract_keys(write_scenario):
     assert result.exit_code == 0, result.stderr
     doc = json.loads(result.stdout)
     assert PLAN_KEYS <= set(doc)
-    assert doc["capture_velocity"] == 260.0 and doc["end_velocity"] == 15.0
+    assert doc["start_velocity"] == 260.0 and doc["end_velocity"] == 15.0
     assert doc["start_detuning"] < doc["end_detuning"] < 0
+
+
+def test_the_old_key_margin_is_named_once_on_stderr(write_scenario):
+    path = write_scenario(chirp={"force_fraction": None, "margin": 0.6})
+    result = run("plan", str(path), "--json")
+    assert result.exit_code == 0, result.stderr
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("sweepgen: warning: ")
+    assert str(path) in lines[0] and "'chirp.margin'" in lines[0] and "'chirp.force_fraction'" in lines[0]
+    doc = json.loads(result.stdout)                              # stdout stays one JSON document
+    assert doc["force_fraction"] == 0.6
+    assert doc == json.loads(run("plan", str(write_scenario()), "--json").stdout)   # as under the new name
 
 
 def test_plan_human_table(write_scenario):
@@ -50,14 +62,14 @@ def test_profiles_lists_builtins():
 BROKEN = [
     # (name, sections or raw text, fragment expected in the message)
     ("wrong unit", {"chirp": {"start_velocity": "260 m"}}, "chirp.start_velocity"),
-    ("missing key", {"chirp": {"margin": None}}, "chirp.margin"),
+    ("missing key", {"chirp": {"force_fraction": None}}, "chirp.force_fraction"),
     ("unknown key", {"chirp": {"speed": "3 m/s"}}, "chirp.speed"),
-    ("margin above one", {"chirp": {"margin": 1.2}}, "chirp.margin"),
-    ("margin zero", {"chirp": {"margin": 0.0}}, "chirp.margin"),
+    ("force fraction above one", {"chirp": {"force_fraction": 1.2}}, "chirp.force_fraction"),
+    ("force fraction zero", {"chirp": {"force_fraction": 0.0}}, "chirp.force_fraction"),
     ("negative temperature", {"source": {"temperature": "-5 K"}}, "source.temperature"),
     ("end above start", {"chirp": {"end_velocity": "300 m/s"}}, "chirp.end_velocity"),
     ("NaN velocity", {"chirp": {"start_velocity": "nan m/s"}}, "chirp.start_velocity"),
-    ("NaN margin", {"chirp": {"margin": float("nan")}}, "chirp.margin"),
+    ("NaN force fraction", {"chirp": {"force_fraction": float("nan")}}, "chirp.force_fraction"),
     ("distance too short", {"target": {"distance": "0.4 m"}}, "chirp.start_velocity"),
     ("unknown species", {"species": "unobtainium-d9"}, "species"),
     ("bare number for a quantity", {"target": {"distance": 1.0}}, "target.distance"),
@@ -73,7 +85,7 @@ BROKEN = [
     ("zero period", {"chirp": {"period": "0 s"}}, "chirp.period"),
     ("angular frequency", {"drive": {"max_step": "3 Mrad/s"}}, "drive.max_step"),
     ("missing section", {"target": None}, "target"),
-    ("string margin", {"chirp": {"margin": "0.6"}}, "chirp.margin"),
+    ("string force fraction", {"chirp": {"force_fraction": "0.6"}}, "chirp.force_fraction"),
     ("malformed TOML", "title = 'x'\n[chirp\nmargin = 0.5\n", "malformed TOML"),
     ("not UTF-8", b"\xff\xfe\x00t", "UTF-8"),
 ]

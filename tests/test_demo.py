@@ -14,7 +14,7 @@ def test_demo_writes_the_whole_report(tmp_path):
     out = tmp_path / "demo"
     result = run_cli("demo", out)
     assert result.exit_code == 0, result.output
-    for name in ("sweep.png", "drive.png", "margins.png", "velocities.png"):
+    for name in ("sweep.png", "drive.png", "headroom.png", "velocities.png"):
         assert (out / name).read_bytes()[:8] == PNG
     plan = json.loads((out / "plan.json").read_text())
     check = json.loads((out / "check.json").read_text())

@@ -63,7 +63,7 @@ def test_closed_form_kinematics_reference_example():
     assert cf["duration"] == pytest.approx(5.172e-3, rel=2e-4)
     assert cf["distance"] == pytest.approx(0.8016, rel=2e-4)
     assert cf["span"] == pytest.approx(371.68e6, rel=2e-5)
-    assert cf["rate"] == pytest.approx(71.87e6 / 1e-3, rel=2e-4)
+    assert cf["chirp_rate"] == pytest.approx(71.87e6 / 1e-3, rel=2e-4)
 
 
 def test_scattering_rate_limits_and_width():
@@ -80,7 +80,7 @@ def test_scattering_rate_limits_and_width():
         physics.scattering_rate(0.0, 0.0, s, gamma, lam))
 
 
-def test_lag_velocity_gives_margin_times_max_rate():
+def test_lag_velocity_gives_force_fraction_times_max_rate():
     gamma, lam = 2 * math.pi * 6e6, 780e-9
     for s, eta in [(0.5, 0.3), (3.0, 0.6), (10.0, 0.9)]:
         lag = physics.lag_velocity(s, eta, gamma, lam)

@@ -29,7 +29,7 @@ def test_uniform_light_matches_closed_form():
     assert doc["chirp_duration"] == pytest.approx(cf["duration"], rel=1e-8)
     assert doc["slowing_distance"] == pytest.approx(cf["distance"], rel=1e-8)
     assert doc["chirp_span"] == pytest.approx(cf["span"], rel=1e-9)
-    assert doc["chirp_rate_max"] == pytest.approx(cf["rate"], rel=1e-9)
+    assert doc["chirp_rate_max"] == pytest.approx(cf["chirp_rate"], rel=1e-9)
     lag = physics.lag_velocity(3.0, 0.6, sp.gamma, sp.wavelength)
     assert doc["start_detuning"] == pytest.approx(-(260.0 + lag) / sp.wavelength, rel=1e-12)
     assert doc["start_time"] is None and doc["arrival_time"] is None
@@ -40,7 +40,7 @@ def test_reference_example_through_the_planner():
     # constant-deceleration closed form (Foot 2005 §9.3.1), worked example: 87Rb, s → ∞, η = 0.5, 300 → 10 m/s: 5.172 ms, 0.8016 m, 371.68 MHz, 71.87 MHz/ms
     sc = make_scenario(source={"pulse_time": None}, light={"saturation": 1e9, "start": "0 m"},
               target={"distance": "2 m"},
-              chirp={"start_time": None, "margin": 0.5, "start_velocity": "300 m/s", "end_velocity": "10 m/s"})
+              chirp={"start_time": None, "force_fraction": 0.5, "start_velocity": "300 m/s", "end_velocity": "10 m/s"})
     doc = plan(sc).to_json()
     assert doc["chirp_duration"] == pytest.approx(5.172e-3, rel=2e-4)
     assert doc["slowing_distance"] == pytest.approx(0.8016, rel=2e-4)
@@ -152,7 +152,7 @@ def test_planner_properties(key, s0, eta, v1, frac, focused, waist):
         light.update(waist=f"{waist!r} m", focus="0 m")
     data = scenario_dict(species=key, light=light, source={"pulse_time": None},
                          target={"distance": "30 m"},
-                         chirp={"start_time": None, "margin": eta, "start_velocity": f"{v1!r} m/s",
+                         chirp={"start_time": None, "force_fraction": eta, "start_velocity": f"{v1!r} m/s",
                                 "end_velocity": f"{v2!r} m/s", "period": "10 s"})
     sc = scenario_from_dict(data, "prop.toml")
     try:
@@ -162,7 +162,7 @@ def test_planner_properties(key, s0, eta, v1, frac, focused, waist):
     tr = p.trajectory
     lam = sc.species.wavelength
     # detuning rises monotonically through the chirp toward resonance
-    assert np.all(tr.rate > 0)
+    assert np.all(tr.chirp_rate > 0)
     assert np.all(np.diff(tr.detuning) > 0)
     assert tr.detuning[-1] < 0
     # span = (v_start − v_end)/λ plus the change of lag

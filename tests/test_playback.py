@@ -27,9 +27,9 @@ def test_the_checker_and_the_table_read_the_same_choice(rb):
     main = rb.channels[MAIN]
     assert rb.ok and rb.main is main
     # computed once: the report judges the very objects the table plays
-    assert rb.report.rate is main.rate_choice and rb.report.quant is main.quantisation
+    assert rb.report.rate_choice is main.rate_choice and rb.report.quantisation is main.quantisation
     info = rb.table().info
-    assert info.sample_rate == main.rate_choice.rate and info.count == main.rate_choice.count
+    assert info.sample_rate == main.rate_choice.sample_rate and info.count == main.rate_choice.count
     assert info.code_scale == main.quantisation.code_scale and info.code_offset == main.quantisation.code_offset
     assert info.extra["drive_range"] == list(main.drive_range)
     assert rb.table() is rb.table()                       # rendered once
@@ -40,7 +40,7 @@ def test_the_checker_and_the_table_read_the_same_choice(rb):
 
 def test_the_check_document_is_the_reports(rb):
     doc = rb.to_json()
-    assert doc["ok"] is True and doc["playback"]["sample_rate"] == rb.main.rate_choice.rate
+    assert doc["ok"] is True and doc["playback"]["sample_rate"] == rb.main.rate_choice.sample_rate
     assert [f["rule"] for f in doc["findings"]] == [f.rule for f in rb.report.findings]
 
 
@@ -98,7 +98,7 @@ def test_profiles_named_in_a_scenario_are_found_beside_it(tmp_path, write_scenar
 
 def test_a_fixed_rate_overrides_the_scenario(rb):
     pb = prepare("rb87-chopped-oven", sample_rate=5e6)
-    assert pb.main.rate_choice.rate == 5e6 and pb.main.rate_choice.limited_by == "fixed by --rate"
+    assert pb.main.rate_choice.sample_rate == 5e6 and pb.main.rate_choice.limited_by == "fixed by --rate"
     assert pb.table().info.sample_rate == 5e6
 
 
@@ -122,7 +122,7 @@ def test_actuator_response_for_plots():
     sched = p.schedule()
     assert t.shape == d.shape and t[0] == 0 and t[-1] < sched.period
     # the piezo follows within its ramp lag rate/(Q ω0) plus the transients (second-order lag, final-value theorem)
-    lag = laser.response.ramp_lag(sched.max_abs_rate("chirp"))
+    lag = laser.response.ramp_lag(sched.max_abs_chirp_rate("chirp"))
     chirp = sched.kinds(t) == "chirp"
     assert np.max(np.abs(d - sched.detuning(t))[chirp]) < 1.5 * lag
     assert np.max(np.abs(d - sched.detuning(t))[chirp]) > 0.5 * lag

@@ -114,8 +114,8 @@ def test_numbers_of_a_table_agree_with_its_plan(rendered, tmp_path):
     assert nums["chirp_rate_max"] == pytest.approx(p.chirp_rate_max, rel=0.01)
     sched, error = readback.table_schedule(back.detuning(), back.sample_rate, nums["period_count"], step)
     assert error <= 2 * step
-    assert sched.max_abs_rate("chirp") == pytest.approx(p.chirp_rate_max, rel=0.01)
-    assert sched.max_abs_rate("return") == pytest.approx(p.schedule().max_abs_rate("return"), rel=0.01)
+    assert sched.max_abs_chirp_rate("chirp") == pytest.approx(p.chirp_rate_max, rel=0.01)
+    assert sched.max_abs_chirp_rate("return") == pytest.approx(p.schedule().max_abs_chirp_rate("return"), rel=0.01)
 
 
 def test_missing_sidecar_is_refused(rendered, tmp_path):

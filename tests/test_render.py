@@ -18,7 +18,7 @@ from sweepgen.planner import plan
 from sweepgen.playback import channel_playback
 from sweepgen.render import (SortedEvaluator, detuning_extremes, detuning_scaling, drive_function,
                              drive_range, render)
-from sweepgen.sampling import RateChoice, drive_to_codes, quantisation
+from sweepgen.sampling import SampleRateChoice, drive_to_codes, quantisation
 from sweepgen.scenario import load_scenario
 from sweepgen.schedule import Schedule, Segment
 
@@ -167,7 +167,7 @@ def test_codes_do_not_depend_on_the_chunk_size(rb_table, size):
 
 def test_padding_repeats_the_first_sample():
     sc, schedule, laser, gen = setup("rb87-chopped-oven")
-    rc = RateChoice(1e6, 20000, 20000 + 37, "test", "test", 1e6, 1.0)
+    rc = SampleRateChoice(1e6, 20000, 20000 + 37, "test", "test", 1e6, 1.0)
     table = rendered(sc, schedule, laser, gen, rc)
     frames = list(table.frames(10000))
     codes = np.concatenate([f.codes for f in frames])
@@ -179,7 +179,7 @@ def test_padding_repeats_the_first_sample():
 def test_memory_does_not_grow_with_the_table_length():
     sc, schedule, laser, gen = setup("rb87-chopped-oven")
     n = 1 << 22
-    rc = RateChoice(n / schedule.period, n, n, "test", "test", 1e6, 1.0)
+    rc = SampleRateChoice(n / schedule.period, n, n, "test", "test", 1e6, 1.0)
     table = rendered(sc, schedule, laser, gen, rc)
     tracemalloc.start()
     total = 0

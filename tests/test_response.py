@@ -10,7 +10,7 @@ from scipy import signal
 
 from sweepgen._config import Section
 from sweepgen.errors import InputError
-from sweepgen.response import Response, response_from_section, simulate
+from sweepgen.response import Response, response_from_section, track
 
 from conftest import examples
 
@@ -110,6 +110,6 @@ def test_simulate_ideal_actuator_follows_the_schedule():
 
     sched = plan(load_scenario("na23-continuous-focused")).schedule()
     chain = Chain([AnalogStage("in", 100e6, -400e6, 0.0, "V")])
-    tr = simulate(sched, chain, Response(), 2e6)
+    tr = track(sched, chain, Response(), 2e6)
     assert np.allclose(tr.actual, tr.planned, atol=1e-3)
     assert tr.time.size == round(sched.period * 2e6)

@@ -9,7 +9,7 @@ from sweepgen.chain import AnalogStage, Chain, DdsStage, OffsetLockStage
 from sweepgen.errors import CheckFailed
 from sweepgen.generator import generator_from_dict
 from sweepgen.planner import plan
-from sweepgen.sampling import choose_rate, codes_to_drive, drive_to_codes, quantisation, step_tolerance
+from sweepgen.sampling import choose_sample_rate, codes_to_drive, drive_to_codes, quantisation, step_tolerance
 from sweepgen.scenario import Drive, load_scenario
 
 from conftest import examples
@@ -42,54 +42,54 @@ PIEZO = Chain([AnalogStage("piezo", 40e6, -180e6, 0.0, "V")])
 def test_auto_rate_keeps_steps_within_tolerance_and_whole_period(rb):
     sc, sched = rb
     lw = sc.species.linewidth
-    c = choose_rate(sched, PIEZO, board(), Drive(), linewidth=lw)
+    c = choose_sample_rate(sched, PIEZO, board(), Drive(), linewidth=lw)
     tol, _ = step_tolerance(Drive(), lw)
     assert tol == pytest.approx(0.1 * lw)
-    assert c.step <= tol / 2 * (1 + 1e-9)                 # headroom of 2 below the tolerance
-    assert c.step == pytest.approx(sched.max_abs_rate() / c.rate)
-    assert c.period_count == pytest.approx(sched.period * c.rate, abs=1e-6)   # exactly one period
+    assert c.step <= tol / 2 * (1 + 1e-9)                 # a factor STEP_DIVISOR = 2 below the tolerance
+    assert c.step == pytest.approx(sched.max_abs_chirp_rate() / c.sample_rate)
+    assert c.period_count == pytest.approx(sched.period * c.sample_rate, abs=1e-6)   # exactly one period
     assert c.period_count % 8 == 0 and c.count == c.period_count
     assert c.limited_by == "detuning step tolerance"
 
 
 def test_rate_adjusted_to_granularity(rb):
     sc, sched = rb
-    c = choose_rate(sched, PIEZO, board(sampling={"granularity": 96}), Drive(max_step=2e6))
+    c = choose_sample_rate(sched, PIEZO, board(sampling={"granularity": 96}), Drive(max_step=2e6))
     assert c.period_count % 96 == 0
-    assert c.rate * sched.period == pytest.approx(c.period_count, abs=1e-6)
+    assert c.sample_rate * sched.period == pytest.approx(c.period_count, abs=1e-6)
     assert c.step <= 2e6
 
 
 def test_listed_rates_pick_the_lowest_comfortable_one(rb):
     sc, sched = rb
     g = board(sampling={"rates": ["1 MSa/s", "5 MSa/s", "20 MSa/s", "40 MSa/s"]})
-    c = choose_rate(sched, PIEZO, g, Drive(max_step=1e6))
-    need = sched.max_abs_rate() / 1e6        # 1.57 MSa/s; doubled for headroom -> 5 MSa/s
-    assert need < 5e6 / 2 and c.rate == 5e6
+    c = choose_sample_rate(sched, PIEZO, g, Drive(max_step=1e6))
+    need = sched.max_abs_chirp_rate() / 1e6        # 1.57 MSa/s; doubled (STEP_DIVISOR) -> 5 MSa/s
+    assert need < 5e6 / 2 and c.sample_rate == 5e6
 
 
 def test_memory_limit_wins_and_is_named(rb):
     sc, sched = rb
     g = board(sampling={"memory": 4096, "min_length": 1})
     with pytest.raises(CheckFailed, match="memory wins"):
-        choose_rate(sched, PIEZO, g, Drive(), linewidth=sc.species.linewidth)
+        choose_sample_rate(sched, PIEZO, g, Drive(), linewidth=sc.species.linewidth)
 
 
 def test_rate_limit_wins_and_is_named(rb):
     sc, sched = rb
     g = board(sampling={"rate_max": "100 kSa/s"})
     with pytest.raises(CheckFailed, match="rate limit wins"):
-        choose_rate(sched, PIEZO, g, Drive(), linewidth=sc.species.linewidth)
+        choose_sample_rate(sched, PIEZO, g, Drive(), linewidth=sc.species.linewidth)
 
 
 def test_fixed_rate_strict_and_lenient(rb):
     sc, sched = rb
     g = board(sampling={"rates": ["1 MSa/s", "2 MSa/s"]})
     with pytest.raises(CheckFailed, match="not a rate"):
-        choose_rate(sched, PIEZO, g, Drive(sample_rate=3e6))
-    c = choose_rate(sched, PIEZO, g, Drive(sample_rate=3e6), strict=False)
-    assert c.rate == 3e6 and c.limited_by.startswith("fixed")
-    c = choose_rate(sched, PIEZO, board(sampling={"granularity": 7}), Drive(), rate=1e6)
+        choose_sample_rate(sched, PIEZO, g, Drive(sample_rate=3e6))
+    c = choose_sample_rate(sched, PIEZO, g, Drive(sample_rate=3e6), strict=False)
+    assert c.sample_rate == 3e6 and c.limited_by.startswith("fixed")
+    c = choose_sample_rate(sched, PIEZO, board(sampling={"granularity": 7}), Drive(), sample_rate=1e6)
     assert c.period_count == 20000 and c.count == 20006 and c.padding == 6   # padded to a multiple of 7
 
 

@@ -7,7 +7,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from sweepgen import catalog
-from sweepgen.errors import InputError
+from sweepgen.errors import DeprecatedKey, InputError
 from sweepgen.scenario import load_scenario, scenario_from_dict
 from sweepgen.sources import EffusiveSource, GaussianSource
 
@@ -53,11 +53,27 @@ def test_pulse_outside_the_period_says_what_to_change():
     assert "source.pulse_time" in msg and "lengthen chirp.period" in msg
 
 
+def test_the_old_key_margin_still_reads_with_a_warning():
+    old = scenario_dict(chirp={"force_fraction": None, "margin": 0.55})
+    with pytest.warns(DeprecatedKey) as caught:
+        sc = scenario_from_dict(old, "old.toml")
+    assert sc.chirp.force_fraction == 0.55
+    warning = caught[0].message
+    assert (warning.file, warning.key, warning.replacement) == ("old.toml", "chirp.margin", "chirp.force_fraction")
+    assert "old.toml" in str(warning) and "'chirp.force_fraction'" in str(warning)
+    with pytest.raises(InputError) as info, pytest.warns(DeprecatedKey):   # the old key keeps its range check
+        scenario_from_dict(scenario_dict(chirp={"force_fraction": None, "margin": 1.5}), "old.toml")
+    assert info.value.key == "chirp.margin"
+    with pytest.raises(InputError) as info:                      # not both names at once
+        scenario_from_dict(scenario_dict(chirp={"margin": 0.5}), "both.toml")
+    assert info.value.key == "chirp.margin" and "force_fraction" in str(info.value)
+
+
 def test_digest_changes_with_content(tmp_path):
     a = tmp_path / "a.toml"
     a.write_text(to_toml(scenario_dict()))
     b = tmp_path / "b.toml"
-    b.write_text(to_toml(scenario_dict(chirp={"margin": 0.55})))
+    b.write_text(to_toml(scenario_dict(chirp={"force_fraction": 0.55})))
     assert load_scenario(str(a)).digest != load_scenario(str(b)).digest
 
 
@@ -70,14 +86,14 @@ def test_round_trip_values(tmp_path_factory, v1, frac, eta, temp, gaussian, hold
     source = ({"model": "gaussian", "temperature": None, "mean_velocity": f"{v1 / factor!r} {name}",
                "velocity_spread": "30 m/s"} if gaussian else {"temperature": f"{temp!r} K"})
     data = scenario_dict(source=source, chirp={"start_velocity": f"{v1 / factor!r} {name}",
-                                               "end_velocity": f"{frac * v1!r} m/s", "margin": eta,
+                                               "end_velocity": f"{frac * v1!r} m/s", "force_fraction": eta,
                                                "hold": f"{hold_us!r} us"})
     path = tmp_path_factory.mktemp("rt") / "s.toml"
     path.write_text(to_toml(data))
     sc = load_scenario(str(path))
     assert math.isclose(sc.chirp.start_velocity, v1, rel_tol=1e-12)
     assert math.isclose(sc.chirp.end_velocity, frac * v1, rel_tol=1e-12)
-    assert sc.chirp.margin == eta
+    assert sc.chirp.force_fraction == eta
     assert math.isclose(sc.chirp.hold, hold_us * 1e-6, rel_tol=1e-12, abs_tol=1e-18)
     if gaussian:
         assert isinstance(sc.source, GaussianSource)

@@ -39,12 +39,12 @@ def test_values_at_segment_edges(pulsed):
     assert s.detuning((hold.start + hold.end) / 2) == pytest.approx(p.end_detuning)
     assert s.detuning(ret.end) == pytest.approx(p.start_detuning)
     # the return is smooth: zero slope at both ends, monotone in between
-    assert s.rate(ret.start + 1e-12) == pytest.approx(0.0, abs=1e-3 * abs(p.chirp_span) / ret.duration)
-    assert s.rate(ret.end - 1e-12) == pytest.approx(0.0, abs=1e-3 * abs(p.chirp_span) / ret.duration)
+    assert s.chirp_rate(ret.start + 1e-12) == pytest.approx(0.0, abs=1e-3 * abs(p.chirp_span) / ret.duration)
+    assert s.chirp_rate(ret.end - 1e-12) == pytest.approx(0.0, abs=1e-3 * abs(p.chirp_span) / ret.duration)
     t = np.linspace(ret.start, ret.end, 1001)
     assert np.all(np.diff(s.detuning(t)) <= 0)
     # largest return rate of the cubic smooth step 3x²−2x³ is 1.5·span/T
-    assert s.max_abs_rate("return") == pytest.approx(1.5 * p.chirp_span / ret.duration, rel=1e-6)
+    assert s.max_abs_chirp_rate("return") == pytest.approx(1.5 * p.chirp_span / ret.duration, rel=1e-6)
 
 
 def test_continuity_everywhere(pulsed):

@@ -78,7 +78,7 @@ def test_detuning_extremes_property_any_window(t0, width):
     assert lo <= dense.min() + 1e-3 and hi >= dense.max() - 1e-3
     # and no looser than the schedule's change between two samples (a value the schedule takes there),
     # except at the period's wrap, where the detuning jumps back to the start detuning
-    slack = float(np.max(np.abs(sched.rate(t)))) * (t[1] - t[0]) + 1e-3
+    slack = float(np.max(np.abs(sched.chirp_rate(t)))) * (t[1] - t[0]) + 1e-3
     assert lo >= min(dense.min() - slack, sched.start_detuning - 1e-3)
     assert hi <= max(dense.max() + slack, sched.end_detuning + 1e-3)
 
@@ -258,7 +258,7 @@ def test_atoms_a_bit_above_the_start_velocity_are_pulled_in_before_the_chirp():
 def test_molecules_survive_as_one_minus_p_to_the_n():
     sc = make_scenario(species="caf-a-x", source={**NARROW, "mean_velocity": "160 m/s", "velocity_spread": "2 m/s"},
               light={"saturation": 1.5, "start": "0.15 m"}, target={"distance": "1.3 m", "capture_velocity": "12 m/s"},
-              chirp={"start_velocity": "200 m/s", "end_velocity": "10 m/s", "margin": 0.3, "hold": "0 ms",
+              chirp={"start_velocity": "200 m/s", "end_velocity": "10 m/s", "force_fraction": 0.3, "hold": "0 ms",
                      "return_time": "0.1 ms", "period": "100 ms"})
     p = sc.species.loss_per_photon
     assert p > 0

@@ -12,10 +12,12 @@ add it to ``COMMANDS`` below. Nothing outside this package imports from it.
 from __future__ import annotations
 
 import importlib
+import warnings
 
 import click
 
 from sweepgen import __version__
+from sweepgen.errors import DeprecatedKey
 
 #: command name -> (module of this package, one-line help shown in the listing)
 COMMANDS = {
@@ -34,7 +36,22 @@ COMMANDS = {
 
 
 class LazyGroup(click.Group):
-    """A group that imports a command's module only when that command is used."""
+    """A group that imports a command's module only when that command is used, and prints
+    sweepgen's own warnings (a deprecated key) as one line on stderr."""
+
+    def invoke(self, ctx):
+        with warnings.catch_warnings():
+            warnings.simplefilter("default", DeprecatedKey)      # each one once
+            shown = warnings.showwarning
+
+            def show(message, category, filename, lineno, file=None, line=None):
+                if issubclass(category, DeprecatedKey):
+                    click.echo(f"sweepgen: warning: {message}", err=True)
+                else:
+                    shown(message, category, filename, lineno, file, line)
+
+            warnings.showwarning = show
+            return super().invoke(ctx)
 
     def list_commands(self, ctx):
         return list(COMMANDS)

@@ -19,7 +19,7 @@ _SYMBOL = {"fail": "FAIL", "warn": "warn", "pass": "ok"}
 @laser_option
 @generator_option
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
-              help="Also draw each rule's margin as a bar (PNG or SVG by extension).")
+              help="Also draw each rule's headroom to its limit as a bar (PNG or SVG by extension).")
 @click.option("--table", "table_file", default=None, type=click.Path(dir_okay=False), metavar="FILE",
               help="Check a table written earlier (any installed format, or its sidecar) in place of the "
                    "scenario's own sweep: what it plays through today's laser and generator.")
@@ -65,16 +65,16 @@ def _print(report, show_all):
     sc = report.scenario
     click.echo(f"{sc.title}")
     click.echo(f"  laser: {report.laser.key} ({report.laser.chain.describe()}); generator: {report.generator.key}")
-    if report.rate is not None:
-        click.echo(f"  sample rate: {report.rate.reason}")
+    if report.rate_choice is not None:
+        click.echo(f"  sample rate: {report.rate_choice.reason}")
     rows = []
     shown = report.ordered() if show_all else [f for f in report.ordered() if f.status != "pass"]
     for f in shown:
-        margin = "—" if f.margin is None else f"{f.margin * 100:.0f} %"
-        rows.append((_SYMBOL[f.status], f.rule, si(f.value, f.unit), si(f.limit, f.unit), margin,
+        headroom = "—" if f.headroom is None else f"{f.headroom * 100:.0f} %"
+        rows.append((_SYMBOL[f.status], f.rule, si(f.value, f.unit), si(f.limit, f.unit), headroom,
                      f.message))
     if rows:
-        click.echo(table(rows, headers=("status", "rule", "value", "limit", "margin", "detail")))
+        click.echo(table(rows, headers=("status", "rule", "value", "limit", "headroom", "detail")))
     fails = report.failures()
     for f in fails:
         if f.advice:

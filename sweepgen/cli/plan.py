@@ -8,9 +8,9 @@ from sweepgen._format import si
 from sweepgen.cli._common import emit_json, handles_errors, json_option, table
 
 ROWS = [
-    ("capture_velocity", "capture (start) velocity", "m/s"),
+    ("start_velocity", "start velocity", "m/s"),
     ("end_velocity", "end velocity", "m/s"),
-    ("margin", "margin η", ""),
+    ("force_fraction", "force fraction η", ""),
     ("deceleration_min", "design deceleration, min", "m/s²"),
     ("deceleration_max", "design deceleration, max", "m/s²"),
     ("lag_velocity_start", "lag behind resonance at start", "m/s"),

@@ -36,7 +36,7 @@ def setup(key: str, count: int):
     from sweepgen.planner import plan
     from sweepgen.playback import channel_playback
     from sweepgen.render import render
-    from sweepgen.sampling import RateChoice
+    from sweepgen.sampling import SampleRateChoice
     from sweepgen.scenario import load_scenario
 
     sc = load_scenario(key)
@@ -44,7 +44,7 @@ def setup(key: str, count: int):
     laser = load_laser(str(sc.laser_path()))
     gen = load_generator(str(sc.generator_path()))
     rate = count / schedule.period
-    choice = RateChoice(rate, count, count, "benchmark", "benchmark", 1.0, 1.0)
+    choice = SampleRateChoice(rate, count, count, "benchmark", "benchmark", 1.0, 1.0)
     playing = channel_playback(schedule, laser, gen, sc.drive, linewidth=sc.species.linewidth)
     playing = dataclasses.replace(playing, rate_choice=choice)
     return schedule, render(playing, digest=sc.digest), rate
