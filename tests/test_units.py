@@ -54,3 +54,44 @@ def test_errors_name_file_and_key(value, unit, fragment):
 def test_round_trip_prefixes(x, prefix):
     factor = {"": 1, "k": 1e3, "M": 1e6, "G": 1e9, "m": 1e-3, "u": 1e-6}[prefix]
     assert math.isclose(units.parse(f"{x!r} {prefix}Hz", "Hz"), x * factor, rel_tol=1e-12, abs_tol=1e-300)
+
+
+def _conversions(ureg, names):
+    """``{name: (dimensionality, 0 and 1 of it in base units)}`` for unit names in a registry."""
+    out = {}
+    for name in names:
+        try:
+            zero, one = (ureg.Quantity(v, name).to_base_units() for v in (0.0, 1.0))
+        except Exception:                              # names that are not units by themselves
+            out[name] = None
+            continue
+        out[name] = (str(one.dimensionality), zero.magnitude, one.magnitude)
+    return out
+
+
+def test_registry_from_its_disk_cache_equals_a_fresh_one(tmp_path):
+    folder = tmp_path / "cache"
+    fresh = units.build_registry(None)
+    units.build_registry(folder)                       # fills the cache
+    assert list(folder.glob("*.pickle"))
+    cached = units.build_registry(folder)              # built from it
+    # reference: pint's own registry parsed from its definition file, unit by unit (a registry
+    # iterates over its unit names)
+    names = sorted(fresh)
+    assert len(names) > 1000
+    assert _conversions(cached, names) == _conversions(fresh, names)
+    assert cached.Quantity(10.0, "MSa/s").to("Hz").magnitude == pytest.approx(1e7)
+
+
+def test_a_damaged_or_unwritable_cache_costs_speed_not_correctness(tmp_path):
+    folder = tmp_path / "cache"
+    units.build_registry(folder)
+    for pickled in folder.glob("*.pickle"):            # cut short, as by a crash while writing
+        pickled.write_bytes(pickled.read_bytes()[:100])
+    ureg = units.build_registry(folder)
+    assert ureg.Quantity(3.0, "MHz").to("Hz").magnitude == pytest.approx(3e6)
+    assert not any(p.stat().st_size == 100 for p in folder.glob("*.pickle"))   # cleared, not kept
+    blocked = tmp_path / "a-file"
+    blocked.write_text("not a folder")
+    ureg = units.build_registry(blocked / "cache")     # cannot be made
+    assert ureg.Quantity(20.0, "degC").to("K").magnitude == pytest.approx(293.15)
