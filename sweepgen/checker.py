@@ -21,11 +21,20 @@ physics
     ``slowing_distance`` (fits between the light start, or the design atom's
     start for an explicit start time, and the target), ``chirp_start`` (an
     explicit start time leaves the atom in the light), ``deceleration``
-    (design deceleration over the largest force the light gives along the whole
-    path, ``a_d / a_max(s(z))``, at most 1), ``end_velocity`` (at most the
-    target's capture velocity), ``photon_budget`` (molecules: surviving fraction
-    ``(1 − p)^N`` at least :data:`MIN_SURVIVAL`), ``period`` (chirp start +
-    chirp + hold + return fit in one period).
+    (design deceleration over the largest force the light gives where the atoms
+    are, at the median distance of the atomic beam from the axis, along the
+    whole path, ``a_d(z) / a_max(s(z, r_½(z)))``, at most 1; see
+    :mod:`sweepgen.overlap`), ``beam_overlap`` (the fraction of the atomic beam
+    finding at least the design force all along the path; warns below
+    :data:`MIN_OVERLAP`), ``end_velocity`` (at most the target's capture
+    velocity), ``photon_budget`` (molecules) and ``depumping`` (atoms with an
+    off-resonant level): the expected fraction of the chirp's band left in the
+    bright level (:mod:`sweepgen.survival`), warning below ``chirp.min_survival``
+    (default 0.5); ``after_chirp`` (the velocity the hold, the return and the
+    rest take from atoms leaving the chirp at the end velocity where it releases
+    them, :mod:`sweepgen.afterchirp`: fails when they stop, or lose more than
+    ``STOP_FRACTION`` = 0.9 of it before the target), ``period`` (chirp start + chirp + hold +
+    return fit in one period).
 laser
     ``mode_hop_free`` (sweep span), ``chirp_rate`` and ``return_rate``
     (|dΔ/dt| during each), ``actuator_range`` (drive within the safe input
@@ -69,10 +78,10 @@ if TYPE_CHECKING:
 
 #: A finding warns when its headroom is below this fraction.
 WARN_HEADROOM = 0.2
-#: Smallest surviving fraction of molecules after the photons needed to slow them
-#: (a design choice of this tool: losing more than half the molecules to dark
-#: states calls for more repumping, or a smaller velocity change).
-MIN_SURVIVAL = 0.5
+#: Smallest fraction of the atomic beam finding the design force all along the path before
+#: ``beam_overlap`` warns (a design choice of this tool: the ``deceleration`` rule fails where
+#: fewer than half the atoms find it).
+MIN_OVERLAP = 0.5
 #: Points per segment for the dense checks of drive, slew and stage ranges.
 GRID = 4001
 
@@ -251,11 +260,9 @@ def _plan_failure(scenario, exc: PlanError) -> Finding:
 
 
 def physics_findings(plan) -> list:
-    """The planner's physics as rules: distance, deceleration, end velocity, photon budget."""
-    from sweepgen import physics
-
+    """The planner's physics as rules: distance, deceleration where the atoms are, the beam's
+    overlap with the atoms, end velocity, survival of dark states, after the chirp."""
     sc = plan.scenario
-    sp = sc.species
     out = []
     explicit = sc.pulsed and sc.chirp.start_time not in (None, "auto")
     z_from = plan.z_start if explicit else sc.light.start
@@ -263,29 +270,110 @@ def physics_findings(plan) -> list:
                      f"the design atom needs {plan.slowing_distance:.4g} m; {sc.target.distance - z_from:.4g} m lie "
                      f"between {'its start' if explicit else 'the light start'} and the target",
                      "lower chirp.start_velocity, raise chirp.force_fraction or light.saturation, or move the target"))
-    tr = plan.trajectory
-    a_avail = physics.max_deceleration(tr.saturation, sp.gamma, sp.wavelength, sp.mass)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = np.where(a_avail > 0, tr.deceleration / a_avail, np.inf)
-    worst = float(np.max(ratio))
-    i = int(np.argmax(ratio))
-    out.append(upper("deceleration", worst, 1.0, "",
-                     f"design deceleration is {worst:.3g} of the largest force the light gives (at z = "
-                     f"{tr.position[i]:.3g} m, s = {tr.saturation[i]:.3g}); common practice keeps it to 0.5-0.75",
-                     "lower chirp.force_fraction (η) for more reserve against intensity and alignment drifts"))
+    out.append(_deceleration(plan))
+    out.append(_beam_overlap(plan))
     out.append(upper("end_velocity", sc.chirp.end_velocity, sc.target.capture_velocity, "m/s",
                      f"atoms leave the chirp at {sc.chirp.end_velocity:g} m/s; the target holds up to "
                      f"{sc.target.capture_velocity:g} m/s",
                      "lower chirp.end_velocity"))
-    if sp.kind == "molecule" or sp.loss_per_photon > 0:
-        n = plan.photons_per_atom
-        surv = float(physics.survival_fraction(n, sp.loss_per_photon))
-        out.append(lower("photon_budget", surv, MIN_SURVIVAL, "",
-                         f"{surv:.3g} of the molecules survive the {n:.4g} photons needed (loss "
-                         f"{sp.loss_per_photon:.3g} per photon)",
-                         "slow over a smaller velocity range (chirp.start_velocity / end_velocity) "
-                         "or close more loss channels"))
+    survival = _survival(plan)
+    if survival is not None:
+        out.append(survival)
+    after = _after_chirp(plan)
+    if after is not None:
+        out.append(after)
     return out
+
+
+def _deceleration(plan) -> Finding:
+    """Design deceleration over the largest force where the atoms are: at the median distance of
+    the atomic beam from the axis (:mod:`sweepgen.overlap`), the worst point of the path."""
+    tr, ov = plan.trajectory, plan.overlap
+    ratio = np.divide(tr.deceleration, ov.available, out=np.full(tr.deceleration.shape, np.inf),
+                      where=ov.available > 1e-300 * tr.deceleration)
+    i = int(np.argmax(ratio))
+    worst = float(ratio[i])
+    where = (f"on the axis (unbounded light: every atom sees the on-axis force)" if not plan.scenario.light.focused
+             else f"{si(ov.median_radius[i], 'm')} from the axis, where half the atoms are closer (beam radius "
+                  f"{si(ov.beam_radius[i], 'm')})")
+    return upper("deceleration", worst, 1.0, "",
+                 f"the design deceleration {si(tr.deceleration[i], 'm/s²')} is {worst:.3g} of the largest force the "
+                 f"light gives at z = {tr.position[i]:.3g} m {where}; common practice keeps it to 0.5-0.75",
+                 "widen the slowing beam (light.waist) or collimate the atomic beam more, raise light.saturation, "
+                 "or lower chirp.force_fraction (η) for more reserve")
+
+
+def _beam_overlap(plan) -> Finding:
+    """The fraction of the atomic beam that finds at least the design force all along the path
+    (:mod:`sweepgen.overlap`); it warns below :data:`MIN_OVERLAP` (the ``deceleration`` rule fails)."""
+    ov = plan.overlap
+    frac = ov.fraction
+    low = frac < MIN_OVERLAP
+    if not plan.scenario.light.focused:
+        message = "the light has no waist (an unbounded plane wave): every atom finds the design force"
+    else:
+        message = (f"{100 * frac:.3g} % of the atomic beam finds at least the design force all along the path "
+                   f"(beam radius {si(float(np.min(ov.beam_radius)), 'm')}; half the atoms lie within "
+                   f"{si(float(np.max(ov.median_radius)), 'm')} of the axis at the widest)")
+    return Finding("beam_overlap", "warn" if low else "pass", frac, MIN_OVERLAP, "", (frac - MIN_OVERLAP) / MIN_OVERLAP,
+                   message,
+                   "widen the slowing beam (light.waist), collimate the atomic beam (source.divergence, "
+                   "[source.collimator]) or lower chirp.force_fraction" if low else "")
+
+
+def _survival(plan) -> Finding | None:
+    """Expected fraction of the band left bright after slowing (:mod:`sweepgen.survival`) against
+    ``chirp.min_survival``: a warning with the numbers when it is lower."""
+    sc = plan.scenario
+    sv = plan.survival
+    if sv.mechanism == "none":
+        return None
+    limit = sc.chirp.min_survival
+    low = sv.fraction < limit
+    sp = sc.species
+    if sv.mechanism == "dark states":
+        rule = "photon_budget"
+        message = (f"{100 * sv.fraction:.3g} % of the molecules in the chirp's band survive the photons their "
+                   f"slowing needs (loss {sp.loss_per_photon:.3g} per photon; {100 * sv.design:.3g} % of those "
+                   f"slowed from the start velocity, {plan.photons_per_atom:.4g} photons)")
+        advice = "slow over a smaller velocity range (chirp.start_velocity / end_velocity) or close more loss channels"
+    else:
+        rule = "depumping"
+        off = sp.off_resonant
+        message = (f"{100 * sv.fraction:.3g} % of the atoms in the chirp's band stay in the bright ground level: the "
+                   f"light also excites the level {si(abs(off.splitting), 'Hz')} away, which decays to the dark "
+                   f"level with probability {off.branching:.3g} ({100 * sv.design:.3g} % of those slowed from the "
+                   f"start velocity survive; {100 * sv.crossed:.3g} % of the band is swept over by that level's "
+                   f"resonance before the chirp catches it)" + ("; with the repump light" if sv.repumped else
+                                                               "; no repump light"))
+        advice = ("add or strengthen a repump light: [channels.repump] kind = \"frequency\", role = \"repump\", "
+                  "saturation = 1, offset = \"0 MHz\"")
+    return Finding(rule, "warn" if low else "pass", sv.fraction, limit, "", (sv.fraction - limit) / limit, message,
+                   advice if low else "")
+
+
+def _after_chirp(plan) -> Finding | None:
+    """The velocity the light takes after the chirp from atoms leaving it at the end velocity where
+    the chirp releases them (:mod:`sweepgen.afterchirp`); fails when they stop before the target."""
+    ac = plan.after_chirp
+    if ac is None:
+        return None
+    v_end = ac.end_velocity
+    loss = ac.velocity_loss
+    what = (f"atoms leaving the chirp at {v_end:g} m/s at z = {ac.release_position:.3g} m lose "
+            f"{ac.hold_velocity_loss:.3g} m/s in the hold and {ac.return_velocity_loss:.3g} m/s in the return")
+    if ac.stopped:
+        what += (f"; the light stops them {si(ac.stop_time, 's')} after the chirp's end, before the target, "
+                 f"and pushes them back")
+    else:
+        what += f"; they reach the target at {ac.arrival_velocity:.3g} m/s"
+    advice = ("switch the slowing light off after the chirp (a shutter or an AOM), shorten chirp.hold and "
+              "chirp.return_time, or end the chirp at a higher chirp.end_velocity")
+    from sweepgen.afterchirp import STOP_FRACTION
+
+    limit = STOP_FRACTION * v_end
+    headroom, failed = _upper_room(loss, limit)
+    return _finding("after_chirp", loss, limit, "m/s", headroom, failed or ac.stopped, what, advice)
 
 
 def period_finding(plan) -> Finding:

@@ -79,16 +79,18 @@ def _check(sc, out: Path, files: dict, echo):
 
 
 def _simulate(pb, out: Path, files: dict, echo, *, atoms: int, seed: int) -> dict:
-    """2. Simulate the atoms through the planned sweep."""
+    """2. Simulate the atoms through what the hardware plays (and, beside it, the plan itself)."""
     from sweepgen import plots
-    from sweepgen.simulate import simulate
+    from sweepgen.simulate import played_from, simulate
 
-    sim = simulate(pb.scenario, atoms=atoms, seed=seed, plan=pb.plan)
+    sim = simulate(pb.scenario, atoms=atoms, seed=seed, plan=pb.plan, played=played_from(pb))
     doc_sim = sim.to_json()
     files["simulation"] = _write_json(out / "simulate.json", doc_sim)
     files["velocity plot"] = plots.plot_simulation(sim, out / "velocities.png")
-    echo(f"  simulate: {100 * doc_sim['captured_fraction']:.2f} % of {atoms} atoms captured "
-         f"(light held at the start detuning: {100 * doc_sim['baseline_fixed_frequency_fraction']:.2f} %)")
+    ideal = doc_sim.get("ideal_captured_fraction")
+    echo(f"  simulate: {100 * doc_sim['captured_fraction']:.2f} % of {atoms} atoms captured as played"
+         + (f" ({100 * ideal:.2f} % with the plan itself)" if ideal is not None else "")
+         + f", light held at the start detuning: {100 * doc_sim['baseline_fixed_frequency_fraction']:.2f} %")
     return doc_sim
 
 
@@ -119,6 +121,27 @@ def _upload(pb, out: Path, files: dict, echo):
     return uploaded
 
 
+def _atoms_section(sc, doc_sim) -> list[str]:
+    """The summary's lines on the simulation: what was played, captured, how cold, what was lost."""
+    lost = doc_sim["lost_by_reason"]
+    ideal = doc_sim.get("ideal_captured_fraction")
+    return ["## The atoms (`simulate.json`)", "",
+            f"{doc_sim['atoms']} atoms, seed {doc_sim['seed']}, through {doc_sim['played']['reason']}: "
+            f"{100 * doc_sim['captured_fraction']:.2f} % reach the target at or below "
+            f"{sc.target.capture_velocity:g} m/s"
+            + (f" ({100 * ideal:.2f} % through the plan itself)" if ideal is not None else "")
+            + f" (without light {100 * doc_sim['baseline_no_light_fraction']:.2f} %, "
+            f"light held at the start detuning {100 * doc_sim['baseline_fixed_frequency_fraction']:.2f} %); "
+            f"{100 * doc_sim['band_fraction']:.2f} % started inside the chirp's band.", "",
+            f"The captured atoms arrive at {si(doc_sim['final_velocity_mean'], 'm/s')} on average, with "
+            f"longitudinal and transverse temperatures of {si(doc_sim['longitudinal_temperature'], 'K')} and "
+            f"{si(doc_sim['transverse_temperature'], 'K')} about their own mean (Doppler limit "
+            f"{si(doc_sim['doppler_limit'], 'K')}). Lost: {100 * lost['left_aperture']:.2f} % outside the "
+            f"aperture, {100 * lost['dark_state']:.2f} % to dark states ({100 * doc_sim['depumped_fraction']:.1f} % "
+            f"went dark at least once), {100 * lost['turned_back']:.2f} % turned back.", "",
+            "![velocities](velocities.png)", ""]
+
+
 def _summary(out, pb, doc_sim, exported, uploaded) -> Path:
     sc, report, doc_plan, table = pb.scenario, pb.report, pb.plan.to_json(), pb.table()
     up, verified = uploaded.report, uploaded.verified
@@ -136,7 +159,13 @@ def _summary(out, pb, doc_sim, exported, uploaded) -> Path:
             ("slowing distance", si(doc_plan["slowing_distance"], "m")),
             ("chirp start / arrival after trigger",
              f"{si(doc_plan['start_time'], 's')} / {si(doc_plan['arrival_time'], 's')}"),
-            ("photons per atom", f"{doc_plan['photons_per_atom']:.4g}")]
+            ("photons per atom", f"{doc_plan['photons_per_atom']:.4g}"),
+            ("largest scattering rate, saturation the atoms see",
+             f"Γ × {doc_plan['max_rate_fraction']:.3g}, s = {doc_plan['effective_saturation']:.3g}"),
+            ("atomic beam finding the design force all along the path", f"{100 * doc_plan['beam_overlap']:.1f} %"),
+            ("band expected to stay bright (depumping, dark states)", f"{100 * doc_plan['survival_fraction']:.1f} %"),
+            ("velocity the hold / the return take after the chirp",
+             f"{si(doc_plan['hold_velocity_loss'], 'm/s')} / {si(doc_plan['return_velocity_loss'], 'm/s')}")]
     lines += [f"| {a} | {b} |" for a, b in rows]
     lines += ["", "![sweep](sweep.png)", "", "## The check (`check.json`)", "",
               f"{'No rule fails' if report.ok else 'Some rules FAIL'}: "
@@ -147,15 +176,9 @@ def _summary(out, pb, doc_sim, exported, uploaded) -> Path:
         value = "" if f.value is None else si(f.value, f.unit)
         limit = "" if f.limit is None else si(f.limit, f.unit)
         lines.append(f"| {f.status} | {f.rule} | {value} | {limit} | {headroom} |")
-    lines += ["", "![drive](drive.png)", "", "![headroom](headroom.png)", "",
-              "## The atoms (`simulate.json`)", "",
-              f"{doc_sim['atoms']} atoms, seed {doc_sim['seed']}: "
-              f"{100 * doc_sim['captured_fraction']:.2f} % reach the target at or below "
-              f"{sc.target.capture_velocity:g} m/s (without light {100 * doc_sim['baseline_no_light_fraction']:.2f} %, "
-              f"light held at the start detuning {100 * doc_sim['baseline_fixed_frequency_fraction']:.2f} %); "
-              f"{100 * doc_sim['band_fraction']:.2f} % started inside the chirp's band.", "",
-              "![velocities](velocities.png)", "",
-              "## The table and the upload", "",
+    lines += ["", "![drive](drive.png)", "", "![headroom](headroom.png)", ""]
+    lines += _atoms_section(sc, doc_sim)
+    lines += ["## The table and the upload", "",
               f"- `{Path(exported['paths'][0]).relative_to(out)}`: {table.info.count} samples at "
               f"{si(table.info.sample_rate, 'Sa/s')}, sidecar `{Path(exported['paths'][1]).relative_to(out)}` "
               f"(SHA-256 `{table.sha256}`).",

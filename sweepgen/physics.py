@@ -24,11 +24,20 @@ from scipy import constants as C
 TWO_PI = 2.0 * math.pi
 
 
-def scattering_rate(detuning, velocity, saturation, gamma, wavelength):
-    """Photon scattering rate of a two-level atom in one travelling wave.
+#: largest scattering rate of a two-level atom (a closed cycling transition) as a fraction of Γ
+TWO_LEVEL_FRACTION = 0.5
 
-    ``R = (Γ/2) s / (1 + s + (2·2π(Δ + v/λ)/Γ)²)`` (Foot 2005, eq. 7.68 with the
-    Doppler shift of an atom moving against the light, §9.3.1).
+
+def scattering_rate(detuning, velocity, saturation, gamma, wavelength, rate_fraction=TWO_LEVEL_FRACTION):
+    """Photon scattering rate in one travelling wave.
+
+    ``R = f Γ s / (1 + s + (2·2π(Δ + v/λ)/Γ)²)`` with ``f = 1/2`` for a two-level
+    atom (Foot 2005, eq. 7.68 with the Doppler shift of an atom moving against
+    the light, §9.3.1). A multi-level system with ``n_g`` ground and ``n_e``
+    excited sub-levels coupled by the light has the same form with
+    ``f = n_e/(n_g + n_e)`` and ``s`` measured against its effective saturation
+    intensity (M. R. Tarbutt, New J. Phys. 17, 015007 (2015), rate-equation model,
+    recalled); see :func:`multilevel_rate_fraction`.
 
     Parameters
     ----------
@@ -42,6 +51,8 @@ def scattering_rate(detuning, velocity, saturation, gamma, wavelength):
         Decay rate Γ, s⁻¹.
     wavelength : float
         Transition wavelength λ, m.
+    rate_fraction : float
+        ``f``, the largest scattering rate as a fraction of Γ (1/2 for two levels).
 
     Returns
     -------
@@ -50,17 +61,45 @@ def scattering_rate(detuning, velocity, saturation, gamma, wavelength):
     """
     seen = detuning + velocity / wavelength
     x = 2.0 * TWO_PI * seen / gamma
-    return 0.5 * gamma * saturation / (1.0 + saturation + x * x)
+    return rate_fraction * gamma * saturation / (1.0 + saturation + x * x)
 
 
-def max_deceleration(saturation, gamma, wavelength, mass):
+def multilevel_rate_fraction(ground_states, excited_states):
+    """Largest scattering rate of a multi-level system as a fraction of Γ, ``n_e/(n_g + n_e)``.
+
+    With all ``n_g`` ground and ``n_e`` excited sub-levels coupled and the light
+    strong, the population spreads evenly over all of them and only the excited
+    ones scatter (M. R. Tarbutt, New J. Phys. 17, 015007 (2015), recalled). Two
+    levels give 1/2; CaF's main cycle (24 ground, 4 excited sub-levels) gives 1/7.
+    """
+    return excited_states / (ground_states + excited_states)
+
+
+def max_deceleration(saturation, gamma, wavelength, mass, rate_fraction=TWO_LEVEL_FRACTION):
     """Largest radiation-pressure deceleration at saturation parameter s.
 
-    ``a_max(s) = (ħkΓ / 2m) · s / (1 + s)`` with ``k = 2π/λ`` (Foot 2005, §9.3.1;
-    resonant light, no Doppler shift).
+    ``a_max(s) = (ħkΓ f / m) · s / (1 + s)`` with ``k = 2π/λ`` and ``f`` the
+    largest scattering rate as a fraction of Γ: ``ħkΓ/2m · s/(1+s)`` for a
+    two-level atom (Foot 2005, §9.3.1; resonant light, no Doppler shift).
     """
     k = TWO_PI / wavelength
-    return C.hbar * k * gamma / (2.0 * mass) * saturation / (1.0 + saturation)
+    return C.hbar * k * gamma * rate_fraction / mass * saturation / (1.0 + saturation)
+
+
+def off_resonant_ratio(seen_detuning, saturation, gamma, splitting, strength):
+    """Excitation rate of the nearest off-resonant excited level over that of the cycling one.
+
+    Two Lorentzians of the same width: the cycling transition at the detuning
+    the atom sees, ``δ = Δ + v/λ``, and the neighbouring excited level,
+    ``splitting`` (Hz) away, with relative line strength ``κ``:
+    ``κ (1 + s + x²) / (1 + κ s + x_off²)``, ``x = 2·2πδ/Γ``,
+    ``x_off = 2·2π(δ − splitting)/Γ`` (the ratio of two rates of
+    :func:`scattering_rate`; Foot 2005, ch. 7, the two-level rate applied to each
+    transition). For δ ≈ 0 and low intensity it is ``κ (Γ/2)²/(2π·splitting)²``.
+    """
+    x = 2.0 * TWO_PI * np.asarray(seen_detuning, dtype=float) / gamma
+    x_off = 2.0 * TWO_PI * (np.asarray(seen_detuning, dtype=float) - splitting) / gamma
+    return strength * (1.0 + saturation + x * x) / (1.0 + strength * saturation + x_off * x_off)
 
 
 def lag_velocity(saturation, force_fraction, gamma, wavelength):
@@ -110,14 +149,20 @@ def rayleigh_range(waist, wavelength):
     return math.pi * waist * waist / wavelength
 
 
-def gaussian_beam_saturation(z, s0, z_focus, z_rayleigh):
-    """On-axis saturation parameter of a focused Gaussian beam.
+def gaussian_beam_saturation(z, s0, z_focus, z_rayleigh, radius=0.0, waist=None):
+    """Saturation parameter of a Gaussian beam at ``z`` and distance ``radius`` from its axis.
 
-    ``s(z) = s0 / (1 + ((z - z_focus)/z_R)²)`` (on-axis intensity of a Gaussian
-    beam, Siegman 1986, ch. 17).
+    ``s(z, r) = s0 / q · exp(−2 r² / (w0² q))``, ``q = 1 + ((z − z_focus)/z_R)²``,
+    so that the beam radius is ``w(z) = w0 sqrt(q)`` and the on-axis value is
+    ``s0 / q`` (TEM00 intensity, Siegman 1986, ch. 17). ``waist`` (w0) is needed
+    only off the axis.
     """
     u = (np.asarray(z, dtype=float) - z_focus) / z_rayleigh
-    return s0 / (1.0 + u * u)
+    q = 1.0 + u * u
+    if waist is None:
+        return s0 / q
+    r = np.asarray(radius, dtype=float)
+    return s0 / q * np.exp(-2.0 * r * r / (waist * waist * q))
 
 
 def velocity_width(gamma, wavelength, saturation=0.0):

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from scipy.integrate import solve_ivp
@@ -38,7 +39,7 @@ class Trajectory:
     position: np.ndarray      # m
     velocity: np.ndarray      # m/s
     deceleration: np.ndarray  # m/s², design deceleration a_d(z)
-    saturation: np.ndarray    # s(z)
+    saturation: np.ndarray    # effective s(z) on axis
     lag: np.ndarray           # m/s, Δv_lag(z)
     detuning: np.ndarray      # Hz
     chirp_rate: np.ndarray    # Hz/s, dΔ/dt
@@ -104,10 +105,41 @@ class Plan:
         sp = self.species
         return physics.photons_to_slow(self.start_velocity - self.end_velocity, sp.mass, sp.wavelength)
 
+    # -- what the design leaves out, estimated along the design path ---------------
+    @cached_property
+    def after_chirp(self):
+        """What the hold and the return take from atoms leaving the chirp (:mod:`sweepgen.afterchirp`);
+        None when one period cannot hold the sweep."""
+        from sweepgen.afterchirp import after_chirp
+        from sweepgen.errors import PlanError
+
+        try:
+            schedule = self.schedule()
+        except PlanError:
+            return None
+        return after_chirp(self, schedule)
+
+    @cached_property
+    def survival(self):
+        """Expected survival of the band (:mod:`sweepgen.survival`)."""
+        from sweepgen.survival import expected_survival
+
+        return expected_survival(self)
+
+    @cached_property
+    def overlap(self):
+        """The atomic beam in the slowing beam along the design path (:mod:`sweepgen.overlap`)."""
+        from sweepgen.overlap import beam_overlap
+
+        return beam_overlap(self)
+
     def to_json(self) -> dict:
         """The ``sweepgen plan --json`` document (SI units, Hz for detunings)."""
         sp = self.species
         tr = self.trajectory
+        after = (self.after_chirp.to_json() if self.after_chirp is not None else
+                 {k: None for k in ("hold_velocity_loss", "return_velocity_loss", "after_chirp_velocity",
+                                    "after_chirp_stopped", "after_chirp_stop_time", "release_position")})
         return {
             "start_velocity": self.start_velocity,
             "end_velocity": self.end_velocity,
@@ -128,7 +160,11 @@ class Plan:
             "recoil_velocity": physics.recoil_velocity(sp.mass, sp.wavelength),
             "start_position": self.z_start,
             "end_position": self.z_end,
-            "survival_fraction": float(physics.survival_fraction(self.photons_per_atom, sp.loss_per_photon)),
+            "max_rate_fraction": sp.rate_fraction,
+            "effective_saturation": self.scenario.light.peak,
+            "survival_fraction": self.survival.fraction,
+            "beam_overlap": self.overlap.fraction,
+            **after,
         }
 
     def schedule(self):
@@ -156,7 +192,8 @@ def _integrate(scenario: Scenario, z0: float, *, dense: bool):
     eta = ch.force_fraction
 
     def accel(z):
-        return eta * physics.max_deceleration(float(light.saturation_at(z)), sp.gamma, sp.wavelength, sp.mass)
+        return eta * physics.max_deceleration(float(light.saturation_at(z)), sp.gamma, sp.wavelength, sp.mass,
+                                              sp.rate_fraction)
 
     def rhs(_t, y):
         return (y[1], -accel(y[0]))
@@ -170,7 +207,8 @@ def _integrate(scenario: Scenario, z0: float, *, dense: bool):
     # An upper bound on the time: the weakest deceleration between z0 and far beyond the target.
     z_far = max(scenario.target.distance, z0) + 10.0 * max(scenario.target.distance, 1.0)
     zs = np.linspace(z0, z_far, 2001)
-    a_min = eta * physics.max_deceleration(light.saturation_at(zs).min(), sp.gamma, sp.wavelength, sp.mass)
+    a_min = eta * physics.max_deceleration(light.saturation_at(zs).min(), sp.gamma, sp.wavelength, sp.mass,
+                                           sp.rate_fraction)
     if a_min <= 0:
         raise PlanError("the slowing light has zero intensity somewhere on the path", file=str(scenario.path),
                         key="light")
@@ -270,7 +308,7 @@ def _sample(scenario: Scenario, sol, duration: float) -> Trajectory:
     v[-1] = scenario.chirp.end_velocity       # the event's value, exactly
     v[0] = scenario.chirp.start_velocity
     s = light.saturation_at(z)
-    a = eta * physics.max_deceleration(s, sp.gamma, sp.wavelength, sp.mass)
+    a = eta * physics.max_deceleration(s, sp.gamma, sp.wavelength, sp.mass, sp.rate_fraction)
     lag = physics.lag_velocity(s, eta, sp.gamma, sp.wavelength)
     detuning = -(v + lag) / sp.wavelength
     # d(lag)/dz = (λΓ/4π) sqrt(1/η - 1) · (ds/dz) / (2 sqrt(1+s))

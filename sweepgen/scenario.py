@@ -16,9 +16,10 @@ from pathlib import Path
 
 from sweepgen import catalog
 from sweepgen._config import Section, load_toml_bytes
+from sweepgen.channels import channels_from_section
 from sweepgen.errors import DeprecatedKey, InputError
 from sweepgen.physics import gaussian_beam_saturation, rayleigh_range
-from sweepgen.sources import EffusiveSource, GaussianSource
+from sweepgen.sources import PULSE_SHAPES, Collimator, EffusiveSource, Emission, GaussianSource
 from sweepgen.species import Species, load_species
 
 import numpy as np
@@ -26,39 +27,53 @@ import numpy as np
 
 @dataclass(frozen=True)
 class Light:
-    """The slowing beam along the beam line (it propagates along -z)."""
+    """The slowing beam along the beam line (it propagates along -z).
 
-    saturation: float           # peak s0 on axis
+    ``saturation`` is the peak ``s0 = I/I_sat`` on axis as the scenario gives it,
+    measured against the species' ``saturation_intensity``; the atoms see
+    ``effective_factor`` times that (``I_sat / I_sat,eff``, 1 when the species
+    gives no effective saturation intensity). :meth:`saturation_at` and
+    :attr:`peak` are the effective values, the ones every rate uses.
+    """
+
+    saturation: float           # peak s0 on axis, as written in the scenario
     start: float                # m, where the light begins along the beam line
-    waist: float | None = None  # m, 1/e² radius at the focus (None: uniform)
+    waist: float | None = None  # m, 1/e² radius at the focus (None: unbounded plane wave)
     focus: float = 0.0          # m, position of the focus
     wavelength: float = 0.0     # m, needed for the Rayleigh range
+    effective_factor: float = 1.0   # I_sat / I_sat,eff of the species
 
     @property
     def focused(self) -> bool:
+        """Whether the light is a Gaussian beam (a waist is given); else an unbounded plane wave."""
         return self.waist is not None
 
     @property
     def rayleigh_range(self) -> float | None:
         return rayleigh_range(self.waist, self.wavelength) if self.focused else None
 
-    def saturation_at(self, z):
-        """Saturation parameter s(z) on axis; zero before the light start."""
+    @property
+    def peak(self) -> float:
+        """Effective saturation parameter on axis at the focus (or everywhere, unbounded light)."""
+        return self.saturation * self.effective_factor
+
+    def saturation_at(self, z, radius=0.0):
+        """Effective saturation parameter at ``z`` and ``radius`` from the axis; zero before the light start."""
         z = np.asarray(z, dtype=float)
         if self.focused:
-            s = gaussian_beam_saturation(z, self.saturation, self.focus, self.rayleigh_range)
+            s = gaussian_beam_saturation(z, self.peak, self.focus, self.rayleigh_range, radius, self.waist)
         else:
-            s = np.full_like(z, self.saturation)
+            s = np.full(np.broadcast(z, np.asarray(radius)).shape, self.peak)
         return np.where(z >= self.start, s, 0.0)
 
     def saturation_slope(self, z):
-        """ds/dz on axis (zero for uniform light and before the light start)."""
+        """d s_eff/dz on axis (zero for unbounded light and before the light start)."""
         z = np.asarray(z, dtype=float)
         if not self.focused:
             return np.zeros_like(z)
         zr = self.rayleigh_range
         u = (z - self.focus) / zr
-        slope = -2.0 * self.saturation * u / (zr * (1.0 + u * u) ** 2)
+        slope = -2.0 * self.peak * u / (zr * (1.0 + u * u) ** 2)
         return np.where(z >= self.start, slope, 0.0)
 
 
@@ -78,6 +93,7 @@ class Chirp:
     hold: float                 # s
     return_time: float          # s
     period: float               # s
+    min_survival: float = 0.5   # smallest expected fraction left bright after slowing (check warns below)
 
 
 @dataclass(frozen=True)
@@ -98,19 +114,34 @@ class Scenario:
     path: Path
     species: Species
     source: object                # EffusiveSource | GaussianSource
-    pulse_time: float | None      # s; None for a continuous beam
-    divergence: float | None      # rad, 1σ source divergence (transverse model), optional
+    emission: Emission            # when, where and in which directions the source emits
     light: Light
     target: Target
     chirp: Chirp
     drive: Drive
+    channels: tuple = ()          # Channel, ... ([channels.NAME])
     laser_ref: str | None = None
     generator_ref: str | None = None
     digest: str = field(default="", compare=False)
 
     @property
     def pulsed(self) -> bool:
-        return self.pulse_time is not None
+        return self.emission.pulse_time is not None
+
+    @property
+    def pulse_time(self) -> float | None:
+        """s, the leading edge of the source pulse (None for a continuous beam)."""
+        return self.emission.pulse_time
+
+    @property
+    def divergence(self) -> float | None:
+        """rad, 1σ source divergence per axis (None: not given)."""
+        return self.emission.divergence
+
+    @property
+    def repumps(self) -> tuple:
+        """The channels with ``role = "repump"``."""
+        return tuple(c for c in self.channels if c.role == "repump")
 
     @property
     def base_dir(self) -> Path:
@@ -151,23 +182,24 @@ def scenario_from_dict(data: dict, path, raw: bytes | None = None) -> Scenario:
     species = load_species(species_ref, relative_to=path.parent, file=file, key="species")
     laser_ref = top.string("laser", None)
     generator_ref = top.string("generator", None)
-    source, pulse_time, divergence = _read_source(top.section("source"), species)
+    source, emission = _read_source(top.section("source"), species)
     light = _read_light(top.section("light"), species)
     target = _read_target(top.section("target"), light)
-    chirp = _read_chirp(top.section("chirp"), pulse_time, file)
+    chirp = _read_chirp(top.section("chirp"), emission, file)
     drive = _read_drive(top.section("drive", None))
+    channels = channels_from_section(top.section("channels", None), species)
     top.finish()
 
     if raw is None:
         raw = json.dumps(data, sort_keys=True, default=str).encode()
     digest = scenario_digest(raw, [catalog.resolve("species", species_ref, relative_to=path.parent)])
-    return Scenario(title=title, path=path, species=species, source=source, pulse_time=pulse_time,
-                    divergence=divergence, light=light, target=target, chirp=chirp, drive=drive,
-                    laser_ref=laser_ref, generator_ref=generator_ref, digest=digest)
+    return Scenario(title=title, path=path, species=species, source=source, emission=emission, light=light,
+                    target=target, chirp=chirp, drive=drive, channels=channels, laser_ref=laser_ref,
+                    generator_ref=generator_ref, digest=digest)
 
 
 def _read_source(src: Section, species: Species):
-    """``[source]``: the velocity model, the pulse time (pulsed sources) and the divergence."""
+    """``[source]``: the velocity model and the :class:`Emission` (pulse, size, directions)."""
     model = src.string("model", choices=("effusive", "gaussian"))
     if model == "effusive":
         temperature = src.quantity("temperature", "K", positive=True, example="390 K")
@@ -177,9 +209,24 @@ def _read_source(src: Section, species: Species):
         spread = src.quantity("velocity_spread", "m/s", positive=True, example="30 m/s")
         source = GaussianSource(mean_velocity=mean, velocity_spread=spread)
     pulse_time = src.quantity("pulse_time", "s", None, nonnegative=True, example="0 ms")
+    for name in ("pulse_duration", "pulse_shape"):
+        if src.has(name) and pulse_time is None:
+            raise src.error(name, "a continuous beam has no pulse; add source.pulse_time for a pulsed source")
+    duration = src.quantity("pulse_duration", "s", 0.0, nonnegative=True, example="1 ms")
+    shape = src.string("pulse_shape", "flat", choices=PULSE_SHAPES)
+    radius = src.quantity("radius", "m", 0.0, nonnegative=True, example="1.5 mm")
     divergence = src.quantity("divergence", "rad", None, positive=True, example="10 mrad")
+    collimator = None
+    if src.has("collimator"):
+        if divergence is not None:
+            raise src.error("collimator", "give either source.divergence or [source.collimator], not both")
+        col = src.section("collimator")
+        collimator = Collimator(distance=col.quantity("distance", "m", positive=True, example="0.2 m"),
+                                radius=col.quantity("radius", "m", positive=True, example="1 mm"))
+        col.finish()
     src.finish()
-    return source, pulse_time, divergence
+    return source, Emission(pulse_time=pulse_time, pulse_duration=duration, pulse_shape=shape, radius=radius,
+                            divergence=divergence, collimator=collimator)
 
 
 def _read_light(lt: Section, species: Species) -> Light:
@@ -191,7 +238,8 @@ def _read_light(lt: Section, species: Species) -> Light:
         raise lt.error("focus", "a focus needs a waist; add light.waist (1/e² radius at the focus)")
     focus = lt.quantity("focus", "m", 0.0, example="0 m")
     lt.finish()
-    return Light(saturation=s0, start=light_start, waist=waist, focus=focus, wavelength=species.wavelength)
+    return Light(saturation=s0, start=light_start, waist=waist, focus=focus, wavelength=species.wavelength,
+                 effective_factor=species.saturation_factor)
 
 
 def _read_target(tg: Section, light: Light) -> Target:
@@ -206,7 +254,7 @@ def _read_target(tg: Section, light: Light) -> Target:
     return Target(distance=distance, capture_velocity=capture_velocity, aperture=aperture)
 
 
-def _read_chirp(ch: Section, pulse_time: float | None, file: str) -> Chirp:
+def _read_chirp(ch: Section, emission: Emission, file: str) -> Chirp:
     """``[chirp]``: velocities, η, start time (pulsed sources only), hold, return, period."""
     v1 = ch.quantity("start_velocity", "m/s", positive=True, example="260 m/s")
     v2 = ch.quantity("end_velocity", "m/s", positive=True, example="15 m/s")
@@ -214,6 +262,7 @@ def _read_chirp(ch: Section, pulse_time: float | None, file: str) -> Chirp:
         raise ch.error("end_velocity", f"expected an end velocity below the start velocity "
                                        f"({v1:g} m/s), got {ch.data['end_velocity']!r}")
     force_fraction = _read_force_fraction(ch)
+    pulse_time = emission.pulse_time
     if ch.has("start_time"):
         start_raw = ch.raw("start_time")
         if pulse_time is None:
@@ -228,13 +277,16 @@ def _read_chirp(ch: Section, pulse_time: float | None, file: str) -> Chirp:
     hold = ch.quantity("hold", "s", 0.0, nonnegative=True, example="0.5 ms")
     return_time = ch.quantity("return_time", "s", positive=True, example="0.3 ms")
     period = ch.quantity("period", "s", positive=True, example="20 ms")
+    min_survival = ch.number("min_survival", 0.5, minimum=0.0, maximum=1.0, exclusive=True)
     ch.finish()
-    if pulse_time is not None and pulse_time >= period:
-        raise InputError(f"the source pulse at {pulse_time:g} s lies outside the period ({period:g} s); "
+    if pulse_time is not None and pulse_time + emission.pulse_duration >= period:
+        what = "pulse" if emission.pulse_duration else "source pulse"
+        raise InputError(f"the {what} at {pulse_time:g} s" + (f" lasting {emission.pulse_duration:g} s"
+                         if emission.pulse_duration else "") + f" does not end within the period ({period:g} s); "
                          f"set source.pulse_time below chirp.period or lengthen chirp.period",
                          file=file, key="source.pulse_time")
     return Chirp(start_velocity=v1, end_velocity=v2, force_fraction=force_fraction, start_time=start_time,
-                 hold=hold, return_time=return_time, period=period)
+                 hold=hold, return_time=return_time, period=period, min_survival=min_survival)
 
 
 def _read_force_fraction(ch: Section) -> float:

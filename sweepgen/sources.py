@@ -92,3 +92,75 @@ class GaussianSource:
     def mean(self) -> float:
         """Mean of the untruncated normal, ``u`` (the truncation at v > 0 shifts it up slightly)."""
         return self.mean_velocity
+
+
+# -- when, where and in which directions the source emits ------------------------------------
+#: FWHM of a normal distribution in units of its standard deviation, 2 sqrt(2 ln 2)
+FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
+PULSE_SHAPES = ("flat", "gaussian")
+
+
+@dataclass(frozen=True)
+class Collimator:
+    """A collimating aperture: a disc of ``radius`` at ``distance`` from the source, on the axis."""
+
+    distance: float     # m
+    radius: float       # m
+
+
+@dataclass(frozen=True)
+class Emission:
+    """When, where and in which directions the source emits (all optional but the pulse time).
+
+    * time: a continuous beam (``pulse_time`` None) emits uniformly over the
+      period; a pulsed source starts at ``pulse_time``: a ``flat`` pulse lasts
+      ``pulse_duration``; a ``gaussian`` pulse has that full width at half
+      maximum and its leading half-maximum point at ``pulse_time``. Either way
+      the pulse's leading edge is ``pulse_time`` (the design atom's emission time).
+    * place: uniform over a disc of ``radius`` around the axis (0: a point);
+    * direction: angles ``θx, θy ~ N(0, divergence)`` per axis, or the lines from
+      the source disc through a ``collimator`` disc (the atoms that pass it: a
+      uniform point in each disc, the small-angle limit of an emitter with a
+      cosine law, whose flux through a distant disc is uniform over it; Ramsey
+      1956, ch. II), or straight along the axis.
+    """
+
+    pulse_time: float | None = None     # s
+    pulse_duration: float = 0.0         # s
+    pulse_shape: str = "flat"
+    radius: float = 0.0                 # m
+    divergence: float | None = None     # rad, 1σ per axis
+    collimator: Collimator | None = None
+
+    def times(self, rng: np.random.Generator, n: int, period: float) -> np.ndarray:
+        """Emission times on the period's axis (s)."""
+        if self.pulse_time is None:
+            return rng.uniform(0.0, period, n)
+        d = self.pulse_duration
+        if d <= 0:
+            return np.full(n, float(self.pulse_time))
+        if self.pulse_shape == "flat":
+            return self.pulse_time + d * rng.random(n)
+        return self.pulse_time + 0.5 * d + rng.normal(0.0, d / FWHM_PER_SIGMA, n)
+
+    def transverse(self, rng: np.random.Generator, velocity: np.ndarray):
+        """Transverse positions at ``z = 0`` and velocities: ``(x, y, v_x, v_y)`` (m, m/s)."""
+        n = velocity.size
+        x, y = _disc(rng, n, self.radius)
+        if self.collimator is not None:
+            xc, yc = _disc(rng, n, self.collimator.radius)
+            tx, ty = (xc - x) / self.collimator.distance, (yc - y) / self.collimator.distance
+        elif self.divergence is not None:
+            tx, ty = rng.normal(0.0, self.divergence, (2, n))
+        else:
+            tx = ty = np.zeros(n)
+        return x, y, velocity * tx, velocity * ty
+
+
+def _disc(rng, n, radius):
+    """``n`` points uniform over a disc of ``radius`` (radius sqrt(U), uniform angle)."""
+    if radius <= 0:
+        return np.zeros(n), np.zeros(n)
+    r = radius * np.sqrt(rng.random(n))
+    phi = 2.0 * math.pi * rng.random(n)
+    return r * np.cos(phi), r * np.sin(phi)

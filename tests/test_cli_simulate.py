@@ -8,7 +8,7 @@ import pytest
 from conftest import run_cli as run, scenario_dict
 
 KEYS = {"atoms", "seed", "captured_fraction", "band_fraction", "final_velocity_mean", "final_velocity_spread",
-        "final_temperature", "photons_mean", "lost_fraction", "lost_by_reason", "baseline_no_light_fraction",
+        "longitudinal_temperature", "transverse_temperature", "doppler_limit", "photons_mean", "lost_fraction", "lost_by_reason", "baseline_no_light_fraction",
         "baseline_fixed_frequency_fraction", "histograms"}
 
 FAST = {"source": {"model": "gaussian", "mean_velocity": "150 m/s", "velocity_spread": "20 m/s",

@@ -110,7 +110,8 @@ def test_numbers_of_a_table_agree_with_its_plan(rendered, tmp_path):
     # a part ends where the detuning comes within one code step of the level: the time to move a step
     dt = step / p.chirp_rate_max + 1 / table.info.sample_rate
     assert nums["chirp_duration"] == pytest.approx(p.chirp_duration, abs=2 * dt)
-    assert nums["chirp_start"] == pytest.approx(p.chirp_start, abs=dt)
+    # the start level is itself rounded to a code (half a step), so the start may show up to half a step later
+    assert nums["chirp_start"] == pytest.approx(p.chirp_start, abs=dt + 0.5 * step / p.chirp_rate_max)
     assert nums["chirp_rate_max"] == pytest.approx(p.chirp_rate_max, rel=0.01)
     sched, error = readback.table_schedule(back.detuning(), back.sample_rate, nums["period_count"], step)
     assert error <= 2 * step

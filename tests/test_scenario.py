@@ -20,7 +20,15 @@ def test_builtin_scenario_in_si():
     assert isinstance(sc.source, EffusiveSource) and sc.source.temperature == 390.0
     assert sc.chirp.hold == 0.0 and sc.chirp.period == pytest.approx(0.02)
     assert sc.chirp.return_time == pytest.approx(3e-4)
-    assert sc.divergence == pytest.approx(3e-3) and sc.target.aperture == pytest.approx(10e-3)
+    assert sc.divergence is None and sc.target.aperture == pytest.approx(10e-3)
+    em = sc.emission
+    assert em.pulse_duration == pytest.approx(0.2e-3) and em.pulse_shape == "flat" and em.radius == pytest.approx(1e-3)
+    assert em.collimator.distance == pytest.approx(0.3) and em.collimator.radius == pytest.approx(1e-3)
+    assert sc.light.waist == pytest.approx(12e-3)
+    # s is measured against the cycling saturation intensity; the atoms see s·I_sat/I_sat,eff (species file)
+    assert sc.light.peak == pytest.approx(3.0 * 1.66933 / 3.57713, rel=1e-6)
+    (repump,) = sc.repumps
+    assert repump.name == "repump" and repump.kind == "frequency" and repump.offset == 0.0 and repump.follows
     assert len(sc.digest) == 64
 
 

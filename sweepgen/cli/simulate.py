@@ -28,31 +28,41 @@ def _pct(x) -> str:
               help="Fly the atoms through what a table written earlier plays (through the scenario's laser, "
                    "or --laser) instead of the planned sweep.")
 @laser_option
+@click.option("--ideal", is_flag=True, default=False,
+              help="Play the planned sweep itself instead of what the hardware plays (the sweep through the "
+                   "laser's chain, quantised by the generator, filtered by the actuator response).")
 @handles_errors
-def command(scenario, atoms, seed, as_json, plot_file, table_file, laser_ref):
+def command(scenario, atoms, seed, as_json, plot_file, table_file, laser_ref, ideal):
     """Fly atoms from the source of SCENARIO (a built-in key or a path) through
-    the slowing light with the planned sweep, and report how many reach the
-    target slow enough to be held, with what velocity spread, and what is lost
-    (turned back, outside the target aperture, dark states). Two baselines use
-    the same atoms: no light, and the light held at the start detuning.
+    the slowing light with the detuning the hardware plays (the sweep through
+    the laser's tuning chain, quantised to the generator's codes and filtered
+    by the actuator response; --ideal plays the plan itself), and report how
+    many reach the target slow enough to be held, with what velocity spread and
+    temperatures, and what is lost (turned back, outside the target aperture,
+    dark states). Two baselines use the same atoms: no light, and the light
+    held at the start detuning.
 
     \b
     Example:
       sweepgen simulate rb87-chopped-oven --atoms 20000 --seed 3 --plot atoms.png
     """
     from sweepgen.scenario import load_scenario
-    from sweepgen.simulate import simulate
+    from sweepgen.simulate import played_table, simulate
 
     if plot_file and not plot_file.lower().endswith((".png", ".svg")):
         # refuse before a long run (the same rule as sweepgen.plots.save)
         raise InputError(f"plot file must end in .png or .svg, got {plot_file!r}", key="--plot")
+    if ideal and table_file:
+        raise InputError("--ideal plays the planned sweep and --table an old table: give one of them",
+                         key="--ideal")
     sc = load_scenario(scenario)
-    played = _table_sweep(sc, table_file, laser_ref) if table_file else None
-    result = simulate(sc, atoms=atoms, seed=seed, schedule=played.schedule if played else None)
+    sweep = _table_sweep(sc, table_file, laser_ref) if table_file else None
+    result = simulate(sc, atoms=atoms, seed=seed, ideal=ideal,
+                      played=played_table(sc, sweep) if sweep is not None else None)
     doc = result.to_json()
-    if played is not None:
-        doc["table"] = {"file": str(played.table.path), "table_sha256": played.table.table_sha256(),
-                        "laser": played.laser.key, "representation_error": played.error}
+    if sweep is not None:
+        doc["table"] = {"file": str(sweep.table.path), "table_sha256": sweep.table.table_sha256(),
+                        "laser": sweep.laser.key, "representation_error": sweep.error}
     if plot_file:
         from sweepgen.plots import plot_simulation
 
@@ -61,19 +71,23 @@ def command(scenario, atoms, seed, as_json, plot_file, table_file, laser_ref):
         emit_json(doc)
         return
     lost = doc["lost_by_reason"]
-    if played is not None:
-        click.echo(f"sweep: {played.table.path} through laser '{played.laser.key}'")
+    click.echo(f"detuning played: {doc['played']['reason']}")
     click.echo(f"{sc.title}  [{sc.species.key}, {'pulsed' if sc.pulsed else 'continuous'} source, "
                f"{doc['atoms']} atoms, seed {doc['seed']}]")
-    rows = [
-        ("captured at the target", _pct(doc["captured_fraction"])),
+    rows = [("captured at the target", _pct(doc["captured_fraction"]))]
+    if "ideal_captured_fraction" in doc:
+        rows.append(("captured, the plan itself played", _pct(doc["ideal_captured_fraction"])))
+    rows += [
         ("initially in the chirp's band", _pct(doc["band_fraction"])),
         ("captured without light (baseline)", _pct(doc["baseline_no_light_fraction"])),
         ("captured, light at start detuning", _pct(doc["baseline_fixed_frequency_fraction"])),
         ("final velocity, mean", si(doc["final_velocity_mean"], "m/s")),
         ("final velocity, spread (1σ)", si(doc["final_velocity_spread"], "m/s")),
-        ("final longitudinal temperature", si(doc["final_temperature"], "K")),
+        ("longitudinal temperature (captured)", si(doc["longitudinal_temperature"], "K")),
+        ("transverse temperature (captured)", si(doc["transverse_temperature"], "K")),
+        ("Doppler limit", si(doc["doppler_limit"], "K")),
         ("photons per captured atom", si(doc["photons_mean"], "photons")),
+        ("went dark at least once (depumped)", _pct(doc["depumped_fraction"])),
         ("lost: turned back", _pct(lost["turned_back"])),
         ("lost: outside the aperture", _pct(lost["left_aperture"])),
         ("lost: dark states", _pct(lost["dark_state"])),
@@ -82,8 +96,9 @@ def command(scenario, atoms, seed, as_json, plot_file, table_file, laser_ref):
     ]
     if doc.get("arrival_time_mean") is not None:
         rows.append(("mean arrival of captured atoms", si(doc["arrival_time_mean"], "s")))
-    if sc.species.loss_per_photon == 0:
-        rows = [r for r in rows if r[0] != "lost: dark states"]
+    darkens = sc.species.loss_per_photon > 0 or sc.species.off_resonant is not None
+    if not darkens:
+        rows = [r for r in rows if r[0] not in ("lost: dark states", "went dark at least once (depumped)")]
     if sc.target.aperture is None:
         rows = [r for r in rows if r[0] != "lost: outside the aperture"]
     click.echo(table(rows))
