@@ -25,9 +25,10 @@ import time
 import zlib
 from typing import ClassVar
 
-from sweepgen.wire import frames as fr
 from sweepgen.drivers.base import Delivery, Driver
 from sweepgen.errors import CheckFailed, InputError, InstrumentError
+from sweepgen.wire import frames as fr
+from sweepgen.wire.bounds import clamp_deadline, transfer_deadline
 
 DEFAULT_RETRIES = 5
 DEFAULT_RESTARTS = 2
@@ -198,10 +199,16 @@ class _Link:
         self.sent = 0             # bytes written to the link, retransmissions included
 
     def reply_timeout(self, nbytes: int) -> float:
-        """Base timeout of the link plus the time to move ``nbytes`` and a reply at its throughput."""
-        return self.timeout + (nbytes + _REPLY_ALLOWANCE) / self.throughput
+        """Base timeout of the link plus the time to move ``nbytes`` and a reply at its throughput,
+        clamped (:mod:`sweepgen.wire.bounds`)."""
+        return transfer_deadline(self.timeout, nbytes + _REPLY_ALLOWANCE, self.throughput, factor=1.0)
 
     def flush_input(self) -> None:
+        """Forget every byte received so far (decoded, half-decoded or still in the port's buffer)."""
+        try:
+            self.port.reset_input_buffer()
+        except Exception:            # a broken link: the decoder below still starts afresh
+            pass
         self.decoder.reset()
         self.queue.clear()
 
@@ -304,12 +311,10 @@ class SerialDriver(Driver):
         plan = _Plan(table, generator, dict(delivery.options))
         link_cfg = getattr(generator, "link", None)
         baud = getattr(link_cfg, "baud", None) or DEFAULT_BAUD
-        timeout = getattr(link_cfg, "timeout", None) or DEFAULT_TIMEOUT
+        timeout = clamp_deadline(getattr(link_cfg, "timeout", None) or DEFAULT_TIMEOUT)
         throughput = (getattr(link_cfg, "throughput", None)
                       or (baud / BITS_PER_BYTE if link_cfg else DEFAULT_THROUGHPUT))
-        url = delivery.destination or getattr(link_cfg, "address", "")
-        if not url:
-            raise InputError("no serial port given and the generator profile names none", key="--serial-port")
+        url = _url(delivery)
         report = {
             "driver": self.name, "destination": url, "dry_run": bool(delivery.dry_run), "armed": False,
             "table": {"count": plan.count, "format": plan.format.name.lower(), "sample_rate": plan.rate,
@@ -325,14 +330,9 @@ class SerialDriver(Driver):
             report["bytes"] = sum(e["bytes"] for e in report["log"])
             report["verification"] = {"method": "crc32", "ok": None}
             return report
-        import serial
-
         t0 = time.monotonic()
-        try:
-            port = serial.serial_for_url(url, baudrate=baud, timeout=_Link.POLL,
-                                         write_timeout=timeout + (plan.frame_bytes + fr.OVERHEAD) / throughput)
-        except (serial.SerialException, OSError, ValueError) as exc:
-            raise InstrumentError(f"cannot open {url} ({exc})", step="open") from None
+        port = _open(url, baud, transfer_deadline(timeout, plan.frame_bytes + fr.OVERHEAD, throughput, factor=1.0),
+                     "--serial-port" if delivery.destination else "link.port")
         report["steps"].append({"step": "open", "ok": True, "duration": time.monotonic() - t0, "detail": url})
         link = _Link(port, retries=plan.retries, timeout=timeout, throughput=throughput, report=report)
         session = _Session(link, plan, delivery, report)
@@ -355,6 +355,53 @@ class SerialDriver(Driver):
         return report
 
 
+def _url(delivery: Delivery) -> str:
+    """The port to open: the destination, else the profile's; refused when it cannot name one."""
+    if delivery.destination is not None and delivery.destination != "":
+        return check_url(delivery.destination, key="--serial-port")
+    generator = delivery.generator
+    address = getattr(getattr(generator, "link", None), "address", "")
+    if not address:
+        raise InputError("no serial port given and the generator profile names none", key="--serial-port")
+    return check_url(address, key="link.port", file=str(generator.path) if getattr(generator, "path", None) else None)
+
+
+def check_url(url, *, key: str, file=None) -> str:
+    """Refuse a serial device or pyserial URL that cannot name a port (exit 2), before opening it.
+
+    ``socket://`` and ``rfc2217://`` URLs need a host and a TCP port from 1 to 65535.
+    """
+    from urllib.parse import urlsplit
+
+    if not isinstance(url, str) or not url.strip():
+        raise InputError("expected a serial device or pyserial URL such as /dev/ttyACM0 or "
+                         "socket://127.0.0.1:7450, got an empty one", key=key, file=file)
+    scheme = url.split("://", 1)[0].lower() if "://" in url else ""
+    if scheme in ("socket", "rfc2217"):
+        parts = urlsplit(url)
+        try:
+            port = parts.port
+        except ValueError:
+            port = None
+        if not parts.hostname or port is None or not 1 <= port <= 65535:
+            raise InputError(f"expected {scheme}://HOST:PORT with a TCP port from 1 to 65535, got {url!r}",
+                             key=key, file=file)
+    return url
+
+
+def _open(url: str, baud: int, write_timeout: float, key: str):
+    """The pyserial port for ``url``: a URL pyserial does not know is bad input, a port it cannot
+    open an instrument failure."""
+    import serial
+
+    try:
+        return serial.serial_for_url(url, baudrate=baud, timeout=_Link.POLL, write_timeout=write_timeout)
+    except ValueError as exc:
+        raise InputError(f"not a serial device or pyserial URL: {url!r} ({exc})", key=key) from None
+    except (serial.SerialException, OSError) as exc:
+        raise InstrumentError(f"cannot open {url} ({exc})", step="open") from None
+
+
 class _Session:
     """One upload over an open link."""
 
@@ -375,7 +422,7 @@ class _Session:
 
     def run(self) -> None:
         self.hello()
-        self.link.exchange(fr.MsgType.DISARM, b"", "disarm")
+        self._call(fr.MsgType.DISARM, b"", "disarm", restart_ok=False)
         self.step("disarm", "output off")
         for attempt in range(self.plan.restarts + 1):
             try:
@@ -389,7 +436,7 @@ class _Session:
                 self.report["steps"].append({"step": restart.step, "ok": False, "detail": restart.why,
                                              "action": "starting over"})
                 self.hello()
-                self.link.exchange(fr.MsgType.DISARM, b"", "disarm")
+                self._call(fr.MsgType.DISARM, b"", "disarm", restart_ok=False)
         self.confirm()
         if self.delivery.arm:
             self.arm()
@@ -546,15 +593,30 @@ class _Session:
         self.step("arm", "output ON", crc32=st.table.crc)
 
     def safe_disarm(self) -> str:
-        """Best effort after a failure: switch the board's output off; says what happened."""
+        """After a failure: switch the board's output off and read it back; says what happened.
+
+        The confirmation is the board's answer to this DISARM (matched by
+        sequence number and request type, after the input was cleared) and a
+        STATUS that reports the output off.
+        """
+        unconfirmed = "could not confirm that the board's output is off: check it before going on"
         try:
             self.link.retries = min(self.link.retries, 2)
             self.link.flush_input()
             self.link.exchange(fr.MsgType.DISARM, b"", "disarm")
+            armed = self.status("disarm").armed
+        except _Refused as refused:
+            self.report["steps"].append({"step": "disarm", "ok": False, "detail": refused.refusal.describe()})
+            return f"the board refused DISARM ({refused.refusal.describe()}); {unconfirmed}"
         except Exception as exc:       # the link may be gone: report, never mask the first error
             self.report["steps"].append({"step": "disarm", "ok": False, "detail": str(exc)})
-            return "could not confirm that the board's output is off: check it before going on"
-        self.report["steps"].append({"step": "disarm", "ok": True, "detail": "after a failure"})
+            return unconfirmed
+        if armed:
+            self.report["steps"].append({"step": "disarm", "ok": False, "detail": "STATUS reports armed"})
+            return ("the output may still be ON: the board acknowledged DISARM but its STATUS reports the output "
+                    "armed; check it by hand before going on")
+        self.report["armed"] = False
+        self.report["steps"].append({"step": "disarm", "ok": True, "detail": "after a failure, read back"})
         return "the board's output was switched off"
 
 

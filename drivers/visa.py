@@ -3,18 +3,22 @@
 Any VISA resource string works (``TCPIP::host::port::SOCKET``, ``TCPIP::host::INSTR``,
 ``USB::...``, ``GPIB::...``); the pure-Python pyvisa backend (``@py``) is the
 default, another is chosen with the ``backend`` option (``upload --backend``).
-Every command comes from the ``[commands]`` templates of the generator profile
-(:mod:`sweepgen.dialect`), so a new instrument needs a profile, never code.
+A resource string that cannot name an instrument (empty, unparsable, a TCP port
+outside 1-65535) is refused before anything is opened. Every command comes from
+the ``[commands]`` templates of the generator profile (:mod:`sweepgen.dialect`),
+so a new instrument needs a profile, never code.
 
 Sequence (each step's name appears in errors and in the report):
 
 ``identify``    query the identity, compare with ``identity_pattern``
-``output_off``  switch the output off before touching anything
+``output_off``  switch the output off before touching anything; after ``clear``
+                it is sent again, its error check counts, and where the profile
+                has an ``output_state`` query the state is read back: it must be off
 ``clear``       clear status and the error queue
 ``format``      data format and byte order of the block (optional template)
 ``upload``      the table as one IEEE 488.2 definite-length block built from NumPy
                 bytes and streamed chunk by chunk (or as an ASCII list)
-``wait``        completion query (``*OPC?``)
+``wait``        completion query (``*OPC?``): it must answer 1
 ``verify``      read the trace back, or ask for its checksum, and compare the CRC-32
                 of the bytes with what was sent (skipped when the profile has neither)
 ``function``, ``rate``, ``amplitude``, ``offset``, ``trigger``   configuration
@@ -22,34 +26,41 @@ Sequence (each step's name appears in errors and in the report):
 
 After every command that is not a query the error queue is read until the
 profile's ``no_error_pattern`` matches, so an error is charged to the step that
-caused it. The link's base timeout (``link.timeout``) covers ordinary
-exchanges; steps that move N bytes get ``timeout + 2 N / throughput``
-(``link.throughput`` of the profile). Any failure sends ``output_off`` (on a
-fresh connection if the old one broke) before the error is raised: the
-instrument is left with its output off, and the message names the step and
-what the instrument said.
+caused it.
+
+Every reply has one overall deadline and a length limit (:mod:`sweepgen.wire.bounds`):
+ordinary replies get the link's base timeout (``link.timeout``) and 4 KiB;
+steps that move N bytes get ``timeout + 2 N / throughput`` (``link.throughput``
+of the profile), clamped to 0.1 s ... 1 h; a readback must announce exactly the
+bytes sent; the error queue is drained within twice the base timeout.
+
+Any failure switches the output off before the error is raised, and the
+message says whether that was confirmed. The confirmation is the answer to the
+query that asked for it: the profile's ``output_state`` query (it must answer
+0 or OFF), else the completion query after ``output_off``. It is asked on the
+same connection only while that connection is in step (no reply to an earlier
+query can still be on its way) and after clearing what it holds; otherwise on
+a new connection. An instrument that cannot confirm is reported as such, with
+the advice to check the output by hand.
 
 A connection the instrument closes or resets is reported as lost at once, in
-the step that noticed it, instead of after the full timeout: before every
-exchange the driver looks at the socket, and while waiting for a reply it
-watches the socket itself (pyvisa-py would keep polling a closed socket until
-the timeout). A loss between the first byte of the block and the completion
-reply is always charged to ``upload``: whether the sender notices it while
-sending or only while waiting for ``*OPC?`` depends on how much the socket
-buffers took, but either way the instrument never confirmed the table.
+the step that noticed it, instead of after the full timeout
+(:mod:`sweepgen.drivers._visa_link`). A loss between the first byte of the block
+and the completion reply is always charged to ``upload``: whether the sender
+notices it while sending or only while waiting for ``*OPC?`` depends on how much
+the socket buffers took, but either way the instrument never confirmed the table.
 
 Speed: pyvisa-py writes a message to a raw socket in 4 KiB pieces with a
-``select`` call per piece. For the bulk of a block on such a session the driver
-hands the same bytes directly to that session's socket (``sendall``), which
-roughly doubles the throughput on a fast link; every other backend and
-resource type gets the ordinary ``write_raw``.
+``select`` call per piece. On such a session the driver hands the bytes
+directly to that session's socket (``sendall``), which roughly doubles the
+throughput on a fast link; every other backend and resource type gets the
+ordinary ``write_raw``.
 """
 
 from __future__ import annotations
 
 import queue
 import re
-import select
 import socket
 import threading
 import time
@@ -59,9 +70,11 @@ from typing import ClassVar
 import numpy as np
 
 from sweepgen.dialect import split_data
+from sweepgen.drivers._visa_link import LinkLost, VisaLink, check_resource, visa_errors
 from sweepgen.drivers.base import Delivery, Driver
 from sweepgen.errors import CheckFailed, InputError, InstrumentError
 from sweepgen.wire import block, scpi
+from sweepgen.wire.bounds import clamp_deadline, reply_limit, transfer_deadline
 
 DEFAULT_BACKEND = "@py"
 #: error-queue entries read after one step before giving up (a queue holds 16 or so)
@@ -129,7 +142,7 @@ class _Plan:
                 raise InputError(f"verification by {self.method} needs a '{self.method}' template in the "
                                  f"generator profile", key="verify")
         link = generator.link
-        self.timeout = float(link.timeout)
+        self.timeout = clamp_deadline(float(link.timeout))
         self.throughput = float(link.throughput)
 
     @staticmethod
@@ -150,8 +163,8 @@ class _Plan:
             raise CheckFailed(f"the table does not fit generator '{generator.key}': " + "; ".join(problems))
 
     def data_timeout(self, nbytes: int) -> float:
-        """Timeout of a step that moves ``nbytes`` bytes (s)."""
-        return self.timeout + 2.0 * nbytes / self.throughput
+        """Deadline of a step that moves ``nbytes`` bytes (s), clamped (:mod:`sweepgen.wire.bounds`)."""
+        return transfer_deadline(self.timeout, nbytes, self.throughput)
 
     # -- the data ------------------------------------------------------------------------------
     def wire_chunks(self):
@@ -182,6 +195,7 @@ class _Plan:
             steps.append(("reset", "reset"))
         # output off first, at once; after the error queue is cleared it is sent again and its
         # error check counts, so an instrument that refuses "output off" stops the upload here
+        # (where the profile can ask, the session then reads the state back)
         steps += [("clear", "clear"), ("output_off", "output_off")]
         if c.has("format"):
             steps.append(("format", "format"))
@@ -215,85 +229,37 @@ class _Plan:
                 log.append({"step": "upload" if step == "wait" else step, "kind": "query", "command": err,
                             "bytes": len(err.encode()) + 1,
                             "note": "repeated until the reply matches no_error_pattern"})
+            if checked and step == "output_off" and self.commands.has("output_state"):
+                state = self.rendered["output_state"]
+                log.append({"step": step, "kind": "query", "command": state, "bytes": len(state.encode()) + 1,
+                            "note": "must answer 0 or OFF"})
         return log
-
-
-def _visa_errors():
-    import pyvisa
-
-    return (pyvisa.errors.VisaIOError, pyvisa.errors.InvalidSession, OSError, ValueError)
 
 
 class _WrongInstrument(InstrumentError):
     """The instrument's identity does not match the profile: none of the profile's commands are sent."""
 
 
-class _LinkLost(InstrumentError):
-    """The instrument closed or reset the connection (seen on the socket, not inferred from a timeout).
-
-    ``why`` is what the socket said ("Connection reset by peer", "the instrument closed it").
-    """
-
-    def __init__(self, why: str, *, step: str, message: str | None = None):
-        super().__init__(message or f"the connection was lost ({why})", step=step)
-        self.why = why
+class _StillOn(InstrumentError):
+    """The instrument reports its output on after it was told to switch it off."""
 
 
-def _reason(exc: BaseException) -> str:
-    return getattr(exc, "strerror", None) or str(exc) or type(exc).__name__
+#: IEEE 488.2 10.19: *OPC? answers the number 1 when all pending operations are complete (recalled)
+_COMPLETE = re.compile(r"^\+?1$")
+#: the message when no switch-off could be confirmed
+UNCONFIRMED = "could not confirm that the output is off: check the instrument before touching the setup"
 
 
 class _Session:
-    """One open VISA resource and the running report."""
+    """One upload: the plan, the link to the instrument and the running report."""
 
     def __init__(self, plan: _Plan, delivery: Delivery, report: dict, resource: str):
         self.plan = plan
         self.delivery = delivery
         self.report = report
-        self.resource_name = resource
-        self.rm = None
-        self.res = None
+        self.link = VisaLink(resource, plan.backend, plan.timeout, self._log)
         self.crc = None
-        self.sent = 0
 
-    # -- connection ----------------------------------------------------------------------------
-    def open(self) -> None:
-        import pyvisa
-
-        if self.rm is None:
-            try:
-                self.rm = pyvisa.ResourceManager(self.plan.backend)
-            except (ValueError, OSError, LookupError, pyvisa.errors.Error) as exc:
-                raise InputError(f"no usable VISA backend {self.plan.backend!r} ({exc})", key="--backend") from None
-        try:
-            self.res = self.rm.open_resource(self.resource_name, read_termination="\n",
-                                             write_termination="\n",
-                                             timeout=int(self.plan.timeout * 1000) + 1)
-            sock = self._raw_socket()
-            if sock is not None:        # small commands and queries go out at once (no Nagle delay)
-                sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
-        except (*_visa_errors(), pyvisa.errors.Error, LookupError) as exc:
-            raise InstrumentError(f"cannot open {self.resource_name} with VISA backend "
-                                  f"{self.plan.backend!r} ({exc})", step="open") from None
-
-    def close(self) -> None:
-        if self.res is not None:
-            try:
-                self.res.close()
-            except Exception:      # closing a broken session must not hide the real error
-                pass
-            self.res = None
-
-    def close_all(self) -> None:
-        self.close()
-        if self.rm is not None:
-            try:
-                self.rm.close()
-            except Exception:
-                pass
-            self.rm = None
-
-    # -- one exchange --------------------------------------------------------------------------
     def _log(self, step, kind, command, nbytes, reply=None, duration=None):
         entry = {"step": step, "kind": kind, "command": command, "bytes": nbytes}
         if reply is not None:
@@ -302,128 +268,17 @@ class _Session:
             entry["duration"] = duration
         self.report["log"].append(entry)
 
-    def _fail(self, step, exc, timeout=None) -> InstrumentError:
-        import pyvisa
-
-        if isinstance(exc, OSError):
-            error = self._os_error(step, exc)
-            if error is not None:
-                return error
-        lost = self._link_lost(step)        # a closed socket explains a timeout or an I/O error
-        if lost is not None:
-            return lost
-        if isinstance(exc, pyvisa.errors.VisaIOError) and exc.error_code == pyvisa.constants.StatusCode.error_timeout:
-            return InstrumentError(f"no answer within {timeout:.3g} s", step=step)
-        return InstrumentError(f"the link failed ({exc})", step=step)
-
-    def _os_error(self, step: str, exc: OSError) -> InstrumentError | None:
-        """The error for a refused, reset or broken connection; None for other OS errors."""
-        if isinstance(exc, ConnectionRefusedError):
-            return InstrumentError(f"cannot connect to {self.resource_name} (connection refused: is the "
-                                   f"instrument on and listening?)", step=step)
-        if isinstance(exc, ConnectionError):        # reset, aborted, broken pipe
-            return _LinkLost(_reason(exc), step=step)
-        return None
-
-    # -- is the connection still there? -------------------------------------------------------
-    def _pending(self) -> bool:
-        """True if pyvisa-py already holds received bytes that were not read yet."""
-        sessions = getattr(self.res.visalib, "sessions", None) if self.res is not None else None
-        session = sessions.get(self.res.session) if isinstance(sessions, dict) else None
-        return bool(getattr(session, "_pending_buffer", None))
-
-    def _link_lost(self, step: str) -> _LinkLost | None:
-        """A :class:`_LinkLost` if the instrument has closed or reset the connection, else None.
-
-        Looks at a pyvisa-py raw socket without waiting and without consuming
-        anything: readable with nothing to read is the end of the stream (the
-        instrument closed it), an error is a reset. Other sessions: None.
-        """
-        if self.res is None:
-            return None
-        sock = self._raw_socket()
-        if sock is None:
-            return None
-        try:
-            readable, _, _ = select.select([sock], [], [], 0)
-            if not readable:
-                return None
-            data = sock.recv(1, socket.MSG_PEEK | socket.MSG_DONTWAIT)
-        except (BlockingIOError, InterruptedError):
-            return None
-        except OSError as exc:
-            return self._os_error(step, exc) or _LinkLost(_reason(exc), step=step)
-        except ValueError as exc:            # the socket was closed on this side
-            return _LinkLost(_reason(exc), step=step)
-        if data:
-            return None
-        return _LinkLost("the instrument closed it", step=step)
-
-    def _check_link(self, step: str) -> None:
-        lost = self._link_lost(step)
-        if lost is not None:
-            raise lost
-
-    def _await_reply(self, step: str, deadline: float, timeout: float) -> None:
-        """Wait until a reply starts to arrive, the connection ends, or ``deadline`` passes.
-
-        pyvisa-py keeps polling a socket the instrument has closed until the
-        whole timeout has passed; on a raw socket the driver waits itself, so a
-        closed or reset connection is reported at once, as such.
-        """
-        sock = self._raw_socket()
-        if sock is None or self._pending():
-            return
-        while True:
-            left = deadline - time.monotonic()
-            if left <= 0:
-                raise InstrumentError(f"no answer within {timeout:.3g} s", step=step)
-            try:
-                readable, _, _ = select.select([sock], [], [], left)
-            except InterruptedError:
-                continue
-            if readable:
-                self._check_link(step)
-                return
-
-    def write(self, step: str, text: str) -> None:
-        self.res.timeout = int(self.plan.timeout * 1000) + 1
-        self._check_link(step)
-        try:
-            self.res.write(text)
-        except _visa_errors() as exc:
-            raise self._fail(step, exc, self.plan.timeout) from None
-        self.sent += len(text.encode()) + 1
-        self._log(step, "write", text, len(text.encode()) + 1)
-
-    def query(self, step: str, text: str, timeout: float | None = None) -> str:
-        timeout = self.plan.timeout if timeout is None else timeout
-        t0 = time.monotonic()
-        deadline = t0 + timeout
-        self._check_link(step)
-        try:
-            self.res.timeout = int(timeout * 1000) + 1
-            self.res.write(text)
-            self._await_reply(step, deadline, timeout)
-            self.res.timeout = int(max(deadline - time.monotonic(), 0.0) * 1000) + 1
-            raw = self.res.read_raw()
-        except _visa_errors() as exc:
-            raise self._fail(step, exc, timeout) from None
-        if not raw.endswith(b"\n"):            # cut off: the connection ended inside the reply
-            self._check_link(step)
-            raise InstrumentError("the reply ended without its terminator", step=step,
-                                  reply=raw.decode("ascii", "replace").strip()[:120])
-        reply = raw.decode("ascii", "replace").strip()
-        self.sent += len(text.encode()) + 1
-        self._log(step, "query", text, len(text.encode()) + 1, reply=reply, duration=time.monotonic() - t0)
-        return reply
-
+    # -- checked replies -----------------------------------------------------------------------
     def check_errors(self, step: str) -> None:
-        """Read the error queue until it is empty; any entry fails ``step``."""
+        """Read the error queue until it is empty; any entry fails ``step``.
+
+        The whole drain gets twice the link's timeout, however many entries it reads.
+        """
         commands = self.plan.commands
+        deadline = time.monotonic() + clamp_deadline(2 * self.plan.timeout)
         found = []
         for _ in range(MAX_ERROR_READS):
-            reply = self.query(step, self.plan.rendered["error_query"])
+            reply = self.link.query(step, self.plan.rendered["error_query"], deadline=deadline)
             if scpi.is_no_error(reply, commands.no_error_pattern):
                 break
             found.append(reply)
@@ -433,15 +288,29 @@ class _Session:
         if found:
             raise InstrumentError("the instrument reported an error", step=step, reply="; ".join(found))
 
-    # -- the data ------------------------------------------------------------------------------
-    def _raw_socket(self):
-        """The socket of a pyvisa-py raw-socket session, or None (then write_raw is used)."""
-        sessions = getattr(self.res.visalib, "sessions", None)
-        if not isinstance(sessions, dict):
-            return None
-        sock = getattr(sessions.get(self.res.session), "interface", None)
-        return sock if isinstance(sock, socket.socket) else None
+    def wait(self, step: str, timeout: float | None = None) -> str:
+        """The completion query (``*OPC?``); anything but 1 fails ``step``."""
+        reply = self.link.query(step, self.plan.rendered["wait"], timeout)
+        if not _COMPLETE.match(reply):
+            raise InstrumentError("the completion query did not answer 1", step=step, reply=reply or "<empty>")
+        return reply
 
+    def confirm_off(self, step: str) -> dict:
+        """Ask whether the output is off: the profile's output-state query where there is one,
+        else the completion query after the switch-off. Returns what was asked and answered."""
+        rendered = self.plan.rendered
+        if not self.plan.commands.has("output_state"):
+            return {"query": rendered["wait"], "reply": self.wait(step)}
+        reply = self.link.query(step, rendered["output_state"])
+        state = scpi.parse_boolean(reply)
+        if state is None:
+            raise InstrumentError("the output-state reply is not 0, 1, OFF or ON", step=step,
+                                  reply=reply or "<empty>")
+        if state:
+            raise _StillOn("the instrument reports its output ON after output off", step=step, reply=reply)
+        return {"query": rendered["output_state"], "reply": reply}
+
+    # -- the data ------------------------------------------------------------------------------
     def upload(self) -> None:
         plan = self.plan
         step = "upload"
@@ -458,54 +327,50 @@ class _Session:
             chunks = block.block_parts(plan.wire_chunks(), nbytes)
             head = plan.prefix.encode() + next(chunks)
         total = len(head) + nbytes + len(plan.suffix.encode()) + 1
-        deadline = t0 + plan.data_timeout(total)
-        progress = self.delivery.progress
-        sock = self._raw_socket()
-        old_timeout = sock.gettimeout() if sock is not None else None
-        done = 0
         crc = _Crc32() if plan.mode == "ascii" else None   # binary: computed when verifying
         try:
-            if sock is not None:
-                sock.settimeout(plan.data_timeout(CHUNK_BYTES))
-            self.res.timeout = int(plan.data_timeout(CHUNK_BYTES) * 1000) + 1
-            self._check_link(step)
-            self._send(sock, head)
-            for chunk in chunks:
-                if crc is not None:
-                    crc.update(chunk)
-                self._send(sock, chunk)
-                done += len(chunk)
-                if progress is not None:
-                    progress(done, nbytes)
-                if time.monotonic() > deadline:
-                    raise InstrumentError(f"sent {done} of {nbytes} bytes in {plan.data_timeout(total):.3g} s "
-                                          f"(the profile expects {plan.throughput:.3g} B/s)", step=step)
-            self._send(sock, plan.suffix.encode() + b"\n")
-        except socket.timeout:
-            raise InstrumentError(f"the instrument stopped taking data after {done} of {nbytes} bytes",
-                                  step=step) from None
-        except block.BlockError as exc:
-            raise InstrumentError(f"the table does not match its block header: {exc}", step=step) from None
-        except _visa_errors() as exc:
-            error = self._fail(step, exc, plan.data_timeout(CHUNK_BYTES))
-            if isinstance(error, _LinkLost):
-                error = _upload_lost("while the block was being sent", error.why)
-            raise error from None
+            self._stream(step, head, chunks, nbytes, plan.data_timeout(total), crc)
         finally:
             crc_value = crc.result() if crc is not None else None
-            if sock is not None:
-                try:
-                    sock.settimeout(old_timeout)
-                except OSError:
-                    pass
         self.crc = crc_value
-        self.sent += total
+        self.link.sent += total
         self.report["block_bytes"] = nbytes
         duration = time.monotonic() - t0
         self._log(step, "write", plan.upload_text(nbytes), total, duration=duration)
         self.report["upload"] = {"bytes": total, "data_bytes": nbytes, "duration": duration,
                                  "throughput": total / duration if duration > 0 else None,
-                                 "fast_path": sock is not None}
+                                 "fast_path": self.link.raw_socket() is not None}
+
+    def _stream(self, step, head, chunks, nbytes, allowed: float, crc) -> None:
+        """Send the upload message within ``allowed`` seconds, reporting progress."""
+        link = self.link
+        progress = self.delivery.progress
+        deadline = time.monotonic() + allowed
+        done = 0
+        link.check_link(step)
+        link.in_step = False                  # until the whole message is out
+        try:
+            link.send(step, head, deadline)
+            for chunk in chunks:
+                if crc is not None:
+                    crc.update(chunk)
+                link.send(step, chunk, deadline)
+                done += len(chunk)
+                if progress is not None:
+                    progress(done, nbytes)
+            link.send(step, self.plan.suffix.encode() + b"\n", deadline)
+        except socket.timeout:
+            raise InstrumentError(f"the instrument took {done} of {nbytes} bytes in {allowed:.3g} s and then "
+                                  f"no more (the profile expects {self.plan.throughput:.3g} B/s)",
+                                  step=step) from None
+        except block.BlockError as exc:
+            raise InstrumentError(f"the table does not match its block header: {exc}", step=step) from None
+        except visa_errors() as exc:
+            error = link.failure(step, exc, allowed)
+            if isinstance(error, LinkLost):
+                error = _upload_lost("while the block was being sent", error.why)
+            raise error from None
+        link.in_step = True
 
     def sent_crc(self) -> int:
         """CRC-32 of the data bytes sent (binary: the table's bytes in the wire byte order)."""
@@ -520,12 +385,6 @@ class _Session:
                 self.crc = value & 0xFFFFFFFF
         return self.crc
 
-    def _send(self, sock, data) -> None:
-        if sock is not None:
-            sock.sendall(data)
-        else:
-            self.res.write_raw(bytes(data) if isinstance(data, memoryview) else data)
-
     def verify(self, template: str) -> dict:
         plan = self.plan
         step = "verify"
@@ -533,7 +392,7 @@ class _Session:
         timeout = plan.data_timeout(nbytes)
         command = plan.rendered[template]
         if template == "checksum":
-            reply = self.query(step, command, timeout)
+            reply = self.link.query(step, command, timeout)
             value = _parse_checksum(reply)
             if value is None:
                 raise InstrumentError("the checksum reply is not a number", step=step, reply=reply)
@@ -541,7 +400,7 @@ class _Session:
             result = {"method": "checksum", "expected_crc32": expected, "instrument_crc32": value,
                       "ok": value == expected}
         else:
-            got, count = self._readback(command, timeout)
+            got, count = self._readback(command, nbytes, timeout)
             expected = self.sent_crc()
             result = {"method": "readback", "expected_crc32": expected, "instrument_crc32": got,
                       "bytes": count, "ok": got == expected and count == nbytes}
@@ -551,116 +410,141 @@ class _Session:
                 f"0x{result['instrument_crc32']:08x}, sent 0x{result['expected_crc32']:08x})", step=step)
         return result
 
-    def _readback(self, command: str, timeout: float) -> tuple[int, int]:
-        """CRC-32 and length of the data the instrument sends back for ``command``."""
-        step = "verify"
-        self.res.timeout = int(timeout * 1000) + 1
+    def _readback(self, command: str, nbytes: int, timeout: float) -> tuple[int, int]:
+        """CRC-32 and length of the data the instrument sends back for ``command``.
+
+        An ASCII readback may be as long as the text sent plus the usual reply
+        allowance; a binary one must announce exactly the bytes sent.
+        """
+        step, link = "verify", self.link
         t0 = time.monotonic()
-        try:
-            self._check_link(step)
-            self.res.write(command)
-            self._await_reply(step, t0 + timeout, timeout)
-            if self.plan.mode == "ascii":
-                text = self.res.read().strip().encode("ascii", "replace")
-                crc, count = zlib.crc32(text) & 0xFFFFFFFF, len(text)
-            else:
-                # binary data may hold newlines: read it by count, not up to a terminator
-                self.res.read_termination = None
-                head = self.res.read_bytes(2)
-                if head[:1] != b"#" or not head[1:2].isdigit() or head[1:2] == b"0":
-                    self.res.read_termination = "\n"     # a text reply: read the rest up to its terminator
-                    rest = self.res.read() if not head.endswith(b"\n") else ""
-                    raise InstrumentError("the readback is not a definite-length block", step=step,
-                                          reply=(head.decode("latin-1") + rest).strip()[:120])
-                digits = self.res.read_bytes(int(head[1:2]))
-                if not digits.isdigit():
-                    raise InstrumentError("malformed readback block header", step=step,
-                                          reply=(head + digits).decode("latin-1"))
-                count = int(digits)
-                crc = 0
-                left = count
-                while left:
-                    piece = self.res.read_bytes(min(left, CHUNK_BYTES), chunk_size=CHUNK_BYTES)
-                    crc = zlib.crc32(piece, crc)
-                    left -= len(piece)
-                crc &= 0xFFFFFFFF
-                end = self.res.read_bytes(1)
-                self.res.read_termination = "\n"
-                if end != b"\n":
-                    self.res.read()         # resynchronise on the terminator
-        except _visa_errors() as exc:
-            raise self._fail(step, exc, timeout) from None
-        finally:
-            self.res.read_termination = "\n"
-        self.sent += len(command.encode()) + 1
+        deadline = t0 + timeout
+        link.write_query(step, command)
+        if self.plan.mode == "ascii":
+            text = link.read_line(step, deadline, timeout, reply_limit(nbytes)).strip()
+            crc, count = zlib.crc32(text) & 0xFFFFFFFF, len(text)
+        else:
+            count = self._block_header(step, nbytes, deadline, timeout)
+            running = _Crc32()
+            try:
+                link.read_into_crc(step, count, deadline, timeout, running.update)
+            finally:
+                crc = running.result()
+            end = link.read_exact(step, 1, deadline, timeout)
+            if end != b"\n":
+                link.read_line(step, deadline, timeout)      # resynchronise on the terminator
         self._log(step, "query", command, len(command.encode()) + 1,
                   reply=f"<{count} bytes, CRC-32 0x{crc:08x}>", duration=time.monotonic() - t0)
         return crc, count
 
+    def _block_header(self, step: str, nbytes: int, deadline: float, timeout: float) -> int:
+        """Read a readback's block header; its byte count must be ``nbytes``."""
+        link = self.link
+        head = link.read_exact(step, 2, deadline, timeout)
+        if head[:1] != b"#" or not head[1:2].isdigit() or head[1:2] == b"0":
+            rest = b"" if head.endswith(b"\n") else link.read_line(step, deadline, timeout)
+            raise InstrumentError("the readback is not a definite-length block", step=step,
+                                  reply=(head + rest).decode("latin-1").strip()[:120])
+        digits = link.read_exact(step, int(head[1:2]), deadline, timeout)
+        if not digits.isdigit():
+            link.in_step = False
+            raise InstrumentError("malformed readback block header", step=step,
+                                  reply=(head + digits).decode("latin-1"))
+        count = int(digits)
+        if count != nbytes:
+            link.in_step = False
+            raise InstrumentError(f"the readback announces {count} bytes, {nbytes} were sent; not read",
+                                  step=step)
+        return count
+
     # -- the sequence --------------------------------------------------------------------------
     def run(self) -> None:
         plan = self.plan
-        rendered = plan.rendered
-        arm = self.delivery.arm
         checked = False
-        for step, template in plan.sequence(arm):
+        for step, template in plan.sequence(self.delivery.arm):
             t0 = time.monotonic()
-            detail = {}
-            if step == "identify":
-                reply = self.query(step, rendered["identify"])
-                self.report["identity"] = reply
-                if not re.search(plan.commands.identity_pattern, reply):
-                    raise _WrongInstrument(f"this is not the instrument the profile describes (identity "
-                                          f"pattern {plan.commands.identity_pattern!r})", step=step, reply=reply)
-                detail["identity"] = reply
-            elif step == "upload":
-                self.upload()
-                detail["bytes"] = self.report["upload"]["bytes"]
-            elif step == "wait":
-                try:
-                    reply = self.query(step, rendered["wait"],
-                                       plan.data_timeout(self.report.get("block_bytes", 0)))
-                except _LinkLost as exc:
-                    # the table was handed to the link, but the instrument hung up before confirming it:
-                    # how far it got depends on socket buffers, so the loss is charged to the upload
-                    raise _upload_lost("after the whole block was sent", exc.why) from None
-                detail["reply"] = reply
-                self.check_errors("upload")
-            elif step == "verify":
-                result = self.verify(template)
-                self.report["verification"] = result
-                detail.update(result)
-            else:
-                text = rendered[template]
-                if "?" in text:
-                    detail["reply"] = self.query(step, text)
-                else:
-                    self.write(step, text)
-                if step == "clear":
-                    checked = True
-                if checked:
-                    self.check_errors(step)
-                if step == "output_on":
-                    self.report["armed"] = True
+            detail = self._step(step, template, checked)
+            if step == "clear":
+                checked = True
             self.report["steps"].append({"step": step, "ok": True, "duration": time.monotonic() - t0, **detail})
 
-    def safe_off(self) -> str:
-        """Switch the output off after a failure; returns what happened (for the message)."""
-        plan = self.plan
-        off = plan.rendered["output_off"]
-        confirm = plan.rendered["wait"]
-        for attempt in ("the same connection", "a new connection"):
+    def _step(self, step: str, template: str, checked: bool) -> dict:
+        """Run one step of the sequence; returns what the report shows of it."""
+        plan, rendered = self.plan, self.plan.rendered
+        if step == "identify":
+            reply = self.link.query(step, rendered["identify"])
+            self.report["identity"] = reply
+            if not re.search(plan.commands.identity_pattern, reply):
+                raise _WrongInstrument(f"this is not the instrument the profile describes (identity "
+                                      f"pattern {plan.commands.identity_pattern!r})", step=step, reply=reply)
+            return {"identity": reply}
+        if step == "upload":
+            self.upload()
+            return {"bytes": self.report["upload"]["bytes"]}
+        if step == "wait":
             try:
-                if attempt == "a new connection" or self.res is None:
-                    self.close()
-                    self.open()
-                self.write("output_off", off)
-                self.query("output_off", confirm)
-                self.report["armed"] = False
-                return f"output switched off (confirmed on {attempt})"
+                reply = self.wait(step, plan.data_timeout(self.report.get("block_bytes", 0)))
+            except LinkLost as exc:
+                # the table was handed to the link, but the instrument hung up before confirming it:
+                # how far it got depends on socket buffers, so the loss is charged to the upload
+                raise _upload_lost("after the whole block was sent", exc.why) from None
+            self.check_errors("upload")
+            return {"reply": reply}
+        if step == "verify":
+            result = self.verify(template)
+            self.report["verification"] = result
+            return dict(result)
+        detail = self._command(step, rendered[template], checked)
+        if step == "output_off" and checked and plan.commands.has("output_state"):
+            self.report["output_state"] = read = self.confirm_off(step)
+            detail["detail"] = f"read back: {read['query']} answered {read['reply']}"
+        return detail
+
+    def _command(self, step: str, text: str, checked: bool) -> dict:
+        detail = {}
+        if "?" in text:
+            detail["reply"] = self.link.query(step, text)
+        else:
+            self.link.write(step, text)
+        if checked or step == "clear":
+            self.check_errors(step)
+        if step == "output_on":
+            self.report["armed"] = True
+        return detail
+
+    def safe_off(self) -> str:
+        """Switch the output off after a failure; returns what happened (for the message).
+
+        The confirmation must be the answer to the query that asked for it: the
+        same connection is used only while it is in step (no reply of an earlier
+        query can still be on its way), and only after clearing what it holds;
+        otherwise a new connection is opened.
+        """
+        link = self.link
+        attempts = ["the same connection"] if link.res is not None and link.in_step else []
+        attempts.append("a new connection")
+        still_on = None
+        for attempt in attempts:
+            try:
+                if attempt == "a new connection":
+                    link.close()
+                    link.open()
+                if not link.clear_input():
+                    continue                  # it keeps talking unasked: nothing it says can be trusted
+                link.write("output_off", self.plan.rendered["output_off"])
+                read = self.confirm_off("output_off")
+            except _StillOn as exc:
+                still_on = exc.reply
+                continue
             except InstrumentError:
                 continue
-        return "could not confirm that the output is off: check the instrument before touching the setup"
+            self.report["armed"] = False
+            self.report["output_state"] = read
+            return f"output switched off (confirmed on {attempt})"
+        if still_on is not None:
+            return (f"the output may still be ON: after output off the instrument reports it on (it said: "
+                    f"{still_on}); check the output by hand before touching the setup")
+        return UNCONFIRMED
 
 
 class _Crc32:
@@ -727,7 +611,7 @@ class VisaDriver(Driver):
             raise InputError(f"driver 'visa' has no option {unknown[0]!r} (options: {', '.join(self.options)})",
                              key="--option")
         plan = _Plan(table, delivery.generator, options)
-        resource = delivery.destination or delivery.generator.link.address
+        resource = _resource(delivery)
         report = {
             "driver": self.name, "destination": resource, "backend": plan.backend,
             "dry_run": bool(delivery.dry_run), "armed": False,
@@ -744,7 +628,7 @@ class VisaDriver(Driver):
         t0 = time.monotonic()
         session = _Session(plan, delivery, report, resource)
         try:
-            session.open()
+            session.link.open()
             session.run()
         except InstrumentError as exc:
             if exc.step == "open":
@@ -759,22 +643,30 @@ class VisaDriver(Driver):
             error.args = (f"{error}; {outcome}",)
             raise error from None
         except BaseException:
-            if session.res is not None:          # interrupted (Ctrl-C) or an unexpected error mid-way
+            if session.link.res is not None:     # interrupted (Ctrl-C) or an unexpected error mid-way
                 session.safe_off()
             raise
         finally:
-            session.close_all()
+            session.link.close_all()
         if plan.method == "none":
             report["verification"] = {"method": "none", "ok": None,
                                       "note": "the profile has neither a readback nor a checksum template"}
-        report["bytes"] = session.sent
+        report["bytes"] = session.link.sent
         report["duration"] = time.monotonic() - t0
         return report
 
 
-def _upload_lost(when: str, why: str) -> _LinkLost:
+def _resource(delivery: Delivery) -> str:
+    """The VISA resource to open: the destination, else the profile's; refused when it cannot name one."""
+    if delivery.destination:
+        return check_resource(delivery.destination, key="--resource")
+    link = delivery.generator.link
+    return check_resource(link.address, key="link.resource", file=str(delivery.generator.path or "") or None)
+
+
+def _upload_lost(when: str, why: str) -> LinkLost:
     """The error of a connection lost between the first byte of the block and the completion reply."""
-    return _LinkLost(why, step="upload", message=f"the connection was lost {when}, before the instrument "
+    return LinkLost(why, step="upload", message=f"the connection was lost {when}, before the instrument "
                                                   f"confirmed the upload ({why})")
 
 

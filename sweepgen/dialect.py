@@ -46,13 +46,14 @@ from sweepgen.wire.scpi import NAME, format_number
 TEMPLATE_KEYS = (
     "identify", "reset", "clear", "output_off", "format", "upload", "wait", "error_query",
     "readback", "checksum", "function", "rate", "amplitude", "offset", "trigger", "output_on",
+    "output_state",
 )
 #: Settings in [commands] that are not command templates.
 SETTING_KEYS = ("identity_pattern", "no_error_pattern", "upload_mode", "trace_name", "byte_order")
 REQUIRED = ("identify", "identity_pattern", "output_off", "clear", "upload", "wait", "error_query",
             "no_error_pattern", "output_on")
 #: Templates that must be queries (they are answered).
-QUERIES = ("identify", "wait", "error_query", "readback", "checksum")
+QUERIES = ("identify", "wait", "error_query", "readback", "checksum", "output_state")
 
 #: Every placeholder a template may use (see the module docstring).
 PLACEHOLDERS = frozenset({

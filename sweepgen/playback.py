@@ -308,6 +308,7 @@ class Playback:
         ``backend`` chooses the pyvisa backend. A contradiction is an :class:`InputError`.
         """
         gen = self.generator
+        _refuse_empty(resource=resource, serial_port=serial_port)
         if serial_port is None and gen.kind != "board":
             return Link("visa", resource or gen.link.address,
                         trigger_source="EXT" if self.scenario.pulsed else "IMM", backend=backend)
@@ -437,3 +438,11 @@ def actuator_response(plan, laser=None, generator=None):
         sample_rate, quant = playing.rate_choice.sample_rate, playing.quantisation
     tr = response.track(schedule, laser.chain, laser.response, sample_rate, quant=quant)
     return tr.time, tr.actual
+
+
+def _refuse_empty(**addresses) -> None:
+    """An address given empty is refused, never replaced by the profile's address."""
+    for name, given in addresses.items():
+        if given is not None and not given.strip():
+            raise InputError("expected an address, got an empty one (leave the option out to use the "
+                             "generator profile's)", key=f"--{name.replace('_', '-')}")

@@ -35,19 +35,21 @@ def _generator(generator):
 
 @contextlib.contextmanager
 def instrument_server(generator="virtual-awg", *, faults=None, identity: str | None = None,
-                      host: str = "127.0.0.1", port: int = 0, max_line: int | None = None) -> Iterator:
+                      host: str = "127.0.0.1", port: int = 0, max_line: int | None = None,
+                      **server_options) -> Iterator:
     """Serve a virtual instrument in a background thread; yield the running server.
 
     ``generator`` is a loaded :class:`sweepgen.generator.Generator`, a built-in
     key or a path to a profile; its limits are the instrument's. The server has
     ``resource`` (VISA resource string), ``instrument`` (the
     :class:`sweepgen.emulators.instrument.VirtualInstrument`, to inspect its state) and
-    stops when the block ends.
+    stops when the block ends. ``server_options`` go to the server
+    (``max_connections``, ``idle_timeout``, ``log``).
     """
     from sweepgen.emulators.instrument import InstrumentServer, VirtualInstrument
 
     instrument = VirtualInstrument(_generator(generator), faults=faults, identity=identity, max_line=max_line)
-    server = InstrumentServer(instrument, host, port)
+    server = InstrumentServer(instrument, host, port, **server_options)
     server.start()
     try:
         yield server

@@ -2,21 +2,23 @@
 
 from __future__ import annotations
 
+import dataclasses
 import os
 import select
 import socket
 import threading
+import time
 import zlib
 
 import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from sweepgen.wire import frames as fr
 from sweepgen.emulators.board import BoardEmulator, BoardServer, FaultPlan, serve_forever
 from sweepgen.errors import InputError
 from sweepgen.generator import load_generator
 from sweepgen.testing import virtual_board
+from sweepgen.wire import frames as fr
 
 from conftest import examples, raw_pty, socket_address
 
@@ -355,6 +357,31 @@ def test_board_server_on_a_loopback_socket_keeps_its_table_across_connections():
                     assert reply.type == T.ACK and reply.seq == seq
         status = fr.Status.unpack(fr.parse_ack(reply.payload)[1])
         assert status.table.crc == zlib.crc32(data) and server.connections == 2
+
+
+def test_a_silent_host_does_not_block_another():
+    # one host sends half a frame and falls silent; another is answered at once, on its own decoder
+    lines = []
+    with BoardServer(GEN, log=lines.append) as server:
+        silent = socket.create_connection(("127.0.0.1", server.port), timeout=5)
+        silent.sendall(fr.encode(T.HELLO, 9, b"\x01")[:5])
+        t0 = time.monotonic()
+        with socket.create_connection(("127.0.0.1", server.port), timeout=5) as sock:
+            reply = _exchange(fr.encode(T.STATUS, 4, b""), lambda: sock.recv(4096), sock.sendall)
+        took = time.monotonic() - t0
+        silent.close()
+    assert reply.type == T.ACK and reply.seq == 4
+    assert took < 1.0 + 2.0                     # within a second, with slack for a loaded machine
+    assert sum("opened" in line for line in lines) == 2
+
+
+def test_the_announced_memory_is_what_the_emulator_will_buffer():
+    from sweepgen.emulators.board import MAX_TABLE_BYTES, capabilities_for
+
+    huge = dataclasses.replace(GEN, sampling=dataclasses.replace(GEN.sampling, memory=10**300))
+    caps = capabilities_for(huge)                # a profile's absurd memory does not reach the wire
+    assert caps.memory == MAX_TABLE_BYTES // 4   # 32-bit tuning words
+    assert fr.Capabilities.unpack(caps.pack()) == caps
 
 
 def test_serve_forever_calls_ready_with_its_port_and_stops_on_request():

@@ -14,8 +14,8 @@ import pyvisa
 
 from sweepgen.cli.emulate import BOARD_FAULTS, FRAME_TYPES
 from sweepgen.emulators import board
-from sweepgen.wire import frames as fr
 from sweepgen.errors import InstrumentError
+from sweepgen.wire import frames as fr
 
 from conftest import dds_table, deliver_to_board, open_visa, run_cli, socket_address
 
@@ -57,6 +57,19 @@ def test_serves_the_virtual_instrument_on_loopback_until_ctrl_c(rm):
         code, err = emulator.stop()
     assert code == 0
     assert "listening" in err and "stopped" in err and "Traceback" not in err
+
+
+@pytest.mark.slow
+def test_a_line_per_connection(rm):
+    with Emulator() as emulator:
+        inst = open_visa(rm, emulator.address)
+        assert inst.query("*OPC?") == "1"
+        inst.close()
+        time.sleep(0.3)                             # the server notices the close
+        code, err = emulator.stop()
+    assert code == 0
+    opened = [line for line in err.splitlines() if line.startswith("connection 1 from 127.0.0.1:")]
+    assert len(opened) == 2 and "opened" in opened[0] and "closed (closed by the client" in opened[1]
 
 
 @pytest.mark.slow

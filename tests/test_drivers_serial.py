@@ -19,14 +19,14 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from sweepgen.wire import frames as fr
-from sweepgen.emulators.board import BoardEmulator, FaultPlan
 from sweepgen.drivers import load
 from sweepgen.drivers.serial_board import SerialDriver, _Plan, _TableBytes
+from sweepgen.emulators.board import BoardEmulator, FaultPlan
 from sweepgen.errors import CheckFailed, InputError, InstrumentError
 from sweepgen.generator import load_generator
 from sweepgen.table import Frame, RenderedTable, TableInfo
 from sweepgen.testing import virtual_board
+from sweepgen.wire import frames as fr
 
 from conftest import dds_table, deliver_to_board, examples, quick_ramp_board, raw_pty, refused_port
 

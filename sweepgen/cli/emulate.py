@@ -82,7 +82,10 @@ def command(host, port, generator_ref, board, identity, drop_after, delay, mute,
     """Serve the virtual arbitrary-waveform generator until Ctrl-C, printing its
     VISA resource string. It speaks IEEE 488.2 and standard SCPI, enforces the
     generator profile's memory, sample rates and output range, and keeps an
-    error queue; the fault options make it misbehave on purpose.
+    error queue; the fault options make it misbehave on purpose. It serves
+    several clients at once (when every place is taken, the one silent the
+    longest makes room), closes connections that stay silent, and prints a
+    line on stderr when a connection opens and when it closes.
 
     With --board it serves the serial ramp-board emulator instead (the frame
     protocol, reachable as socket://HOST:PORT with pyserial). Its fault options
@@ -170,7 +173,7 @@ def _serve_board(host, port, generator_ref, faults: dict) -> None:
         click.echo(f"ramp-board emulator ({gen.key}) listening{note}; Ctrl-C stops it", err=True)
 
     with _listening(host, port, "ramp-board emulator"):
-        board.serve_forever(host, port, gen, faults=faults or None, ready=ready)
+        board.serve_forever(host, port, gen, faults=faults or None, ready=ready, log=_log)
 
 
 def _serve_instrument(host, port, generator_ref, faults, identity) -> None:
@@ -187,7 +190,12 @@ def _serve_instrument(host, port, generator_ref, faults, identity) -> None:
         click.echo(f"virtual instrument ({gen.key}) listening{note}; Ctrl-C stops it", err=True)
 
     with _listening(host, port, "virtual instrument"):
-        instrument.serve_forever(host, port, gen, faults=faults, ready=ready, identity=identity)
+        instrument.serve_forever(host, port, gen, faults=faults, ready=ready, identity=identity, log=_log)
+
+
+def _log(line: str) -> None:
+    """A line per connection opened or closed, on stderr."""
+    click.echo(line, err=True)
 
 
 @contextlib.contextmanager

@@ -4,10 +4,13 @@ A message ends at a newline outside quoted strings and outside blocks; an
 IEEE 488.2 definite-length block (``#<n><count><bytes>``) may hold any bytes,
 newlines included, so its payload is read by count. The reader hands the
 instrument the message text with each block replaced by a marker
-``\\x00B<i>\\x00`` and the payloads beside it. What it buffers is bounded: text
-beyond ``max_text`` bytes is dropped (the message is refused as too long), and
-a block announcing more than ``max_block`` bytes is skipped up to the end of
-its line without being stored.
+``\\x00B<i>\\x00`` and the payloads beside it.
+
+What it buffers is bounded: text beyond ``max_line`` bytes is dropped (the
+message is refused as too long); a block announcing more than ``max_block``
+bytes is skipped up to the end of its line without being stored; and all
+connections together hold at most the instrument's :class:`Budget` of block
+bytes: a block that does not fit is read and thrown away, and refused.
 """
 
 from __future__ import annotations
@@ -24,6 +27,26 @@ _SPECIAL = re.compile(rb'[\n#"\']')
 
 class Closed(Exception):
     """The connection ended (the client closed it, it broke, or the server is stopping)."""
+
+
+class Budget:
+    """Bytes of block payload all connections together may hold (shared, thread-safe)."""
+
+    def __init__(self, total: int):
+        self.total = int(total)
+        self.held = 0
+        self._lock = threading.Lock()
+
+    def take(self, n: int) -> bool:
+        with self._lock:
+            if self.held + n > self.total:
+                return False
+            self.held += n
+            return True
+
+    def give(self, n: int) -> None:
+        with self._lock:
+            self.held -= n
 
 
 @dataclass
@@ -43,16 +66,25 @@ class MessageReader:
     """Reads program messages from ``sock`` for one connection.
 
     ``limits`` provides ``max_line`` (longest message text, blocks excluded),
-    ``max_block`` (largest block) and ``faults.drop_after`` (close after this
-    many bytes, a fault switch), read afresh for every message.
+    ``max_block`` (largest block), ``buffers`` (the shared :class:`Budget`) and
+    ``faults.drop_after`` (close after this many bytes, a fault switch), read
+    afresh for every message. ``stop.is_set()`` ends the reading. The block
+    bytes of a message stay charged to the budget until :meth:`release`.
     """
 
-    def __init__(self, sock, limits, stop: threading.Event):
+    def __init__(self, sock, limits, stop):
         self.sock = sock
         self.limits = limits
         self.stop = stop
         self.buf = bytearray()
         self.received = 0
+        self.held = 0
+
+    def release(self) -> None:
+        """Give the block bytes of the last message back to the shared budget."""
+        if self.held:
+            self.limits.buffers.give(self.held)
+            self.held = 0
 
     # -- bytes in ---------------------------------------------------------------------------
     def _allowance(self, n: int) -> int:
@@ -61,6 +93,8 @@ class MessageReader:
             return n
         left = drop - self.received
         if left <= 0:
+            if hasattr(self.sock, "closing_reason"):
+                self.sock.closing_reason = f"dropped after {drop} bytes (fault switch)"
             raise Closed()
         return min(n, left)
 
@@ -103,6 +137,7 @@ class MessageReader:
         ``error`` is ``(code, detail)`` for a message refused as a whole (too
         long, or a block larger than the memory); then ``text`` is None.
         """
+        self.release()
         m = _Pending()
         while True:
             if m.quote is not None and not self._past_string(m):
@@ -171,6 +206,13 @@ class MessageReader:
         if nbytes > self.limits.max_block:
             self._discard_line(pos)
             return (-223, f"block of {nbytes} bytes exceeds the memory")
+        if not self.limits.buffers.take(nbytes):
+            self._skip(data_start, nbytes)
+            self._discard_line(0)
+            budget = self.limits.buffers
+            return (-223, f"block of {nbytes} bytes refused: other connections hold {budget.held} of the "
+                          f"{budget.total} bytes this instrument buffers; send it again")
+        self.held += nbytes
         text = self.buf[m.start:pos].decode("latin-1")
         m.text_bytes += len(text)
         m.parts += [text, f"\x00B{len(m.blocks)}\x00"]
@@ -194,6 +236,17 @@ class MessageReader:
             if header is not None:
                 return header
             self._recv()
+
+    def _skip(self, data_start: int, nbytes: int) -> None:
+        """Read and throw away a block's ``nbytes`` bytes that start at ``data_start``."""
+        have = min(nbytes, len(self.buf) - data_start)
+        del self.buf[:data_start + have]
+        left = nbytes - have
+        scratch = memoryview(bytearray(min(left, 1 << 20)))
+        while left:
+            piece = scratch[:min(left, len(scratch))]
+            self._recv_into(piece)
+            left -= len(piece)
 
     def _discard_line(self, pos: int) -> None:
         del self.buf[:pos]

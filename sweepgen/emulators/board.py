@@ -57,16 +57,18 @@ import zlib
 from dataclasses import dataclass
 
 from sweepgen.emulators._board_faults import ALWAYS, FAULT_KINDS, FAULTS, FaultPlan
-from sweepgen.emulators._server import LOOPBACK, LoopbackServer, profile_port
+from sweepgen.emulators._server import IDLE_TIMEOUT, LOOPBACK, MAX_CONNECTIONS, LoopbackServer, profile_port
 from sweepgen.wire import frames as fr
 
 __all__ = ["ALWAYS", "FAULTS", "FAULT_KINDS", "BoardEmulator", "BoardServer", "BoardThread", "CommittedTable",
-           "FaultPlan", "capabilities_for", "listen_port", "serve_forever"]
+           "FaultPlan", "Stream", "capabilities_for", "listen_port", "serve_forever"]
 
 DEFAULT_GENERATOR = "demo-ramp-board"
 DEFAULT_PORT = 7450        # sweepgen's own choice (as in demo-ramp-board's link)
 DEFAULT_MAX_PAYLOAD = 4096 + fr.DATA_PREFIX
 GAP_TIMEOUT = 0.1          # s: a partial frame is discarded after this much silence
+MAX_TABLE_BYTES = 256 << 20   # bytes of table the emulator holds while receiving (its announced memory obeys it)
+EVENT_LOG = 4096           # events remembered (the latest)
 
 
 # --------------------------------------------------------------------------- the board
@@ -102,8 +104,10 @@ def capabilities_for(generator, *, max_payload: int = DEFAULT_MAX_PAYLOAD,
         word_bits, dac_bits, clock = 0, int(out.dac_bits or 16), 0
     sampling = generator.sampling
     rates = sampling.rates if sampling.rates else (sampling.rate_min, sampling.rate_max)
+    # the memory announced is what the emulator will buffer: at most MAX_TABLE_BYTES, and a u32
+    memory = min(int(sampling.memory), MAX_TABLE_BYTES // max(f.itemsize for f in formats), 0xFFFFFFFF)
     return fr.Capabilities(fr.PROTOCOL_VERSION, formats, word_bits, dac_bits, int(max_payload),
-                           int(sampling.memory), clock, tuple(int(round(r)) for r in rates[:255]), name)
+                           memory, clock, tuple(int(round(r)) for r in rates[:255]), name)
 
 
 def _load_generator(generator):
@@ -136,15 +140,23 @@ class BoardEmulator:
         self.caps = capabilities_for(self.generator, max_payload=max_payload, name=name)
         self.faults = FaultPlan.parse(faults, default_stall=2.0 * self.generator.link.timeout)
         self.gap_timeout = gap_timeout
-        self.decoder = fr.Decoder(self.caps.max_payload)
+        self._stream = self.new_stream()     # the one stream of serve_fd and of feed() without a stream
         self.committed: CommittedTable | None = None
         self.armed = False
         self.events: list[tuple] = []        # (event, details) in order, for tests and logs
         self.commits = 0                     # tables committed so far
         self.resets = 0
         self._lock = threading.Lock()
-        self._last_byte = None
         self._power_up()
+
+    @property
+    def decoder(self) -> fr.Decoder:
+        """The frame decoder of the board's own stream (a pseudo-terminal, or feed() without a stream)."""
+        return self._stream.decoder
+
+    def new_stream(self) -> "Stream":
+        """Receiving state for one more byte stream (each connection of :class:`BoardServer` has one)."""
+        return Stream(fr.Decoder(self.caps.max_payload))
 
     # -- state -----------------------------------------------------------------------------
     def _power_up(self) -> None:
@@ -172,18 +184,22 @@ class BoardEmulator:
         return int(round(out.range_min * scale)), int(round(out.range_max * scale))
 
     # -- bytes in, replies out ---------------------------------------------------------------
-    def feed(self, data: bytes, now: float | None = None) -> list:
-        """Process received bytes; return ``[(delay_s, reply_bytes), ...]`` to send in order."""
+    def feed(self, data: bytes, now: float | None = None, stream: "Stream | None" = None) -> list:
+        """Process bytes received on ``stream`` (default: the board's own); return
+        ``[(delay_s, reply_bytes), ...]`` to send back on it in order."""
         now = time.monotonic() if now is None else now
+        stream = stream or self._stream
+        decoder = stream.decoder
         with self._lock:
-            if (self._last_byte is not None and self.decoder.pending
-                    and now - self._last_byte > self.gap_timeout):
-                self.events.append(("gap", {"discarded": self.decoder.pending}))
-                self.decoder.reset()
-            self._last_byte = now
+            if stream.last_byte is not None and decoder.pending and now - stream.last_byte > self.gap_timeout:
+                self.events.append(("gap", {"discarded": decoder.pending}))
+                decoder.reset()
+            stream.last_byte = now
             out = []
-            for item in self.decoder.feed(data):
+            for item in decoder.feed(data):
                 out.extend(self._receive(item))
+            if len(self.events) > EVENT_LOG:
+                del self.events[:EVENT_LOG // 2]
             return out
 
     def _receive(self, item) -> list:
@@ -375,12 +391,13 @@ class BoardEmulator:
         return self._ack(frame.type, frame.seq, self._table_id().pack())
 
     # -- serving byte streams -----------------------------------------------------------------
-    def serve_stream(self, read_some, write_all, stop: threading.Event) -> None:
+    def serve_stream(self, read_some, write_all, stop: threading.Event, stream: "Stream | None" = None) -> None:
         """Serve until ``stop`` is set or ``read_some`` reports the end of the stream.
 
         ``read_some(timeout)`` returns received bytes, ``None`` when nothing came
         within ``timeout`` seconds, or ``b""`` at the end of the stream;
-        ``write_all(data)`` sends bytes.
+        ``write_all(data)`` sends bytes. ``stream`` is the receiving state
+        (:meth:`new_stream`; default the board's own).
         """
         while not stop.is_set():
             data = read_some(0.05)
@@ -388,7 +405,7 @@ class BoardEmulator:
                 return
             if data is None:
                 continue
-            for delay, reply in self.feed(data):
+            for delay, reply in self.feed(data, stream=stream):
                 if delay and stop.wait(delay):
                     return
                 write_all(reply)
@@ -415,7 +432,8 @@ class BoardEmulator:
         self.serve_stream(read_some, write_all, stop)
 
     def serve_socket(self, sock: socket.socket, stop: threading.Event) -> None:
-        """Serve one connected socket until the peer closes it or ``stop`` is set."""
+        """Serve one connected socket (with a stream of its own) until the peer closes it or
+        ``stop`` is set."""
 
         def read_some(timeout):
             ready, _, _ = select.select([sock], [], [], timeout)
@@ -432,11 +450,19 @@ class BoardEmulator:
             except OSError:
                 pass                # the host went away; the next read ends the connection
 
-        self.serve_stream(read_some, write_all, stop)
+        self.serve_stream(read_some, write_all, stop, self.new_stream())
 
     def start_fd(self, fd: int) -> "BoardThread":
         """Serve ``fd`` in a daemon thread; stop it with the returned handle."""
         return BoardThread(self, target=lambda stop: self.serve_fd(fd, stop))
+
+
+@dataclass
+class Stream:
+    """Receiving state of one byte stream: its frame decoder and when it last brought a byte."""
+
+    decoder: fr.Decoder
+    last_byte: float | None = None
 
 
 class BoardThread:
@@ -462,19 +488,25 @@ class BoardThread:
 
 
 class BoardServer(LoopbackServer):
-    """The board emulator on a TCP port (one host connection at a time).
+    """The board emulator on a TCP port.
 
-    The board's state (its committed table) persists across connections, as a
-    powered board's does when a host closes and reopens the port.
+    Several hosts may connect at once, each with its own frame decoder (bytes
+    of different connections never mix into one frame), sharing the one board;
+    see :class:`LoopbackServer` for the limits that keep one host from blocking
+    or exhausting the others. The board's state (its committed table) persists
+    across connections, as a powered board's does when a host closes and
+    reopens the port.
     """
 
     name = "sweepgen-board-server"
 
     def __init__(self, generator=None, *, host: str = LOOPBACK, port: int = 0,
                  faults: dict | None = None, board: BoardEmulator | None = None,
-                 stop: threading.Event | None = None, **board_options):
+                 stop: threading.Event | None = None, max_connections: int = MAX_CONNECTIONS,
+                 idle_timeout: float | None = IDLE_TIMEOUT, log=None, **board_options):
         self.board = board if board is not None else BoardEmulator(generator, faults=faults, **board_options)
-        super().__init__(host, port, stop=stop)
+        super().__init__(host, port, stop=stop, max_connections=max_connections, idle_timeout=idle_timeout,
+                         log=log)
 
     @property
     def url(self) -> str:
@@ -482,9 +514,7 @@ class BoardServer(LoopbackServer):
         return f"socket://{host}:{self.port}"
 
     def serve_connection(self, conn) -> None:
-        self.board.serve_socket(conn, self.stopping)
-        with self.board._lock:
-            self.board.decoder.reset()
+        self.board.serve_socket(conn, conn)
 
 
 def listen_port(generator, port: int | None = None) -> int:
@@ -493,7 +523,7 @@ def listen_port(generator, port: int | None = None) -> int:
 
 
 def serve_forever(host: str, port: int | None, generator, faults: dict | None = None, ready=None, *,
-                  stop: threading.Event | None = None) -> None:
+                  stop: threading.Event | None = None, log=None) -> None:
     """Serve the board emulator on ``host:port`` until interrupted (``sweepgen emulate --board``).
 
     Parameters
@@ -509,10 +539,12 @@ def serve_forever(host: str, port: int | None, generator, faults: dict | None = 
         Called once with the port number when the server listens.
     stop : threading.Event, optional
         Setting it ends the server (otherwise it runs until Ctrl-C).
+    log : callable, optional
+        Receives a line per connection opened and closed.
     """
     generator = _load_generator(generator)
     port = listen_port(generator, port)
-    server = BoardServer(generator, host=host, port=port, faults=faults, stop=stop)
+    server = BoardServer(generator, host=host, port=port, faults=faults, stop=stop, log=log)
     if ready is not None:
         ready(server.port)
     try:

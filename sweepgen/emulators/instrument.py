@@ -47,18 +47,20 @@ overflow, SCPI-1999 21.8). A command error (-1xx) discards the rest of its
 message (IEEE 488.2 6.1.6.1), so nothing after a bad or injected unit runs.
 
 Fault switches (:class:`Faults`) make it misbehave on purpose for tests.
-:class:`InstrumentServer` puts it on a TCP socket; clients are served one at a
-time, in the order they connect.
+:class:`InstrumentServer` puts it on a TCP socket and serves several clients at
+once, so a silent client blocks nobody; what it buffers is bounded (message text
+at most :data:`LINE_CEILING` bytes, block payload of all connections together at
+most :data:`BUFFER_CEILING`).
 """
 
 
 from __future__ import annotations
 
+import collections
 import contextlib
 import re
 import socket
 import threading
-import time
 import zlib
 from dataclasses import dataclass
 
@@ -66,7 +68,7 @@ import numpy as np
 
 from sweepgen.emulators import _scpi_parser as parser
 from sweepgen.emulators._scpi_parser import CommandTable, SCPIError
-from sweepgen.emulators._scpi_reader import Closed, MessageReader
+from sweepgen.emulators._scpi_reader import Budget, Closed, MessageReader
 from sweepgen.emulators._server import LOOPBACK, LoopbackServer, profile_port
 from sweepgen.wire import scpi
 from sweepgen.wire.block import block_header
@@ -75,6 +77,9 @@ DEFAULT_GENERATOR = "virtual-awg"
 DEFAULT_PORT = 5025        # the usual port of raw-socket SCPI instruments (common practice)
 QUEUE_LENGTH = 16
 REPLY_SEND_TIMEOUT = 60.0             # s: a client that takes no reply bytes for this long is dropped
+LINE_CEILING = 16 << 20               # bytes of message text (blocks excluded) any one message may hold
+BUFFER_CEILING = 256 << 20            # bytes of block payload all connections together may hold
+LOG_LENGTH = 4096                     # messages and output switches remembered
 
 
 
@@ -158,17 +163,22 @@ class VirtualInstrument:
         self.identity = identity or f"sweepgen,virtual-awg,0,{__version__}"
         memory = generator.sampling.memory
         #: longest message text (blocks excluded) accepted, in bytes: room for an ASCII list of the
-        #: whole memory at 12 characters a value (the longest 32-bit integer and its comma)
-        self.max_line = max_line if max_line is not None else 65536 + 12 * memory
-        #: largest block accepted, in bytes (memory depth at 8 bytes per value)
-        self.max_block = 8 * memory
+        #: whole memory at 12 characters a value (the longest 32-bit integer and its comma), at most
+        #: LINE_CEILING
+        self.max_line = max_line if max_line is not None else min(65536 + 12 * memory, LINE_CEILING)
+        #: largest block accepted, in bytes (memory depth at 8 bytes per value), at most BUFFER_CEILING
+        self.max_block = min(8 * memory, BUFFER_CEILING)
+        #: block bytes all connections together may hold while their messages are read
+        self.buffers = Budget(BUFFER_CEILING)
         self.lock = threading.RLock()
         self.traces: dict[str, _Trace] = {}
         self.errors: list[str] = []
         self.esr = 0
-        #: (channel, True/False) each time an output is switched, for tests and the log
+        #: (channel, True/False) each time an output is switched (the latest LOG_LENGTH), for tests and the log
         self.output_events: list[tuple[int, bool]] = []
-        self.log: list[str] = []          # program messages received (text, blocks as <n bytes>)
+        self._armed_once = False
+        #: program messages received (text, blocks as <n bytes>), the latest LOG_LENGTH
+        self.log: collections.deque[str] = collections.deque(maxlen=LOG_LENGTH)
         self._commands = self._command_table()
         self.reset()
 
@@ -178,7 +188,7 @@ class VirtualInstrument:
         with self.lock:
             for n, channel in getattr(self, "channels", {}).items():
                 if channel.output:
-                    self.output_events.append((n, False))
+                    self._output_event(n, False)
             self.channels = {n: Channel() for n in range(1, self.generator.channels + 1)}
             self.format = ("ASC", 0)
             self.border = "NORM"
@@ -187,11 +197,17 @@ class VirtualInstrument:
     @property
     def ever_armed(self) -> bool:
         """True if any output was ever switched on."""
-        return any(on for _, on in self.output_events)
+        return self._armed_once
 
     @property
     def outputs_on(self) -> list[int]:
         return [n for n, ch in self.channels.items() if ch.output]
+
+    def _output_event(self, channel: int, on: bool) -> None:
+        self._armed_once = self._armed_once or on
+        self.output_events.append((channel, on))
+        if len(self.output_events) > LOG_LENGTH:
+            del self.output_events[:LOG_LENGTH // 2]
 
     def push_error(self, code: int, detail: str = "") -> None:
         if -199 <= code <= -100:
@@ -321,7 +337,7 @@ class VirtualInstrument:
             self._check_playable(channel)
         if channel.output != on:
             channel.output = on
-            self.output_events.append((n, on))
+            self._output_event(n, on)
 
     def _check_playable(self, channel: Channel) -> None:
         out = self.generator.output
@@ -547,14 +563,16 @@ class InstrumentServer(LoopbackServer):
     """Serve a :class:`VirtualInstrument` on a TCP port (loopback by default).
 
     Bound when constructed (``port=0`` picks a free port); :meth:`start` serves
-    in a background thread, :meth:`serve_forever` in the calling one. Clients
-    are served one at a time; the next waits in the listen queue.
+    in a background thread, :meth:`serve_forever` in the calling one. Several
+    clients are served at once, each in its own thread (the instrument's state
+    is shared, one message at a time); see :class:`LoopbackServer` for the
+    limits that keep one client from blocking or exhausting the others.
     """
 
     name = "virtual-awg"
 
-    def __init__(self, instrument: VirtualInstrument, host: str = LOOPBACK, port: int = 0):
-        super().__init__(host, port)
+    def __init__(self, instrument: VirtualInstrument, host: str = LOOPBACK, port: int = 0, **server_options):
+        super().__init__(host, port, **server_options)
         self.instrument = instrument
 
     @property
@@ -571,32 +589,38 @@ class InstrumentServer(LoopbackServer):
         conn.settimeout(0.1)
         with contextlib.suppress(OSError):
             conn.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 4 << 20)
-        reader = MessageReader(conn, self.instrument, self.stopping)
-        while True:
-            try:
-                text, blocks, error = reader.message()
-            except Closed:
-                return
-            if error is not None:
-                with self.instrument.lock:
-                    self.instrument.push_error(*error)
-                    self.instrument.log.append(f"<refused: {error[1]}>")
-                continue
-            shown = re.sub(r"\x00B(\d+)\x00", lambda m: f"<block {len(blocks[int(m.group(1))])} bytes>", text)
-            self.instrument.log.append(shown[:200])
-            responses = self.instrument.execute(text, blocks)
-            if responses and not self._reply(conn, responses):
-                return
+        reader = MessageReader(conn, self.instrument, conn)
+        try:
+            while self._serve_message(conn, reader):
+                pass
+        finally:
+            reader.release()
+
+    def _serve_message(self, conn, reader) -> bool:
+        """Read, run and answer one program message; False when the connection ends."""
+        inst = self.instrument
+        try:
+            text, blocks, error = reader.message()
+        except Closed:
+            return False
+        if error is not None:
+            with inst.lock:
+                inst.push_error(*error)
+                inst.log.append(f"<refused: {error[1]}>")
+            return True
+        shown = re.sub(r"\x00B(\d+)\x00", lambda m: f"<block {len(blocks[int(m.group(1))])} bytes>", text)
+        inst.log.append(shown[:200])
+        responses = inst.execute(text, blocks)
+        del blocks
+        reader.release()
+        return not responses or self._reply(conn, responses)
 
     def _reply(self, conn, responses) -> bool:
         faults = self.instrument.faults
         if faults.mute:
             return True
-        if faults.delay:
-            deadline = time.monotonic() + faults.delay
-            while time.monotonic() < deadline:
-                if self.stopping.wait(min(0.05, max(0.0, deadline - time.monotonic()))):
-                    return False
+        if faults.delay and conn.wait(faults.delay):
+            return False
         conn.settimeout(REPLY_SEND_TIMEOUT)
         try:
             for i, response in enumerate(responses):
@@ -621,14 +645,14 @@ def listen_port(generator, port: int | None = None) -> int:
 
 
 def serve_forever(host: str, port: int | None, generator, faults: Faults | None = None, ready=None,
-                  identity: str | None = None) -> None:
+                  identity: str | None = None, log=None) -> None:
     """Serve the virtual instrument until interrupted; ``ready(resource)`` is called once listening.
 
     ``port=None`` takes the port of the profile's link resource (else :data:`DEFAULT_PORT`);
-    ``port=0`` picks a free one.
+    ``port=0`` picks a free one. ``log(line)`` receives a line per connection opened and closed.
     """
     port = listen_port(generator, port)
-    server = InstrumentServer(VirtualInstrument(generator, faults=faults, identity=identity), host, port)
+    server = InstrumentServer(VirtualInstrument(generator, faults=faults, identity=identity), host, port, log=log)
     if ready is not None:
         ready(server.resource)
     server.serve_forever()

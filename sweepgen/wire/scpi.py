@@ -74,6 +74,20 @@ def parse_error(reply: str) -> ErrorReply:
     return ErrorReply(int(m.group(1)), m.group(2).replace('""', '"'), raw)
 
 
+def parse_boolean(reply: str) -> bool | None:
+    """A Boolean reply: ``1``/``ON`` is True, ``0``/``OFF`` False, anything else None.
+
+    SCPI-1999 answers a Boolean query with the number 0 or 1 (recalled); some
+    instruments answer ``OFF``/``ON``, and a number may carry a ``+``.
+    """
+    text = reply.strip().upper()
+    if text in ("1", "+1", "ON"):
+        return True
+    if text in ("0", "+0", "OFF"):
+        return False
+    return None
+
+
 def is_no_error(reply: str, pattern: str) -> bool:
     """True when ``reply`` matches the profile's ``no_error_pattern`` (a regular expression)."""
     return re.search(pattern, reply.strip()) is not None
