@@ -229,7 +229,9 @@ class _Link:
             if time.monotonic() >= deadline:
                 return None
             try:
-                data = self.port.read(self.decoder.wanted())
+                # what the frame needs, or what is already waiting (a board that talks without end is
+                # read in pieces, not byte by byte)
+                data = self.port.read(max(self.decoder.wanted(), min(self.port.in_waiting, 1 << 16)))
             except (serial.SerialException, OSError) as exc:
                 raise InstrumentError(f"the link failed while waiting for a reply ({exc})", step=step) from None
             if data:

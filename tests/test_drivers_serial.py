@@ -11,7 +11,6 @@ import dataclasses
 import os
 import select
 import socket
-import struct
 import threading
 import zlib
 
@@ -28,7 +27,7 @@ from sweepgen.table import Frame, RenderedTable, TableInfo
 from sweepgen.testing import virtual_board
 from sweepgen.wire import frames as fr
 
-from conftest import dds_table, deliver_to_board, examples, quick_ramp_board, raw_pty, refused_port
+from conftest import DocBoard, dds_table, deliver_to_board, examples, quick_ramp_board, raw_pty, refused_port
 
 GEN = quick_ramp_board()
 
@@ -339,139 +338,6 @@ def test_a_link_that_dies_mid_transfer_is_an_instrument_error():
 
 
 # --------------------------------------------------------------------------- an independent board
-
-
-class DocBoard:
-    """A minimal board written from drivers/serial_protocol.md alone: struct and zlib, no sweepgen code.
-
-    Sections of the document it follows: 1 (frames), 1.1 (receiving), 2 (remembered reply),
-    3.1-3.7 (messages), 4 (REFUSE layout), 5 (commit rule).
-    """
-
-    def __init__(self, *, memory=262144, rates=(1_000_000,), clock=1_000_000_000, word_bits=32,
-                 max_payload=512):
-        self.memory, self.rates, self.clock, self.word_bits = memory, rates, clock, word_bits
-        self.max_payload = max_payload
-        self.rx = bytearray()
-        self.session = False
-        self.state = 0                       # 0 IDLE, 1 RECEIVING, 2 VERIFIED
-        self.armed = False
-        self.begin = None                    # (format, count, crc, rate)
-        self.mem = bytearray()
-        self.received = 0
-        self.committed = None                # (format, count, crc, rate, bytes)
-        self.last = None                     # (seq, type, crc of payload, reply)
-
-    @staticmethod
-    def frame(t, seq, payload):
-        body = b"\xa5\x5a" + struct.pack("<BBHH", t, seq, len(payload), len(payload) ^ 0xFFFF) + payload
-        return body + struct.pack("<I", zlib.crc32(body))
-
-    def ack(self, t, seq, data=b""):
-        return self.frame(0x80, seq, bytes([t]) + data)
-
-    def refuse(self, t, seq, reason, detail=0):
-        return self.frame(0x81, seq, struct.pack("<BBI", t, reason, detail))
-
-    def receive(self, data):
-        """Section 1.1: return the replies to every complete frame in the stream."""
-        self.rx += data
-        out = []
-        while True:
-            i = self.rx.find(b"\xa5\x5a")
-            if i < 0:
-                del self.rx[:max(0, len(self.rx) - 1) if self.rx[-1:] == b"\xa5" else len(self.rx)]
-                return out
-            del self.rx[:i]
-            if len(self.rx) < 8:
-                return out
-            t, seq, n, check = struct.unpack_from("<BBHH", self.rx, 2)
-            if check != n ^ 0xFFFF or n > self.max_payload:
-                del self.rx[:1]
-                continue
-            if len(self.rx) < n + 12:
-                return out
-            frame = bytes(self.rx[:n + 12])
-            if zlib.crc32(frame[:8 + n]) != struct.unpack_from("<I", frame, 8 + n)[0]:
-                out.append(self.refuse(t, seq, 0x01))
-                del self.rx[:1]
-                continue
-            del self.rx[:n + 12]
-            out.append(self.handle(t, seq, frame[8:8 + n]))
-
-    def handle(self, t, seq, p):
-        key = (seq, t, zlib.crc32(p))
-        if t != 0x01 and self.last and self.last[:3] == key:
-            return self.last[3]
-        reply = self.execute(t, seq, p)
-        self.last = (*key, reply)
-        return reply
-
-    def execute(self, t, seq, p):
-        if t == 0x01:                                            # HELLO
-            if p != b"\x01":
-                return self.refuse(t, seq, 0x04, 1)
-            self.session, self.state = True, 0
-            caps = struct.pack("<BBBBBHIQ", 1, 1 << 2, self.word_bits, 0, len(self.rates), self.max_payload,
-                               self.memory, self.clock)
-            return self.ack(t, seq, caps + struct.pack(f"<{len(self.rates)}I", *self.rates) + b"doc board")
-        if t == 0x08:                                            # DISARM
-            self.armed = False
-            return self.ack(t, seq)
-        if t == 0x06:                                            # STATUS
-            fmt, count, crc, rate = self.committed[:4] if self.committed else (0, 0, 0, 0)
-            return self.ack(t, seq, struct.pack("<BBBxIIII", self.state, self.armed, fmt, count, crc, rate,
-                                                self.received))
-        if not self.session:
-            return self.refuse(t, seq, 0x05)
-        if t == 0x02:                                            # BEGIN
-            fmt, count, crc, rate = struct.unpack("<B3xIII", p)
-            if self.armed:
-                return self.refuse(t, seq, 0x07)
-            if fmt != 3:
-                return self.refuse(t, seq, 0x08, 1 << 2)
-            if not 1 <= count <= self.memory:
-                return self.refuse(t, seq, 0x09, self.memory)
-            if rate not in self.rates:
-                return self.refuse(t, seq, 0x0A, rate)
-            self.begin, self.mem, self.received, self.state = (fmt, count, crc, rate), bytearray(4 * count), 0, 1
-            return self.ack(t, seq)
-        if t == 0x03:                                            # DATA
-            if self.state != 1:
-                return self.refuse(t, seq, 0x06, self.state)
-            (offset,), chunk = struct.unpack_from("<I", p), p[4:]
-            if offset > self.received:
-                return self.refuse(t, seq, 0x0B, self.received)
-            if offset + len(chunk) > len(self.mem):
-                return self.refuse(t, seq, 0x0C, len(self.mem))
-            self.mem[offset:offset + len(chunk)] = chunk
-            self.received = max(self.received, offset + len(chunk))
-            return self.ack(t, seq, struct.pack("<I", self.received))
-        if t == 0x04:                                            # END
-            if self.state != 1:
-                return self.refuse(t, seq, 0x06, self.state)
-            if self.received < len(self.mem):
-                return self.refuse(t, seq, 0x0D, self.received)
-            crc = zlib.crc32(self.mem)
-            if crc != self.begin[2]:
-                self.state = 0
-                return self.refuse(t, seq, 0x0E, crc)
-            self.state = 2
-            return self.ack(t, seq, struct.pack("<I", crc))
-        if t == 0x05:                                            # COMMIT
-            if self.state != 2:
-                return self.refuse(t, seq, 0x06, self.state)
-            self.state = 0
-            if zlib.crc32(self.mem) != self.begin[2]:
-                return self.refuse(t, seq, 0x0E, zlib.crc32(self.mem))
-            self.committed = (*self.begin, bytes(self.mem))
-            return self.ack(t, seq, struct.pack("<B3xIII", *self.begin))
-        if t == 0x07:                                            # ARM
-            if self.committed is None:
-                return self.refuse(t, seq, 0x11)
-            self.armed = True
-            return self.ack(t, seq, struct.pack("<I", self.committed[2]))
-        return self.refuse(t, seq, 0x03)
 
 
 def _serve_doc_board(board, fd, stop):
