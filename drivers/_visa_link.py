@@ -225,18 +225,8 @@ class VisaLink:
 
     def write(self, step: str, text: str) -> None:
         """One command (no reply expected)."""
-        self.check_link(step)
-        raw = text.encode() + b"\n"
-        try:
-            self.send(step, raw, time.monotonic() + self.timeout)
-        except socket.timeout:
-            self.in_step = False
-            raise InstrumentError(f"the instrument took no command bytes within {self.timeout:.3g} s",
-                                  step=step) from None
-        except visa_errors() as exc:
-            raise self.failure(step, exc, self.timeout) from None
-        self.sent += len(raw)
-        self.log(step, "write", text, len(raw))
+        nbytes = self.write_query(step, text)
+        self.log(step, "write", text, nbytes)
 
     # -- bytes in ------------------------------------------------------------------------------
     def _fill(self, step: str, deadline: float, timeout: float, want: int) -> None:
@@ -330,8 +320,8 @@ class VisaLink:
         self.log(step, "query", text, len(text.encode()) + 1, reply=reply, duration=time.monotonic() - t0)
         return reply
 
-    def write_query(self, step: str, text: str) -> None:
-        """Send the query text (the reply is read by the caller)."""
+    def write_query(self, step: str, text: str) -> int:
+        """Send one line (a command, or a query whose reply the caller reads); returns its bytes."""
         self.check_link(step)
         raw = text.encode() + b"\n"
         try:
@@ -343,6 +333,7 @@ class VisaLink:
         except visa_errors() as exc:
             raise self.failure(step, exc, self.timeout) from None
         self.sent += len(raw)
+        return len(raw)
 
     def clear_input(self) -> bool:
         """Discard what has arrived unasked; True when the line then falls quiet.

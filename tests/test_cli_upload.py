@@ -133,6 +133,29 @@ def test_contradictory_destinations_are_usage_errors(args, key):
     assert key in result.stderr
 
 
+@pytest.mark.parametrize("scenario, option, address, words", [
+    (SCENARIO, "--resource", "TCPIP::127.0.0.1::99999::SOCKET",
+     "port '99999' in 'TCPIP::127.0.0.1::99999::SOCKET' is not a TCP port (1 to 65535)"),
+    (SCENARIO, "--resource", "garbage", "not a VISA resource string: 'garbage'"),
+    (SCENARIO, "--resource", "", "expected an address, got an empty one"),       # not the profile's instead
+    (SCENARIO, "--resource", "   ", "expected an address, got an empty one"),
+    ("caf-buffer-gas", "--serial-port", "socket://127.0.0.1:99999",
+     "expected socket://HOST:PORT with a TCP port from 1 to 65535"),
+    ("caf-buffer-gas", "--serial-port", "socket://127.0.0.1:port",
+     "expected socket://HOST:PORT with a TCP port from 1 to 65535"),
+    ("caf-buffer-gas", "--serial-port", "socket://:7450", "expected socket://HOST:PORT"),
+    ("caf-buffer-gas", "--serial-port", "nosuchscheme://x", "not a serial device or pyserial URL"),
+    ("caf-buffer-gas", "--serial-port", "", "expected an address, got an empty one"),
+])
+def test_an_address_that_cannot_name_an_instrument_is_refused_before_connecting(scenario, option, address, words):
+    result = run(scenario, option, address)
+    assert result.exit_code == 2
+    line = result.stderr.strip()
+    assert "\n" not in line and line.startswith("sweepgen: error:")
+    assert f"key '{option}'" in line and words in line
+    assert "debug|info" not in line                    # not pyserial's list of logging levels
+
+
 def test_unknown_backend_is_a_usage_error():
     with instrument_server("virtual-awg") as server:
         result = run(SCENARIO, "--resource", server.resource, "--backend", "@nonexistent")

@@ -86,8 +86,38 @@ def _profile(tmp_path, name: str, output_state: bool = True, **link) -> str:
     return str(path)
 
 
+# --------------------------------------------------------------------------- a peer on a loopback port
+class Listening:
+    """A loopback listener that hands each connection to ``self._serve(conn, number)`` in a thread."""
+
+    def _listen(self):
+        self.stop = threading.Event()
+        self.listener = socket.create_server(("127.0.0.1", 0))
+        self.listener.settimeout(0.1)
+        self.port = self.listener.getsockname()[1]
+        self.thread = threading.Thread(target=self._accept, daemon=True)
+
+    def __enter__(self):
+        self.thread.start()
+        return self
+
+    def __exit__(self, *exc):
+        self.stop.set()
+        self.thread.join(5)
+        self.listener.close()
+
+    def _accept(self):
+        number = itertools.count(1)
+        while not self.stop.is_set():
+            try:
+                conn, _ = self.listener.accept()
+            except socket.timeout:
+                continue
+            threading.Thread(target=self._serve, args=(conn, next(number)), daemon=True).start()
+
+
 # --------------------------------------------------------------------------- an SCPI instrument
-class ScpiPeer:
+class ScpiPeer(Listening):
     """An arbitrary-waveform generator that answers like a well-behaved one unless told otherwise.
 
     ``misbehave(command, connection)`` returns None (answer normally) or one of
@@ -103,36 +133,12 @@ class ScpiPeer:
         self.ignore_off = ignore_off
         self.commands: list[tuple[int, str]] = []
         self.traces: dict[str, bytes] = {}
-        self.stop = threading.Event()
-        self.listener = socket.create_server(("127.0.0.1", 0))
-        self.listener.settimeout(0.1)
-        self.resource = f"TCPIP::127.0.0.1::{self.listener.getsockname()[1]}::SOCKET"
-        self.thread = threading.Thread(target=self._accept, daemon=True)
-
-    def __enter__(self):
-        self.thread.start()
-        return self
-
-    def __exit__(self, *exc):
-        self.stop.set()
-        self.thread.join(5)
-        self.listener.close()
+        self._listen()
+        self.resource = f"TCPIP::127.0.0.1::{self.port}::SOCKET"
 
     @property
     def ever_on(self) -> bool:
         return any(re.match(r"OUTP\d*:STAT ON", text) for _, text in self.commands)
-
-    def _accept(self):
-        for number in itertools.count(1):
-            while not self.stop.is_set():
-                try:
-                    conn, _ = self.listener.accept()
-                    break
-                except socket.timeout:
-                    continue
-            else:
-                return
-            threading.Thread(target=self._serve, args=(conn, number), daemon=True).start()
 
     def _serve(self, conn, number):
         conn.settimeout(0.1)
@@ -320,21 +326,8 @@ def test_an_absurd_throughput_or_timeout_is_clamped_not_a_traceback(tmp_path):
         assert "Traceback" not in run.stderr
 
 
-@pytest.mark.parametrize("resource, words", [
-    ("TCPIP::127.0.0.1::99999::SOCKET", "port '99999' in 'TCPIP::127.0.0.1::99999::SOCKET' is not a TCP port"),
-    ("garbage", "not a VISA resource string: 'garbage'"),
-    ("", "key '--resource': expected an address, got an empty one"),
-    ("   ", "key '--resource': expected an address, got an empty one"),
-])
-def test_a_resource_that_cannot_name_an_instrument_is_refused(resource, words, tmp_path):
-    run = Run("upload", SCENARIO, "--resource", resource, cwd=tmp_path)
-    assert run.code == 2
-    assert words in run.error() and "--resource" in run.error()
-    assert "Traceback" not in run.stderr
-
-
 # --------------------------------------------------------------------------- a ramp board
-class BoardPeer(DocBoard):
+class BoardPeer(Listening, DocBoard):
     """The board of the protocol document on a loopback socket, told to misbehave.
 
     ``fault`` is one of ``"trickle"`` (every reply a byte at a time, 0.2 s
@@ -351,34 +344,14 @@ class BoardPeer(DocBoard):
         self.fault = fault
         self.armed = armed
         self.requests: list[int] = []          # message types received, in order
-        self.stop = threading.Event()
-        self.listener = socket.create_server(("127.0.0.1", 0))
-        self.listener.settimeout(0.1)
-        self.url = f"socket://127.0.0.1:{self.listener.getsockname()[1]}"
-        self.thread = threading.Thread(target=self._accept, daemon=True)
-
-    def __enter__(self):
-        self.thread.start()
-        return self
-
-    def __exit__(self, *exc):
-        self.stop.set()
-        self.thread.join(5)
-        self.listener.close()
+        self._listen()
+        self.url = f"socket://127.0.0.1:{self.port}"
 
     @property
     def ever_armed_by_host(self) -> bool:
         return 0x07 in self.requests            # ARM
 
-    def _accept(self):
-        while not self.stop.is_set():
-            try:
-                conn, _ = self.listener.accept()
-            except socket.timeout:
-                continue
-            threading.Thread(target=self._serve, args=(conn,), daemon=True).start()
-
-    def _serve(self, conn):
+    def _serve(self, conn, number):
         conn.settimeout(0.05)
         with conn:
             try:
@@ -479,20 +452,6 @@ def test_a_board_that_misbehaves(fault, tmp_path, board_dry_run):
     assert not board.ever_armed_by_host
     assert run.seconds < board_dry_run.seconds + deadlines + SLACK
     assert run.peak_bytes < board_dry_run.peak_bytes + MEMORY_SLACK
-
-
-@pytest.mark.parametrize("url, words", [
-    ("socket://127.0.0.1:99999", "expected socket://HOST:PORT with a TCP port from 1 to 65535"),
-    ("socket://127.0.0.1:port", "expected socket://HOST:PORT with a TCP port from 1 to 65535"),
-    ("socket://:7450", "expected socket://HOST:PORT with a TCP port from 1 to 65535"),
-    ("nosuchscheme://x", "not a serial device or pyserial URL: 'nosuchscheme://x'"),
-    ("", "key '--serial-port': expected an address, got an empty one"),
-])
-def test_a_serial_url_that_cannot_name_a_port_is_refused(url, words, tmp_path):
-    run = Run("upload", BOARD_SCENARIO, "--serial-port", url, cwd=tmp_path)
-    assert run.code == 2
-    assert words in run.error() and "--serial-port" in run.error()
-    assert "debug|info" not in run.stderr and "Traceback" not in run.stderr
 
 
 def test_the_document_board_frames_match_the_codec():
