@@ -115,6 +115,15 @@ class Listening:
                 continue
             threading.Thread(target=self._serve, args=(conn, next(number)), daemon=True).start()
 
+    def _recv(self, conn) -> bytes:
+        """The next bytes from ``conn``; b"" when it closed or the peer is stopping."""
+        while not self.stop.is_set():
+            try:
+                return conn.recv(65536)
+            except socket.timeout:
+                continue
+        return b""
+
 
 # --------------------------------------------------------------------------- an SCPI instrument
 class ScpiPeer(Listening):
@@ -155,16 +164,9 @@ class ScpiPeer(Listening):
                 return
 
     def _more(self, conn, buf) -> bool:
-        while not self.stop.is_set():
-            try:
-                data = conn.recv(65536)
-            except socket.timeout:
-                continue
-            if not data:
-                return False
-            buf += data
-            return True
-        return False
+        data = self._recv(conn)
+        buf += data
+        return bool(data)
 
     def _message(self, conn, buf):
         """The next message up to its newline; a definite-length block inside it is taken by count."""
@@ -355,13 +357,7 @@ class BoardPeer(Listening, DocBoard):
         conn.settimeout(0.05)
         with conn:
             try:
-                while not self.stop.is_set():
-                    try:
-                        data = conn.recv(65536)
-                    except socket.timeout:
-                        continue
-                    if not data:
-                        return
+                while data := self._recv(conn):
                     for reply in self.receive(data):
                         self._send(conn, reply)
             except OSError:
