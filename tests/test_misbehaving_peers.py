@@ -71,6 +71,18 @@ class Run:
         assert len(lines) == 1, self.stderr
         return lines[0]
 
+    def check_failure(self, words, ending: str, deadlines: float, baseline: "Run") -> None:
+        """Exit 1 with one line holding ``words`` and ending with ``ending``, no traceback, within
+        ``deadlines`` s (plus the baseline's time and slack), in the baseline's memory plus slack."""
+        assert self.code == 1, self.stderr
+        error = self.error()
+        for word in words:
+            assert word in error
+        assert error.endswith(ending)
+        assert "Traceback" not in self.stderr
+        assert self.seconds < baseline.seconds + deadlines + SLACK
+        assert self.peak_bytes < baseline.peak_bytes + MEMORY_SLACK
+
 
 def _profile(tmp_path, name: str, output_state: bool = True, **link) -> str:
     """The built-in virtual-awg profile for a peer answering ``peer,...``, with a 1 s link timeout."""
@@ -285,15 +297,8 @@ def test_an_instrument_that_misbehaves(case, tmp_path, dry_run):
     misbehave, state, words, ending, deadlines = SCPI_CASES[case]
     with ScpiPeer(misbehave, **state) as peer:
         run = upload(peer, _profile(tmp_path, "peer-awg"), tmp_path)
-    assert run.code == 1, run.stderr
-    error = run.error()
-    for word in words:
-        assert word in error
-    assert error.endswith(ending)
-    assert "Traceback" not in run.stderr
+    run.check_failure(words, ending, deadlines, dry_run)
     assert not peer.ever_on                                   # --arm was given, and never acted on
-    assert run.seconds < dry_run.seconds + deadlines + SLACK
-    assert run.peak_bytes < dry_run.peak_bytes + MEMORY_SLACK
 
 
 def test_a_late_reply_is_never_taken_for_the_confirmation(tmp_path, dry_run):
@@ -302,12 +307,10 @@ def test_a_late_reply_is_never_taken_for_the_confirmation(tmp_path, dry_run):
     # completion query after the switch-off, so the switch-off cannot be confirmed
     with ScpiPeer(when("*OPC?", ("late", "1", 1.5))) as peer:
         run = upload(peer, _profile(tmp_path, "no-state", output_state=False), tmp_path)
-    assert run.code == 1
-    error = run.error()
-    assert "step 'wait': no answer within" in error
-    assert error.endswith("could not confirm that the output is off: check the instrument before touching the setup")
+    run.check_failure(["step 'wait': no answer within"],
+                      "could not confirm that the output is off: check the instrument before touching the setup",
+                      DATA_TIMEOUT + TIMEOUT, dry_run)
     assert not peer.ever_on
-    assert run.seconds < dry_run.seconds + DATA_TIMEOUT + TIMEOUT + SLACK
 
 
 def test_a_well_behaved_peer_takes_the_upload(tmp_path, dry_run):
@@ -439,15 +442,8 @@ def test_a_board_that_misbehaves(fault, tmp_path, board_dry_run):
     with BoardPeer(fault, **state) as board:
         run = Run("upload", BOARD_SCENARIO, "--generator", _board_profile(tmp_path), "--serial-port", board.url,
                   "--arm", cwd=tmp_path)
-    assert run.code == 1, run.stderr
-    error = run.error()
-    for word in words:
-        assert word in error
-    assert error.endswith(ending)
-    assert "Traceback" not in run.stderr
+    run.check_failure(words, ending, deadlines, board_dry_run)
     assert not board.ever_armed_by_host
-    assert run.seconds < board_dry_run.seconds + deadlines + SLACK
-    assert run.peak_bytes < board_dry_run.peak_bytes + MEMORY_SLACK
 
 
 def test_the_document_board_frames_match_the_codec():
