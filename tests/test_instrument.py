@@ -230,19 +230,41 @@ def test_a_silent_client_does_not_block_another(rm, small):
     idle.close()
 
 
-def test_with_every_slot_taken_the_longest_silent_client_makes_room(rm, tmp_path):
+def test_sixty_idle_connections_do_not_keep_a_client_out(rm, tmp_path):
+    # connections opened and left idle give way at once to a newcomer
     gen = generator_from_dict(SMALL, tmp_path / "small.toml")
     lines = []
     with instrument_server(gen, max_connections=3, log=lines.append) as server:
-        hogs = [socket.create_connection((server.host, server.port), timeout=2) for _ in range(6)]
-        time.sleep(1.2)                              # silent longer than EVICT_AFTER (1 s)
+        hogs = [socket.create_connection((server.host, server.port), timeout=2) for _ in range(60)]
+        t0 = time.monotonic()
         inst = open_visa(rm, server.resource, timeout_ms=3000)
         assert inst.query("*IDN?").startswith("sweepgen,")
+        took = time.monotonic() - t0
         inst.close()
         for hog in hogs:
             hog.close()
-    assert any("to make room for a new client" in line for line in lines)
-    assert any(line.startswith("connection ") and "opened" in line for line in lines)
+    assert took < 1.0 + 2.0                         # within a second, with slack for a loaded machine
+    assert any("closed to make room for a new client: it never sent anything" in line for line in lines)
+
+
+def test_with_every_slot_taken_a_stalled_client_makes_room_after_a_second(rm, tmp_path):
+    gen = generator_from_dict(SMALL, tmp_path / "small.toml")
+    lines = []
+    with instrument_server(gen, max_connections=2, log=lines.append) as server:
+        stalled = [socket.create_connection((server.host, server.port), timeout=2) for _ in range(2)]
+        for sock in stalled:
+            sock.sendall(b"*ID")                    # half a command, then nothing
+        time.sleep(0.3)
+        with socket.create_connection((server.host, server.port), timeout=2) as early:
+            assert early.recv(10) == b""            # both have spoken within the second: turned away
+        time.sleep(1.0)                             # now silent longer than EVICT_AFTER (1 s)
+        inst = open_visa(rm, server.resource, timeout_ms=3000)
+        assert inst.query("*IDN?").startswith("sweepgen,")
+        inst.close()
+        for sock in stalled:
+            sock.close()
+    assert any("turned away: all 2 connections are busy" in line for line in lines)
+    assert any("closed to make room for a new client: silent for" in line for line in lines)
 
 
 def test_an_idle_connection_is_closed_after_the_idle_timeout(tmp_path):

@@ -83,9 +83,9 @@ def command(host, port, generator_ref, board, identity, drop_after, delay, mute,
     VISA resource string. It speaks IEEE 488.2 and standard SCPI, enforces the
     generator profile's memory, sample rates and output range, and keeps an
     error queue; the fault options make it misbehave on purpose. It serves
-    several clients at once (when every place is taken, the one silent the
-    longest makes room), closes connections that stay silent, and prints a
-    line on stderr when a connection opens and when it closes.
+    several clients at once (when every place is taken, an idle one makes
+    room), closes connections that stay silent, and prints a line on stderr
+    when a connection opens and when it closes.
 
     With --board it serves the serial ramp-board emulator instead (the frame
     protocol, reachable as socket://HOST:PORT with pyserial). Its fault options

@@ -10,9 +10,10 @@ No client can block the others or exhaust the server:
 
 * each connection is served in its own thread, so a client that sends half a
   message and falls silent holds up nobody else;
-* at most ``max_connections`` are served at once; when all are taken, the one
-  silent the longest (at least :data:`EVICT_AFTER` s) is closed to make room,
-  otherwise the newcomer is turned away;
+* at most ``max_connections`` are served at once; when all are taken, one is
+  closed to make room: one that never sent a byte, else the one silent the
+  longest if silent for at least :data:`EVICT_AFTER` s; otherwise the newcomer
+  is turned away;
 * a connection silent for ``idle_timeout`` s is closed.
 
 ``log(line)`` (optional) receives one line when a connection opens and one
@@ -196,11 +197,19 @@ class LoopbackServer:
         thread.start()
 
     def _make_room(self) -> bool:
-        """Close the connection silent the longest, if silent long enough; True if room was made."""
-        conn, _ = max(self._live.values(), key=lambda item: item[0].silent_for)
-        if conn.silent_for < EVICT_AFTER:
+        """Close a connection to make room; True if one was closed.
+
+        The one silent the longest among those that never sent a byte goes at
+        once (a connection opened and left idle holds nothing); otherwise the
+        one silent the longest, if silent for :data:`EVICT_AFTER` s.
+        """
+        conns = [conn for conn, _ in self._live.values()]
+        mute = [conn for conn in conns if conn.received == 0]
+        conn = max(mute or conns, key=lambda c: c.silent_for)
+        if not mute and conn.silent_for < EVICT_AFTER:
             return False
-        conn.evict(f"closed to make room for a new client after {conn.silent_for:.1f} s of silence")
+        what = "it never sent anything" if conn.received == 0 else f"silent for {conn.silent_for:.1f} s"
+        conn.evict(f"closed to make room for a new client: {what}")
         self._live.pop(conn.number)
         return True
 
