@@ -282,14 +282,21 @@ class FileDriver(Driver):
 
     kind: ClassVar[str] = "file"
     extension: ClassVar[str] = ""
+    #: option -> the values it takes, checked by :meth:`check_options` before any work
+    choices: ClassVar[dict] = {}
 
     def check_options(self, options: dict) -> dict:
-        """The options with defaults filled in; unknown keys are an :class:`InputError`."""
+        """The options with defaults filled in; an unknown key, or a value outside the option's
+        ``choices``, is an :class:`InputError` (checked before the scenario is even planned)."""
         known = {**COMMON_OPTIONS, **self.options}
         unknown = sorted(set(options) - set(known))
         if unknown:
             raise InputError(f"driver {self.name!r} has no option {unknown[0]!r} "
                              f"(options: {', '.join(sorted(known))})", key="--option")
+        for key, allowed in self.choices.items():
+            if key in options and str(options[key]) not in allowed:
+                raise InputError(f"expected one of {', '.join(allowed)}, got {str(options[key])!r}",
+                                 key=f"--option {key}")
         name = str(options.get("name", "sweep"))
         if not _NAME.match(name) or name in (".", ".."):
             raise InputError(f"expected a plain file name (letters, digits, '_', '-', '.', '+'; no folders), "
@@ -358,6 +365,7 @@ class FileDriver(Driver):
             raise DriverError(f"{exc.filename or folder}: write failed ({exc.strerror or exc}); "
                               f"the folder was left as it was") from None
         report.update(bytes=nbytes, sha256=sha, table_sha256=doc["table_sha256"],
+                      scaling={k: doc["scaling"][k] for k in ("code", "drive")},
                       paths=[str(folder / data_name), str(folder / sidecar_name)])
         return report
 

@@ -68,6 +68,7 @@ class Hdf5Driver(FileDriver):
     suffixes = (".h5", ".hdf5", ".nxs")
     description = "HDF5 file, NeXus NXdata layout (detuning, drive and codes versus time, with units); needs h5py"
     options = {"compression": "none (default) | gzip"}
+    choices = {"compression": tuple(COMPRESSION)}
     writes_path = True
     self_describing = True
 

@@ -32,6 +32,7 @@ class NpyDriver(FileDriver):
     extension = "npy"
     description = "NumPy .npy file of the codes (numpy.load reads it)"
     options = {"byte_order": "little (default) | big"}
+    choices = {"byte_order": tuple(ORDERS)}
 
     def layout(self, table, options):
         order = str(options.get("byte_order", "little"))

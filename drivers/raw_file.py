@@ -98,6 +98,7 @@ class RawDriver(FileDriver):
     description = "bare binary values (int16, uint16, float32 or the native codes), byte order stated"
     options = {"dtype": "native (default) | int16 | uint16 | float32",
                "byte_order": "little (default) | big"}
+    choices = {"dtype": DTYPES, "byte_order": tuple(ORDERS)}
 
     def layout(self, table, options):
         spec = storage(table.info, str(options.get("dtype", "native")),

@@ -362,9 +362,16 @@ class FileFormat:
     driver: object
 
     def check_options(self, options: dict) -> None:
-        """Refuse options the driver does not know, before any work (:class:`InputError`)."""
+        """Refuse options the driver does not know, or values it does not take, before any work
+        (:class:`InputError`)."""
         if hasattr(self.driver, "check_options"):
             self.driver.check_options(options)
+
+    def check_table(self, table, options: dict) -> None:
+        """Refuse options that do not fit this table (e.g. a 16-bit ``dtype`` for 32-bit DDS words)
+        before anything is printed or written (:class:`InputError`)."""
+        if hasattr(self.driver, "layout"):
+            self.driver.layout(table, self.driver.check_options(dict(options)))
 
 
 def file_format(name: str) -> FileFormat:
@@ -399,14 +406,15 @@ class Delivered:
         """The ``export --json`` or ``upload --json`` document."""
         pb, info = self.playback, self.info
         head = {"scenario": str(pb.scenario.path), "title": pb.scenario.title}
+        warnings = [f.to_json() for f in pb.report.warnings()]
         if self.kind != "file":
-            return {**head, "generator": pb.generator.key, "laser": pb.laser.key, **self.report}
+            return {**head, "generator": pb.generator.key, "laser": pb.laser.key, **self.report,
+                    "warnings": warnings}
         return {"ok": True, "written": True, **head, "laser": pb.laser.key, "generator": pb.generator.key,
                 "format": self.driver, **self.report,
                 "period_count": info.period_count, "padding": info.count - info.period_count,
                 "drive_unit": info.drive_unit, "code_scale": info.code_scale, "code_offset": info.code_offset,
-                "amplitude": info.amplitude, "offset": info.offset,
-                "warnings": [f.to_json() for f in pb.report.warnings()]}
+                "amplitude": info.amplitude, "offset": info.offset, "warnings": warnings}
 
 
 # ---------------------------------------------------------------------------------------------

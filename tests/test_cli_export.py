@@ -179,6 +179,39 @@ def test_bad_input_is_exit_2_with_one_line(tmp_path, args, message):
     assert not (tmp_path / "out").exists()
 
 
+@pytest.mark.parametrize("option,message", [
+    ("dtype=int8", "expected one of native, int16, uint16, float32, got 'int8'"),
+    # the demo ramp board's DDS words have 32 bits: a 16-bit file cannot hold them
+    ("dtype=int16", "int16 holds 65536 levels but this generator's codes span 4294967296"),
+])
+def test_option_values_are_refused_before_the_check_speaks(tmp_path, option, message):
+    """caf-buffer-gas draws a warning from the checker (end velocity near the capture velocity); a bad
+    option value is refused before that warning, or anything else, is printed."""
+    result = run("export", "caf-buffer-gas", "-f", "raw", "-O", option, "-o", tmp_path / "out")
+    assert result.exit_code == 2, result.output
+    assert result.stderr.startswith("sweepgen: error: key '--option dtype': " + message)
+    assert "warning" not in result.stderr and result.stdout == ""
+    assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("dtype", ["int16", "uint16", "float32"])
+def test_the_console_gives_the_scaling_of_the_values_as_stored(tmp_path, dtype):
+    """The "drive" line of the console is the sidecar's scaling of the stored values (uint16 values
+    are shifted by 32768 and float32 values normalised, so the code scaling would be wrong for them)."""
+    result = run("export", "rb87-chopped-oven", "-f", "raw", "-O", f"dtype={dtype}", "-o", tmp_path)
+    assert result.exit_code == 0, result.output
+    side = json.loads((tmp_path / "rb87-chopped-oven.bin.json").read_text())
+    line = next(x for x in result.stdout.splitlines() if x.startswith("drive "))
+    offset, scale = (float(x) for x in line.split()[1::2][:2])          # "drive  A + B × value V"
+    drive = side["scaling"]["drive"]
+    assert offset == pytest.approx(drive["offset"], rel=1e-5) and scale == pytest.approx(drive["scale"], rel=1e-5)
+    values = np.fromfile(tmp_path / "rb87-chopped-oven.bin", dtype=side["numpy_dtype"]).astype(float)
+    assert np.min(offset + scale * values) == pytest.approx(side["drive_range"][0], abs=abs(scale))
+    doc = json.loads(run("export", "rb87-chopped-oven", "-f", "raw", "-O", f"dtype={dtype}", "-o",
+                         tmp_path / "again", "--json").stdout)
+    assert doc["scaling"]["drive"] == drive and doc["scaling"]["code"] == side["scaling"]["code"]
+
+
 @pytest.mark.parametrize("name", ["visa", "serial"])
 def test_an_instrument_driver_is_not_a_file_format(tmp_path, name):
     # visa and serial are built-in instrument drivers, registered in sweepgen's own pyproject.toml

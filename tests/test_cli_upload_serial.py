@@ -53,6 +53,25 @@ def test_upload_with_arm_prints_the_caution_and_arms(rendered):
     assert "output: ON" in result.stdout and "verify" in result.stdout
 
 
+def test_the_checkers_warnings_come_before_the_instrument_is_touched(rendered):
+    """The scenario's end velocity (10 m/s) lies within 20 % of the target's capture velocity (12 m/s):
+    the checker warns, and upload says so on stderr before the caution and the upload, in the JSON,
+    and in a dry run."""
+    _, gen = rendered
+    with virtual_board(gen) as url:
+        armed = run("upload", SCENARIO, "--serial-port", url, "--arm")
+        assert armed.exit_code == 0, armed.stderr
+        as_json = run("upload", SCENARIO, "--serial-port", url, "--json")
+    warning = "warning: end_velocity: atoms leave the chirp at 10 m/s"
+    assert warning in armed.stderr and armed.stderr.index(warning) < armed.stderr.index("CAUTION")
+    doc = json.loads(as_json.stdout)
+    assert [w["rule"] for w in doc["warnings"]] == ["end_velocity"] and warning in as_json.stderr
+    dry = run("upload", SCENARIO, "--dry-run")
+    assert dry.exit_code == 0 and warning in dry.stderr
+    dry_json = json.loads(run("upload", SCENARIO, "--dry-run", "--json").stdout)
+    assert [w["status"] for w in dry_json["warnings"]] == ["warn"]
+
+
 def test_transient_fault_is_retried_through_the_cli(rendered):
     table, gen = rendered
     with virtual_board(gen, faults={"corrupt": 2, "corrupt_memory": 1}) as url:

@@ -47,6 +47,13 @@ def emit_json(doc) -> None:
     click.echo(dumps(doc), nl=False)
 
 
+def echo_warnings(report) -> None:
+    """The checker's warnings, one line each on stderr (also with ``--json``): shown before a
+    command writes a table or touches an instrument."""
+    for f in report.warnings():
+        click.echo(f"warning: {f.rule}: {f.message}" + (f" (to change: {f.advice})" if f.advice else ""), err=True)
+
+
 def table(rows, headers=None) -> str:
     """A compact left-aligned text table (columns separated by two spaces)."""
     rows = [[str(c) for c in r] for r in rows]

@@ -7,8 +7,8 @@ import sys
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import (emit_json, generator_option, handles_errors, json_option, laser_option,
-                                  prepare_playback, progress_bar, rate_option, table)
+from sweepgen.cli._common import (echo_warnings, emit_json, generator_option, handles_errors, json_option,
+                                  laser_option, prepare_playback, progress_bar, rate_option, table)
 
 #: tables larger than this get a progress bar when stderr is a terminal
 PROGRESS_BYTES = 8 << 20
@@ -73,9 +73,8 @@ def command(scenario, fmt, output, rate, name, option_pairs, laser_ref, generato
     pb = prepare_playback(sc, rate=rate, laser_ref=laser_ref, generator_ref=generator_ref)
     if not pb.ok:
         _refuse(pb.report, as_json)
-    if not as_json:
-        for f in pb.report.warnings():
-            click.echo(f"warning: {f.rule}: {f.message}", err=True)
+    file_format.check_table(pb.table(), options)        # options that depend on the generator's codes
+    echo_warnings(pb.report)
     info = pb.table().info
     show = info.nbytes > PROGRESS_BYTES and sys.stderr.isatty()
     with progress_bar(info.count, f"writing {output}", show=show) as progress:
@@ -94,7 +93,7 @@ def _refuse(report, as_json):
     for f in fails:
         click.echo(f"FAIL {f.rule}: {f.message}" + (f" (to fix: {f.advice})" if f.advice else ""), err=True)
     if as_json:
-        emit_json({"ok": False, "written": False, "findings": [f.to_json() for f in report.findings]})
+        emit_json({"ok": False, "written": False, "findings": [f.to_json() for f in report.ordered()]})
     raise CheckFailed(f"the sweep fails {len(fails)} check rule(s); nothing was written", findings=report.findings)
 
 
@@ -106,8 +105,18 @@ def _print(sc, info, result):
                            else ")")),
             ("sample rate", si(info.sample_rate, "Sa/s")),
             ("values", f"{result['dtype']} ({result['bytes']} bytes)"),
-            ("drive", f"{info.code_offset:.6g} + {info.code_scale:.6g} × code {info.drive_unit}"),
-            ("sha256", result["sha256"])]
+            *_scaling_rows(result["scaling"]),
+            ("file sha256", result["sha256"]),
+            ("table_sha256", f"{result['table_sha256']} (the codes, as upload records them)")]
     if info.amplitude is not None:
         rows.insert(5, ("program", f"amplitude {si(info.amplitude, 'V')} pp, offset {si(info.offset, 'V')}"))
     click.echo(table(rows))
+
+
+def _scaling_rows(scaling):
+    """How a stored value becomes the drive (and the generator code, when that differs), as in the sidecar."""
+    drive, code = scaling["drive"], scaling["code"]
+    rows = [("drive", f"{drive['offset']:.6g} + {drive['scale']:.6g} × value {drive['unit']}")]
+    if (code["offset"], code["scale"]) != (0, 1):
+        rows.append(("code", f"{code['offset']:.6g} + {code['scale']:.6g} × value"))
+    return rows

@@ -5,8 +5,8 @@ from __future__ import annotations
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import (emit_json, generator_option, handles_errors, json_option, laser_option,
-                                  prepare_playback, progress_bar, table)
+from sweepgen.cli._common import (echo_warnings, emit_json, generator_option, handles_errors, json_option,
+                                  laser_option, prepare_playback, progress_bar, table)
 
 #: tables larger than this get a progress bar on stderr
 PROGRESS_BYTES = 1 << 20
@@ -60,6 +60,7 @@ def command(scenario, resource, serial_port, backend, generator_ref, laser_ref, 
     pb = prepare_playback(scenario, laser_ref=laser_ref, generator_ref=generator_ref).require_playable()
     link = pb.link(resource=resource, serial_port=serial_port, backend=backend)
     info = pb.table().info
+    echo_warnings(pb.report)                  # before anything reaches the instrument
     if arm and not dry_run:
         click.echo(CAUTION, err=True)
     show = not dry_run and info.nbytes > PROGRESS_BYTES
@@ -79,7 +80,8 @@ def _print(doc, info, dry_run, arm):
             f"driver {doc['driver']}")
     click.echo(head)
     prov = doc.get("provenance") or {}
-    click.echo(f"  table sha256 {doc.get('table_sha256')}")
+    click.echo(f"  table_sha256 {doc.get('table_sha256')} (the codes sent; an exported table's sidecar "
+               f"carries the same digest)")
     for what in ("scenario", "laser", "generator"):
         if isinstance(prov.get(what), dict):
             click.echo(f"  {what} {prov[what]['file']} sha256 {prov[what]['sha256']}")
