@@ -102,8 +102,8 @@ def _export(pb, out: Path, files: dict, echo):
     files["table"] = Path(exported.report["paths"][0])
     files["sidecar"] = Path(exported.report["paths"][1])
     table = pb.table()
-    echo(f"  export:   {table.info.count} samples at {si(table.info.sample_rate, 'Sa/s')} "
-         f"(sha256 {table.sha256[:12]}…)")
+    echo(f"  export:   {table.info.count} samples at {si(table.info.sample_rate, 'Sa/s')} to "
+         f"{files['table'].relative_to(out)} (SHA-256 of the file {exported.report['sha256'][:12]}…)")
     return exported
 
 
@@ -180,10 +180,12 @@ def _summary(out, pb, doc_sim, exported, uploaded) -> Path:
     lines += _atoms_section(sc, doc_sim)
     lines += ["## The table and the upload", "",
               f"- `{Path(exported['paths'][0]).relative_to(out)}`: {table.info.count} samples at "
-              f"{si(table.info.sample_rate, 'Sa/s')}, sidecar `{Path(exported['paths'][1]).relative_to(out)}` "
-              f"(SHA-256 `{table.sha256}`).",
+              f"{si(table.info.sample_rate, 'Sa/s')}, sidecar `{Path(exported['paths'][1]).relative_to(out)}`.",
+              f"  SHA-256 of the file (what `sha256sum` prints, the sidecar's `sha256`): `{exported['sha256']}`.",
               f"- Uploaded to the virtual instrument over a loopback socket: {up.get('bytes', 0)} bytes, "
               f"verification {'passed' if verified else 'FAILED'} (`upload.json`). The output was left off.",
+              f"  SHA-256 of the codes sent (`table_sha256` in `upload.json` and in the sidecar, the same "
+              f"whatever the file format): `{up.get('table_sha256')}`.",
               "", "Before connecting a real laser: look at the generator output on an oscilloscope and at the "
               "laser frequency on a wavemeter, and follow your laboratory's laser-safety rules.", ""]
     return atomic_write_text(out / "summary.md", "\n".join(lines))

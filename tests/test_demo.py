@@ -1,6 +1,8 @@
 """``sweepgen demo``: the whole job on built-in data, end to end (loopback socket, files, plots)."""
 
+import hashlib
 import json
+import re
 
 import pytest
 
@@ -31,3 +33,11 @@ def test_demo_writes_the_whole_report(tmp_path):
     summary = (out / "summary.md").read_text()
     assert "verification passed" in summary and "![sweep](sweep.png)" in summary
     assert str(out) in result.output
+    # a user who runs sha256sum on the table finds that digest in the report and the console, named as
+    # the file's; the digest of the codes is named as such (table_sha256)
+    file_sha = hashlib.sha256((out / "table" / "sweep.csv").read_bytes()).hexdigest()
+    assert re.search(rf"SHA-256 of the file[^\n]*`{file_sha}`", summary)
+    assert f"SHA-256 of the file {file_sha[:12]}" in result.stdout
+    assert re.search(rf"`table_sha256`[^\n]*`{upload['table_sha256']}`", summary)
+    assert upload["table_sha256"] == sidecar["table_sha256"] != file_sha
+    assert all(digest in (file_sha, upload["table_sha256"]) for digest in re.findall(r"[0-9a-f]{64}", summary))
