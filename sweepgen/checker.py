@@ -9,18 +9,25 @@ limit, the unit, the headroom and a status:
 * ``warn``: within 20 % of the limit (:data:`WARN_HEADROOM`);
 * ``pass``: otherwise.
 
-Headroom (a finding's relative distance to its limit; negative when the limit
-is exceeded): for an upper limit ``(limit − value)/limit``; for a lower limit
-``(value − limit)/limit``; for a range ``[lo, hi]`` the headroom to the nearer
-edge divided by half the range width (so "within 20 % of a limit" means the
-last fifth of the way from the centre to an edge).
+Headroom (:func:`headroom`, defined here once): how far the value may still move
+towards its limit, as a fraction of the limit's own size; negative when the
+limit is exceeded. For an upper limit ``(limit − value)/|limit|``, for a lower
+limit ``(value − limit)/|limit|``. A range ``[lo, hi]`` is a lower and an upper
+limit: the finding reports the one with the smaller headroom (its ``value`` is
+the extreme nearest that edge, its ``limit`` that edge), so the headroom can be
+recomputed from the value and limit printed beside it. A limit of zero has no
+size: the headroom to a zero edge of a range is measured against the range's
+width, and a lone upper or lower limit of zero has none (None). So a value twice
+its limit reads −100 % for every kind of rule, and 8 MHz against a 5 MHz floor
+reads 60 %.
 
 Rules (``rule`` names in the JSON):
 
 physics
     ``slowing_distance`` (fits between the light start, or the design atom's
-    start for an explicit start time, and the target), ``chirp_start`` (an
-    explicit start time leaves the atom in the light), ``deceleration``
+    start for an explicit start time, and the target; a chirp that starts
+    before the design atom is in the light is no rule but bad input, since
+    that sweep cannot exist), ``deceleration``
     (design deceleration over the largest force the light gives where the atoms
     are, at the median distance of the atomic beam from the axis, along the
     whole path, ``a_d(z) / a_max(s(z, r_½(z)))``, at most 1; see
@@ -66,7 +73,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from sweepgen._format import si
-from sweepgen.errors import CheckFailed, PlanError
+from sweepgen.errors import CheckFailed
 
 if TYPE_CHECKING:
     from sweepgen.generator import Generator
@@ -109,23 +116,38 @@ def _finding(rule, value, limit, unit, headroom, failed, message, advice="", war
     return Finding(rule, status, value, limit, unit, headroom, message, advice if failed or near else "")
 
 
-def _upper_room(value: float, limit: float) -> tuple[float, bool]:
+def headroom(value: float, limit: float, side: str, *, width: float | None = None) -> float | None:
+    """A finding's headroom: how far ``value`` may still move towards ``limit`` before reaching it,
+    as a fraction of the limit's size; negative when the limit is exceeded (see the module doc).
+
+    ``side`` is ``"upper"`` (``value ≤ limit``) or ``"lower"`` (``value ≥ limit``). A zero limit is
+    measured against ``width`` (a range's width) when given; otherwise there is no headroom (None).
+    """
+    room = limit - value if side == "upper" else value - limit
+    scale = abs(limit) or width
+    if not scale:
+        return None
+    return room / scale if math.isfinite(scale) else (0.0 if room == 0 else math.copysign(math.inf, room))
+
+
+def _upper_room(value: float, limit: float) -> tuple[float | None, bool]:
     """``(headroom, failed)`` of ``value ≤ limit``."""
-    headroom = (limit - value) / abs(limit) if limit else (0.0 if value <= 0 else -math.inf)
-    return headroom, value > limit * (1 + 1e-12) + (0 if limit else 1e-300)
+    return headroom(value, limit, "upper"), value > limit * (1 + 1e-12) + (0 if limit else 1e-300)
 
 
 def _range_room(vmin: float, vmax: float, lo: float, hi: float) -> tuple[float, float, float, bool]:
-    """``(value, limit, headroom, failed)`` of ``lo ≤ vmin ≤ vmax ≤ hi``: the extreme nearer its edge."""
-    half = (hi - lo) / 2.0 if math.isfinite(hi - lo) else math.inf
-    room_hi, room_lo = hi - vmax, vmin - lo
-    if room_hi <= room_lo:
+    """``(value, limit, headroom, failed)`` of ``lo ≤ vmin ≤ vmax ≤ hi``: the edge with the smaller
+    headroom, and the extreme nearest it."""
+    width = hi - lo
+    room_lo = headroom(vmin, lo, "lower", width=width)
+    room_hi = headroom(vmax, hi, "upper", width=width)
+    if (math.inf if room_hi is None else room_hi) <= (math.inf if room_lo is None else room_lo):
         value, limit, room = vmax, hi, room_hi
     else:
         value, limit, room = vmin, lo, room_lo
-    headroom = room / half if math.isfinite(half) and half > 0 else (math.inf if room >= 0 else -math.inf)
     tol = 1e-12 * max(abs(lo), abs(hi) if math.isfinite(hi) else 0.0, 1e-300)
-    return value, limit, headroom, room < -tol
+    failed = (value - limit > tol) if limit == hi else (limit - value > tol)
+    return value, limit, room, failed
 
 
 def upper(rule, value, limit, unit, message, advice="", *, warns=True) -> Finding:
@@ -138,14 +160,14 @@ def upper(rule, value, limit, unit, message, advice="", *, warns=True) -> Findin
 def lower(rule, value, limit, unit, message, advice="") -> Finding:
     """A finding for ``value ≥ limit``."""
     value, limit = float(value), float(limit)
-    headroom = (value - limit) / abs(limit) if limit else math.inf
-    return _finding(rule, value, limit, unit, headroom, value < limit * (1 - 1e-12), message, advice)
+    return _finding(rule, value, limit, unit, headroom(value, limit, "lower"), value < limit * (1 - 1e-12),
+                    message, advice)
 
 
 def within(rule, vmin, vmax, lo, hi, unit, message, advice="") -> Finding:
     """A finding for ``lo ≤ vmin ≤ vmax ≤ hi``; value and limit are the extreme nearer its edge."""
-    value, limit, headroom, failed = _range_room(float(vmin), float(vmax), float(lo), float(hi))
-    return _finding(rule, value, limit, unit, headroom, failed, message, advice)
+    value, limit, room, failed = _range_room(float(vmin), float(vmax), float(lo), float(hi))
+    return _finding(rule, value, limit, unit, room, failed, message, advice)
 
 
 def info(rule, message, value=None, unit="") -> Finding:
@@ -188,7 +210,8 @@ class CheckReport:
         return sorted(self.findings, key=lambda f: rank[f.status])
 
     def to_json(self) -> dict:
-        doc = {"ok": self.ok, "findings": [f.to_json() for f in self.findings]}
+        """The ``check --json`` document; ``findings`` in the order of the text report (:meth:`ordered`)."""
+        doc = {"ok": self.ok, "findings": [f.to_json() for f in self.ordered()]}
         choice = self.rate_choice
         if choice is not None:
             doc["playback"] = {
@@ -204,13 +227,14 @@ class CheckReport:
         return doc
 
 
-def require_playable(report: CheckReport) -> CheckReport:
-    """Raise :class:`CheckFailed` (exit 1) unless no rule failed; for export and upload."""
+def require_playable(report: CheckReport, consequence: str = "nothing is written or sent") -> CheckReport:
+    """Raise :class:`CheckFailed` (exit 1) unless no rule failed; for export, upload and simulate
+    (``consequence`` says what was not done)."""
     fails = report.failures()
     if fails:
         names = ", ".join(f"{f.rule} ({f.message})" for f in fails[:3])
         more = f" and {len(fails) - 3} more" if len(fails) > 3 else ""
-        raise CheckFailed(f"the sweep fails {len(fails)} check rule(s), nothing is written or sent: "
+        raise CheckFailed(f"the sweep fails {len(fails)} check rule(s), {consequence}: "
                           f"{names}{more}; run 'sweepgen check' for the details", findings=report.findings)
     return report
 
@@ -221,18 +245,14 @@ def require_playable(report: CheckReport) -> CheckReport:
 def check_design(report: CheckReport):
     """Plan ``report.scenario`` and add the design rules to ``report``.
 
-    Returns the plan, or None when the design fails so badly that the hardware
-    rules have nothing to judge (the planner refuses the sweep, or one period
-    cannot hold it).
+    Returns the plan, or None when one period cannot hold the sweep (the
+    hardware rules then have nothing to judge; ``report.plan`` is set either
+    way). A sweep that cannot exist raises :class:`sweepgen.errors.PlanError`
+    (bad input, exit 2); one that exists but breaks a limit is a failed rule.
     """
     from sweepgen.planner import plan as make_plan
 
-    scenario = report.scenario
-    try:
-        plan = make_plan(scenario)
-    except PlanError as exc:
-        report.findings.append(_plan_failure(scenario, exc))
-        return None
+    plan = make_plan(report.scenario)
     report.plan = plan
     report.findings.extend(physics_findings(plan))
     period = period_finding(plan)
@@ -240,36 +260,31 @@ def check_design(report: CheckReport):
     return None if period.status == "fail" else plan
 
 
-def _plan_failure(scenario, exc: PlanError) -> Finding:
-    """A planner refusal as a failed physics rule, with the numbers where they can be computed."""
-    rule = "chirp_start" if exc.key == "chirp.start_time" else (
-        "slowing_distance" if exc.key in ("chirp.start_velocity",) else "plan")
-    value = limit = None
-    if rule == "slowing_distance":
-        from sweepgen import planner
+def check_plan(scenario) -> CheckReport:
+    """The design rules alone, without laser or generator: what ``plan`` and ``simulate`` judge.
 
-        try:
-            z_end = planner.end_position(scenario, scenario.light.start)
-            value = z_end - scenario.light.start
-            limit = scenario.target.distance - scenario.light.start
-        except PlanError:
-            value = limit = None
-    headroom = None if value is None else (limit - value) / limit
-    return Finding(rule, "fail", value, limit, "m" if value is not None else "", headroom, exc.detail,
-                   "see the message: change the scenario's chirp or light")
+    ``report.plan`` is the plan; ``report.ok`` is False when the design breaks a
+    limit. A sweep that cannot exist raises :class:`sweepgen.errors.PlanError`.
+    """
+    report = CheckReport([], scenario=scenario)
+    check_design(report)
+    return report
 
 
 def physics_findings(plan) -> list:
     """The planner's physics as rules: distance, deceleration where the atoms are, the beam's
     overlap with the atoms, end velocity, survival of dark states, after the chirp."""
+    from sweepgen import planner
+
     sc = plan.scenario
     out = []
     explicit = sc.pulsed and sc.chirp.start_time not in (None, "auto")
     z_from = plan.z_start if explicit else sc.light.start
     out.append(upper("slowing_distance", plan.slowing_distance, sc.target.distance - z_from, "m",
                      f"the design atom needs {plan.slowing_distance:.4g} m; {sc.target.distance - z_from:.4g} m lie "
-                     f"between {'its start' if explicit else 'the light start'} and the target",
-                     "lower chirp.start_velocity, raise chirp.force_fraction or light.saturation, or move the target"))
+                     f"between {'its start at chirp.start_time' if explicit else 'the light start'} "
+                     f"({z_from:.4g} m) and the target ({sc.target.distance:.4g} m)",
+                     planner.fit_advice(plan)))
     out.append(_deceleration(plan))
     out.append(_beam_overlap(plan))
     out.append(upper("end_velocity", sc.chirp.end_velocity, sc.target.capture_velocity, "m/s",
@@ -589,8 +604,8 @@ def _sample_rate(choice, gen) -> Finding:
                        + ", ".join(si(r, "Sa/s") for r in sm.rates),
                        "" if okr else "pick one of the listed rates")
     # a rate fixed by the user near a rate limit is fine: no warning, and no headroom to show
-    value, limit, headroom, failed = _range_room(choice.sample_rate, choice.sample_rate, sm.rate_min, sm.rate_max)
-    return _finding("sample_rate", value, limit, "Sa/s", headroom if failed else None, failed,
+    value, limit, room, failed = _range_room(choice.sample_rate, choice.sample_rate, sm.rate_min, sm.rate_max)
+    return _finding("sample_rate", value, limit, "Sa/s", room if failed else None, failed,
                     f"{si(choice.sample_rate, 'Sa/s')} ({choice.limited_by}); generator '{gen.key}' plays "
                     f"{si(sm.rate_min, 'Sa/s')} to {si(sm.rate_max, 'Sa/s')}",
                     "pick a rate the generator plays, or remove drive.sample_rate for an automatic choice",

@@ -41,8 +41,11 @@ class InputError(SweepgenError, ValueError):
 
 
 class PlanError(InputError):
-    """The scenario is well formed but asks for a sweep that cannot exist
-    (for example the slowing distance does not fit before the target)."""
+    """The scenario is well formed but asks for a sweep that cannot exist: the
+    design atom cannot follow it at all (for example it would be in the dark
+    when the chirp starts). A sweep that exists but breaks a limit (a slowing
+    distance longer than the room before the target) is no error here but a
+    failed check rule (exit 1)."""
 
 
 class CheckFailed(SweepgenError):

@@ -84,6 +84,12 @@ class Plan:
         return self.z_end - self.z_start
 
     @property
+    def fits(self) -> bool:
+        """Whether the design atom reaches the end velocity before the target (checker rule
+        ``slowing_distance``)."""
+        return self.z_end <= self.scenario.target.distance * (1 + 1e-12)
+
+    @property
     def start_detuning(self) -> float:
         return float(self.trajectory.detuning[0])
 
@@ -229,74 +235,81 @@ def end_position(scenario, z0) -> float:
     return float(sol.y_events[0][0][0])
 
 
-def _fit_message(scenario, needed, available, z_from, what) -> str:
-    ch = scenario.chirp
-    return (f"the slowing distance is {needed:.4g} m but only {available:.4g} m lie between {what} "
-            f"({z_from:.4g} m) and the target ({scenario.target.distance:.4g} m); lower chirp.start_velocity "
-            f"(now {ch.start_velocity:g} m/s), raise chirp.force_fraction (now {ch.force_fraction:g}) or light.saturation, "
-            f"or move the target further away")
+def fit_advice(plan: "Plan") -> str:
+    """What to change when the slowing distance of ``plan`` does not fit before the target."""
+    sc = plan.scenario
+    ch = sc.chirp
+    text = (f"lower chirp.start_velocity (now {ch.start_velocity:g} m/s), raise chirp.force_fraction "
+            f"(now {ch.force_fraction:g}) or light.saturation, or move the target further away")
+    if sc.pulsed and ch.start_time not in (None, "auto"):
+        z_latest = sc.target.distance - plan.slowing_distance      # where the design atom would have to start
+        if z_latest >= sc.light.start:
+            latest = sc.pulse_time + z_latest / ch.start_velocity
+            text += f"; or start the chirp earlier (about {latest * 1e3:.4g} ms at the latest)"
+    return text
 
 
 def plan(scenario: Scenario) -> Plan:
     """Plan the sweep of ``scenario``.
 
+    A sweep whose slowing distance does not fit before the target still exists:
+    it is returned (``Plan.fits`` is False; the checker's ``slowing_distance``
+    rule fails it, with :func:`fit_advice`), and its ``arrival_time`` is when the
+    design atom crosses the target, still faster than the end velocity.
+
     Raises
     ------
     PlanError
-        When the sweep cannot exist: the slowing distance does not fit between
-        the design atom's start and the target, the chirp would start before the
-        atom reaches the light, ...
+        When the sweep cannot exist: the design atom cannot follow it at all
+        (it would be in the dark when the chirp starts, or the light never
+        slows it to the end velocity).
     """
     ch = scenario.chirp
     light = scenario.light
     target = scenario.target.distance
-    file = str(scenario.path)
-
     if not scenario.pulsed:
         z0 = light.start
-        z_end = end_position(scenario, z0)
-        if z_end > target:
-            raise PlanError(_fit_message(scenario, z_end - z0, target - z0, z0, "the light start"),
-                            file=file, key="chirp.start_velocity")
     elif ch.start_time == "auto":
-        z_end_first = end_position(scenario, light.start)
-        if z_end_first > target:
-            raise PlanError(_fit_message(scenario, z_end_first - light.start, target - light.start,
-                                         light.start, "the light start"), file=file, key="chirp.start_velocity")
-        if not light.focused:
-            z0 = target - (z_end_first - light.start)
-        else:
-            z0 = brentq(lambda z: end_position(scenario, z) - target, light.start, target,
-                        xtol=1e-9, rtol=1e-12)
+        z0 = _auto_start(scenario)
     else:
         z0 = ch.start_velocity * (ch.start_time - scenario.pulse_time)
         if z0 < light.start:
             earliest = scenario.pulse_time + light.start / ch.start_velocity
             raise PlanError(f"at chirp.start_time the design atom is at {z0:.4g} m, before the light start "
-                            f"({light.start:.4g} m); start the chirp at {earliest * 1e3:.4g} ms or later, "
-                            f"or use start_time = \"auto\"", file=file, key="chirp.start_time")
-        z_end = end_position(scenario, z0)
-        if z_end > target:
-            z_latest = target - (z_end - z0)       # where the design atom would have to start
-            latest = scenario.pulse_time + z_latest / ch.start_velocity
-            hint = (f"; or start the chirp earlier (about {latest * 1e3:.4g} ms at the latest)"
-                    if z_latest >= light.start else "")
-            raise PlanError(_fit_message(scenario, z_end - z0, target - z0, z0,
-                                         "the design atom's position at chirp.start_time") + hint,
-                            file=file, key="chirp.start_time")
+                            f"({light.start:.4g} m), where no light can slow it; start the chirp at "
+                            f"{earliest * 1e3:.4g} ms or later, or use start_time = \"auto\"",
+                            file=str(scenario.path), key="chirp.start_time")
 
     sol, duration = _integrate(scenario, z0, dense=True)
     trajectory = _sample(scenario, sol, duration)
     z_end = float(trajectory.position[-1])
     if scenario.pulsed:
         start_time = scenario.pulse_time + z0 / ch.start_velocity
-        arrival = start_time + duration + max(target - z_end, 0.0) / ch.end_velocity
+        if z_end <= target:
+            arrival = start_time + duration + (target - z_end) / ch.end_velocity
+        elif z0 >= target:      # past the target before the chirp starts
+            arrival = scenario.pulse_time + target / ch.start_velocity
+        else:                   # the design atom reaches the target during the chirp
+            arrival = start_time + brentq(lambda t: sol.sol(t)[0] - target, 0.0, duration, xtol=1e-15)
         chirp_start = start_time
     else:
         start_time = arrival = None
         chirp_start = 0.0
     return Plan(scenario=scenario, trajectory=trajectory, chirp_start=chirp_start, z_start=z0, z_end=z_end,
                 start_time=start_time, arrival_time=arrival)
+
+
+def _auto_start(scenario: Scenario) -> float:
+    """Where the design atom starts so that it reaches the end velocity exactly at the target; the light
+    start when even that is too late (the plan then does not fit, and the checker says so)."""
+    light = scenario.light
+    target = scenario.target.distance
+    z_end_first = end_position(scenario, light.start)
+    if z_end_first >= target:
+        return light.start
+    if not light.focused:
+        return target - (z_end_first - light.start)
+    return brentq(lambda z: end_position(scenario, z) - target, light.start, target, xtol=1e-9, rtol=1e-12)
 
 
 def _sample(scenario: Scenario, sol, duration: float) -> Trajectory:

@@ -9,8 +9,8 @@ import pytest
 from scipy import constants, signal
 
 from sweepgen import physics
-from sweepgen.checker import MIN_OVERLAP, CheckReport, Finding, require_playable, upper, within
-from sweepgen.errors import CheckFailed
+from sweepgen.checker import MIN_OVERLAP, CheckReport, Finding, headroom, lower, require_playable, upper, within
+from sweepgen.errors import CheckFailed, PlanError
 from sweepgen.playback import prepare
 from sweepgen.scenario import load_scenario
 
@@ -128,9 +128,19 @@ def test_stage_range_fails_for_a_narrow_aom_band(tmp_path):
         {"stage": "vco", "coefficient": "50 MHz/V", "frequency": "50 MHz", "voltage": "1 V"}])
     r = run(tmp_path, laser=merged(laser, limits={"input_min": "0 V", "input_max": "10 V"}))
     f = r.finding("stage_range")
-    start = -(200 + physics.lag_velocity(3.0, 0.6, r.scenario.species.gamma, RB_LAMBDA)) / RB_LAMBDA
-    assert f.status == "fail" and f.limit == pytest.approx(250e6)
-    assert f.value == pytest.approx(200e6 + (start + 140e6) / -2, rel=1e-9)    # f = centre + ΔΔ/(passes·order)
+    lag = physics.lag_velocity(3.0, 0.6, r.scenario.species.gamma, RB_LAMBDA)
+    start, end = -(200 + lag) / RB_LAMBDA, -(15 + lag) / RB_LAMBDA
+
+    def rf(detuning):
+        return 200e6 + (detuning + 140e6) / -2                # f = centre + ΔΔ/(passes·order)
+
+    # the RF leaves the band at both ends: 142 MHz < 150 MHz (-5.3 %) and 261 MHz > 250 MHz (-4.3 %);
+    # the finding names the edge with the smaller headroom, the lower one, relative to 150 MHz
+    assert rf(end) < 150e6 and rf(start) > 250e6
+    assert f.status == "fail" and f.limit == pytest.approx(150e6)
+    assert f.value == pytest.approx(rf(end), rel=1e-9)
+    assert f.headroom == pytest.approx((rf(end) - 150e6) / 150e6, rel=1e-9)
+    assert f.headroom < (250e6 - rf(start)) / 250e6 < 0
 
 
 def test_tracking_fails_for_a_slow_actuator_with_rate_times_tau(tmp_path):
@@ -249,10 +259,24 @@ def test_slowing_distance_fails_with_the_closed_form(tmp_path):
     assert f.limit == pytest.approx(0.25)
 
 
-def test_chirp_start_before_the_light_fails(tmp_path):
+def test_a_chirp_that_starts_before_the_light_cannot_exist(tmp_path):
+    """The design atom would be in the dark when the chirp starts: no sweep, bad input (exit 2)."""
     sc = merged(CHECKED_SCENARIO, source={"pulse_time": "0 ms"}, chirp={"start_time": "0.1 ms"})
-    r = run(tmp_path, scenario=sc)
-    assert status(r, "chirp_start") == ["fail"]
+    with pytest.raises(PlanError) as info:
+        run(tmp_path, scenario=sc)
+    assert info.value.exit_code == 2 and info.value.key == "chirp.start_time"
+
+
+def test_a_slowing_distance_that_does_not_fit_is_a_failed_rule_with_advice(tmp_path):
+    """The plan exists but breaks the target's distance: a failed rule (exit 1), and the hardware
+    rules still judge the sweep."""
+    r = run(tmp_path, scenario=merged(CHECKED_SCENARIO, target={"distance": "0.3 m"}))
+    f = r.finding("slowing_distance")
+    assert f.status == "fail" and f.headroom == pytest.approx((f.limit - f.value) / f.limit)
+    assert "lower chirp.start_velocity" in f.advice and not r.plan.fits
+    assert r.finding("actuator_range") is not None
+    with pytest.raises(CheckFailed):
+        require_playable(r)
 
 
 def test_end_velocity_and_deceleration(tmp_path):
@@ -369,9 +393,42 @@ def test_headroom_and_warn_band():
     f = within("x", -1, 8.5, -10, 10, "V", "")
     assert f.status == "warn" and f.value == 8.5 and f.limit == 10 and f.headroom == pytest.approx(0.15)
     assert within("x", -11, 0, -10, 10, "V", "").status == "fail"
-    rep = CheckReport([Finding("a", "pass", 1, 2, "", 0.5, ""), Finding("b", "fail", 3, 2, "", -0.5, "")])
-    assert [f.rule for f in rep.ordered()] == ["b", "a"] and not rep.ok
-    assert json.loads(json.dumps(rep.to_json()))["ok"] is False
+    rep = CheckReport([Finding("a", "pass", 1, 2, "", 0.5, ""), Finding("w", "warn", 1, 2, "", 0.1, ""),
+                       Finding("b", "fail", 3, 2, "", -0.5, "")])
+    assert [f.rule for f in rep.ordered()] == ["b", "w", "a"] and not rep.ok
+    doc = json.loads(json.dumps(rep.to_json()))
+    assert doc["ok"] is False
+    assert [f["rule"] for f in doc["findings"]] == ["b", "w", "a"]      # failures first, as the text report
+
+
+def test_headroom_is_measured_against_the_limit_for_every_kind_of_rule():
+    """One definition (README.md, Glossary): the room left to the limit over the limit's size, so it
+    can be recomputed from the value and limit printed beside it."""
+    # an upper limit, a lower limit and a range's upper edge, each exceeded by a factor two: -100 %
+    assert upper("x", 20e6, 10e6, "Sa/s", "").headroom == pytest.approx(-1.0)
+    assert lower("x", 5e6, 10e6, "Sa/s", "").headroom == pytest.approx(-0.5)
+    f = within("x", 20e6, 20e6, 1e3, 10e6, "Sa/s", "")
+    assert (f.status, f.limit, f.headroom) == ("fail", 10e6, pytest.approx(-1.0))
+    # 8.19 MHz against a 5 MHz floor of a 5-300 MHz band: 64 %, not 3.19/147.5 = 2 %
+    f = within("x", 8.19e6, 100e6, 5e6, 300e6, "Hz", "")
+    assert (f.status, f.value, f.limit) == ("pass", 8.19e6, 5e6)
+    assert f.headroom == pytest.approx((8.19 - 5) / 5)
+    # the edge with the smaller headroom is named, not the one nearer in absolute terms
+    # (62 MHz is 2 MHz above 60 MHz: 3.3 %; 97.5 MHz is 2.5 MHz below 100 MHz: 2.5 %)
+    f = within("x", 62e6, 97.5e6, 60e6, 100e6, "Hz", "")
+    assert (f.value, f.limit, f.headroom) == (97.5e6, 100e6, pytest.approx(0.025))
+    assert headroom(62e6, 60e6, "lower") == pytest.approx(2 / 60)
+    # a zero edge has no size: it is measured against the range's width
+    f = within("x", 1.5, 6.8, 0.0, 10.0, "V", "")
+    assert (f.limit, f.headroom, f.status) == (0.0, pytest.approx(0.15), "warn")
+    assert headroom(0.0, 0.0, "upper") is None
+
+
+def test_a_rate_twice_the_generators_limit_reads_minus_100_percent(tmp_path):
+    """VOLTAGE_BOARD plays up to 20 MSa/s; 40 MSa/s is twice its limit."""
+    f = run(tmp_path, rate=40e6).finding("sample_rate")
+    assert (f.status, f.value, f.limit) == ("fail", 40e6, 20e6)
+    assert f.headroom == pytest.approx(-1.0)
 
 
 @pytest.mark.parametrize("key", ["rb87-chopped-oven", "na23-continuous-focused", "caf-buffer-gas"])

@@ -19,7 +19,9 @@ def test_plan_json_has_the_contract_keys(write_scenario):
     result = run("plan", str(write_scenario()), "--json")
     assert result.exit_code == 0, result.stderr
     doc = json.loads(result.stdout)
-    assert PLAN_KEYS <= set(doc)
+    assert PLAN_KEYS <= set(doc) and doc["ok"] is True
+    assert {"slowing_distance", "deceleration", "end_velocity", "period"} <= {f["rule"] for f in doc["findings"]}
+    assert all(f["status"] != "fail" for f in doc["findings"])
     assert doc["start_velocity"] == 260.0 and doc["end_velocity"] == 15.0
     assert doc["start_detuning"] < doc["end_detuning"] < 0
 
@@ -70,7 +72,6 @@ BROKEN = [
     ("end above start", {"chirp": {"end_velocity": "300 m/s"}}, "chirp.end_velocity"),
     ("NaN velocity", {"chirp": {"start_velocity": "nan m/s"}}, "chirp.start_velocity"),
     ("NaN force fraction", {"chirp": {"force_fraction": float("nan")}}, "chirp.force_fraction"),
-    ("distance too short", {"target": {"distance": "0.4 m"}}, "chirp.start_velocity"),
     ("unknown species", {"species": "unobtainium-d9"}, "species"),
     ("bare number for a quantity", {"target": {"distance": 1.0}}, "target.distance"),
     ("unknown source model", {"source": {"model": "laser-ablation"}}, "source.model"),
@@ -109,6 +110,44 @@ def test_broken_scenarios_are_refused(tmp_path, name, change, fragment):
     assert str(path) in lines[0] or "broken.toml" in lines[0]
     assert fragment in lines[0]
     assert "Traceback" not in result.stderr
+
+
+# One decision for every command (README.md, exit codes): a sweep that cannot exist is bad input
+# (exit 2); a sweep that exists but breaks a limit is a failed check (exit 1).
+COMMANDS = [["plan"], ["check"], ["export", "-f", "csv", "-o", "out"], ["upload", "--dry-run"],
+            ["simulate", "--atoms", "50"]]
+
+
+@pytest.mark.parametrize("command", COMMANDS, ids=[c[0] for c in COMMANDS])
+def test_a_slowing_distance_longer_than_the_room_is_a_failed_check_everywhere(tmp_path, write_scenario, command):
+    # 0.6675 m of slowing (README.md, Physics background: (v1² − v2²)/2a for this test scenario) in 0.35 m
+    path = write_scenario(laser="demo-ecdl-piezo", generator="virtual-awg", target={"distance": "0.4 m"})
+    result = run(command[0], path, *command[1:])
+    assert result.exit_code == 1, (result.stdout, result.stderr)
+    assert "slowing_distance" in result.stdout + result.stderr and "0.6675 m" in result.stdout + result.stderr
+    assert "Traceback" not in result.stderr and not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("command", COMMANDS, ids=[c[0] for c in COMMANDS])
+def test_a_chirp_that_starts_in_the_dark_is_bad_input_everywhere(tmp_path, write_scenario, command):
+    # at 0.1 ms after the pulse the 260 m/s design atom is at 0.026 m, before the light start at 0.05 m
+    path = write_scenario(laser="demo-ecdl-piezo", generator="virtual-awg", chirp={"start_time": "0.1 ms"})
+    result = run(command[0], path, *command[1:])
+    assert result.exit_code == 2, (result.stdout, result.stderr)
+    assert result.stdout == "" and len(result.stderr.strip().splitlines()) == 1
+    assert "key 'chirp.start_time'" in result.stderr and "before the light start" in result.stderr
+    assert not (tmp_path / "out").exists()
+
+
+def test_plan_json_of_a_design_that_breaks_a_limit(write_scenario):
+    result = run("plan", write_scenario(target={"distance": "0.4 m"}), "--json")
+    assert result.exit_code == 1
+    doc = json.loads(result.stdout)
+    assert PLAN_KEYS <= set(doc) and doc["ok"] is False
+    assert doc["findings"][0]["rule"] == "slowing_distance" and doc["findings"][0]["status"] == "fail"
+    assert doc["slowing_distance"] == pytest.approx(0.6675, rel=1e-4)
+    assert doc["end_position"] > 0.4          # the design atom would still be braking beyond the target
+    assert {f["status"] for f in doc["findings"][1:]} <= {"pass", "warn"}
 
 
 def test_missing_file_and_real_process(tmp_path):

@@ -12,7 +12,7 @@ from scipy import integrate, optimize
 
 from sweepgen import physics
 from sweepgen.errors import PlanError
-from sweepgen.planner import plan
+from sweepgen.planner import fit_advice, plan
 from sweepgen.scenario import load_scenario, scenario_from_dict
 
 from conftest import examples, make_scenario, scenario_dict
@@ -70,40 +70,49 @@ def test_pulsed_explicit_start_time():
     assert p.to_json()["arrival_time"] == pytest.approx(1e-3 + p.chirp_duration + (1.0 - p.z_start - d) / 15.0)
 
 
-def test_explicit_start_too_late_says_how_to_fix():
+def test_explicit_start_too_late_is_a_plan_that_does_not_fit():
+    """The sweep exists (it is planned) but breaks the target's distance: the checker's
+    slowing_distance rule fails it and says how to fix it."""
     sc = make_scenario(chirp={"start_time": "2 ms"}, source={"pulse_time": "0.5 ms"})
-    with pytest.raises(PlanError) as info:
-        plan(sc)
-    msg = str(info.value)
-    assert "0.6675 m" in msg and "0.61 m" in msg and "start the chirp earlier (about 1.779 ms" in msg
+    p = plan(sc)
+    assert not p.fits and p.slowing_distance == pytest.approx(0.6675, rel=1e-4)
+    assert p.z_start == pytest.approx(260.0 * 1.5e-3)
+    # the design atom crosses the target during the chirp: 1 m - 0.39 m = 0.61 m after the chirp start
+    # at v(t) = 260 m/s - a t (constant deceleration, uniform light)
+    tr = p.trajectory
+    a = float(tr.deceleration[0])
+    t_cross = (260.0 - math.sqrt(260.0 ** 2 - 2 * a * (1.0 - p.z_start))) / a
+    assert p.arrival_time == pytest.approx(2e-3 + t_cross, rel=1e-9)
+    assert "start the chirp earlier (about 1.779 ms" in fit_advice(p)
 
 
 def test_no_earlier_start_is_offered_when_it_would_lie_before_the_light():
     # pulse at 10 ms, target 0.70 m: the 0.6675 m slowing distance fits only if the design atom starts
     # at 0.0325 m, before the light start (0.05 m), so no earlier start time can help
     sc = make_scenario(source={"pulse_time": "10 ms"}, target={"distance": "0.7 m"},
-              chirp={"start_time": "10.5 ms", "period": "40 ms"})
-    with pytest.raises(PlanError) as info:
-        plan(sc)
-    msg = str(info.value)
-    assert "0.6675 m" in msg and "lower chirp.start_velocity" in msg
-    assert "start the chirp earlier" not in msg
+                       chirp={"start_time": "10.5 ms", "period": "40 ms"})
+    p = plan(sc)
+    assert not p.fits
+    advice = fit_advice(p)
+    assert "lower chirp.start_velocity (now 260 m/s)" in advice and "start the chirp earlier" not in advice
 
 
-def test_explicit_start_before_light_is_refused_with_numbers():
+def test_explicit_start_before_light_cannot_exist_and_is_refused_with_numbers():
     sc = make_scenario(chirp={"start_time": "0.1 ms"})
     with pytest.raises(PlanError) as info:
         plan(sc)
     msg = str(info.value)
+    assert info.value.exit_code == 2
     assert "chirp.start_time" in msg and "before the light start" in msg and "0.05" in msg
 
 
-def test_distance_too_short_is_refused_with_both_lengths():
-    sc = make_scenario(target={"distance": "0.5 m"})
-    with pytest.raises(PlanError) as info:
-        plan(sc)
-    msg = str(info.value)
-    assert "0.6675" in msg and "0.45" in msg and "lower chirp.start_velocity" in msg
+@pytest.mark.parametrize("source", [{"pulse_time": "0 ms"}, {"pulse_time": None}])
+def test_distance_too_short_is_planned_from_the_light_start(source):
+    sc = make_scenario(target={"distance": "0.5 m"}, source=source,
+                       chirp={"start_time": "auto" if source["pulse_time"] else None})
+    p = plan(sc)
+    assert p.z_start == pytest.approx(0.05) and p.z_end == pytest.approx(0.05 + 0.6675, rel=1e-4)
+    assert not p.fits
 
 
 def _focused_reference(s0, w0, zf, z0, v1, v2, eta, sp):

@@ -38,27 +38,48 @@ ROWS = [
                    "actuator's simulated response (PNG or SVG by extension).")
 @handles_errors
 def command(scenario, as_json, plot_file):
-    """Plan the detuning sweep for SCENARIO (a built-in key or a path).
+    """Plan the detuning sweep for SCENARIO (a built-in key or a path), and
+    judge it by the design rules of 'sweepgen check' (slowing distance,
+    deceleration, beam overlap, end velocity, survival, after the chirp,
+    period).
+
+    Exit status: 0 when the design breaks no limit, 1 when it does (the plan is
+    printed, then the failed rules), 2 for bad input, including a sweep that
+    cannot exist.
 
     \b
     Example:
       sweepgen plan rb87-chopped-oven --json
     """
-    from sweepgen.planner import plan
+    from sweepgen.checker import check_plan
     from sweepgen.scenario import load_scenario
 
     sc = load_scenario(scenario)
-    result = plan(sc)
-    doc = result.to_json()
+    report = check_plan(sc)
+    result = report.plan
+    doc = {**result.to_json(), **report.to_json()}
     if plot_file:
-        from sweepgen.playback import actuator_response
-        from sweepgen.plots import plot_plan
-
-        # overlay the actuator's simulated response when the scenario names a laser
-        plot_plan(result, plot_file, response=actuator_response(result))
+        _plot(report, plot_file)
     if as_json:
         emit_json(doc)
+    else:
+        _print(sc, doc, report, plot_file)
+    if not report.ok:
+        raise SystemExit(1)
+
+
+def _plot(report, plot_file):
+    from sweepgen.playback import actuator_response
+    from sweepgen.plots import plot_plan
+
+    if report.finding("period").status == "fail":
+        click.echo("plot: not drawn, one period cannot hold the sweep (rule period)", err=True)
         return
+    # overlay the actuator's simulated response when the scenario names a laser
+    plot_plan(report.plan, plot_file, response=actuator_response(report.plan))
+
+
+def _print(sc, doc, report, plot_file):
     click.echo(f"{sc.title}  [{sc.species.key}, {'pulsed' if sc.pulsed else 'continuous'} source]")
     rows = []
     for key, label, unit in ROWS:
@@ -69,5 +90,13 @@ def command(scenario, as_json, plot_file):
             continue
         rows.append((label, si(value, unit)))
     click.echo(table(rows))
-    if plot_file:
+    fails = report.failures()
+    for f in fails:
+        headroom = "" if f.headroom is None else f" (headroom {f.headroom * 100:.0f} %)"
+        click.echo(f"FAIL {f.rule}: {f.message}{headroom}")
+        if f.advice:
+            click.echo(f"  to fix {f.rule}: {f.advice}")
+    if fails:
+        click.echo(f"NOT PLAYABLE: the design breaks {len(fails)} limit(s); 'sweepgen check' judges every rule")
+    if plot_file and report.finding("period").status != "fail":
         click.echo(f"plot: {plot_file}", err=True)

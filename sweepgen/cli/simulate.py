@@ -42,10 +42,14 @@ def command(scenario, atoms, seed, as_json, plot_file, table_file, laser_ref, id
     dark states). Two baselines use the same atoms: no light, and the light
     held at the start detuning.
 
+    A design that breaks a limit (the design rules of 'sweepgen plan') is
+    refused with exit 1 before any atom flies.
+
     \b
     Example:
       sweepgen simulate rb87-chopped-oven --atoms 20000 --seed 3 --plot atoms.png
     """
+    from sweepgen.checker import check_plan, require_playable
     from sweepgen.scenario import load_scenario
     from sweepgen.simulate import played_table, simulate
 
@@ -56,8 +60,9 @@ def command(scenario, atoms, seed, as_json, plot_file, table_file, laser_ref, id
         raise InputError("--ideal plays the planned sweep and --table an old table: give one of them",
                          key="--ideal")
     sc = load_scenario(scenario)
+    design = require_playable(check_plan(sc), "nothing was simulated")     # the design rules, as plan judges
     sweep = _table_sweep(sc, table_file, laser_ref) if table_file else None
-    result = simulate(sc, atoms=atoms, seed=seed, ideal=ideal,
+    result = simulate(sc, atoms=atoms, seed=seed, plan=design.plan, ideal=ideal,
                       played=played_table(sc, sweep) if sweep is not None else None)
     doc = result.to_json()
     if sweep is not None:
