@@ -66,6 +66,12 @@ class Driver(abc.ABC):
     def deliver(self, table, delivery: Delivery) -> dict:
         """Deliver ``table``; return a report (steps, bytes, files, verification)."""
 
+    def check_destination(self, delivery: Delivery):
+        """The address :meth:`deliver` would reach, refused (:class:`InputError`, exit 2) when it
+        cannot name one; called before any other work, so that a bad address is the only
+        thing said. The default takes any destination."""
+        return delivery.destination
+
     def read(self, source: str, delivery: Delivery | None = None):
         """Read back a table this driver delivered: a :class:`sweepgen.readback.ReadTable`.
 

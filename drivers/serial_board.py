@@ -308,6 +308,9 @@ class SerialDriver(Driver):
         "frame_bytes": f"table bytes per DATA frame, at most what the board accepts (default {DEFAULT_FRAME_BYTES})",
     }
 
+    def check_destination(self, delivery: Delivery) -> str:
+        return _url(delivery)
+
     def deliver(self, table, delivery: Delivery) -> dict:
         generator = delivery.generator
         plan = _Plan(table, generator, dict(delivery.options))
@@ -388,7 +391,25 @@ def check_url(url, *, key: str, file=None) -> str:
         if not parts.hostname or port is None or not 1 <= port <= 65535:
             raise InputError(f"expected {scheme}://HOST:PORT with a TCP port from 1 to 65535, got {url!r}",
                              key=key, file=file)
+    elif scheme and not _url_handler(scheme):
+        raise InputError(f"not a serial device or pyserial URL: {url!r} (invalid URL, protocol {scheme!r} not known)",
+                         key=key, file=file)
     return url
+
+
+def _url_handler(scheme: str) -> bool:
+    """Whether pyserial has a handler for ``scheme://`` URLs (the packages it searches itself)."""
+    import importlib.util
+
+    import serial
+
+    for package in serial.protocol_handler_packages:
+        try:
+            if importlib.util.find_spec(f"{package}.protocol_{scheme}") is not None:
+                return True
+        except (ImportError, ValueError):
+            continue
+    return False
 
 
 def _open(url: str, baud: int, write_timeout: float, key: str):

@@ -604,6 +604,9 @@ class VisaDriver(Driver):
         "trigger_source": "EXT (start on the source trigger; default) or IMM (free running) or BUS",
     }
 
+    def check_destination(self, delivery: Delivery) -> str:
+        return _resource(delivery)
+
     def deliver(self, table, delivery: Delivery) -> dict:
         options = dict(delivery.options)
         unknown = sorted(set(options) - set(self.options))

@@ -305,8 +305,17 @@ class Playback:
         """The link an upload takes: a ramp board over serial, any other generator over VISA.
 
         ``resource`` / ``serial_port`` replace the profile's ``[link]`` address;
-        ``backend`` chooses the pyvisa backend. A contradiction is an :class:`InputError`.
+        ``backend`` chooses the pyvisa backend. A contradiction, or an address that
+        cannot name an instrument, is an :class:`InputError`.
         """
+        from sweepgen import drivers
+        from sweepgen.drivers.base import Delivery
+
+        link = self._link(resource, serial_port, backend)
+        drivers.load(link.driver)().check_destination(Delivery(destination=link.destination, generator=self.generator))
+        return link
+
+    def _link(self, resource, serial_port, backend) -> Link:
         gen = self.generator
         _refuse_empty(resource=resource, serial_port=serial_port)
         if serial_port is None and gen.kind != "board":

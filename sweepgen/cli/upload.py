@@ -57,9 +57,9 @@ def command(scenario, resource, serial_port, backend, generator_ref, laser_ref, 
     if resource is not None and serial_port is not None:
         raise InputError("give either --resource (VISA) or --serial-port (ramp board), not both",
                          key="--serial-port")
-    pb = prepare_playback(scenario, laser_ref=laser_ref, generator_ref=generator_ref).require_playable()
-    link = pb.link(resource=resource, serial_port=serial_port, backend=backend)
-    info = pb.table().info
+    pb = prepare_playback(scenario, laser_ref=laser_ref, generator_ref=generator_ref)
+    link = pb.link(resource=resource, serial_port=serial_port, backend=backend)   # a bad address: exit 2 first
+    info = pb.require_playable().table().info
     echo_warnings(pb.report)                  # before anything reaches the instrument
     if arm and not dry_run:
         click.echo(CAUTION, err=True)
