@@ -14,13 +14,12 @@ Engineering*, ch. 5, first- and second-order systems). The DC gain is one: the
 static tuning is the chain's business, the response only shapes time.
 
 The generator holds each sample until the next (zero-order hold), so the
-response to a sampled drive is computed exactly at the sample instants by
-discretising ``H`` with a zero-order hold (:func:`scipy.signal.cont2discrete`)
-and filtering with :func:`scipy.signal.lfilter`. The periodic steady state (the
-sweep repeats forever) is exact: the filter state after one period is linear in
-the state it started from, ``z_N = Φ z_0 + z_forced``, so the state that repeats
-solves ``(I − Φ) z_0 = z_forced`` (linear-systems algebra; Φ has one column per
-state variable, from one pass over a period of zeros each).
+response to a sampled drive is exact at the sample instants when ``H`` is
+discretised with a zero-order hold (:meth:`Response.discrete`, one matrix
+exponential). The sweep repeats forever, so what the laser does is the periodic
+steady state: the circular convolution of one period of the drive with the
+impulse response, computed exactly through the discrete Fourier transform
+(:meth:`Response.steady_state`).
 """
 
 from __future__ import annotations
@@ -113,55 +112,85 @@ class Response:
         return np.where(pos, y, 0.0)
 
     # -- sampled signals ---------------------------------------------------------------
-    def discrete(self, sample_rate: float):
-        """``(b, a)`` of the zero-order-hold discretisation at ``sample_rate`` samples/s."""
-        from scipy.signal import cont2discrete
+    def state_space(self):
+        """``(A, B)`` of ``x' = A x + B u`` with output ``y = x[0]``, every entry a rate (1/s).
 
-        if self.model == "none":
-            return np.array([1.0]), np.array([1.0])
-        num, den = self.transfer()
-        b, a, _ = cont2discrete((num, den), 1.0 / sample_rate, method="zoh")
-        b = np.atleast_1d(np.squeeze(b))
-        return b / a[0], a / a[0]
-
-    def filter(self, x, sample_rate: float, *, periodic: bool = False):
-        """Response to the sampled drive ``x`` held between samples, at the sample instants.
-
-        Starts from rest at ``x[0]``; with ``periodic=True`` the input is taken to
-        repeat forever and the periodic steady state is returned instead.
+        First order: ``A = [[−ω_c]]``, ``B = [[ω_c]]``. Second order, state
+        ``(y, y'/ω_0)``: ``A = ω_0 [[0, 1], [−1, −1/Q]]``, ``B = ω_0 [[0], [1]]``
+        (the companion form of ``H(s)``, scaled so that neither entry dwarfs the other).
         """
-        from scipy.signal import lfilter
+        if self.model == "first-order":
+            wc = 2.0 * math.pi * self.corner
+            return np.array([[-wc]]), np.array([[wc]])
+        if self.model == "second-order":
+            w0 = 2.0 * math.pi * self.resonance
+            return w0 * np.array([[0.0, 1.0], [-1.0, -1.0 / self.q]]), w0 * np.array([[0.0], [1.0]])
+        return np.zeros((0, 0)), np.zeros((0, 1))
 
+    def zero_order_hold(self, sample_rate: float):
+        """``(D, E)``: how the state changes over one held sample, ``x_{n+1} − x_n = D x_n + E u_n``.
+
+        With ``T = 1/sample_rate`` and ``X = AT``: ``D = e^X − I = X φ(X)`` and
+        ``E = ∫_0^T e^{As} ds B = T φ(X) B``, ``φ(X) = Σ X^k/(k+1)!``, read from one
+        matrix exponential ``exp([[X, I], [0, 0]]) = [[e^X, φ(X)], [0, I]]`` (C. F.
+        Van Loan, IEEE Trans. Autom. Control 23, 395 (1978)). Written as changes,
+        ``D`` and ``E`` keep their relative accuracy however fast the sampling (``e^X``
+        itself rounds towards I, and with it the discrete filter's coefficients).
+        """
+        from scipy.linalg import expm
+
+        A, B = self.state_space()
+        n = A.shape[0]
+        x = A / sample_rate
+        block = np.zeros((2 * n, 2 * n))
+        block[:n, :n], block[:n, n:] = x, np.eye(n)
+        phi = expm(block)[:n, n:]
+        return x @ phi, (phi @ B)[:, 0] / sample_rate
+
+    def frequency_response(self, theta, sample_rate: float):
+        """``H(e^{iθ})`` of the zero-order-hold discretisation at ``sample_rate``, at angles ``θ``
+        (rad per sample): ``C (zI − A_d)⁻¹ B_d = C (wI − D)⁻¹ E`` with ``w = z − 1 =
+        −2 sin²(θ/2) + i sin θ``, accurate near θ = 0 (see :meth:`zero_order_hold`)."""
+        theta = np.asarray(theta, dtype=float)
+        if self.model == "none":
+            return np.ones(theta.shape, dtype=complex)
+        d, e = self.zero_order_hold(sample_rate)
+        w = np.empty(theta.shape, dtype=complex)
+        w.real = np.sin(0.5 * theta)
+        w.real *= w.real
+        w.real *= -2.0
+        w.imag = np.sin(theta)
+        if d.shape[0] == 1:
+            return e[0] / (w - d[0, 0])
+        # C = (1, 0): the first row of adj(wI − D), over det(wI − D) = w² − w tr D + det D
+        numerator = w * e[0]
+        numerator += d[0, 1] * e[1] - d[1, 1] * e[0]
+        denominator = w - (d[0, 0] + d[1, 1])
+        denominator *= w
+        denominator += d[0, 0] * d[1, 1] - d[0, 1] * d[1, 0]
+        numerator /= denominator
+        return numerator
+
+    def steady_state(self, x, sample_rate: float):
+        """The response, at the sample instants, to the sampled drive ``x`` held between samples
+        and repeated forever: the periodic steady state over one period.
+
+        A repeating input meets the impulse response in a circular convolution,
+        so the discrete Fourier transform of the output is ``H(e^{iθ_k}) X_k`` at
+        ``θ_k = 2πk/N`` (the convolution property of the DFT: A. V. Oppenheim and
+        R. W. Schafer, *Discrete-Time Signal Processing*, ch. 8), with ``H`` from
+        :meth:`frequency_response`. The drive's first value is taken off first
+        (the DC gain is one), which keeps large offsets out of the transform.
+        """
         x = np.asarray(x, dtype=float)
         if self.model == "none" or x.size == 0:
             return x.copy()
-        b, a = self.discrete(sample_rate)
-        # Filter the deviation from the first value: better conditioned for large offsets.
         x0 = float(x[0])
-        d = x - x0
-        nz = max(len(a), len(b)) - 1
-        zi = np.zeros(nz)
-        if periodic and nz:
-            zi = _periodic_state(b, a, d)
-        y, _ = lfilter(b, a, d, zi=zi)
-        return y + x0
-
-
-def _periodic_state(b, a, d) -> np.ndarray:
-    """The initial state of ``lfilter(b, a, ·)`` that it returns to after one period ``d``.
-
-    The final state is ``Φ z0 + z_forced``: ``z_forced`` from a pass starting at
-    rest, column ``i`` of ``Φ`` from a pass over zeros starting at unit state
-    ``e_i``. For a stable filter ``I − Φ`` is invertible (every eigenvalue of Φ is
-    a pole raised to the period's sample count, inside the unit circle).
-    """
-    from scipy.signal import lfilter
-
-    nz = max(len(a), len(b)) - 1
-    _, forced = lfilter(b, a, d, zi=np.zeros(nz))
-    zeros = np.zeros_like(d)
-    phi = np.column_stack([lfilter(b, a, zeros, zi=e)[1] for e in np.eye(nz)])
-    return np.linalg.solve(np.eye(nz) - phi, forced)
+        spectrum = np.fft.rfft(x - x0)
+        spectrum *= self.frequency_response(np.arange(spectrum.size) * (2.0 * math.pi / x.size), sample_rate)
+        y = np.fft.irfft(spectrum, x.size)
+        y += x0
+        return y
 
 
 def response_from_section(sec: Section | None) -> Response:
@@ -198,9 +227,12 @@ class Tracking:
         return self.actual - self.planned
 
 
-#: Largest number of points simulated per period; beyond it the drive is simulated
-#: at a lower rate (the hold staircase at such rates is far below any tolerance).
-MAX_SIM_POINTS = 1 << 21
+#: Largest number of points simulated per period (2 MiB per array). Beyond it the drive is
+#: simulated at the played rate divided by a whole number: the laser then follows a coarser
+#: hold staircase and differs by about one simulated sample's detuning step (|dΔ/dt| over
+#: the simulated rate, at least 2^18 samples per period), far below a tracking tolerance
+#: (a fraction of the lag detuning).
+MAX_SIM_POINTS = 1 << 18
 
 
 def track(schedule, chain, response: Response, sample_rate: float, *, quant=None,
@@ -229,7 +261,7 @@ def track(schedule, chain, response: Response, sample_rate: float, *, quant=None
         from sweepgen.sampling import codes_to_drive, drive_to_codes
 
         drive = codes_to_drive(drive_to_codes(drive, quant), quant)
-    played = response.filter(drive, sim_sample_rate, periodic=True)
+    played = response.steady_state(drive, sim_sample_rate)
     actual = chain.to_detuning(played)
     return Tracking(time=t, planned=planned, drive=drive, actual=actual, sample_rate=sim_sample_rate)
 

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import constants, signal
 
-from sweepgen import physics
+from sweepgen import physics, sampling
 from sweepgen.checker import MIN_OVERLAP, CheckReport, Finding, headroom, lower, require_playable, upper, within
 from sweepgen.errors import CheckFailed, PlanError
 from sweepgen.playback import prepare
@@ -435,3 +435,53 @@ def test_a_rate_twice_the_generators_limit_reads_minus_100_percent(tmp_path):
 def test_shipped_scenarios_pass_with_their_hardware(key):
     r = prepare(load_scenario(key)).report
     assert r.ok, [(f.rule, f.message) for f in r.failures()]
+
+
+def _tracking_error_by_lfilter(report, sample_rate):
+    """Reference: ``(time, |laser − plan|)`` over one period at every sample played at ``sample_rate``,
+    through scipy.signal: the response discretised with a zero-order hold (cont2discrete) and run
+    from rest over three periods with lfilter (the shipped actuators settle in a small fraction of
+    a period), the drive quantised to the generator's codes as it is played."""
+    schedule, laser, q = report.plan.schedule(), report.laser, report.quantisation
+    n = round(schedule.period * sample_rate)
+    t = np.arange(n) / sample_rate
+    planned = schedule.detuning(t)
+    drive = sampling.codes_to_drive(sampling.drive_to_codes(laser.chain.to_drive(planned), q), q)
+    b, a, _ = signal.cont2discrete(laser.response.transfer(), 1.0 / sample_rate, method="zoh")
+    played = signal.lfilter(np.squeeze(b), a, np.tile(drive - drive[0], 3))[-n:] + drive[0]
+    return t, np.abs(laser.chain.to_detuning(played) - planned)
+
+
+def _in_chirp(report, t):
+    chirp = report.plan.schedule().segment("chirp")
+    return (t >= chirp.start) & (t < chirp.end)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("key", ["rb87-chopped-oven", "na23-continuous-focused", "caf-buffer-gas"])
+def test_tracking_verdict_agrees_with_the_full_computation(key):
+    report = prepare(load_scenario(key)).report
+    rate = report.rate_choice.sample_rate
+    assert report.tracking.sample_rate == rate          # every played sample is simulated
+    t, err = _tracking_error_by_lfilter(report, rate)
+    worst = np.max(err[_in_chirp(report, t)])
+    tracking = report.finding("tracking")
+    assert tracking.value == pytest.approx(worst, rel=1e-6)
+    i0 = round(report.plan.schedule().segment("chirp").start * rate) % t.size
+    settling = report.finding("return_settling")
+    assert settling.value == pytest.approx(max(err[i0], err[i0 - 1]), rel=1e-6, abs=1e-6 * tracking.limit)
+
+
+@pytest.mark.slow
+def test_tracking_beyond_the_simulated_points_is_within_one_step(tmp_path):
+    # played at 2^20 samples per period (a fixed rate), simulated at a quarter of it (2^18 points)
+    rate = (1 << 20) / 6e-3                              # CHECKED_SCENARIO's period is 6 ms
+    gen = merged(VOLTAGE_BOARD, sampling={"rate_max": "200 MSa/s", "memory": 1 << 21})
+    report = run(tmp_path, laser=merged(PIEZO_LASER, response={"corner": "20 kHz"}), gen=gen, rate=rate)
+    assert report.tracking.sample_rate == pytest.approx(rate / 4) and report.tracking.time.size == 1 << 18
+    t, err = _tracking_error_by_lfilter(report, rate)
+    worst = np.max(err[_in_chirp(report, t)])
+    step = report.plan.schedule().max_abs_chirp_rate("chirp") / report.tracking.sample_rate
+    f = report.finding("tracking")
+    assert abs(f.value - worst) <= step                  # the coarser hold staircase: one simulated step
+    assert 0.1 * f.limit < worst < f.limit and f.status == "pass"

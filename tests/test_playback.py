@@ -13,6 +13,7 @@ from sweepgen.errors import CheckFailed, InputError
 from sweepgen.generator import load_generator
 from sweepgen.laser import load_laser
 from sweepgen.planner import plan
+from sweepgen.response import MAX_SIM_POINTS, preview_sample_rate
 from sweepgen.playback import (MAIN, actuator_response, default_file_name, load_profile, prepare,
                                scenario_profiles)
 from sweepgen.scenario import load_scenario
@@ -135,9 +136,11 @@ def test_actuator_response_follows_the_scenarios_profiles(write_scenario):
     t2, d2 = actuator_response(p, load_laser("demo-ecdl-piezo"), load_generator("virtual-awg"))
     assert np.array_equal(t, t2) and np.array_equal(d, d2)
     assert actuator_response(plan(load_scenario(str(write_scenario())))) is None      # no laser named
-    # without a generator: unquantised, 1000 points per time constant 2Q/ω0 of the piezo (0.8, 25 kHz)
+    # without a generator: unquantised, 1000 points per time constant 2Q/ω0 of the piezo (0.8, 25 kHz),
+    # at most MAX_SIM_POINTS per period
     free = plan(load_scenario(str(write_scenario(laser="demo-ecdl-piezo"))))
     t3, _ = actuator_response(free)
     tau = 2 * 0.8 / (2 * np.pi * 25e3)
-    assert t3[1] == pytest.approx(tau / 1000, rel=1e-9)
+    assert t3[1] == pytest.approx(max(tau / 1000, free.scenario.chirp.period / MAX_SIM_POINTS), rel=1e-9)
+    assert preview_sample_rate(load_laser("demo-ecdl-piezo").response, 1e-3) == pytest.approx(1000 / tau)
 
