@@ -656,9 +656,9 @@ def tracking_findings(report: CheckReport, schedule, sample_rate: float, quant=N
     tr = track(schedule, laser.chain, laser.response, sample_rate, quant=quant)
     report.tracking = tr
     tol = tracking_tolerance(plan)
-    kinds = schedule.kinds(tr.time)
     err = np.abs(tr.error)
-    in_chirp = kinds == "chirp"
+    chirp = schedule.segment("chirp")
+    in_chirp = np.zeros(err.size, dtype=bool) if chirp is None else (tr.time >= chirp.start) & (tr.time < chirp.end)
     model = laser.response.model
     desc = {"none": "an ideal actuator",
             "first-order": f"a first-order response (corner {si(laser.response.corner or 0, 'Hz')})",
@@ -672,7 +672,6 @@ def tracking_findings(report: CheckReport, schedule, sample_rate: float, quant=N
                   f"the chirp (at {at * 1e3:.4g} ms); tolerance {sc.drive.tracking_fraction:g} × the lag detuning "
                   f"{si(tol / sc.drive.tracking_fraction, 'Hz')}",
                   "lower the chirp rate (chirp.force_fraction), use a faster actuator, or raise drive.tracking_fraction"))
-    chirp = schedule.segment("chirp")
     ret = schedule.segment("return")
     if chirp is not None and ret is not None:
         n = len(tr.time)

@@ -29,16 +29,17 @@ import numpy as np
 
 from sweepgen import __version__
 from sweepgen.errors import CheckFailed
+from sweepgen.schedule import SampledPolynomial
 from sweepgen.table import Frame, RenderedTable, TableInfo
 
 #: a chain is written to the sidecar as linear when a straight line reproduces it within this fraction of a code step
 LINEAR_TOLERANCE = 1e-3
 #: target accuracy of the code -> detuning lookup of a non-linear chain, as a fraction of the local code step
 LOOKUP_TOLERANCE = 0.1
-#: the fast drive evaluation agrees with the chain within this fraction of a code step
+#: the codes' polynomial of time agrees with the chain within this fraction of a code step
 TABLE_TOLERANCE = 1e-3
-#: samples computed at a time inside a frame (the temporaries stay in the processor's cache)
-BLOCK = 8192
+#: samples computed at a time (the temporaries, 256 KiB each, stay in the processor's cache)
+BLOCK = 1 << 15
 
 
 # ---------------------------------------------------------------------------------------------
@@ -159,108 +160,78 @@ def detuning_scaling(chain, q, code_lo: int, code_hi: int) -> dict:
 
 
 # ---------------------------------------------------------------------------------------------
-# Fast evaluation of the schedule at increasing times
+# The codes as a piecewise polynomial of time
 # ---------------------------------------------------------------------------------------------
-class SortedEvaluator:
-    """Evaluate a ``scipy.interpolate.PPoly`` at increasing times, piece by piece.
+def code_polynomial(schedule, chain, q):
+    """The codes before rounding, ``u(t) = (drive(Δ(t)) − code_offset) / code_scale``, as a piecewise
+    polynomial of time over one period: ``(x, c, description)`` in the layout of
+    :class:`sweepgen.schedule.SampledPolynomial`, or ``(None, None, "exact")``.
 
-    A block of sample times usually falls on a few pieces of the schedule; each
-    piece is then a single polynomial with scalar coefficients, evaluated by
-    Horner's rule in place (no per-sample gather of coefficients). Blocks that
-    cross many pieces go to ``PPoly.__call__``. The pieces are taken as PPoly
-    takes them: piece ``k`` covers ``[x[k], x[k+1])``, the last one extends
-    beyond ``x[-1]``.
+    Rendering then costs one polynomial per sample whatever the chain. A chain
+    that is a straight line over the sweep (within :data:`TABLE_TOLERANCE` of a
+    code) maps the schedule's coefficients exactly. A curved one (a calibrated
+    stage, whose exact inverse takes Newton iterations) is followed by cubic
+    Hermite pieces in time, matching ``u`` and ``du/dt = gain(Δ) Δ'(t) /
+    code_scale`` at their ends; each of the schedule's pieces is halved until
+    every piece's midpoint, where a Hermite cubic's error peaks, is within the
+    tolerance. When 2^20 pieces are not enough, ``"exact"``: every sample goes
+    through the chain.
     """
-
-    MAX_PIECES = 16
-
-    def __init__(self, poly):
-        self.poly = poly
-        self.x = np.asarray(poly.x, dtype=float)
-        self.c = np.asarray(poly.c, dtype=float)
-        self.last = len(self.x) - 2
-
-    def __call__(self, t, out=None):
-        """Values at increasing times ``t``; written into ``out`` when given."""
-        t = np.asarray(t, dtype=float)
-        if out is None:
-            out = np.empty_like(t)
-        if t.size == 0:
-            return out
-        x, c = self.x, self.c
-        k0 = min(max(int(np.searchsorted(x, t[0], side="right")) - 1, 0), self.last)
-        k1 = min(max(int(np.searchsorted(x, t[-1], side="right")) - 1, 0), self.last)
-        if k1 - k0 > self.MAX_PIECES or k1 < k0:
-            out[...] = self.poly(t)
-            return out
-        bounds = np.searchsorted(t, x[k0 + 1:k1 + 1], side="left").tolist()
-        for j, (a, b) in enumerate(zip([0, *bounds], [*bounds, t.size])):
-            if b <= a:
-                continue
-            k = k0 + j
-            dt = t[a:b] - x[k]
-            y = out[a:b]
-            y[:] = c[0, k]
-            for m in range(1, c.shape[0]):
-                y *= dt
-                y += c[m, k]
-        return out
+    det_lo, det_hi = detuning_extremes(schedule)
+    x, c = schedule.poly.x, schedule.poly.c
+    if det_hi > det_lo:
+        probe = np.linspace(det_lo, det_hi, 4097)
+        drive = np.asarray(chain.to_drive(probe), dtype=float)
+        slope = (drive[-1] - drive[0]) / (det_hi - det_lo)
+        line = drive[0] + slope * (probe - det_lo)
+        if np.max(np.abs(drive - line)) > TABLE_TOLERANCE * abs(q.code_scale):
+            return _hermite_codes(schedule, chain, q)
+        intercept = drive[0] - slope * det_lo
+    else:
+        slope, intercept = 0.0, float(np.asarray(chain.to_drive(np.array([det_lo])))[0])
+    c = c * (slope / q.code_scale)
+    c[-1] += (intercept - q.code_offset) / q.code_scale
+    return x, c, "linear"
 
 
-# ---------------------------------------------------------------------------------------------
-# Fast drive evaluation
-# ---------------------------------------------------------------------------------------------
-def drive_function(chain, det_lo: float, det_hi: float, code_step: float):
-    """A vectorised detuning -> drive map over ``[det_lo, det_hi]``, equal to ``chain.to_drive``
-    within :data:`TABLE_TOLERANCE` of a code step (``code_step``, drive units).
+def _piece_values(c, k, s):
+    """Value and slope of pieces ``k`` of the coefficients ``c`` at offsets ``s`` into them."""
+    value, slope = c[0, k], np.zeros_like(s)
+    for m in range(1, c.shape[0]):
+        slope = slope * s + value
+        value = value * s + c[m, k]
+    return value, slope
 
-    A chain that is a straight line over the range is evaluated as one; a
-    non-linear one (a calibrated stage, whose exact inverse takes Newton
-    iterations) is tabulated on a grid refined until ``numpy.interp`` agrees with
-    the chain at every interval's midpoint within the tolerance; the chain itself
-    is used when no grid of at most 2^20 points is fine enough. Returns
-    ``(function, description)``; the function takes ``(detuning, out=None)``.
-    """
-    def exact(d, out=None):
-        v = np.asarray(chain.to_drive(d), dtype=float)
-        if out is None:
-            return v
-        out[...] = v
-        return out
 
-    if not det_hi > det_lo:
-        return exact, "exact"
-    tol = TABLE_TOLERANCE * abs(code_step)
-    ends = np.asarray(exact(np.array([det_lo, det_hi])), dtype=float)
-    slope = (ends[1] - ends[0]) / (det_hi - det_lo)
-    probe = np.linspace(det_lo, det_hi, 4097)
-    line = ends[0] + slope * (probe - det_lo)
-    if np.max(np.abs(np.asarray(exact(probe), dtype=float) - line)) <= tol:
-        a, b = ends[0] - slope * det_lo, slope
+def _hermite_codes(schedule, chain, q, limit: int = 1 << 20):
+    x, c = schedule.poly.x, schedule.poly.c
+    width = np.diff(x)
+    tol = TABLE_TOLERANCE
 
-        def linear(d, out=None):
-            v = np.multiply(d, b, out=out)
-            v += a
-            return v
+    def codes_at(k, s):
+        det, rate = _piece_values(c, k, s)
+        u = (np.asarray(chain.to_drive(det), dtype=float) - q.code_offset) / q.code_scale
+        return u, np.asarray(chain.gain(det), dtype=float) * rate / q.code_scale
 
-        return linear, "linear"
-    n = 1025
-    while n <= (1 << 20) + 1:
-        grid = np.linspace(det_lo, det_hi, n)
-        values = np.asarray(exact(grid), dtype=float)
-        mid = 0.5 * (grid[:-1] + grid[1:])
-        err = np.max(np.abs(np.interp(mid, grid, values) - np.asarray(exact(mid), dtype=float)))
-        if err <= tol:
-            def tabulated(d, out=None):
-                v = np.interp(d, grid, values)
-                if out is None:
-                    return v
-                out[...] = v
-                return out
-
-            return tabulated, f"tabulated ({n} points, within {err:.3g})"
-        n = 2 * n - 1
-    return exact, "exact"
+    parts = np.ones(width.size, dtype=np.int64)
+    while parts.sum() <= limit:
+        k = np.repeat(np.arange(width.size), parts)                    # piece of each Hermite cubic
+        h = width[k] / parts[k]
+        s0 = (np.arange(k.size) - np.repeat(np.cumsum(parts) - parts, parts)) * h
+        u0, d0 = codes_at(k, s0)
+        u1, d1 = codes_at(k, s0 + h)
+        cubic = np.stack([(d0 + d1 - 2.0 * (u1 - u0) / h) / h ** 2, (3.0 * (u1 - u0) / h - 2.0 * d0 - d1) / h,
+                          d0, u0])
+        exact, _ = codes_at(k, s0 + 0.5 * h)
+        half = 0.5 * h
+        error = np.abs(((cubic[0] * half + cubic[1]) * half + cubic[2]) * half + cubic[3] - exact)
+        worst = np.zeros(width.size)
+        np.maximum.at(worst, k, error)
+        if np.all(worst <= tol):
+            breaks = np.append(x[k] + s0, x[-1])
+            return breaks, cubic, f"piecewise cubic in time ({k.size} pieces, within {worst.max():.2g} code)"
+        parts[worst > tol] *= 2
+    return None, None, "exact"
 
 
 # ---------------------------------------------------------------------------------------------
@@ -320,7 +291,7 @@ def render(playing, *, digest: str = "") -> RenderedTable:
                      code_scale=float(q.code_scale), code_offset=float(q.code_offset), amplitude=q.amplitude,
                      offset=q.offset, channel=playing.output, scenario_digest=digest, tool_version=__version__,
                      extra=extra)
-    return RenderedTable(info, source)
+    return RenderedTable(info, source, codes=source.codes)
 
 
 def _safe_codes(playing):
@@ -356,49 +327,71 @@ def _quantisation_doc(q) -> dict:
 
 
 class PeriodFrames:
-    """The frames of a table: samples of one period at ``sample_rate``, then copies of the first sample.
+    """The samples of a table: one period at ``sample_rate``, then copies of the first sample.
 
-    Called with ``(start, stop)`` it computes those samples (time, detuning,
-    drive, codes) in blocks of :data:`BLOCK` that stay in the processor's cache.
+    :meth:`codes` gives the codes alone (what most drivers write); calling the
+    object gives a whole :class:`sweepgen.table.Frame` (time, detuning, drive,
+    codes). Both work in blocks of :data:`BLOCK` samples that stay in the
+    processor's cache, from :func:`code_polynomial`: one polynomial per sample
+    for the codes, rounded, checked against the code window (a value outside it
+    raises :class:`CheckFailed` instead of being clipped) and cast.
     """
 
     def __init__(self, schedule, chain, q, sample_rate: float, period_count: int):
         from sweepgen import sampling
 
         self._to_codes = sampling.drive_to_codes
-        self.q, self.sample_rate, self.period_count = q, sample_rate, period_count
-        self.period = schedule.period
-        self.poly = SortedEvaluator(schedule.poly)
-        det_lo, det_hi = detuning_extremes(schedule)
-        self.to_drive, self.evaluation = drive_function(chain, det_lo, det_hi, q.code_scale)
+        self.chain, self.q, self.period_count = chain, q, period_count
+        self.detuning = schedule.sampled(sample_rate)
+        x, c, self.evaluation = code_polynomial(schedule, chain, q)
+        self.unrounded = None if x is None else SampledPolynomial(x, c, sample_rate, schedule.period)
         self.first_detuning = float(schedule.poly(0.0))
         self.first_drive = float(np.asarray(chain.to_drive(np.array([self.first_detuning])))[0])
         self.first_code = self._to_codes(np.array([self.first_drive]), q)[0]
+        self.sample_rate = sample_rate
         self.dtype = np.dtype(q.dtype)
 
-    def _compute(self, start: int, stop: int, detuning, drive, codes) -> None:
-        """Samples start..stop of the period (all < period_count) into the output slices."""
-        t = np.arange(start, stop, dtype=np.float64)
-        t /= self.sample_rate
-        if t[-1] >= self.period:                      # rounding of the sample rate: stay on the period's axis
-            np.mod(t, self.period, out=t)
-        self.poly(t, out=detuning)
-        self.to_drive(detuning, out=drive)
-        codes[:] = self._to_codes(drive, self.q)      # refuses (CheckFailed) instead of clipping
+    def _block(self, start: int, stop: int, codes, detuning=None, drive=None) -> None:
+        """Samples ``start .. stop − 1`` of the period into ``codes`` (and ``detuning``, ``drive``)."""
+        q = self.q
+        if detuning is not None:
+            self.detuning(start, stop, out=detuning)
+        if self.unrounded is None:                                     # every sample through the chain
+            d = self.chain.to_drive(detuning if detuning is not None else self.detuning(start, stop))
+            codes[:] = self._to_codes(d, q)
+            if drive is not None:
+                drive[:] = d
+            return
+        u = self.unrounded(start, stop)
+        if drive is not None:
+            np.multiply(u, q.code_scale, out=drive)
+            drive += q.code_offset
+        np.rint(u, out=u)
+        lo, hi = u.min(), u.max()
+        if not (q.code_min <= lo and hi <= q.code_max):              # NaN fails here too
+            self._to_codes(q.code_offset + q.code_scale * u, q)       # raises CheckFailed with the sample
+        codes[:] = u
+
+    def codes(self, start: int, stop: int) -> np.ndarray:
+        """The codes of samples ``start .. stop − 1`` (``info.dtype``)."""
+        codes = np.empty(stop - start, dtype=self.dtype)
+        inner = max(0, min(stop, self.period_count) - start)
+        for a in range(0, inner, BLOCK):
+            b = min(a + BLOCK, inner)
+            self._block(start + a, start + b, codes[a:b])
+        codes[inner:] = self.first_code                               # padding: the first sample again
+        return codes
 
     def __call__(self, start: int, stop: int) -> Frame:
         n = stop - start
         time = np.arange(start, stop, dtype=np.float64)
         time /= self.sample_rate
-        detuning = np.empty(n)
-        drive = np.empty(n)
-        codes = np.empty(n, dtype=self.dtype)
+        detuning, drive, codes = np.empty(n), np.empty(n), np.empty(n, dtype=self.dtype)
         inner = max(0, min(stop, self.period_count) - start)
         for a in range(0, inner, BLOCK):
             b = min(a + BLOCK, inner)
-            self._compute(start + a, start + b, detuning[a:b], drive[a:b], codes[a:b])
-        if inner < n:                                 # padding: the first sample again
-            detuning[inner:] = self.first_detuning
-            drive[inner:] = self.first_drive
-            codes[inner:] = self.first_code
+            self._block(start + a, start + b, codes[a:b], detuning[a:b], drive[a:b])
+        detuning[inner:] = self.first_detuning
+        drive[inner:] = self.first_drive
+        codes[inner:] = self.first_code
         return Frame(start, time, detuning, drive, codes)

@@ -255,7 +255,7 @@ def track(schedule, chain, response: Response, sample_rate: float, *, quant=None
         n = int(round(schedule.period * sim_sample_rate))
     n = max(n, 2)
     t = np.arange(n) / sim_sample_rate
-    planned = schedule.detuning(t)
+    planned = schedule.sampled(sim_sample_rate)(0, n)
     drive = chain.to_drive(planned)
     if quant is not None:
         from sweepgen.sampling import codes_to_drive, drive_to_codes

@@ -100,6 +100,11 @@ class Schedule:
 
     __call__ = detuning
 
+    def sampled(self, sample_rate: float) -> "SampledPolynomial":
+        """The detuning at the instants ``t_i = i / sample_rate``, chunk by chunk (see
+        :class:`SampledPolynomial`)."""
+        return SampledPolynomial(self.poly.x, self.poly.c, sample_rate, self.period)
+
     def chirp_rate(self, t):
         """The chirp rate dΔ/dt in Hz/s at times ``t``."""
         return self._chirp_rate(self._wrap(t))
@@ -139,3 +144,78 @@ class Schedule:
     def coefficients(self) -> np.ndarray:
         """Coefficients ``c[k, i]`` of piece i in powers of (t - x[i]), highest first (as in PPoly)."""
         return self.poly.c
+
+
+class SampledPolynomial:
+    """A piecewise polynomial of one period at the instants ``t_i = i / sample_rate``, chunk by chunk.
+
+    The polynomial is kept as ``scipy.interpolate.PPoly`` keeps it: breakpoints
+    ``x`` and coefficients ``c[m, k]`` of piece ``k`` in powers of ``t − x[k]``,
+    highest first; piece ``k`` covers ``[x[k], x[k+1])``, the first and last
+    pieces extend beyond the ends. Times at or past ``period`` wrap around it.
+
+    Consecutive samples cover few pieces: they are located once per call
+    (``searchsorted`` on the breakpoints), then each piece is a polynomial with
+    scalar coefficients, evaluated by Horner's rule in place, with no gather of
+    coefficients per sample. A call that covers more than :attr:`MAX_PIECES`
+    pieces gathers them per sample instead, which is then cheaper.
+    """
+
+    MAX_PIECES = 16
+
+    def __init__(self, x, c, sample_rate: float, period: float):
+        self.x = np.ascontiguousarray(x, dtype=float)
+        self.c = np.ascontiguousarray(c, dtype=float)
+        self.sample_rate = float(sample_rate)
+        self.period = float(period)
+        self._last = len(self.x) - 2
+
+    def __call__(self, start: int, stop: int, out=None) -> np.ndarray:
+        """Values at samples ``start .. stop − 1`` (written into ``out`` when given)."""
+        t = np.arange(start, stop, dtype=float)
+        t /= self.sample_rate
+        out = np.empty(t.size) if out is None else out
+        wrap = int(np.searchsorted(t, self.period))
+        self._sorted(t[:wrap], out[:wrap])
+        if wrap < t.size:                     # past the period: increasing again if within the next one
+            evaluate = self._sorted if t[-1] < 2.0 * self.period else self._gathered
+            evaluate(np.mod(t[wrap:], self.period), out[wrap:])
+        return out
+
+    def _piece(self, t: float) -> int:
+        return min(max(int(np.searchsorted(self.x, t, side="right")) - 1, 0), self._last)
+
+    def _sorted(self, t, out) -> None:
+        """Values at increasing times ``t`` into ``out``; ``t`` is overwritten."""
+        if t.size == 0:
+            return
+        x, c = self.x, self.c
+        k0, k1 = self._piece(t[0]), self._piece(t[-1])
+        if k1 - k0 > self.MAX_PIECES:
+            self._gathered(t, out)
+            return
+        bounds = [0, *np.searchsorted(t, x[k0 + 1:k1 + 1]).tolist(), t.size]
+        for k, a, b in zip(range(k0, k1 + 1), bounds, bounds[1:]):
+            if b <= a:
+                continue
+            dt, y = t[a:b], out[a:b]
+            dt -= x[k]
+            if c.shape[0] == 1:
+                y.fill(c[0, k])
+                continue
+            np.multiply(dt, c[0, k], out=y)
+            y += c[1, k]
+            for m in range(2, c.shape[0]):
+                y *= dt
+                y += c[m, k]
+
+    def _gathered(self, t, out) -> None:
+        """Values at any times ``t`` into ``out``, each sample's piece found and its coefficients
+        gathered; ``t`` is overwritten."""
+        x, c = self.x, self.c
+        k = np.clip(np.searchsorted(x, t, side="right") - 1, 0, self._last)
+        t -= x[k]
+        out[:] = c[0, k]
+        for m in range(1, c.shape[0]):
+            out *= t
+            out += c[m, k]

@@ -66,9 +66,11 @@ class Frame:
 class RenderedTable:
     """Codes of one period plus metadata; iterate with :meth:`chunks` or :meth:`frames`."""
 
-    def __init__(self, info: TableInfo, frame_source: Callable[[int, int], Frame]):
+    def __init__(self, info: TableInfo, frame_source: Callable[[int, int], Frame],
+                 codes: Callable[[int, int], np.ndarray] | None = None):
         self.info = info
         self._frame_source = frame_source     # (start, stop) -> Frame
+        self._codes = codes                   # (start, stop) -> codes alone, when cheaper than a Frame
         self._digests = None
 
     @classmethod
@@ -99,8 +101,13 @@ class RenderedTable:
 
     def chunks(self, size: int | None = None) -> Iterator[np.ndarray]:
         """The codes in order, ``size`` samples at a time (dtype ``info.dtype``)."""
-        for frame in self.frames(size):
-            yield frame.codes
+        if self._codes is None:
+            for frame in self.frames(size):
+                yield frame.codes
+            return
+        size = int(size or DEFAULT_CHUNK)
+        for start in range(0, self.info.count, size):
+            yield self._codes(start, min(start + size, self.info.count))
 
     def codes(self) -> np.ndarray:
         """All codes at once (only for small tables and tests)."""
@@ -142,23 +149,33 @@ class DigestingTable:
         self.info = table.info
         self._table = table
         self._sha = hashlib.sha256()
+        self._dtype = np.dtype(self.info.dtype).newbyteorder("<")
         self._done = 0
         self._complete = False
 
-    def frames(self, size: int | None = None) -> Iterator[Frame]:
-        first = not self._complete and self._done == 0
-        dtype = np.dtype(self.info.dtype).newbyteorder("<")
-        for frame in self._table.frames(size):
-            if first and frame.start == self._done:
-                self._sha.update(np.ascontiguousarray(frame.codes, dtype=dtype).tobytes())
-                self._done += len(frame.codes)
-            yield frame
+    def _hash(self, first: bool, start: int, codes) -> None:
+        if first and start == self._done:
+            self._sha.update(np.ascontiguousarray(codes, dtype=self._dtype))
+            self._done += len(codes)
+
+    def _finish(self, first: bool) -> None:
         if first and self._done == self.info.count:
             self._complete = True
 
+    def frames(self, size: int | None = None) -> Iterator[Frame]:
+        first = not self._complete and self._done == 0
+        for frame in self._table.frames(size):
+            self._hash(first, frame.start, frame.codes)
+            yield frame
+        self._finish(first)
+
     def chunks(self, size: int | None = None) -> Iterator[np.ndarray]:
-        for frame in self.frames(size):
-            yield frame.codes
+        first = not self._complete and self._done == 0
+        size = int(size or DEFAULT_CHUNK)
+        for start, codes in zip(range(0, self.info.count, size), self._table.chunks(size)):
+            self._hash(first, start, codes)
+            yield codes
+        self._finish(first)
 
     def codes(self) -> np.ndarray:
         return np.concatenate(list(self.chunks())) if self.info.count else np.empty(0, self.info.dtype)

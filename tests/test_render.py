@@ -16,11 +16,10 @@ from sweepgen.generator import load_generator
 from sweepgen.laser import load_laser
 from sweepgen.planner import plan
 from sweepgen.playback import channel_playback
-from sweepgen.render import (SortedEvaluator, detuning_extremes, detuning_scaling, drive_function,
-                             drive_range, render)
+from sweepgen.render import code_polynomial, detuning_extremes, detuning_scaling, drive_range, render
 from sweepgen.sampling import SampleRateChoice, drive_to_codes, quantisation
 from sweepgen.scenario import load_scenario
-from sweepgen.schedule import Schedule, Segment
+from sweepgen.schedule import SampledPolynomial, Schedule, Segment
 
 from conftest import examples
 
@@ -72,16 +71,22 @@ def test_detuning_extremes_bound_a_dense_sampling_and_are_attained(seed, pieces)
 
 
 @settings(max_examples=examples(40))
-@given(seed=st.integers(0, 2**32 - 1), pieces=st.integers(1, 40), n=st.integers(1, 3000),
-       lo=st.floats(0, 1e-2), width=st.floats(0, 1.2e-2))
-def test_sorted_evaluator_equals_ppoly(seed, pieces, n, lo, width):
-    poly = random_schedule(seed, pieces).poly
-    t = np.random.default_rng(seed).uniform(lo, lo + width, n)
-    inside = poly.x[(poly.x >= lo) & (poly.x <= lo + width)]           # exact breakpoints too
-    t = np.sort(np.concatenate([t, inside]))
-    expected = poly(t)                                  # reference: scipy.interpolate.PPoly
-    got = SortedEvaluator(poly)(t)
+@given(seed=st.integers(0, 2**32 - 1), pieces=st.integers(1, 40), start=st.integers(0, 12000),
+       n=st.integers(1, 3000), rate=st.floats(1e4, 1e7))
+def test_sampled_polynomial_equals_ppoly(seed, pieces, start, n, rate):
+    schedule = random_schedule(seed, pieces)
+    poly = schedule.poly
+    got = SampledPolynomial(poly.x, poly.c, rate, schedule.period)(start, start + n)
+    t = np.arange(start, start + n) / rate
+    expected = poly(np.mod(t, schedule.period))          # reference: scipy.interpolate.PPoly, wrapped
     assert np.allclose(got, expected, rtol=1e-12, atol=1e-12 * np.abs(expected).max())
+
+
+def test_sampled_polynomial_on_breakpoints_takes_the_piece_that_starts_there():
+    x = np.array([0.0, 0.25, 0.5, 1.0])                  # samples at i/8 fall on them exactly
+    c = np.random.default_rng(1).normal(0, 1, (4, 3))     # pieces that do not join
+    got = SampledPolynomial(x, c, 8.0, 1.0)(0, 20)
+    assert np.allclose(got, PPoly(c, x)(np.mod(np.arange(20) / 8.0, 1.0)), rtol=1e-13, atol=1e-13)
 
 
 def test_detuning_scaling_of_a_calibrated_chain_is_within_one_step_at_every_code():
@@ -110,14 +115,34 @@ def test_detuning_scaling_of_a_linear_chain_is_a_line():
     assert ds["offset"] == pytest.approx(-180e6 + 40e6 * q.code_offset, rel=1e-12)
 
 
-def test_fast_drive_function_matches_the_chain(case):
+def _codes_before_rounding(schedule, laser, q, count):
+    """``(from code_polynomial, exact through the chain)`` at ``count`` samples over one period."""
+    x, c, how = code_polynomial(schedule, laser.chain, q)
+    rate = count / schedule.period
+    got = SampledPolynomial(x, c, rate, schedule.period)(0, count)
+    exact = (laser.chain.to_drive(schedule.detuning(np.arange(count) / rate)) - q.code_offset) / q.code_scale
+    return got, exact, how
+
+
+def test_code_polynomial_matches_the_chain(case):
     sc, schedule, laser, gen = case
-    lo, hi = detuning_extremes(schedule)
-    dlo, dhi = drive_range(schedule, laser.chain)
-    q = quantisation(dlo, dhi, gen, laser.chain)
-    f, how = drive_function(laser.chain, lo, hi, q.code_scale)
-    d = np.random.default_rng(0).uniform(lo, hi, 20000)
-    assert np.max(np.abs(f(d) - laser.chain.to_drive(d))) <= 1e-3 * q.code_scale
+    q = quantisation(*drive_range(schedule, laser.chain), gen, laser.chain)
+    got, exact, how = _codes_before_rounding(schedule, laser, q, 1 << 16)
+    assert how == "linear" or how.startswith("piecewise cubic")
+    assert np.max(np.abs(got - exact)) <= 1e-3                      # TABLE_TOLERANCE: a thousandth of a code
+
+
+def test_a_curved_chain_is_followed_by_cubic_pieces_in_time():
+    sc, schedule, laser, gen = setup("na23-continuous-focused")      # a calibrated VCO stage
+    q = quantisation(*drive_range(schedule, laser.chain), gen, laser.chain)
+    x, c, how = code_polynomial(schedule, laser.chain, q)
+    assert how.startswith("piecewise cubic") and len(x) > len(schedule.poly.x)
+    got, exact, _ = _codes_before_rounding(schedule, laser, q, (1 << 20) + 1)   # samples off the pieces' ends
+    assert np.max(np.abs(got - exact)) <= 1e-3
+    # a straight line in detuning would be many codes off: the curve matters here
+    det = np.linspace(*detuning_extremes(schedule), 1001)
+    u = (laser.chain.to_drive(det) - q.code_offset) / q.code_scale
+    assert np.max(np.abs(u - np.linspace(u[0], u[-1], det.size))) > 10
 
 
 # -- the table ---------------------------------------------------------------------------------
