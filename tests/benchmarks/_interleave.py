@@ -46,7 +46,22 @@ def medians(cases: dict[str, Callable[[], dict]], repeat: int = REPEAT, *, warmu
             for name, results in runs.items()}
 
 
-def command(argv, *, cwd=None, ok=(0,)) -> dict:
+def compiled_env(folder) -> dict:
+    """The environment with Python's byte-code cached under ``folder``.
+
+    An installed package has its modules compiled to byte-code (pip does it at
+    install time). A checkout installed in editable mode, in an environment that
+    sets ``PYTHONDONTWRITEBYTECODE``, would compile sweepgen's modules again at
+    every start, which users do not pay; caching every module's byte-code in one
+    separate folder (``PYTHONPYCACHEPREFIX``) leaves the checkout untouched and
+    treats the baseline's libraries and sweepgen alike.
+    """
+    env = dict(os.environ, PYTHONPYCACHEPREFIX=str(folder))
+    env.pop("PYTHONDONTWRITEBYTECODE", None)
+    return env
+
+
+def command(argv, *, cwd=None, env=None, ok=(0,)) -> dict:
     """Run ``argv``; ``{"seconds": wall time, "cpu_seconds": its processor time, "peak_mib": its peak RSS}``.
 
     Output is thrown away; an exit status outside ``ok`` raises with the
@@ -54,7 +69,8 @@ def command(argv, *, cwd=None, ok=(0,)) -> dict:
     """
     with tempfile.TemporaryFile() as err:
         start = time.perf_counter()
-        proc = subprocess.Popen(argv, cwd=cwd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=err)
+        proc = subprocess.Popen(argv, cwd=cwd, env=env, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                                stderr=err)
         _, status, usage = os.wait4(proc.pid, 0)
         seconds = time.perf_counter() - start
         proc.returncode = os.waitstatus_to_exitcode(status)

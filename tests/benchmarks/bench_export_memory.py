@@ -31,7 +31,7 @@ import sys
 import tempfile
 from pathlib import Path
 
-from _interleave import command, load, medians
+from _interleave import command, compiled_env, load, medians
 
 LIBRARIES = "import numpy, scipy.integrate, pint"
 TARGET_MIB = 64
@@ -51,9 +51,9 @@ def deep_generator(folder: Path, samples: int) -> Path:
 BARE = "print(open('/proc/self/status').read().split('VmHWM:')[1].split()[0])"
 
 
-def bare_interpreter() -> dict:
+def bare_interpreter(env) -> dict:
     """The peak RSS of an interpreter that does nothing, as it reads it itself."""
-    out = subprocess.run([sys.executable, "-c", BARE], capture_output=True, text=True, check=True).stdout
+    out = subprocess.run([sys.executable, "-c", BARE], env=env, capture_output=True, text=True, check=True).stdout
     return {"peak_mib": int(out) / 1024}
 
 
@@ -76,9 +76,10 @@ def main(argv=None):
         py = sys.executable
         export = [py, "-m", "sweepgen", "export", args.scenario, "-f", "raw", "-o", str(folder / "out"),
                   "--generator", str(gen), "--rate", f"{rate!r} Sa/s"]
-        m = medians({"bare": bare_interpreter,
-                     "libraries": lambda: command([py, "-c", LIBRARIES]),
-                     "export": lambda: command(export)}, args.repeat)
+        env = compiled_env(folder / "pyc")
+        m = medians({"bare": lambda: bare_interpreter(env),
+                     "libraries": lambda: command([py, "-c", LIBRARIES], env=env),
+                     "export": lambda: command(export, env=env)}, args.repeat)
         written = (folder / "out" / f"{args.scenario}.bin").stat().st_size
     finally:
         shutil.rmtree(folder, ignore_errors=True)
