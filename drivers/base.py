@@ -16,12 +16,11 @@ import hashlib
 import os
 import re
 import shutil
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, ClassVar
 
-from sweepgen._atomic import new_file_mode
+from sweepgen._atomic import make_partial, new_file_mode, remove_stale_partials
 from sweepgen.errors import DriverError, InputError
 
 
@@ -109,26 +108,33 @@ class AtomicFileSet:
     back: a file that existed before is restored from a hard-link backup, a new
     one is removed. Leaving the ``with`` block by an exception (including
     ``KeyboardInterrupt``) removes the temporaries and leaves the folder as it
-    was. A folder created for the set is removed again when nothing was committed.
+    was. The folder itself is created when missing, but not its parents (an
+    :class:`InputError`), and removed again when nothing was committed.
+    Temporaries that a killed writer left in the folder are removed on entry
+    (:func:`sweepgen._atomic.remove_stale_partials`); ``removed`` lists them.
     """
 
     def __init__(self, folder):
         self.folder = Path(folder)
         self._entries: list[tuple[Path, Path, object]] = []   # (target, temporary, handle)
-        self._created: list[Path] = []           # folders made for this set, deepest first
+        self._created: list[Path] = []           # the folder, when it was made for this set
         self.committed = False
+        self.removed: list[Path] = []            # stale temporaries of an interrupted write, removed
 
     # -- context manager -------------------------------------------------------------------------
     def __enter__(self):
         if self.folder.exists() and not self.folder.is_dir():
-            raise DriverError(f"{self.folder}: exists and is not a folder")
+            raise InputError("exists and is not a folder", file=str(self.folder))
         if not self.folder.exists():
-            missing = [self.folder, *[p for p in self.folder.parents if not p.exists()]]
+            if not self.folder.parent.is_dir():
+                raise InputError("its parent folder does not exist; sweepgen creates only the last level "
+                                 "(create the parents first)", file=str(self.folder))
             try:
-                self.folder.mkdir(parents=True)
+                self.folder.mkdir()
             except OSError as exc:
                 raise DriverError(f"{self.folder}: cannot create the folder ({exc.strerror})") from None
-            self._created = missing              # deepest first
+            self._created = [self.folder]
+        self.removed = remove_stale_partials(self.folder)
         return self
 
     def __exit__(self, exc_type, exc, tb):
@@ -144,8 +150,10 @@ class AtomicFileSet:
         target = self.folder / name
         if target.is_dir():
             raise DriverError(f"{target}: a folder of that name is in the way")
-        fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".part", dir=self.folder)
-        os.close(fd)
+        try:
+            tmp = make_partial(self.folder, name)
+        except OSError as exc:
+            raise DriverError(f"{target}: cannot write ({exc.strerror})") from None
         try:
             os.chmod(tmp, new_file_mode())            # as an ordinary open() would create it
             handle = open(tmp, mode, **kwargs)
@@ -231,8 +239,7 @@ class AtomicFileSet:
         return targets
 
     def _backup(self, target: Path) -> Path:
-        fd, name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".old", dir=self.folder)
-        os.close(fd)
+        name = make_partial(self.folder, target.name, ".old")
         os.unlink(name)
         try:
             os.link(target, name)           # the old file stays reachable, the target is untouched
@@ -372,7 +379,8 @@ class FileDriver(Driver):
                               f"the folder was left as it was") from None
         report.update(bytes=nbytes, sha256=sha, table_sha256=doc["table_sha256"],
                       scaling={k: doc["scaling"][k] for k in ("code", "drive")},
-                      paths=[str(folder / data_name), str(folder / sidecar_name)])
+                      paths=[str(folder / data_name), str(folder / sidecar_name)],
+                      removed_partials=[p.name for p in files.removed])
         return report
 
     # -- reading back ----------------------------------------------------------------------------

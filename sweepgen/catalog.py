@@ -11,7 +11,7 @@ from __future__ import annotations
 import importlib.resources
 from pathlib import Path
 
-from sweepgen.errors import InputError
+from sweepgen.errors import InputError, display_path
 
 KINDS = ("species", "lasers", "generators", "scenarios")
 
@@ -66,7 +66,7 @@ def resolve(kind: str, ref, *, relative_to=None, file=None, key=None) -> Path:
         if entry.is_file():
             return Path(str(entry))
     known = ", ".join(builtin_keys(kind))
-    looked = f"looked for the file at {candidates[0]}; " if looks_like_path else ""
+    looked = f"looked for the file at {display_path(candidates[0])}; " if looks_like_path else ""
     raise InputError(f"no built-in {kind} profile or file named {ref!r} ({looked}built-in: {known})",
                      file=file, key=key)
 

@@ -491,11 +491,8 @@ RECORD_TEXTS = ("method", "measurements", "measurements_sha256", "calibrated")
 def _calibration(sec: Section, drive_name: str, drive_unit: str, value_name: str) -> Calibration:
     if sec.has("coefficients"):
         return _fitted_calibration(sec, drive_unit)
-    from sweepgen import units
-
-    u = units.parse_many(sec.raw(drive_name), drive_unit, file=sec.file, key=sec.key(drive_name),
-                         example=f"1.5 {drive_unit}")
-    x = units.parse_many(sec.raw(value_name), "Hz", file=sec.file, key=sec.key(value_name), example="-120 MHz")
+    u = sec.quantities(drive_name, drive_unit, example=f"1.5 {drive_unit}")
+    x = sec.quantities(value_name, "Hz", example="-120 MHz")
     degree = sec.number("degree", None, integer=True, minimum=1, maximum=7)
     try:
         return Calibration.from_points(u, x, degree)
@@ -505,16 +502,12 @@ def _calibration(sec: Section, drive_name: str, drive_unit: str, value_name: str
 
 def _fitted_calibration(sec: Section, drive_unit: str) -> Calibration:
     """A fit written by ``sweepgen calibrate``: ``fit``, ``range``, ``coefficients`` and its record."""
-    from sweepgen import units
-
     sec.string("fit", choices=("polynomial",))
-    ends = units.parse_many(sec.raw("range"), drive_unit, file=sec.file, key=sec.key("range"),
-                            example=f"0 {drive_unit}")
+    ends = sec.quantities("range", drive_unit, example=f"0 {drive_unit}")
     if len(ends) != 2 or not ends[1] > ends[0]:
         raise sec.error("range", f"expected [low, high], two drive values in {drive_unit} with low < high")
     lo, hi = float(ends[0]), float(ends[1])
-    coef = units.parse_many(sec.raw("coefficients"), "Hz", file=sec.file, key=sec.key("coefficients"),
-                            example="-120 MHz")
+    coef = sec.quantities("coefficients", "Hz", example="-120 MHz")
     if len(coef) < 2 or len(coef) > 8:
         raise sec.error("coefficients", f"expected 2 to 8 coefficients (degree 1 to 7), got {len(coef)}")
     stats = {k: sec.quantity(k, "Hz", None, nonnegative=True) for k in RECORD_QUANTITIES}

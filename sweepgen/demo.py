@@ -41,7 +41,7 @@ def run(directory, *, scenario: str = DEMO_SCENARIO, atoms: int = DEMO_ATOMS, se
 
     start = time.perf_counter()
     out = Path(directory)
-    out.mkdir(parents=True, exist_ok=True)
+    out.mkdir(exist_ok=True)          # the folder, not its parents
     res = DemoResult(out)
     sc = load_scenario(scenario)
     echo(f"scenario: {sc.title}")

@@ -15,6 +15,11 @@ name; the command line prints it as one line on stderr, once.
 
 from __future__ import annotations
 
+import os
+
+#: longest value or key quoted in a message (characters); longer ones are cut in the middle
+QUOTE_CHARS = 200
+
 
 class SweepgenError(Exception):
     """Base class of the expected errors; ``exit_code`` is what the CLI returns."""
@@ -28,14 +33,15 @@ class InputError(SweepgenError, ValueError):
     exit_code = 2
 
     def __init__(self, message: str, *, file: str | None = None, key: str | None = None):
-        self.file = file
-        self.key = key
+        self.file = display_path(file) if file else file
+        self.key = clip(key, QUOTE_CHARS) if key else key
+        message = clip(message, 3 * QUOTE_CHARS)
         self.detail = message
         where = []
-        if file:
-            where.append(str(file))
-        if key:
-            where.append(f"key '{key}'")
+        if self.file:
+            where.append(self.file)
+        if self.key:
+            where.append(f"{'option' if self.key.startswith('-') else 'key'} '{self.key}'")
         prefix = ": ".join(where)
         super().__init__(f"{prefix}: {message}" if prefix else message)
 
@@ -88,3 +94,18 @@ class DriverError(SweepgenError):
     """A delivery driver could not deliver the table (file system, registry)."""
 
     exit_code = 1
+
+
+def display_path(path) -> str:
+    """``path`` as messages show it: lexically normalised (``bad/../bad/f.toml`` → ``bad/f.toml``)."""
+    return os.path.normpath(str(path))
+
+
+def clip(text: str, limit: int) -> str:
+    """``text`` cut in the middle to at most ``limit`` characters (a hostile file's megabyte-long
+    value or key must not become a megabyte-long message)."""
+    text = str(text)
+    if len(text) <= limit:
+        return text
+    keep = (limit - 1) // 2
+    return f"{text[:keep]}…{text[len(text) - keep:]}"

@@ -100,7 +100,7 @@ def _impedance(sec: Section, name: str, default):
 
 
 def generator_from_dict(data: dict, path) -> Generator:
-    top = Section(data, path)
+    top = Section(data, path, kind="generator")
     title = top.string("title")
     kind = top.string("kind", choices=("awg", "board"))
     channels = top.number("channels", 1, integer=True, minimum=1)
@@ -127,10 +127,7 @@ def _rates(sm: Section) -> tuple:
     raw = sm.raw("rates")
     if not isinstance(raw, list) or not raw:
         raise sm.error("rates", "expected a non-empty list of sample rates such as [\"1 MSa/s\", \"10 MSa/s\"]")
-    from sweepgen import units
-
-    rates = tuple(sorted(units.parse(r, "Hz", file=sm.file, key=sm.key("rates"), example="1 MSa/s")
-                         for r in raw))
+    rates = tuple(sorted(float(r) for r in sm.quantities("rates", "Hz", example="1 MSa/s")))
     if any(r <= 0 for r in rates):
         raise sm.error("rates", "sample rates must be greater than zero")
     for name in ("rate_min", "rate_max"):

@@ -76,7 +76,7 @@ def load_laser(ref, *, relative_to=None, file=None, key=None) -> Laser:
 
 def laser_from_dict(data: dict, path) -> Laser:
     """Build a :class:`Laser` from the parsed TOML of ``path`` (strict)."""
-    top = Section(data, path)
+    top = Section(data, path, kind="laser")
     title = top.string("title")
     top.string("notes", "")
     chain = chain_from_sections(top.sections("chain"), file=top.file, key="chain")

@@ -176,7 +176,7 @@ def scenario_from_dict(data: dict, path, raw: bytes | None = None) -> Scenario:
     rendering of ``data``."""
     path = Path(str(path))
     file = str(path)
-    top = Section(data, file)
+    top = Section(data, file, kind="scenario")
     title = top.string("title")
     species_ref = top.string("species")
     species = load_species(species_ref, relative_to=path.parent, file=file, key="species")

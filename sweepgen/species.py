@@ -175,7 +175,7 @@ def load_species(ref, *, relative_to=None, file=None, key=None) -> Species:
 
 
 def species_from_dict(data: dict, path) -> Species:
-    top = Section(data, path)
+    top = Section(data, path, kind="species")
     title = top.string("title")
     kind = top.string("kind", "atom", choices=("atom", "molecule"))
     sources = {}

@@ -31,6 +31,12 @@ settings.register_profile("thorough", max_examples=THOROUGH_EXAMPLES, deadline=N
 settings.register_profile("fast", max_examples=THOROUGH_EXAMPLES // 10, deadline=None)
 settings.load_profile("thorough")
 
+# Every value a loader reads must have a plausible range (sweepgen/plausible.py): under the
+# tests, reading a key without one is an error that names the key and says where to add it.
+from sweepgen import plausible  # noqa: E402
+
+plausible.STRICT = True
+
 
 def examples(n: int) -> int:
     """``max_examples`` for a property test that runs ``n`` examples under the thorough profile,

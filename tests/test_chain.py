@@ -17,7 +17,7 @@ finite = st.floats(min_value=-2e9, max_value=2e9, allow_nan=False)
 
 
 def sections(*tables, file="laser.toml"):
-    return Section({"chain": list(tables)}, file).sections("chain")
+    return Section({"chain": list(tables)}, file, kind="laser").sections("chain")
 
 
 @settings(max_examples=examples(200))

@@ -103,7 +103,8 @@ def test_broken_scenarios_are_refused(tmp_path, name, change, fragment):
         path.write_text(to_toml(scenario_dict(**change)))
     result = run("plan", str(path), "--json")
     assert result.exit_code == 2, (name, result.stdout, result.stderr)
-    assert result.stdout == ""
+    error = json.loads(result.stdout)["error"]          # --json: the error document, and only it
+    assert error["exit_code"] == 2 and fragment in f"{error['key']} {error['message']}"
     lines = result.stderr.strip().splitlines()
     assert len(lines) == 1, lines
     assert lines[0].startswith("sweepgen: error: ")

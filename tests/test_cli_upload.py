@@ -80,7 +80,8 @@ def test_faults_exit_1_name_the_step_and_leave_the_output_off(faults, steps):
         result = run(SCENARIO, "--resource", server.resource, "--arm", "--json")
         assert result.exit_code == 1
         assert server.instrument.outputs_on == [] and not server.instrument.ever_armed
-    assert result.stdout == ""
+    error = json.loads(result.stdout)["error"]          # --json: one document, the error's
+    assert error["exit_code"] == 1 and any(f"step '{step}'" in error["message"] for step in steps)
     assert any(f"step '{step}'" in result.stderr for step in steps)
     assert "output switched off" in result.stderr
     assert "Traceback" not in result.output

@@ -199,8 +199,15 @@ def test_a_failure_mid_stream_leaves_the_folder_as_it_was(tmp_path, driver_cls, 
 
 def test_a_failed_export_into_a_new_folder_leaves_no_folder(tmp_path):
     with pytest.raises(RuntimeError):
-        RawDriver().deliver(failing_table(1), Delivery(str(tmp_path / "new" / "deeper")))
-    assert list(tmp_path.iterdir()) == []                     # neither folder is left behind
+        RawDriver().deliver(failing_table(1), Delivery(str(tmp_path / "new")))
+    assert list(tmp_path.iterdir()) == []                     # the folder made for it is gone again
+
+
+def test_only_the_last_level_of_the_folder_is_created(tmp_path):
+    table, _, _, _ = make_table()
+    with pytest.raises(InputError, match="parent folder does not exist"):
+        RawDriver().deliver(table, Delivery(str(tmp_path / "new" / "deeper")))
+    assert list(tmp_path.iterdir()) == []
 
 
 def test_a_full_disk_is_a_driver_error_and_leaves_nothing(tmp_path):
@@ -260,5 +267,5 @@ def test_a_new_file_is_removed_when_a_later_rename_fails(tmp_path):
 def test_a_file_in_place_of_the_folder_is_an_error(tmp_path):
     (tmp_path / "out").write_text("a file")
     table, _, _, _ = make_table()
-    with pytest.raises(DriverError, match="not a folder"):
+    with pytest.raises(InputError, match="not a folder"):
         RawDriver().deliver(table, Delivery(str(tmp_path / "out")))

@@ -38,7 +38,8 @@ def test_uniform_light_matches_closed_form():
 
 def test_reference_example_through_the_planner():
     # constant-deceleration closed form (Foot 2005 §9.3.1), worked example: 87Rb, s → ∞, η = 0.5, 300 → 10 m/s: 5.172 ms, 0.8016 m, 371.68 MHz, 71.87 MHz/ms
-    sc = make_scenario(source={"pulse_time": None}, light={"saturation": 1e9, "start": "0 m"},
+    # (s = 10⁵, the largest plausible saturation, stands for s → ∞: s/(1+s) = 1 − 10⁻⁵, inside the tolerances)
+    sc = make_scenario(source={"pulse_time": None}, light={"saturation": 1e5, "start": "0 m"},
               target={"distance": "2 m"},
               chirp={"start_time": None, "force_fraction": 0.5, "start_velocity": "300 m/s", "end_velocity": "10 m/s"})
     doc = plan(sc).to_json()

@@ -127,14 +127,14 @@ def test_periodic_steady_state_repeats(model):
 
 def test_response_section_parsing():
     r = response_from_section(Section({"model": "second-order", "resonance": "25 kHz", "q": 0.8}, "l.toml",
-                                      "response"))
+                                      "response", kind="laser"))
     assert r.resonance == 25e3 and r.q == 0.8
     assert response_from_section(None).model == "none"
     with pytest.raises(InputError, match="response.corner"):
-        response_from_section(Section({"model": "first-order"}, "l.toml", "response"))
+        response_from_section(Section({"model": "first-order"}, "l.toml", "response", kind="laser"))
     with pytest.raises(InputError, match="response.q"):
         response_from_section(Section({"model": "second-order", "resonance": "1 kHz", "q": -1}, "l.toml",
-                                      "response"))
+                                      "response", kind="laser"))
 
 
 def test_simulate_ideal_actuator_follows_the_schedule():

@@ -36,11 +36,18 @@ COMMANDS = {
 
 
 class LazyGroup(click.Group):
-    """A group that imports a command's module only when that command is used, and prints
-    sweepgen's own warnings (a deprecated key) as one line on stderr."""
+    """A group that imports a command's module only when that command is used, runs it guarded
+    (:func:`sweepgen.cli._common.guarded`: one line per error, the JSON error document, numerical
+    warnings silenced) and prints sweepgen's own warnings (a deprecated key) as one line on stderr."""
+
+    def parse_args(self, ctx, args):
+        ctx.meta["sweepgen.args"] = list(args)
+        return super().parse_args(ctx, args)
 
     def invoke(self, ctx):
-        with warnings.catch_warnings():
+        from sweepgen.cli._common import guarded
+
+        with guarded(ctx.meta.get("sweepgen.args", ())), warnings.catch_warnings():
             warnings.simplefilter("default", DeprecatedKey)      # each one once
             shown = warnings.showwarning
 

@@ -1,10 +1,13 @@
 """What the commands share: errors, JSON, tables, options, the progress bar.
 
 Data goes to stdout, messages and errors to stderr. Expected errors
-(:class:`sweepgen.errors.SweepgenError`) become one line on stderr and their exit
-code (2 bad input, 1 a check failed or an instrument refused); no traceback.
-Heavy modules are imported inside the functions that need them, so that
-``sweepgen --help`` stays fast.
+(:class:`sweepgen.errors.SweepgenError`) and usage errors become one line on
+stderr and their exit code (2 bad input or usage, 1 a check failed or an
+instrument refused); no traceback. With ``--json``, a command that stops on such
+an error before printing its document prints the error document
+``{"error": {"file", "key", "message", "exit_code"}}`` on stdout instead, so
+stdout always holds exactly one JSON document. Heavy modules are imported
+inside the functions that need them, so that ``sweepgen --help`` stays fast.
 """
 
 from __future__ import annotations
@@ -12,11 +15,16 @@ from __future__ import annotations
 import contextlib
 import functools
 import sys
+import warnings
 
 import click
 
 from sweepgen._json import dumps
 from sweepgen.errors import SweepgenError
+
+#: keys of ``click.Context.meta`` (shared by a command's context and the group's)
+WANTS_JSON = "sweepgen.wants_json"
+EMITTED = "sweepgen.emitted_json"
 
 
 def handles_errors(func):
@@ -27,7 +35,7 @@ def handles_errors(func):
         try:
             return func(*args, **kwargs)
         except SweepgenError as exc:
-            fail(str(exc), exc.exit_code)
+            fail(exc)
         except KeyboardInterrupt:
             click.echo("sweepgen: interrupted", err=True)
             sys.exit(130)
@@ -35,15 +43,63 @@ def handles_errors(func):
     return wrapper
 
 
-def fail(message: str, code: int):
-    """Print ``sweepgen: error: message`` on stderr and exit with ``code``."""
-    text = " ".join(str(message).split())
+@contextlib.contextmanager
+def guarded(args):
+    """Run a command: ``args`` are its words after the group's options. Numerical warnings
+    from inside the physics are silenced (a result that matters is checked for being
+    finite where it is made), and expected errors, including click's usage errors,
+    become one line on stderr (plus the JSON error document under ``--json``)."""
+    import numpy as np
+
+    ctx = click.get_current_context()
+    words = list(args)
+    ctx.meta[WANTS_JSON] = "--json" in (words[:words.index("--")] if "--" in words else words)
+    with warnings.catch_warnings(), np.errstate(all="ignore"):
+        warnings.simplefilter("ignore")
+        try:
+            yield
+        except SweepgenError as exc:
+            fail(exc)
+        except click.UsageError as exc:
+            fail_usage(exc)
+
+
+def error_document(exc) -> dict:
+    """``{"error": {"file", "key", "message", "exit_code"}}`` for an expected error."""
+    return {"error": {"file": getattr(exc, "file", None), "key": getattr(exc, "key", None),
+                      "message": getattr(exc, "detail", None) or str(exc), "exit_code": exc.exit_code}}
+
+
+def fail(exc: SweepgenError):
+    """Print ``sweepgen: error: message`` on stderr (and, under ``--json`` when no document was
+    printed yet, the error document on stdout), then exit with the error's code."""
+    ctx = click.get_current_context(silent=True)
+    if ctx is not None and ctx.meta.get(WANTS_JSON) and not ctx.meta.get(EMITTED):
+        emit_json(error_document(exc))
+    text = " ".join(str(exc).split())
     click.echo(f"sweepgen: error: {text}", err=True)
-    sys.exit(code)
+    sys.exit(exc.exit_code)
+
+
+def fail_usage(exc: click.UsageError):
+    """A usage error of click (unknown option, value out of an option's range) as one line, exit 2."""
+    from sweepgen.errors import InputError
+
+    param = getattr(exc, "param", None)
+    key = getattr(exc, "option_name", None)
+    if param is not None:
+        key = max(param.opts, key=len) if getattr(param, "opts", None) else param.human_readable_name
+    command = exc.ctx.command_path if exc.ctx is not None else "sweepgen"
+    error = InputError(f"{exc.format_message()} (see '{command} --help')")
+    error.key = key
+    fail(error)
 
 
 def emit_json(doc) -> None:
     """Write one JSON document to stdout, and nothing else."""
+    ctx = click.get_current_context(silent=True)
+    if ctx is not None:
+        ctx.meta[EMITTED] = True
     click.echo(dumps(doc), nl=False)
 
 
@@ -52,6 +108,19 @@ def echo_warnings(report) -> None:
     command writes a table or touches an instrument."""
     for f in report.warnings():
         click.echo(f"warning: {f.rule}: {f.message}" + (f" (to change: {f.advice})" if f.advice else ""), err=True)
+
+
+def bounded(name: str):
+    """A click callback refusing a number outside the plausible range of option ``name``."""
+
+    def callback(ctx, param, value):
+        from sweepgen import plausible
+
+        if value is not None:
+            plausible.check_option(name, value)
+        return value
+
+    return callback
 
 
 def table(rows, headers=None) -> str:
@@ -90,6 +159,42 @@ def progress_bar(length: int, label: str, *, show: bool):
 
 
 # -- shared options ----------------------------------------------------------------------------
+class PlotFile(click.ParamType):
+    """A plot to write: a .png or .svg file in a folder that exists (no folder is created)."""
+
+    name = "FILE"
+
+    def convert(self, value, param, ctx):
+        from pathlib import Path
+
+        path = Path(value)
+        if path.suffix.lower() not in (".png", ".svg"):
+            self.fail(f"a plot file must end in .png or .svg, got {value!r}", param, ctx)
+        if path.is_dir():
+            self.fail(f"{value!r} is a folder; name the plot file", param, ctx)
+        if not path.parent.is_dir():
+            self.fail(f"the folder {str(path.parent)!r} does not exist; sweepgen creates no folders for "
+                      f"plots (create it first)", param, ctx)
+        return str(value)
+
+
+class OutputFolder(click.ParamType):
+    """A folder to write into: an existing folder, or a new one whose parent exists (only the
+    last level is created, when the command writes)."""
+
+    name = "DIR"
+
+    def convert(self, value, param, ctx):
+        from pathlib import Path
+
+        path = Path(value)
+        if path.exists() and not path.is_dir():
+            self.fail(f"{value!r} exists and is not a folder", param, ctx)
+        if not path.exists() and not path.parent.is_dir():
+            self.fail(f"the parent folder of {value!r} does not exist; sweepgen creates only the last "
+                      f"level (create the parents first)", param, ctx)
+        return str(value)
+
 json_option = click.option("--json", "as_json", is_flag=True, help="Print one JSON document on stdout (SI units).")
 rate_option = click.option("--rate", "rate", default=None, metavar="RATE",
                            help="Sample rate with its unit (e.g. '10 MSa/s'); overrides [drive] sample_rate.")
@@ -106,7 +211,7 @@ def prepare_playback(scenario, *, rate=None, laser_ref=None, generator_ref=None)
     ``rate`` is the ``--rate`` text (a sample rate with its unit). Returns a
     :class:`sweepgen.playback.Playback`.
     """
-    from sweepgen import playback, units
+    from sweepgen import plausible, playback, units
     from sweepgen.errors import InputError
     from sweepgen.scenario import Scenario, load_scenario
 
@@ -116,6 +221,7 @@ def prepare_playback(scenario, *, rate=None, laser_ref=None, generator_ref=None)
         sample_rate = units.parse(rate, "Hz", key="--rate", example="10 MSa/s")
         if not sample_rate > 0:
             raise InputError(f"expected a sample rate above zero, got {rate!r}", key="--rate")
+        plausible.check_option("--rate", sample_rate, rate, "Hz")
     laser = playback.load_profile("laser", laser_ref, key="--laser") if laser_ref else None
     gen = playback.load_profile("generator", generator_ref, key="--generator") if generator_ref else None
     return playback.prepare(sc, laser=laser, generator=gen, sample_rate=sample_rate)

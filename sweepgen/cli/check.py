@@ -5,9 +5,8 @@ from __future__ import annotations
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import (emit_json, generator_option, handles_errors, json_option, laser_option,
-                                  prepare_playback, prepare_table_playback, rate_option,
-                                  table)
+from sweepgen.cli._common import (PlotFile, emit_json, generator_option, handles_errors, json_option, laser_option,
+                                  prepare_playback, prepare_table_playback, rate_option, table)
 
 _SYMBOL = {"fail": "FAIL", "warn": "warn", "pass": "ok"}
 
@@ -18,7 +17,7 @@ _SYMBOL = {"fail": "FAIL", "warn": "warn", "pass": "ok"}
 @rate_option
 @laser_option
 @generator_option
-@click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
+@click.option("--plot", "plot_file", type=PlotFile(), default=None, metavar="FILE",
               help="Also draw each rule's headroom to its limit as a bar (PNG or SVG by extension).")
 @click.option("--table", "table_file", default=None, type=click.Path(dir_okay=False), metavar="FILE",
               help="Check a table written earlier (any installed format, or its sidecar) in place of the "

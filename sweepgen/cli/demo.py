@@ -4,11 +4,11 @@ from __future__ import annotations
 
 import click
 
-from sweepgen.cli._common import handles_errors
+from sweepgen.cli._common import OutputFolder, handles_errors
 
 
 @click.command(short_help="Run the whole job on built-in data.")
-@click.argument("directory", required=False, default="sweepgen-demo", type=click.Path(file_okay=False))
+@click.argument("directory", required=False, default="sweepgen-demo", type=OutputFolder())
 @handles_errors
 def command(directory):
     """Run the whole job on a built-in scenario and write a short report into

@@ -7,8 +7,8 @@ import sys
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import (echo_warnings, emit_json, generator_option, handles_errors, json_option,
-                                  laser_option, prepare_playback, progress_bar, rate_option, table)
+from sweepgen.cli._common import (OutputFolder, echo_warnings, emit_json, generator_option, handles_errors,
+                                  json_option, laser_option, prepare_playback, progress_bar, rate_option, table)
 
 #: tables larger than this get a progress bar when stderr is a terminal
 PROGRESS_BYTES = 8 << 20
@@ -31,8 +31,8 @@ def _options(pairs) -> dict:
 @click.argument("scenario")
 @click.option("--format", "-f", "fmt", required=True, metavar="FMT",
               help="File driver: csv, raw or npy (or one an installed plug-in registers).")
-@click.option("--output", "-o", "output", required=True, type=click.Path(file_okay=False), metavar="DIR",
-              help="Folder to write into (created if needed).")
+@click.option("--output", "-o", "output", required=True, type=OutputFolder(), metavar="DIR",
+              help="Folder to write into (created if needed, but not its parents).")
 @rate_option
 @click.option("--name", default=None, metavar="NAME",
               help="File name without extension (default: the scenario's file name).")
@@ -79,6 +79,10 @@ def command(scenario, fmt, output, rate, name, option_pairs, laser_ref, generato
     show = info.nbytes > PROGRESS_BYTES and sys.stderr.isatty()
     with progress_bar(info.count, f"writing {output}", show=show) as progress:
         result = pb.export(file_format, output, options, progress=progress)
+    removed = result.report.get("removed_partials")
+    if removed:
+        click.echo(f"removed {len(removed)} partial file(s) left in {output} by an interrupted export: "
+                   f"{', '.join(removed)}", err=True)
     if as_json:
         emit_json(result.to_json())
     else:

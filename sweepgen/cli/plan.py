@@ -5,7 +5,7 @@ from __future__ import annotations
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import emit_json, handles_errors, json_option, table
+from sweepgen.cli._common import PlotFile, emit_json, handles_errors, json_option, table
 
 ROWS = [
     ("start_velocity", "start velocity", "m/s"),
@@ -33,7 +33,7 @@ ROWS = [
 @click.command(short_help="Plan the sweep for a scenario.")
 @click.argument("scenario")
 @json_option
-@click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
+@click.option("--plot", "plot_file", type=PlotFile(), default=None, metavar="FILE",
               help="Also draw the sweep, the design atom and (when the scenario names a laser) the "
                    "actuator's simulated response (PNG or SVG by extension).")
 @handles_errors

@@ -5,7 +5,7 @@ from __future__ import annotations
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import emit_json, handles_errors, json_option, laser_option, table
+from sweepgen.cli._common import PlotFile, bounded, emit_json, handles_errors, json_option, laser_option, table
 from sweepgen.errors import InputError
 from sweepgen.simulate import DEFAULT_ATOMS
 
@@ -17,11 +17,11 @@ def _pct(x) -> str:
 @click.command(short_help="Simulate the atoms through the sweep.")
 @click.argument("scenario")
 @click.option("--atoms", type=click.IntRange(min=1), default=DEFAULT_ATOMS, show_default=True,
-              help="Number of atoms drawn from the source.")
-@click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True,
+              callback=bounded("--atoms"), help="Number of atoms drawn from the source.")
+@click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True, callback=bounded("--seed"),
               help="Random seed; the same seed gives the same result.")
 @json_option
-@click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
+@click.option("--plot", "plot_file", type=PlotFile(), default=None, metavar="FILE",
               help="Also draw the velocity (and, for pulsed sources, arrival-time) distributions "
                    "(PNG or SVG by extension).")
 @click.option("--table", "table_file", default=None, type=click.Path(dir_okay=False), metavar="FILE",
@@ -53,9 +53,6 @@ def command(scenario, atoms, seed, as_json, plot_file, table_file, laser_ref, id
     from sweepgen.scenario import load_scenario
     from sweepgen.simulate import played_table, simulate
 
-    if plot_file and not plot_file.lower().endswith((".png", ".svg")):
-        # refuse before a long run (the same rule as sweepgen.plots.save)
-        raise InputError(f"plot file must end in .png or .svg, got {plot_file!r}", key="--plot")
     if ideal and table_file:
         raise InputError("--ideal plays the planned sweep and --table an old table: give one of them",
                          key="--ideal")
