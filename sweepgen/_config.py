@@ -169,7 +169,7 @@ class Section:
     def number(self, name, default=MISSING, *, positive=False, nonnegative=False, minimum=None,
                maximum=None, exclusive=False, integer=False):
         """A dimensionless number (a bare TOML number)."""
-        value = self.raw(name, default)
+        value = written = self.raw(name, default)
         if value is default and default is not MISSING:
             return default
         if isinstance(value, bool) or not isinstance(value, (int, float)):
@@ -187,7 +187,7 @@ class Section:
                 raise self.error(name, f"expected a number strictly between {minimum} and {maximum}, got {value!r}")
         self._range(name, value, value, "", positive, nonnegative, None if exclusive else minimum,
                     None if exclusive else maximum)
-        plausible.check(self.kind, self.key(name), value, "", value, file=self.file)
+        plausible.check(self.kind, self.key(name), value, "", written, file=self.file)
         return value
 
     def string(self, name, default=MISSING, *, choices=None):

@@ -569,7 +569,7 @@ def stage_from_section(sec: Section) -> Stage:
             beat = (lo, hi)
         st = OffsetLockStage(name, reference, sign, mult, div, beat, key=sec.key("beat_min"))
     elif kind == "vco":
-        if isinstance(sec.data.get("voltage"), list) or sec.has("coefficients"):
+        if any(isinstance(sec.data.get(k), list) for k in ("voltage", "frequency")) or sec.has("coefficients"):
             st = VcoCalibrated(name, _calibration(sec, "voltage", "V", "frequency"), "V", sec.key("voltage"))
         else:
             coef = sec.quantity("coefficient", "Hz/V", example="40 MHz/V")

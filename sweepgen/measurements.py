@@ -103,7 +103,12 @@ class Measurement:
             zero = units.parse(f"0 {col.unit}".strip(), unit)
         except InputError as exc:
             raise InputError(f"{col.label}: wrong unit: {exc.detail} ({what})", file=str(self.path)) from None
-        return zero + factor * col.values
+        values = zero + factor * col.values
+        if col.kind is not None and col.kind != "marker":      # a marker column is any signal at all
+            from sweepgen import plausible
+
+            plausible.check_values("measurement", col.kind, values, unit, file=str(self.path), shown_key=col.name)
+        return values
 
 
 def split_header(cell: str) -> tuple[str, str]:
@@ -147,13 +152,20 @@ def read(path) -> Measurement:
     return _read_text(path)
 
 
+#: largest measurement file read as text (bytes): some two million lines of three columns
+MAX_TEXT_BYTES = 64 << 20
+#: most values of one column read from an HDF5 file
+MAX_COLUMN_VALUES = 1 << 24
+
+
 def _read_text(path: Path) -> Measurement:
+    from sweepgen._config import read_bounded
+
+    raw = read_bounded(path, MAX_TEXT_BYTES, "a measurement file (thin the data, or split the file)")
     try:
-        text = path.read_text(encoding="utf-8-sig")
+        text = raw.decode("utf-8-sig")
     except UnicodeDecodeError:
         raise InputError("not a text file (expected delimited columns with a header line)", file=str(path)) from None
-    except OSError as exc:
-        raise InputError(f"cannot read file ({exc.strerror})", file=str(path)) from None
     lines = [(i + 1, ln) for i, ln in enumerate(text.splitlines()) if ln.strip() and not ln.lstrip().startswith("#")]
     if len(lines) < 2:
         raise InputError("expected a header line and at least one line of numbers", file=str(path))
@@ -199,6 +211,8 @@ def _read_nexus(path: Path) -> Measurement:
         cols = []
         for i, name in enumerate(names):
             data = group[name]
+            if not isinstance(data, h5py.Dataset) or data.size > MAX_COLUMN_VALUES:
+                raise InputError(f"'{name}' is not a column of at most {MAX_COLUMN_VALUES} values", file=str(path))
             cols.append(Column(name, _kind(name), _text(data.attrs.get("units", "")),
                                np.asarray(data[()], dtype=float).ravel(), i))
     return Measurement(path, cols)

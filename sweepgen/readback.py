@@ -115,23 +115,122 @@ def locate(source) -> tuple[Path, Path | None]:
     return path, side if side.is_file() else None
 
 
+#: largest JSON sidecar read (bytes); sweepgen writes a few kilobytes (a lookup scaling: some hundred)
+MAX_SIDECAR_BYTES = 16 << 20
+
+
 def load_sidecar(path) -> dict:
-    """A JSON sidecar, checked for the keys a reader needs."""
+    """A JSON sidecar, checked for the keys a reader needs (:func:`require_keys`)."""
+    from sweepgen._config import read_bounded
+
     path = Path(path)
+    raw = read_bounded(path, MAX_SIDECAR_BYTES, "a table's sidecar")
     try:
-        doc = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        doc = json.loads(raw.decode("utf-8-sig"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise InputError(f"not a readable JSON sidecar ({exc})", file=str(path)) from None
+    except RecursionError:
+        raise InputError("not a readable JSON sidecar (nested too deeply)", file=str(path)) from None
     require_keys(doc, path)
     return doc
 
 
 def require_keys(doc: dict, path) -> None:
+    """Refuse a sidecar that lacks, or has in the wrong form, anything a reader of the table uses:
+    each refusal names the key (see :mod:`sweepgen.sidecar` for what they mean)."""
     if not isinstance(doc, dict) or "sweepgen_sidecar" not in doc:
         raise InputError("not a sweepgen sidecar (no 'sweepgen_sidecar' key)", file=str(path))
     for key in ("driver", "data_file", "sample_rate", "count", "numpy_dtype", "scaling", "generator"):
         if key not in doc:
             raise InputError("missing from the sidecar (required to read the table)", file=str(path), key=key)
+    _Fields(doc, str(path)).check()
+
+
+class _Fields:
+    """Typed access to a sidecar's fields, each refusal naming the file and the key."""
+
+    def __init__(self, doc: dict, file: str):
+        self.doc, self.file = doc, file
+
+    def get(self, dotted: str, *, optional=False):
+        node = self.doc
+        for part in dotted.split("."):
+            if not isinstance(node, dict) or part not in node:
+                if optional:
+                    return None
+                raise InputError("missing from the sidecar (required to read the table)", file=self.file, key=dotted)
+            node = node[part]
+        return node
+
+    def fail(self, dotted: str, expected: str):
+        value = repr(self.get(dotted, optional=True))
+        return InputError(f"expected {expected}, got {value}", file=self.file, key=dotted)
+
+    def number(self, dotted: str, *, optional=False, integer=False, nonzero=False) -> float | None:
+        from sweepgen import plausible
+
+        value = self.get(dotted, optional=optional)
+        if value is None and optional:
+            return None
+        ok = isinstance(value, int) if integer else isinstance(value, (int, float))
+        if isinstance(value, bool) or not ok or not np.isfinite(value) or (nonzero and value == 0):
+            kind = "a whole number" if integer else "a finite number" + (" other than zero" if nonzero else "")
+            raise self.fail(dotted, kind)
+        if dotted in plausible.RANGES["sidecar"]:
+            plausible.check("sidecar", dotted, float(value), "Hz" if dotted == "sample_rate" else "", value,
+                            file=self.file)
+        return value
+
+    def dtype(self, dotted: str, kinds: str) -> None:
+        value = self.get(dotted)
+        try:
+            dt = np.dtype(value) if isinstance(value, str) else None
+        except TypeError:
+            dt = None
+        if dt is None or dt.kind not in kinds or dt.itemsize > 8 or dt.shape != ():
+            raise self.fail(dotted, f"a NumPy dtype string of {'integers' if kinds == 'iu' else 'numbers'}, "
+                                    f"such as '<i2'")
+
+    def check(self) -> None:
+        name = self.get("data_file")
+        if not isinstance(name, str) or Path(name).name != name or name in ("", ".", ".."):
+            raise self.fail("data_file", "a file name in the sidecar's folder (no folders)")
+        self.number("sample_rate")
+        for key in ("count", "period_count"):
+            self.number(key, integer=True, optional=key != "count")
+        if self.number("header_bytes", integer=True, optional=True) is not None and self.doc["header_bytes"] < 0:
+            raise self.fail("header_bytes", "zero or more bytes")
+        self.dtype("numpy_dtype", "iuf")
+        self.dtype("generator.code_dtype", "iu")
+        self.number("scaling.code.offset")
+        self.number("scaling.code.scale", nonzero=True)
+        self.number("scaling.drive.offset")
+        self.number("scaling.drive.scale")
+        self._detuning()
+
+    def _detuning(self) -> None:
+        det = self.get("scaling.detuning", optional=True)
+        if det is None:
+            return
+        kind = self.get("scaling.detuning.kind")
+        if kind == "linear":
+            self.number("scaling.detuning.offset")
+            self.number("scaling.detuning.scale")
+            return
+        if kind != "lookup":
+            raise self.fail("scaling.detuning.kind", "'linear' or 'lookup'")
+        columns = []
+        for key in ("value", "detuning"):
+            items = self.get(f"scaling.detuning.{key}")
+            try:
+                array = np.asarray(items, dtype=float)
+            except (TypeError, ValueError):
+                array = None
+            if array is None or array.ndim != 1 or len(array) < 2 or not np.all(np.isfinite(array)):
+                raise self.fail(f"scaling.detuning.{key}", "a list of at least two finite numbers")
+            columns.append(array)
+        if len(columns[0]) != len(columns[1]) or not np.all(np.diff(columns[0]) > 0):
+            raise self.fail("scaling.detuning.value", "increasing values, as many as in scaling.detuning.detuning")
 
 
 def file_checks(data: Path, doc: dict) -> list:

@@ -30,6 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from sweepgen._config import Section
+from sweepgen.errors import InputError
 
 MODELS = ("none", "first-order", "second-order")
 
@@ -206,6 +207,8 @@ def response_from_section(sec: Section | None) -> Response:
                             q=sec.number("q", positive=True))
         else:
             resp = Response()
+    except InputError:
+        raise
     except ValueError as exc:
         raise sec.error("model", str(exc)) from None
     sec.finish()

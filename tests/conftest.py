@@ -72,6 +72,8 @@ def _value(v) -> str:
         return repr(v) if v == v else "nan"
     if isinstance(v, list):
         return "[" + ", ".join(_value(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{k} = {_value(x)}" for k, x in v.items()) + "}"
     return str(v)
 
 
@@ -173,6 +175,92 @@ def write_checked(folder, scenario=None, laser=None, gen=None):
     path = folder / "scenario.toml"
     path.write_text(to_toml(scenario or CHECKED_SCENARIO))
     return path
+
+
+# Complete files: between them, every key of every file kind (tests/test_plausible.py checks that
+# each plausible range is read by one of them; add a new key to one of these files). Invented values.
+COMPLETE = {
+    "scenario": [
+        scenario_dict(source={"divergence": "3 mrad", "pulse_time": "0.1 ms"},
+                      light={"waist": "5 mm", "focus": "-0.2 m"}, target={"aperture": "10 mm"},
+                      chirp={"start_time": "0.4 ms"},
+                      drive={"sample_rate": "10 MSa/s", "channel": 2, "max_step": "600 kHz",
+                             "tracking_fraction": 0.25}),
+        scenario_dict(source={"model": "gaussian", "temperature": None, "mean_velocity": "170 m/s",
+                              "velocity_spread": "30 m/s", "pulse_time": None},
+                      chirp={"start_velocity": "200 m/s", "start_time": None}),
+    ],
+    "species": [
+        {"title": "test atom", "kind": "atom",
+         "wavelength": {"value": "780.241209686 nm", "source": "Steck, Rb 87 D line data (recalled)"},
+         "mass": {"value": "86.909180527 u", "source": "Steck, Rb 87 D line data (recalled)"},
+         "lifetime": {"value": "26.2348 ns", "source": "Steck, Rb 87 D line data (recalled)"},
+         "saturation_intensity": {"value": "1.66933 mW/cm^2", "source": "Steck, Rb 87 D line data (recalled)"}},
+        {"title": "test molecule (invented)", "kind": "molecule",
+         "wavelength": {"value": "606 nm", "source": "invented"}, "mass": {"value": "59 u", "source": "invented"},
+         "linewidth": {"value": "8.3 MHz", "source": "invented"},
+         "loss_per_photon": {"value": 2e-5, "source": "invented"}},
+    ],
+    "laser": [
+        {**PIEZO_LASER, "chain": [{**PIEZO_LASER["chain"][0], "set_drive": "0.5 V"}]},
+        {"title": "test calibrated piezo", "limits": PIEZO_LASER["limits"],
+         "response": {"model": "second-order", "resonance": "25 kHz", "q": 0.8},
+         "chain": [{"stage": "calibrated", "drive": ["-10 V", "-5 V", "0 V", "5 V", "10 V"],
+                    "detuning": ["-540 MHz", "-340 MHz", "-140 MHz", "60 MHz", "260 MHz"], "degree": 1}]},
+        {"title": "test fitted piezo", "limits": PIEZO_LASER["limits"],
+         "chain": [{"stage": "calibrated", "fit": "polynomial", "range": ["-10 V", "10 V"],
+                    "coefficients": ["-140 MHz", "400 MHz"], "rms_residual": "0.3 MHz", "max_residual": "0.9 MHz",
+                    "uncertainty": "0.2 MHz", "hysteresis": "1 MHz", "points": 40, "outliers": 1}]},
+        {"title": "test AOM on a VCO",
+         "limits": {"max_chirp_rate": "10 GHz/ms", "input_min": "0 V", "input_max": "10 V", "max_slew": "100 V/ms"},
+         "chain": [{"stage": "aom", "passes": 2, "order": -1, "centre": "350 MHz", "set_point": "-456 MHz",
+                    "rf_min": "80 MHz", "rf_max": "620 MHz"},
+                   {"stage": "vco", "coefficient": "75 MHz/V", "frequency": "30 MHz", "voltage": "0 V"}]},
+        {"title": "test AOM on a calibrated VCO",
+         "limits": {"max_chirp_rate": "10 GHz/ms", "input_min": "0 V", "input_max": "10 V"},
+         "chain": [{"stage": "aom", "passes": 1, "order": 1, "centre": "350 MHz", "set_point": "-456 MHz"},
+                   {"stage": "vco", "voltage": ["0 V", "5 V", "10 V"], "frequency": ["30 MHz", "400 MHz", "780 MHz"],
+                    "degree": 1}]},
+        {"title": "test offset lock on a DDS",
+         "limits": {"mode_hop_free": "1.2 GHz", "max_chirp_rate": "2 GHz/ms", "input_min": "100 MHz",
+                    "input_max": "250 MHz", "max_slew": "500 MHz/ms"},
+         "response": {"model": "first-order", "corner": "100 kHz"},
+         "chain": [{"stage": "offset_lock", "reference": "-1.6 GHz", "sign": 1, "multiplier": 2,
+                    "beat_min": "800 MHz", "beat_max": "2 GHz"},
+                   {"stage": "dds", "clock": "1 GHz", "bits": 32}]},
+        {"title": "test divided offset lock",
+         "limits": {"max_chirp_rate": "2 GHz/ms", "input_min": "100 MHz", "input_max": "250 MHz"},
+         "chain": [{"stage": "offset_lock", "reference": "-1.6 GHz", "sign": 1, "divider": 8}]},
+    ],
+    "generator": [
+        VOLTAGE_BOARD,
+        {**VOLTAGE_BOARD, "title": "test AWG into 50 ohm", "kind": "awg", "channels": 2,
+         "output": {**VOLTAGE_BOARD["output"], "termination": "50 ohm", "load": "1 Mohm",
+                    "source_impedance": "50 ohm"},
+         "link": {"kind": "visa", "resource": "TCPIP::127.0.0.1::5025::SOCKET", "throughput": "5 MB/s",
+                  "timeout": "2 s"},
+         "commands": {"identify": "*IDN?", "identity_pattern": "^test,", "clear": "*CLS",
+                      "output_off": "OUTP OFF", "upload": "TRAC:DATA {name},{data}", "wait": "*OPC?",
+                      "error_query": "SYST:ERR?", "no_error_pattern": "^[+]?0,", "output_on": "OUTP ON"}},
+        {"title": "test DDS board", "kind": "board",
+         "sampling": {"rates": ["100 kSa/s", "1 MSa/s"], "memory": 262144},
+         "output": {"kind": "frequency", "clock": "1 GHz", "word_bits": 32, "range_min": "1 MHz",
+                    "range_max": "400 MHz"},
+         "link": {"kind": "serial", "port": "loop://", "baud": 921600, "throughput": "80 kB/s", "timeout": "2 s"}},
+    ],
+}
+
+
+def load_kind(kind: str, data: dict, path):
+    """Load ``data`` as a file of ``kind`` ("scenario", "species", "laser" or "generator") at ``path``."""
+    from sweepgen.generator import generator_from_dict
+    from sweepgen.laser import laser_from_dict
+    from sweepgen.scenario import scenario_from_dict
+    from sweepgen.species import species_from_dict
+
+    loaders = {"scenario": scenario_from_dict, "species": species_from_dict, "laser": laser_from_dict,
+               "generator": generator_from_dict}
+    return loaders[kind](data, path)
 
 
 # An AWG with another dialect: long forms, SOURce1/OUTPut1 suffixes, DATA instead of TRACe,

@@ -10,8 +10,46 @@ from sweepgen.errors import InputError
 from sweepgen.simulate import DEFAULT_ATOMS
 
 
+#: above this many atoms, simulate states the memory and time it expects and asks before it starts
+CONFIRM_ATOMS = 1_000_000
+
+
 def _pct(x) -> str:
     return "—" if x is None else f"{100.0 * x:.2f} %"
+
+
+def _duration(seconds: float) -> str:
+    if seconds < 120:
+        return f"{seconds:.0f} s"
+    if seconds < 7200:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
+
+
+def _confirm_size(sc, atoms: int, seed: int, yes: bool, **how) -> None:
+    """Refuse a simulation that cannot fit in memory; above CONFIRM_ATOMS state what one costs and
+    start only when confirmed (on a terminal, or by --yes)."""
+    import sys
+
+    from sweepgen import costs
+
+    if atoms <= CONFIRM_ATOMS:
+        return
+    need, have = costs.simulation_memory(atoms), costs.physical_memory()
+    if have is not None and need > have // 2:
+        raise InputError(f"{atoms} atoms would need about {si(need, 'B')} of memory, more than half of this "
+                         f"computer's {si(have, 'B')}; run several simulations of at most "
+                         f"{costs.most_atoms(have // 2)} atoms with different --seed values and combine them "
+                         f"(each seed gives an independent sample)", key="--atoms")
+    seconds = costs.simulation_time(sc, atoms, seed=seed, **how)
+    click.echo(f"simulating {atoms} atoms needs about {si(need, 'B')} of memory and at most about "
+               f"{_duration(seconds)} on this computer (scaled from {costs.PILOT_ATOMS} atoms)", err=True)
+    if yes:
+        return
+    if not sys.stdin.isatty():
+        raise InputError(f"a simulation of more than {CONFIRM_ATOMS} atoms starts only when confirmed: add --yes "
+                         f"(or use fewer atoms)", key="--atoms")
+    click.confirm("start it?", err=True, abort=True)
 
 
 @click.command(short_help="Simulate the atoms through the sweep.")
@@ -20,6 +58,8 @@ def _pct(x) -> str:
               callback=bounded("--atoms"), help="Number of atoms drawn from the source.")
 @click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True, callback=bounded("--seed"),
               help="Random seed; the same seed gives the same result.")
+@click.option("--yes", is_flag=True, help=f"Start a simulation of more than {CONFIRM_ATOMS} atoms without asking "
+                                          f"(the expected memory and time are printed all the same).")
 @json_option
 @click.option("--plot", "plot_file", type=PlotFile(), default=None, metavar="FILE",
               help="Also draw the velocity (and, for pulsed sources, arrival-time) distributions "
@@ -32,7 +72,7 @@ def _pct(x) -> str:
               help="Play the planned sweep itself instead of what the hardware plays (the sweep through the "
                    "laser's chain, quantised by the generator, filtered by the actuator response).")
 @handles_errors
-def command(scenario, atoms, seed, as_json, plot_file, table_file, laser_ref, ideal):
+def command(scenario, atoms, seed, yes, as_json, plot_file, table_file, laser_ref, ideal):
     """Fly atoms from the source of SCENARIO (a built-in key or a path) through
     the slowing light with the detuning the hardware plays (the sweep through
     the laser's tuning chain, quantised to the generator's codes and filtered
@@ -44,6 +84,11 @@ def command(scenario, atoms, seed, as_json, plot_file, table_file, laser_ref, id
 
     A design that breaks a limit (the design rules of 'sweepgen plan') is
     refused with exit 1 before any atom flies.
+
+    Above 1 000 000 atoms it first states the memory and time it expects
+    (the time from a short run on this computer) and starts only when
+    confirmed (--yes where there is no terminal to ask); a run that would need
+    more than half of the computer's memory is refused with how to split it.
 
     \b
     Example:
@@ -59,8 +104,9 @@ def command(scenario, atoms, seed, as_json, plot_file, table_file, laser_ref, id
     sc = load_scenario(scenario)
     design = require_playable(check_plan(sc), "nothing was simulated")     # the design rules, as plan judges
     sweep = _table_sweep(sc, table_file, laser_ref) if table_file else None
-    result = simulate(sc, atoms=atoms, seed=seed, plan=design.plan, ideal=ideal,
-                      played=played_table(sc, sweep) if sweep is not None else None)
+    played = played_table(sc, sweep) if sweep is not None else None
+    _confirm_size(sc, atoms, seed, yes, plan=design.plan, ideal=ideal, played=played)
+    result = simulate(sc, atoms=atoms, seed=seed, plan=design.plan, ideal=ideal, played=played)
     doc = result.to_json()
     if sweep is not None:
         doc["table"] = {"file": str(sweep.table.path), "table_sha256": sweep.table.table_sha256(),
