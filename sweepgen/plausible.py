@@ -147,7 +147,11 @@ SCENARIO = {
     "source.mean_velocity": VELOCITY,
     "source.velocity_spread": Range("1 mm/s", "10 km/s", "m/s", "a 1σ spread, within the beam velocities"),
     "source.pulse_time": TIME,
+    "source.pulse_duration": Range("0 s", "10 s", "s", "source pulses last microseconds (ablation) to seconds"),
+    "source.radius": Range("0 m", "0.1 m", "m", "source apertures are millimetres; 10 cm is a whole flange"),
     "source.divergence": Range("0 rad", "1 rad", "rad", "up to an uncollimated effusive source", open_low=True),
+    "source.collimator.distance": DISTANCE,
+    "source.collimator.radius": Range("1 µm", "0.1 m", "m", "collimating apertures are micrometres to centimetres"),
     "light.saturation": SATURATION,
     "light.start": Range("0 m", "50 m", "m", "where the light starts, within the beam line"),
     "light.waist": Range("10 µm", "0.1 m", "m",
@@ -159,15 +163,21 @@ SCENARIO = {
     "target.aperture": Range("10 µm", "0.5 m", "m", "target apertures from micrometres to a whole chamber"),
     "chirp.start_velocity": VELOCITY,
     "chirp.end_velocity": VELOCITY,
-    "chirp.margin": FRACTION_OPEN,
+    "chirp.force_fraction": Range(0, 1, "", "η, the fraction of the largest force the design uses",
+                                  open_low=True, open_high=True),
+    "chirp.margin": Range(0, 1, "", "the old name of chirp.force_fraction", open_low=True, open_high=True),
     "chirp.start_time": TIME,
     "chirp.hold": TIME,
     "chirp.return_time": Range("10 ns", "1000 s", "s", "a return faster than 10 ns is beyond any actuator"),
     "chirp.period": Range("1 µs", "1000 s", "s", "repetition periods from a microsecond to several minutes"),
+    "chirp.min_survival": FRACTION_OPEN,
     "drive.sample_rate": SAMPLE_RATE,
     "drive.channel": Range(1, 64, "", "generator output channels"),
     "drive.max_step": Range("1 Hz", "10 GHz", "Hz", "a detuning step per sample, up to a whole sweep"),
     "drive.tracking_fraction": FRACTION_OPEN,
+    "channels.*.saturation": SATURATION,
+    "channels.*.offset": DETUNING,
+    "channels.*.detuning": DETUNING,
 }
 
 SPECIES = {
@@ -180,7 +190,17 @@ SPECIES = {
                              "Γ/2π from narrow intercombination lines to the broadest allowed lines"),
     "saturation_intensity.value": Range("10 nW/cm^2", "100 W/cm^2", "W/m^2",
                                         "from narrow intercombination lines to strong ultraviolet lines"),
+    "effective_saturation_intensity.value": Range("10 nW/cm^2", "100 W/cm^2", "W/m^2",
+                                                  "as saturation_intensity"),
     "loss_per_photon.value": Range(0, 1, "", "a probability below 1 per photon", open_high=True),
+    "max_scattering_rate.fraction": Range(0, 0.5, "", "R_max/Γ is at most 1/2 (a closed two-level transition)",
+                                          open_low=True),
+    "max_scattering_rate.ground_states": Range(1, 1000, "", "sub-levels of one ground manifold"),
+    "max_scattering_rate.excited_states": Range(1, 1000, "", "sub-levels of one excited manifold"),
+    "off_resonant_level.splitting": Range("1 kHz", "1 THz", "Hz",
+                                          "hyperfine and rotational splittings, either sign", magnitude=True),
+    "off_resonant_level.strength": Range(1e-6, 100, "", "a line strength relative to the cycling transition"),
+    "off_resonant_level.branching": Range(0, 1, "", "a probability"),
 }
 
 LASER = {
@@ -268,6 +288,11 @@ OPTION = {
     "--atoms": Range(1, 10**9, "", "beyond 10⁹ atoms the statistical error (3·10⁻⁵) is far below any other "
                                  "uncertainty; run several seeds instead"),
     "--seed": Range(0, 2**63 - 1, "", "a 63-bit seed"),
+    "--transition": Range("14 THz", "6 PHz", "Hz", "c/λ over the plausible wavelengths (50 nm to 20 µm)"),
+    "--reference": DETUNING,
+    "--range": (VOLTS, RF_DRIVE),
+    "--marker": Range("-1 d", "1 d", "s", "a measurement's time axis, within a day of its trigger"),
+    "--outlier-sigma": Range(0, 1000, "", "robust standard deviations; 0 keeps every point"),
 }
 
 #: file kind -> key -> Range (or a tuple of Ranges, one per unit)
@@ -355,7 +380,7 @@ def lookup(kind: str | None, key: str, unit: str) -> Range | None:
             raise MissingRange(
                 f"no plausible range for {kind or '(a Section without a file kind)'} key {pattern_of(key)!r} "
                 f"in {unit or 'a bare number'}: add an entry with its reason to sweepgen/plausible.py (RANGES), "
-                f"then regenerate the README's table (python -m sweepgen.plausible)")
+                f"then regenerate the README's table (python -m sweepgen.plausible README.md)")
         return None
     if _seen is not None:
         _seen.add((kind, name, unit))
@@ -418,5 +443,24 @@ def markdown() -> str:
     return "\n".join(lines)
 
 
-if __name__ == "__main__":
-    print(markdown())
+def update_readme(path) -> bool:
+    """Replace the table between the README's marker lines with :func:`markdown`; True if it changed."""
+    from pathlib import Path
+
+    path = Path(path)
+    text = path.read_text(encoding="utf-8")
+    begin, end = text.find(README_BEGIN), text.find(README_END)
+    if begin < 0 or end < begin:
+        raise SystemExit(f"{path}: no table of plausible ranges (marker lines) to replace")
+    new = text[:begin] + markdown() + text[end + len(README_END):]
+    path.write_text(new, encoding="utf-8")
+    return new != text
+
+
+if __name__ == "__main__":            # python -m sweepgen.plausible [README.md]: print, or update in place
+    import sys
+
+    if len(sys.argv) > 1:
+        print(f"{sys.argv[1]}: {'updated' if update_readme(sys.argv[1]) else 'already up to date'}")
+    else:
+        print(markdown())

@@ -153,7 +153,7 @@ def test_an_address_that_cannot_name_an_instrument_is_refused_before_connecting(
     assert result.exit_code == 2
     line = result.stderr.strip()
     assert "\n" not in line and line.startswith("sweepgen: error:")
-    assert f"key '{option}'" in line and words in line
+    assert f"option '{option}'" in line and words in line           # an option is named as an option
     assert "debug|info" not in line                    # not pyserial's list of logging levels
 
 

@@ -6,12 +6,13 @@ from __future__ import annotations
 import copy
 import math
 import re
+import warnings
 from pathlib import Path
 
 import pytest
 
 from sweepgen import plausible
-from sweepgen.errors import InputError
+from sweepgen.errors import DeprecatedKey, InputError
 
 from conftest import COMPLETE, load_kind
 
@@ -31,7 +32,8 @@ def reads():
     found = {}
     for kind, files in COMPLETE.items():
         for i, data in enumerate(files):
-            with plausible.recording() as seen:
+            with plausible.recording() as seen, warnings.catch_warnings():
+                warnings.simplefilter("ignore", DeprecatedKey)
                 load_kind(kind, copy.deepcopy(data), f"{kind}.toml")
             for entry in seen:
                 if entry[0] == kind:          # a scenario also reads its species: that one is not this file's
@@ -135,7 +137,8 @@ def test_a_value_outside_the_range_is_refused_by_name(kind, name, rng, side):
     if value is None:
         pytest.skip("no bound on this side")
     container[key] = [value, *original[1:]] if isinstance(original, list) else value
-    with pytest.raises(InputError) as caught:
+    with pytest.raises(InputError) as caught, warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecatedKey)
         load_kind(kind, data, f"broken-{kind}.toml")
     message = str(caught.value)
     assert message.startswith(f"broken-{kind}.toml: key '{dotted}")
@@ -164,4 +167,4 @@ def test_the_readme_shows_the_table():
     assert begin >= 0 and end > begin, "README.md has no table of plausible ranges"
     shown = text[begin:end + len(plausible.README_END)]
     assert shown == plausible.markdown(), ("README.md's table of plausible ranges differs from sweepgen/plausible.py; "
-                                           "replace it with the output of: python -m sweepgen.plausible")
+                                           "regenerate it: python -m sweepgen.plausible README.md")

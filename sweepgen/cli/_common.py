@@ -110,6 +110,18 @@ def echo_warnings(report) -> None:
         click.echo(f"warning: {f.rule}: {f.message}" + (f" (to change: {f.advice})" if f.advice else ""), err=True)
 
 
+def option_quantity(text, unit: str, name: str, example: str):
+    """The value of option ``name`` (text with a unit) in ``unit``, within its plausible range;
+    None when the option was not given."""
+    from sweepgen import plausible, units
+
+    if text is None:
+        return None
+    value = units.parse(text, unit, key=name, example=example)
+    plausible.check_option(name, value, text, unit)
+    return value
+
+
 def bounded(name: str):
     """A click callback refusing a number outside the plausible range of option ``name``."""
 
@@ -211,17 +223,13 @@ def prepare_playback(scenario, *, rate=None, laser_ref=None, generator_ref=None)
     ``rate`` is the ``--rate`` text (a sample rate with its unit). Returns a
     :class:`sweepgen.playback.Playback`.
     """
-    from sweepgen import plausible, playback, units
-    from sweepgen.errors import InputError
+    from sweepgen import playback
     from sweepgen.scenario import Scenario, load_scenario
 
     sc = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
     sample_rate = None
     if rate is not None:
-        sample_rate = units.parse(rate, "Hz", key="--rate", example="10 MSa/s")
-        if not sample_rate > 0:
-            raise InputError(f"expected a sample rate above zero, got {rate!r}", key="--rate")
-        plausible.check_option("--rate", sample_rate, rate, "Hz")
+        sample_rate = option_quantity(rate, "Hz", "--rate", "10 MSa/s")
     laser = playback.load_profile("laser", laser_ref, key="--laser") if laser_ref else None
     gen = playback.load_profile("generator", generator_ref, key="--generator") if generator_ref else None
     return playback.prepare(sc, laser=laser, generator=gen, sample_rate=sample_rate)

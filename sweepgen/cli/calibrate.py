@@ -7,13 +7,11 @@ from pathlib import Path
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import emit_json, handles_errors, json_option, table
+from sweepgen.cli._common import bounded, option_quantity, emit_json, handles_errors, json_option, table
 
 
 def _quantity(text, unit, key, example):
-    from sweepgen import units
-
-    return None if text is None else units.parse(text, unit, key=key, example=example)
+    return option_quantity(text, unit, key, example)
 
 
 def _drive_range(text, unit):
@@ -55,6 +53,7 @@ def _transition(frequency, species):
 @click.option("--degree", type=click.IntRange(1, 7), default=None,
               help="Polynomial degree (default: chosen by cross-validation).")
 @click.option("--outlier-sigma", type=click.FloatRange(min=0), default=5.0, show_default=True,
+              callback=bounded("--outlier-sigma"),
               help="Leave out points this many robust standard deviations off the fit (0 keeps all).")
 @click.option("--range", "range_text", default=None, metavar="LOW:HIGH", help="Fit only drives in this range, e.g. '-4 V:4 V'.")
 @click.option("--transition", default=None, metavar="FREQ", help="Transition frequency for a 'frequency' column (wavemeter).")

@@ -5,17 +5,15 @@ from __future__ import annotations
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import emit_json, handles_errors, json_option, table
+from sweepgen.cli._common import option_quantity, emit_json, handles_errors, json_option, table
 
 
 def _marker(text):
     """``EVENT`` or ``EVENT=TIME`` (TIME with its unit, on the trace's time axis)."""
     if text is None:
         return None, None
-    from sweepgen import units
-
     event, sep, when = text.partition("=")
-    return event.strip(), units.parse(when, "s", key="--marker", example="1.25 ms") if sep else None
+    return event.strip(), option_quantity(when, "s", "--marker", "1.25 ms") if sep else None
 
 
 @click.command(short_help="Compare a measured frequency trace with the planned sweep.")
@@ -50,15 +48,14 @@ def command(scenario, measured, marker, transition, reference, beat_sign, plot_f
     """
     from scipy import constants
 
-    from sweepgen import units
     from sweepgen.compare import compare, read_trace, to_json
     from sweepgen.planner import plan
     from sweepgen.scenario import load_scenario
 
     sc = load_scenario(scenario)
-    f0 = (units.parse(transition, "Hz", key="--transition", example="384.2304844685 THz") if transition
+    f0 = (option_quantity(transition, "Hz", "--transition", "384.2304844685 THz") if transition
           else constants.c / sc.species.wavelength)
-    ref = units.parse(reference, "Hz", key="--reference", example="-1.2 GHz") if reference else None
+    ref = option_quantity(reference, "Hz", "--reference", "-1.2 GHz")
     event, when = _marker(marker)
     trace = read_trace(measured, transition=f0, reference=ref, beat_sign=int(beat_sign))
     cmp = compare(plan(sc), trace, marker=event, marker_time=when)
