@@ -322,13 +322,16 @@ def test_a_well_behaved_peer_takes_the_upload(tmp_path, dry_run):
     assert "output: ON" in run.stdout
 
 
-def test_an_absurd_throughput_or_timeout_is_clamped_not_a_traceback(tmp_path):
-    # 1e-300 B/s would make the upload's deadline overflow; 1e300 s would never end: both clamp
-    for name, link in [("slow", {"throughput": "1e-300 B/s"}), ("patient", {"timeout": "1e300 s"})]:
+def test_an_absurd_throughput_or_timeout_is_refused_not_a_traceback(tmp_path):
+    # 1e-300 B/s would make the upload's deadline overflow; 1e300 s would never end: both lie far outside
+    # their plausible ranges, so the profile is refused (exit 2) before anything connects (the deadlines
+    # would clamp them anyway: tests/test_wire_bounds.py)
+    for name, key, value in [("slow", "throughput", "1e-300 B/s"), ("patient", "timeout", "1e300 s")]:
         with ScpiPeer() as peer:
-            run = upload(peer, _profile(tmp_path, name, **link), tmp_path)
-        assert run.code == 0, run.stderr
-        assert "Traceback" not in run.stderr
+            run = upload(peer, _profile(tmp_path, name, **{key: value}), tmp_path)
+        assert run.code == 2, run.stderr
+        assert f"key 'link.{key}'" in run.stderr and run.stderr.count("\n") == 1
+        assert "Traceback" not in run.stderr and not peer.ever_on
 
 
 # --------------------------------------------------------------------------- a ramp board
