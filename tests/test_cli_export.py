@@ -189,7 +189,7 @@ def test_option_values_are_refused_before_the_check_speaks(tmp_path, option, mes
     option value is refused before that warning, or anything else, is printed."""
     result = run("export", "caf-buffer-gas", "-f", "raw", "-O", option, "-o", tmp_path / "out")
     assert result.exit_code == 2, result.output
-    assert result.stderr.startswith("sweepgen: error: key '--option dtype': " + message)
+    assert result.stderr.startswith("sweepgen: error: option '--option dtype': " + message)
     assert "warning" not in result.stderr and result.stdout == ""
     assert not (tmp_path / "out").exists()
 
