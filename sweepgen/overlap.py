@@ -35,6 +35,8 @@ from sweepgen import physics
 SAMPLE = 2000
 #: seed of the sample (fixed: the check gives the same numbers every time)
 SEED = 20240601
+#: atoms followed at a time (their temporaries stay small: 256 atoms × 513 nodes = 1 MiB per array)
+BLOCK = 256
 
 
 @dataclass(frozen=True)
@@ -53,10 +55,13 @@ def beam_overlap(plan, *, sample: int = SAMPLE, seed: int = SEED) -> Overlap:
     sp, lt = sc.species, sc.light
     tr = plan.trajectory
     r = _radii(sc, plan, sample, seed)
-    s = lt.saturation_at(tr.position[None, :], r)
-    a_max = physics.max_deceleration(s, sp.gamma, sp.wavelength, sp.mass, sp.rate_fraction)
-    enough = np.all(a_max >= tr.deceleration[None, :] * (1.0 - 1e-12), axis=1)
-    median = np.median(r, axis=0)
+    need = tr.deceleration[None, :] * (1.0 - 1e-12)
+    enough = np.empty(sample, dtype=bool)
+    for a in range(0, sample, BLOCK):
+        s = lt.saturation_at(tr.position[None, :], r[a:a + BLOCK])
+        a_max = physics.max_deceleration(s, sp.gamma, sp.wavelength, sp.mass, sp.rate_fraction)
+        enough[a:a + BLOCK] = np.all(a_max >= need, axis=1)
+    median = np.median(r, axis=0, overwrite_input=True)          # r is not needed after this
     available = physics.max_deceleration(lt.saturation_at(tr.position, median), sp.gamma, sp.wavelength, sp.mass,
                                          sp.rate_fraction)
     if lt.focused:
@@ -80,13 +85,31 @@ def _radii(sc, plan, sample: int, seed: int) -> np.ndarray:
     photons = np.maximum(-np.diff(tr.velocity), 0.0) / v_r          # per interval of the path
     sigma = v_r * np.sqrt(photons / 3.0)
     dt = np.diff(tr.time)
-    out = []
-    for x_start, v_start in ((x0, vx0), (y0, vy0)):
-        kicks = rng.standard_normal((sample, dt.size)) * sigma[None, :]
-        v = v_start[:, None] + np.concatenate([np.zeros((sample, 1)), np.cumsum(kicks, axis=1)], axis=1)
-        # x(t_i) = x0 + vx0 t_0 + Σ_j v_j dt_j (velocity constant over each interval, kicked at its end)
-        steps = v[:, :-1] * dt[None, :]
-        x = x_start[:, None] + v_start[:, None] * t[0] + np.concatenate(
-            [np.zeros((sample, 1)), np.cumsum(steps, axis=1)], axis=1)
-        out.append(x)
-    return np.hypot(out[0], out[1])
+    r = np.empty((sample, t.size))
+    for axis, (x_start, v_start) in enumerate(((x0, vx0), (y0, vy0))):
+        for a in range(0, sample, BLOCK):        # the same normals, in the same order, a block at a time
+            x = _positions(rng.standard_normal((min(BLOCK, sample - a), dt.size)), sigma, dt,
+                           x_start[a:a + BLOCK], v_start[a:a + BLOCK], t[0])
+            if axis == 0:
+                r[a:a + BLOCK] = x
+            else:
+                np.hypot(r[a:a + BLOCK], x, out=r[a:a + BLOCK])
+    return r
+
+
+def _positions(kicks, sigma, dt, x_start, v_start, t0) -> np.ndarray:
+    """Positions along one transverse axis at each node, shape (atoms, nodes), from the atoms'
+    standard-normal ``kicks`` on each interval (overwritten)."""
+    # velocity on each interval: the start velocity, kicked at the end of every interval before
+    kicks *= sigma[None, :]
+    np.cumsum(kicks, axis=1, out=kicks)
+    steps = np.empty_like(kicks)
+    steps[:, 0] = v_start
+    np.add(v_start[:, None], kicks[:, :-1], out=steps[:, 1:])
+    steps *= dt[None, :]
+    # x(t_i) = x0 + vx0 t_0 + Σ_j v_j dt_j (velocity constant over each interval, kicked at its end)
+    x = np.empty((kicks.shape[0], kicks.shape[1] + 1))
+    x[:, 0] = 0.0
+    np.cumsum(steps, axis=1, out=x[:, 1:])
+    x += (x_start + v_start * t0)[:, None]
+    return x
