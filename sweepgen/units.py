@@ -29,6 +29,8 @@ _NUMBER_UNIT = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(.
 
 #: the Sa (sample) unit, so that "10 MSa/s" reads as a sample rate
 _SAMPLE = "Sa = 1 = sample"
+#: how the registry is set up: its options and our definitions (remembered factors depend on them)
+_SETUP = ({"autoconvert_offset_to_baseunit": True}, [_SAMPLE])
 
 
 @lru_cache(maxsize=1)
@@ -64,15 +66,17 @@ def build_registry(folder=None):
 
     if folder is not None:
         try:
-            ureg = pint.UnitRegistry(autoconvert_offset_to_baseunit=True, cache_folder=folder)
-            ureg.define(_SAMPLE)
-            return ureg
+            return _defined(pint.UnitRegistry(**_SETUP[0], cache_folder=folder))
         except Exception:  # pint and flexcache raise OSError, pickle and parser errors alike
             import shutil
 
             shutil.rmtree(folder, ignore_errors=True)
-    ureg = pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
-    ureg.define(_SAMPLE)
+    return _defined(pint.UnitRegistry(**_SETUP[0]))
+
+
+def _defined(ureg):
+    for definition in _SETUP[1]:
+        ureg.define(definition)
     return ureg
 
 
@@ -121,9 +125,22 @@ def parse(value, unit: str, *, file=None, key=None, example: str | None = None):
     if not match:
         raise InputError(f"cannot read {value!r} as a quantity: expected a number followed by its unit"
                          f"{ex or (f' in {unit}' if unit else '')}", file=file, key=key)
+    number, text = float(match.group(1)), match.group(2) or ""
+    factor = factors().get(text, unit)
+    if factor is None:
+        return _convert(number, text, unit, value, ex, file, key)
+    result = number * factor
+    if not math.isfinite(result):
+        raise InputError(f"expected a finite value, got {value!r}", file=file, key=key)
+    return result
+
+
+def _convert(number: float, text: str, unit: str, value, ex: str, file, key) -> float:
+    """``number`` in ``text`` converted to ``unit`` by pint, every check made; a plain scaling is
+    remembered (:func:`factors`)."""
     ureg = registry()
     try:
-        quantity = ureg.Quantity(float(match.group(1)), match.group(2) or "")
+        quantity = ureg.Quantity(number, text)
         target = ureg.Unit(unit) if unit else ureg.dimensionless
     except Exception as exc:  # pint raises many types for bad text
         raise InputError(f"cannot read {value!r} as a quantity ({_short(exc)}); "
@@ -141,7 +158,79 @@ def parse(value, unit: str, *, file=None, key=None, example: str | None = None):
     result = float(quantity.to(target).magnitude)
     if not math.isfinite(result):
         raise InputError(f"expected a finite value, got {value!r}", file=file, key=key)
+    zero, one = (float(ureg.Quantity(x, text).to(target).magnitude) for x in (0.0, 1.0))
+    if zero == 0.0 and math.isfinite(one):        # a plain scaling (pint multiplies by this factor)
+        factors().put(text, unit, one)
     return result
+
+
+class Factors:
+    """Conversion factors pint has given, ``(unit text, wanted unit) -> factor``, kept in a JSON file.
+
+    Reading a scenario and its profiles asks for the same few dozen units every
+    time; remembered, they need no pint registry (its construction, 0.03 s from
+    pint's cache, and each lookup). Only plain scalings are kept (an offset
+    unit such as degC always goes to pint), only conversions that passed every
+    check, and only what pint itself returned: ``number * factor`` is the very
+    product pint computes. The file belongs to one pint version (it lies in
+    :func:`cache_folder`); one that cannot be read or written costs speed, never
+    correctness. New factors are written when the process ends.
+    """
+
+    def __init__(self, path):
+        self.path = path
+        self._known = None
+        self._new = False
+
+    def _load(self) -> dict:
+        if self._known is None:
+            self._known = {}
+            try:
+                import json
+
+                doc = json.loads(self.path.read_text(encoding="utf-8")) if self.path is not None else {}
+                self._known = {k: float(v) for k, v in doc.items() if isinstance(v, (int, float))}
+            except (OSError, ValueError, AttributeError):
+                pass
+        return self._known
+
+    def get(self, text: str, unit: str) -> float | None:
+        return self._load().get(f"{text}\x1f{unit}")
+
+    def put(self, text: str, unit: str, factor: float) -> None:
+        known = self._load()
+        if known.get(f"{text}\x1f{unit}") != factor:
+            known[f"{text}\x1f{unit}"] = factor
+            if not self._new and self.path is not None:
+                import atexit
+
+                atexit.register(self.save)
+            self._new = True
+
+    def save(self) -> None:
+        """Write the factors (atomically: a reader never sees half a file)."""
+        if not self._new or self.path is None:
+            return
+        try:
+            import json
+
+            from sweepgen._atomic import atomic_path
+
+            with atomic_path(self.path) as tmp:
+                tmp.write_text(json.dumps(self._known, indent=0, sort_keys=True), encoding="utf-8")
+            self._new = False
+        except OSError:
+            pass
+
+
+@lru_cache(maxsize=1)
+def factors() -> Factors:
+    """The conversion factors of this process, from ``<cache folder>/factors-<setup>.json``, where
+    ``<setup>`` names how :func:`build_registry` sets pint up (a change there starts a new file)."""
+    import hashlib
+
+    setup = hashlib.sha256(repr(_SETUP).encode()).hexdigest()[:12]
+    return Factors(cache_folder() / f"factors-{setup}.json")
 
 
 def _has_angle(ureg, unit) -> bool:

@@ -95,3 +95,41 @@ def test_a_damaged_or_unwritable_cache_costs_speed_not_correctness(tmp_path):
     blocked.write_text("not a folder")
     ureg = units.build_registry(blocked / "cache")     # cannot be made
     assert ureg.Quantity(20.0, "degC").to("K").magnitude == pytest.approx(293.15)
+
+
+UNIT_TEXTS = [("m/s", "m/s"), ("km/h", "m/s"), ("MHz", "Hz"), ("MHz/V", "Hz/V"), ("GHz/ms", "Hz/s"),
+              ("MSa/s", "Hz"), ("mW/cm^2", "W/m^2"), ("ms", "s"), ("us", "s"), ("mm", "m"), ("inch", "m"),
+              ("mrad", "rad"), ("kohm", "ohm"), ("amu", "kg"), ("nm", "m"), ("K", "K"), ("%", "")]
+
+
+@settings(max_examples=examples(100))
+@given(x=st.floats(-1e12, 1e12, allow_nan=False), pair=st.sampled_from(UNIT_TEXTS))
+def test_a_remembered_factor_gives_what_pint_gives(x, pair):
+    text, unit = pair
+    units.parse(f"1 {text}", unit)                      # remembered from here on
+    assert units.factors().get(text, unit) is not None
+    # reference: pint's own conversion, bit for bit
+    ureg = units.registry()
+    assert units.parse(f"{x!r} {text}", unit) == float(ureg.Quantity(x, text).to(unit).magnitude)
+
+
+def test_remembered_factors_need_no_registry_and_survive_the_process(tmp_path, monkeypatch):
+    path = tmp_path / "factors.json"
+    first = units.Factors(path)
+    monkeypatch.setattr(units, "factors", lambda: first)
+    assert units.parse("300 m/s", "m/s") == 300.0 and units.parse("6.07 MHz", "Hz") == pytest.approx(6.07e6)
+    units.parse("20 degC", "K")                         # an offset: never remembered
+    assert first.get("degC", "K") is None
+    first.save()
+    again = units.Factors(path)
+    monkeypatch.setattr(units, "factors", lambda: again)
+
+    def no_registry():
+        raise AssertionError("the registry was built")
+
+    monkeypatch.setattr(units, "registry", no_registry)
+    assert units.parse("2.5 MHz", "Hz") == 2.5e6 and units.parse("-7 m/s", "m/s") == -7.0
+    with pytest.raises(AssertionError, match="registry was built"):
+        units.parse("3 MHz", "m/s")                     # another wanted unit: pint decides
+    path.write_text("{not json")                        # a damaged file is ignored
+    assert units.Factors(path).get("MHz", "Hz") is None
