@@ -48,23 +48,33 @@ BLOCK = 1 << 15
 def detuning_extremes(schedule) -> tuple[float, float]:
     """Smallest and largest detuning of the schedule over one period (Hz).
 
-    The schedule is a piecewise polynomial (``Schedule.poly``); on each piece the
-    extremes lie at the ends or where the derivative vanishes, so evaluating it
-    at the breakpoints and at the real roots of its derivative inside ``[0,
-    period]`` gives the exact range (elementary calculus; the roots come from
-    ``scipy.interpolate.PPoly.roots``).
+    The schedule is a piecewise polynomial (``Schedule.coefficients``); on each
+    piece the extremes lie at its ends or where its derivative vanishes
+    (elementary calculus). The derivative of a cubic is a quadratic, whose real
+    roots inside the piece come from the quadratic formula in its form without
+    cancellation (W. H. Press et al., *Numerical Recipes*, 3rd ed., §5.6).
+    Pieces are taken as PPoly takes them: the first and last extend beyond the
+    breakpoints, and only what lies in ``[0, period]`` counts.
     """
-    poly = schedule.poly
-    x = poly.x
-    inside = (x >= 0.0) & (x <= schedule.period)
-    candidates = [x[inside], np.array([0.0, schedule.period])]
-    roots = poly.derivative().roots(discontinuity=False, extrapolate=False)
-    roots = roots[np.isfinite(roots)]
-    candidates.append(roots[(roots >= 0.0) & (roots <= schedule.period)])
-    t = np.concatenate(candidates)
-    # a piece ends where the next starts: take both one-sided values at every breakpoint
-    left = np.nextafter(t, -np.inf)
-    values = np.concatenate([poly(t), poly(np.clip(left, 0.0, None))])
+    x, c = schedule.breakpoints, schedule.coefficients
+    if c.shape[0] > 4:
+        raise ValueError("the schedule's pieces are of degree above three")
+    c = np.vstack([np.zeros((4 - c.shape[0], c.shape[1])), c])            # as cubics
+    k = np.arange(c.shape[1])
+    lo = np.maximum(np.where(k == 0, -np.inf, x[:-1]), 0.0) - x[:-1]        # the piece's part of the period,
+    hi = np.minimum(np.where(k == k[-1], np.inf, x[1:]), schedule.period) - x[:-1]   # as offsets into it
+    keep = lo <= hi
+    a, b, q0 = 3.0 * c[0], 2.0 * c[1], c[2]                                  # derivative a s² + b s + q0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        disc = b * b - 4.0 * a * q0
+        q = -0.5 * (b + np.copysign(np.sqrt(disc), b))
+        roots = np.stack([np.where(a != 0, q / a, -q0 / b), np.where(a != 0, q0 / q, np.nan)])
+    roots[:, disc < 0] = np.nan
+    offsets = np.concatenate([lo, hi, *roots])
+    pieces = np.tile(k, 2 + len(roots))
+    inside = np.tile(keep, 2 + len(roots)) & (offsets >= np.tile(lo, 2 + len(roots))) & (
+        offsets <= np.tile(hi, 2 + len(roots)))
+    values, _ = _piece_values(c, pieces[inside], offsets[inside])
     return float(values.min()), float(values.max())
 
 
@@ -178,7 +188,7 @@ def code_polynomial(schedule, chain, q):
     through the chain.
     """
     det_lo, det_hi = detuning_extremes(schedule)
-    x, c = schedule.poly.x, schedule.poly.c
+    x, c = schedule.breakpoints, schedule.coefficients
     if det_hi > det_lo:
         probe = np.linspace(det_lo, det_hi, 4097)
         drive = np.asarray(chain.to_drive(probe), dtype=float)
@@ -204,7 +214,7 @@ def _piece_values(c, k, s):
 
 
 def _hermite_codes(schedule, chain, q, limit: int = 1 << 20):
-    x, c = schedule.poly.x, schedule.poly.c
+    x, c = schedule.breakpoints, schedule.coefficients
     width = np.diff(x)
     tol = TABLE_TOLERANCE
 
@@ -345,7 +355,7 @@ class PeriodFrames:
         self.detuning = schedule.sampled(sample_rate)
         x, c, self.evaluation = code_polynomial(schedule, chain, q)
         self.unrounded = None if x is None else SampledPolynomial(x, c, sample_rate, schedule.period)
-        self.first_detuning = float(schedule.poly(0.0))
+        self.first_detuning = float(schedule.detuning(0.0))
         self.first_drive = float(np.asarray(chain.to_drive(np.array([self.first_detuning])))[0])
         self.first_code = self._to_codes(np.array([self.first_drive]), q)[0]
         self.sample_rate = sample_rate

@@ -17,10 +17,10 @@ The schedule is periodic: ``detuning(t)`` takes any real times.
 
 from __future__ import annotations
 
+import bisect
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.interpolate import CubicHermiteSpline, PPoly
 
 from sweepgen.errors import PlanError
 
@@ -37,15 +37,39 @@ class Segment:
 
 
 class Schedule:
-    """Optical detuning (Hz) versus time over one repeating period."""
+    """Optical detuning (Hz) versus time over one repeating period.
 
-    def __init__(self, segments, poly: PPoly, period: float, start_detuning: float, end_detuning: float):
+    ``poly`` is the piecewise polynomial over one period: a
+    ``scipy.interpolate.PPoly``, or the pair ``(breakpoints, coefficients)`` in
+    its layout (``c[m, k]`` of piece ``k`` in powers of ``t − x[k]``, highest
+    first). The schedule evaluates it itself, in PPoly's own order of
+    operations (the same numbers), and builds the PPoly (:attr:`poly`, the
+    import of :mod:`scipy.interpolate` with it) only for those who ask.
+    """
+
+    def __init__(self, segments, poly, period: float, start_detuning: float, end_detuning: float):
         self.segments = tuple(segments)
-        self.poly = poly
+        x, c = poly if isinstance(poly, tuple) else (poly.x, poly.c)
+        self._poly = None if isinstance(poly, tuple) else poly
+        self._x = np.ascontiguousarray(x, dtype=float)
+        self._c = np.ascontiguousarray(c, dtype=float)
+        # the derivative's coefficients, as PPoly.derivative makes them
+        order = self._c.shape[0]
+        self._dc = (self._c[:-1] * np.arange(order - 1, 0, -1)[:, None] if order > 1
+                    else np.zeros((1, self._c.shape[1])))
         self.period = float(period)
         self.start_detuning = float(start_detuning)
         self.end_detuning = float(end_detuning)
-        self._chirp_rate = poly.derivative()
+        self._scalars = {}
+
+    @property
+    def poly(self):
+        """The piecewise polynomial as a ``scipy.interpolate.PPoly`` (made on first use)."""
+        if self._poly is None:
+            from scipy.interpolate import PPoly
+
+            self._poly = PPoly(self._c, self._x, extrapolate=True)
+        return self._poly
 
     # -- construction ------------------------------------------------------------
     @classmethod
@@ -71,10 +95,10 @@ class Schedule:
                 cs.append(np.array([0.0, 0.0, 0.0, value]))
 
         const(0.0, t0, d0)
-        chirp = CubicHermiteSpline(tr.time + t0, tr.detuning, tr.chirp_rate)
-        for i in range(len(chirp.x) - 1):
-            xs.append((chirp.x[i], chirp.x[i + 1]))
-            cs.append(chirp.c[:, i].copy())
+        knots = tr.time + t0
+        for i, piece in enumerate(_hermite(knots, tr.detuning, tr.chirp_rate).T):
+            xs.append((knots[i], knots[i + 1]))
+            cs.append(piece)
         const(t1, t2, d1)
         if ch.return_time > 0:
             span = d0 - d1
@@ -83,8 +107,10 @@ class Schedule:
             cs.append(np.array([-2.0 * span / T ** 3, 3.0 * span / T ** 2, 0.0, d1]))
         const(t3, ch.period, d0)
         breaks = np.array([x[0] for x in xs] + [xs[-1][1]])
-        coeffs = np.stack(cs, axis=1)
-        poly = PPoly(coeffs, breaks, extrapolate=True)
+        if not np.all(np.diff(breaks) > 0):
+            raise PlanError("the planned sweep's pieces do not follow one another in time",
+                            file=str(plan.scenario.path), key="chirp")
+        poly = (breaks, np.stack(cs, axis=1))
         segments = [Segment("rest", 0.0, t0), Segment("chirp", t0, t1), Segment("hold", t1, t2),
                     Segment("return", t2, t3), Segment("rest", t3, ch.period)]
         return cls([s for s in segments if s.end > s.start], poly, ch.period, d0, d1)
@@ -95,19 +121,51 @@ class Schedule:
         return np.mod(t, self.period)
 
     def detuning(self, t):
-        """Detuning in Hz at times ``t`` (s, any real values; the schedule repeats)."""
-        return self.poly(self._wrap(t))
+        """Detuning in Hz at times ``t`` (s, any real values; the schedule repeats); a float for a float."""
+        return self._evaluate(0, t)
 
     __call__ = detuning
 
     def sampled(self, sample_rate: float) -> "SampledPolynomial":
         """The detuning at the instants ``t_i = i / sample_rate``, chunk by chunk (see
         :class:`SampledPolynomial`)."""
-        return SampledPolynomial(self.poly.x, self.poly.c, sample_rate, self.period)
+        return SampledPolynomial(self._x, self._c, sample_rate, self.period)
 
     def chirp_rate(self, t):
         """The chirp rate dΔ/dt in Hz/s at times ``t``."""
-        return self._chirp_rate(self._wrap(t))
+        return self._evaluate(1, t)
+
+    def _evaluate(self, order: int, t):
+        """The detuning (``order`` 0) or its derivative (1) at times ``t`` (wrapped into the period),
+        summed as PPoly sums them: from the constant term up, the powers of ``t − x[k]`` built by
+        multiplication."""
+        x, c = self._x, (self._c, self._dc)[order]
+        if isinstance(t, (float, int)) and not isinstance(t, bool):
+            breaks, pieces = self._scalar_pieces(order)
+            tw = float(t) % self.period
+            k = min(max(bisect.bisect_right(breaks, tw) - 1, 0), len(breaks) - 2)
+            s = tw - breaks[k]
+            *higher, value = pieces[k]
+            z = 1.0
+            for coefficient in reversed(higher):
+                z *= s
+                value = value + coefficient * z
+            return np.float64(value)
+        tw = self._wrap(t)
+        k = np.clip(np.searchsorted(x, tw, side="right") - 1, 0, len(x) - 2)
+        s = tw - x[k]
+        value, z = c[-1, k], np.ones_like(s)
+        for m in range(c.shape[0] - 2, -1, -1):
+            z = z * s
+            value = value + c[m, k] * z
+        return value
+
+    def _scalar_pieces(self, order: int):
+        """``(breakpoints, pieces)`` as Python floats, for one time at a time (made once)."""
+        if order not in self._scalars:
+            c = (self._c, self._dc)[order]
+            self._scalars[order] = (self._x.tolist(), [tuple(piece) for piece in c.T.tolist()])
+        return self._scalars[order]
 
     def segment(self, kind: str) -> Segment | None:
         """The first segment of a kind, or None."""
@@ -132,18 +190,23 @@ class Schedule:
         for seg in segs:
             t = np.linspace(seg.start, seg.end, samples)
             t[-1] = np.nextafter(seg.end, seg.start)
-            best = max(best, float(np.max(np.abs(self._chirp_rate(t)))))
+            best = max(best, float(np.max(np.abs(self.chirp_rate(t)))))
         return best
 
     @property
     def breakpoints(self) -> np.ndarray:
         """Piece boundaries of the polynomial (s)."""
-        return self.poly.x
+        return self._x
 
     @property
     def coefficients(self) -> np.ndarray:
         """Coefficients ``c[k, i]`` of piece i in powers of (t - x[i]), highest first (as in PPoly)."""
-        return self.poly.c
+        return self._c
+
+    @property
+    def derivative_coefficients(self) -> np.ndarray:
+        """The chirp rate's coefficients, in the layout of :attr:`coefficients`."""
+        return self._dc
 
 
 class SampledPolynomial:
@@ -219,3 +282,12 @@ class SampledPolynomial:
         for m in range(1, c.shape[0]):
             out *= t
             out += c[m, k]
+
+
+def _hermite(x, y, slope):
+    """Coefficients of the cubic Hermite pieces through ``(x, y)`` with derivatives ``slope``, in
+    PPoly's layout: the arithmetic of ``scipy.interpolate.CubicHermiteSpline``, to the last bit."""
+    dx = np.diff(x)
+    secant = np.diff(y) / dx
+    t = (slope[:-1] + slope[1:] - 2 * secant) / dx
+    return np.stack((t / dx, (secant - slope[:-1]) / dx - t, slope[:-1], y[:-1]))

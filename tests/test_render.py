@@ -71,6 +71,29 @@ def test_detuning_extremes_bound_a_dense_sampling_and_are_attained(seed, pieces)
 
 
 @settings(max_examples=examples(40))
+@given(seed=st.integers(0, 2**32 - 1), pieces=st.integers(1, 12), lo=st.floats(-2e-3, 5e-3),
+       hi=st.floats(5e-3, 1.2e-2))
+def test_detuning_extremes_agree_with_ppoly_roots(seed, pieces, lo, hi):
+    base = random_schedule(seed, pieces)
+    # breakpoints need not cover the period exactly: the end pieces extend, as in PPoly
+    x = base.breakpoints.copy()
+    x[0] = lo if lo < x[1] else x[0]
+    x[-1] = hi if hi > x[-2] else x[-1]
+    poly = PPoly(base.coefficients, x)
+    schedule = Schedule([Segment("chirp", 0.0, 1e-2)], poly, 1e-2, 0.0, 0.0)
+    # reference: the stationary points from scipy.interpolate.PPoly.roots of the derivative, the
+    # breakpoints and the period's ends, each piece's value there from PPoly itself
+    roots = poly.derivative().roots(discontinuity=False, extrapolate=True)
+    t = np.concatenate([x, [0.0, 1e-2], roots[np.isfinite(roots)]])
+    t = t[(t >= 0.0) & (t <= 1e-2)]
+    values = np.concatenate([poly(t), poly(np.clip(np.nextafter(t, -np.inf), 0.0, None))])
+    span = np.ptp(values) + 1.0
+    got = detuning_extremes(schedule)
+    assert got[0] == pytest.approx(values.min(), abs=1e-9 * span)
+    assert got[1] == pytest.approx(values.max(), abs=1e-9 * span)
+
+
+@settings(max_examples=examples(40))
 @given(seed=st.integers(0, 2**32 - 1), pieces=st.integers(1, 40), start=st.integers(0, 12000),
        n=st.integers(1, 3000), rate=st.floats(1e4, 1e7))
 def test_sampled_polynomial_equals_ppoly(seed, pieces, start, n, rate):

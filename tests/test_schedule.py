@@ -84,3 +84,21 @@ def test_zero_hold_and_continuous_source_start_with_the_chirp():
     sc = make_scenario(source={"pulse_time": None}, chirp={"start_time": None, "hold": "0 s"})
     s = plan(sc).schedule()
     assert [seg.kind for seg in s.segments] == ["chirp", "return", "rest"]
+
+
+def test_the_schedule_evaluates_its_pieces_as_scipy_does(pulsed):
+    from scipy.interpolate import CubicHermiteSpline, PPoly
+
+    p, s = pulsed
+    tr = p.trajectory
+    # reference implementation: scipy.interpolate, the same numbers to the last bit
+    chirp = CubicHermiteSpline(tr.time + p.chirp_start, tr.detuning, tr.chirp_rate)
+    first = int(np.searchsorted(s.breakpoints, p.chirp_start))
+    assert np.array_equal(s.coefficients[:, first:first + chirp.c.shape[1]], chirp.c)
+    ppoly = PPoly(s.coefficients, s.breakpoints)
+    t = np.concatenate([np.random.default_rng(3).uniform(-0.05, 0.05, 5000), s.breakpoints])
+    wrapped = np.mod(t, s.period)
+    assert np.array_equal(s.detuning(t), ppoly(wrapped))
+    assert np.array_equal(s.chirp_rate(t), ppoly.derivative()(wrapped))
+    assert all(s.detuning(float(v)) == s.detuning(np.array([v]))[0] for v in t[::50])
+    assert np.array_equal(s.poly.c, s.coefficients)        # the PPoly, for those who ask
