@@ -139,6 +139,10 @@ def _atoms_section(sc, doc_sim) -> list[str]:
             f"{si(doc_sim['doppler_limit'], 'K')}). Lost: {100 * lost['left_aperture']:.2f} % outside the "
             f"aperture, {100 * lost['dark_state']:.2f} % to dark states ({100 * doc_sim['depumped_fraction']:.1f} % "
             f"went dark at least once), {100 * lost['turned_back']:.2f} % turned back.", "",
+            f"In `velocities.png` every histogram is a share of all {doc_sim['atoms']} atoms the source emitted: "
+            f"the green bars (captured) add up to {100 * doc_sim['captured_fraction']:.2f} % in each panel; the "
+            f"blue line counts every atom crossing the target plane, also those outside the aperture "
+            f"({100 * lost['left_aperture']:.2f} %) and those too fast to be held.", "",
             "![velocities](velocities.png)", ""]
 
 

@@ -6,6 +6,7 @@ extension (PNG or SVG). No screen is needed (the Agg backend is used).
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -39,13 +40,25 @@ def save(fig, file) -> Path:
     return path
 
 
-def plot_plan(plan, file, *, response=None) -> Path:
-    """Detuning versus time over one period, with the design atom's own resonance
-    and, when given, the actuator's simulated response (``(t, detuning)``)."""
+def time_label(scenario) -> str:
+    """The time axis of one period: after the trigger for a pulsed source; a continuous beam has no
+    trigger, and its period starts with the chirp (the table's first sample)."""
+    if scenario.pulsed:
+        return "time after the trigger (ms)"
+    return "time in the period, from the chirp start (ms)"
+
+
+def _legend_outside(ax, *args, x: float = 1.01):
+    """A legend to the right of the axes (``x`` in axes fractions), where it covers no data."""
+    return ax.legend(*args, loc="upper left", bbox_to_anchor=(x, 1.0), borderaxespad=0.0, fontsize=8)
+
+
+def plan_figure(plan, *, response=None):
+    """The figure of :func:`plot_plan` (a matplotlib Figure, for saving or inspection)."""
     plt = _pyplot()
     sched = plan.schedule()
     t = np.linspace(0.0, sched.period, 4001)
-    fig, (ax, axv) = plt.subplots(2, 1, figsize=(8, 6.5), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
+    fig, (ax, axv) = plt.subplots(2, 1, figsize=(10, 6.5), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
     ax.plot(t * 1e3, sched.detuning(t) / 1e6, color=COLORS["sweep"], lw=2, label="laser detuning Δ(t)")
     ax.plot(t * 1e3, plan.design_resonance(t) / 1e6, color=COLORS["design"], lw=1.2, ls="--",
             label="resonance of the design atom, −v_s/λ")
@@ -53,48 +66,71 @@ def plot_plan(plan, file, *, response=None) -> Path:
         rt, rd = response
         ax.plot(np.asarray(rt) * 1e3, np.asarray(rd) / 1e6, color=COLORS["response"], lw=1,
                 label="actuator response (simulated)")
+    shades = {"chirp": COLORS["sweep"], "hold": COLORS["design"], "return": COLORS["muted"]}
     for seg in sched.segments:
         if seg.kind != "rest":
-            ax.axvspan(seg.start * 1e3, seg.end * 1e3, alpha=0.06,
-                       color={"chirp": COLORS["sweep"], "hold": COLORS["design"], "return": COLORS["muted"]}[seg.kind])
+            ax.axvspan(seg.start * 1e3, seg.end * 1e3, alpha=0.08, color=shades[seg.kind], label=seg.kind)
     ax.set_ylabel("detuning (MHz)")
     ax.set_title(plan.scenario.title, fontsize=10)
-    ax.legend(fontsize=8, loc="lower right")
+    _legend_outside(ax, x=1.12)          # aligned with the lower legend, which clears the right axis
     ax.grid(alpha=0.3)
     tr = plan.trajectory
     tt = (tr.time + plan.chirp_start) * 1e3
     axv.plot(tt, tr.velocity, color=COLORS["design"], lw=2, label="design atom velocity")
     axv.plot(tt, tr.velocity + tr.lag, color=COLORS["sweep"], lw=1, ls=":", label="resonant velocity −λΔ")
-    axv.set_xlabel("time after trigger (ms)")
+    ax2 = axv.twinx()
+    ax2.plot(tt, tr.position, color=COLORS["muted"], lw=1, label="design atom position (right axis)")
+    ax2.set_ylabel("design atom position (m)", color=COLORS["muted"])
+    axv.set_xlabel(time_label(plan.scenario))
     axv.set_ylabel("velocity (m/s)")
     axv.grid(alpha=0.3)
-    ax2 = axv.twinx()
-    ax2.plot(tt, tr.position, color=COLORS["muted"], lw=1)
-    ax2.set_ylabel("design atom position (m)", color=COLORS["muted"])
-    axv.legend(fontsize=8, loc="upper right")
-    return save(fig, file)
+    (h1, l1), (h2, l2) = axv.get_legend_handles_labels(), ax2.get_legend_handles_labels()
+    _legend_outside(axv, h1 + h2, l1 + l2, x=1.12)
+    return fig
+
+
+def plot_plan(plan, file, *, response=None) -> Path:
+    """Detuning versus time over one period, with the design atom's own resonance
+    and, when given, the actuator's simulated response (``(t, detuning)``); legends
+    beside the axes, never over the sweep."""
+    return save(plan_figure(plan, response=response), file)
+
+
+def headroom_rows(report) -> list:
+    """The bars of :func:`plot_check`: ``(label, headroom in %, status)`` for each finding with a
+    headroom, in the order of the text report (failures, warnings, passes)."""
+    rows = []
+    for f in report.ordered():
+        if f.headroom is None or not np.isfinite(f.headroom):
+            continue
+        label = f.rule if f.rule != "stage_range" else f"stage_range: {f.message.split(':')[0]}"
+        rows.append((label, 100.0 * f.headroom, f.status))
+    return rows
 
 
 def plot_check(report, file) -> Path:
     """Each finding's headroom to its limit as a horizontal bar, one per rule with a limit
-    (``sweepgen.checker.CheckReport``): failures red, warnings orange, passes
-    green; the dashed line marks where a rule starts to warn (20 % headroom)."""
+    (``sweepgen.checker.CheckReport``), failures first as in the text report: failures red,
+    warnings orange, passes green, each bar labelled with its headroom; the dashed line marks
+    where a rule starts to warn (20 % headroom)."""
     from sweepgen.checker import WARN_HEADROOM
 
     plt = _pyplot()
-    rows = [f for f in report.findings if f.headroom is not None and np.isfinite(f.headroom)]
+    rows = headroom_rows(report)
     color = {"fail": COLORS["limit"], "warn": COLORS["design"], "pass": COLORS["response"]}
     fig, ax = plt.subplots(figsize=(8, 0.32 * max(len(rows), 3) + 1.2))
-    labels = [f.rule if f.rule != "stage_range" else f"stage_range: {f.message.split(':')[0]}" for f in rows]
-    headroom = [max(min(f.headroom, 1.0), -1.0) * 100 for f in rows]
     y = np.arange(len(rows))[::-1]
-    ax.barh(y, headroom, color=[color[f.status] for f in rows], height=0.7)
+    shown = [max(min(h, 100.0), -100.0) for _, h, _ in rows]
+    ax.barh(y, shown, color=[color[s] for _, _, s in rows], height=0.7)
+    for yi, (_, h, _), x in zip(y, rows, shown):
+        ax.text(x + (2 if x >= 0 else -2), yi, f"{h:.0f} %", va="center", ha="left" if x >= 0 else "right",
+                fontsize=7)
     ax.set_yticks(y)
-    ax.set_yticklabels(labels, fontsize=8)
+    ax.set_yticklabels([label for label, _, _ in rows], fontsize=8)
     ax.axvline(0, color="black", lw=0.8)
     ax.axvline(WARN_HEADROOM * 100, color=COLORS["muted"], lw=0.8, ls="--")
-    ax.set_xlim(-100, 100)
-    ax.set_xlabel("headroom to the limit (%; below 0 = limit exceeded, clipped to ±100 %)")
+    ax.set_xlim(-115, 115)
+    ax.set_xlabel("headroom: room left to the limit, % of the limit (below 0: exceeded; bars clipped at ±100 %)")
     ok = "no rule fails" if report.ok else f"{len(report.failures())} rule(s) fail"
     title = getattr(getattr(report, "scenario", None), "title", "")
     ax.set_title(f"{title}\n{ok}", fontsize=9)
@@ -102,58 +138,125 @@ def plot_check(report, file) -> Path:
     return save(fig, file)
 
 
-def plot_simulation(result, file) -> Path:
-    """Velocity distributions before (at the source) and after (at the target plane:
-    with the sweep, without light, with the light held at the start detuning), and for
-    a pulsed source the arrival times at the target (all arrivals and captured atoms).
-    ``result`` is a :class:`sweepgen.simulate.SimulationResult`."""
+@dataclass(frozen=True)
+class Curve:
+    """One histogram of a simulation plot: ``values`` per bin of ``edges``, as fractions of ALL the
+    atoms the source emitted (so a curve's sum is its share of every atom)."""
+
+    key: str
+    label: str
+    edges: np.ndarray
+    values: np.ndarray
+
+
+def simulation_curves(result) -> dict:
+    """The data of :func:`plot_simulation`, from the ``simulate --json`` histograms of ``result``.
+
+    Returns ``{"velocity": [...], "slow": [...], "arrival": [...] (pulsed) or None, "atoms": N}``,
+    lists of :class:`Curve`. ``final`` curves hold every atom crossing the target plane (in or out
+    of the aperture), ``captured`` curves the captured atoms only (at or below the capture velocity,
+    inside the aperture when one is set): each of these sums to ``captured_fraction``.
+    """
+    h = result.histograms()
+    n = max(int(result.atoms.velocity.size), 1)
+
+    def curve(key, label, edges, counts):
+        return Curve(key, label, np.asarray(edges, dtype=float), np.asarray(counts, dtype=float) / n)
+
+    ve, se = h["velocity_edges"], h["slow_edges"]
+    out = {"atoms": n, "arrival": None, "velocity": [
+        curve("source", "source, as emitted", ve, h["initial"]),
+        curve("no_light", "target plane, no light", ve, h["final_no_light"]),
+        curve("fixed", "target plane, light held at the start detuning", ve, h["final_fixed_frequency"]),
+        curve("final", "target plane, with the sweep", ve, h["final"]),
+        curve("captured", "captured, with the sweep", ve, h["final_captured"])],
+        "slow": [curve("final", "target plane, with the sweep", se, h["slow_final"]),
+                 curve("captured", "captured, with the sweep", se, h["slow_captured"])]}
+    if "arrival_time_edges" in h:
+        te = h["arrival_time_edges"]
+        out["arrival"] = [curve("final", "target plane, with the sweep", te, h["arrival_time"]),
+                          curve("captured", "captured, with the sweep", te, h["arrival_time_captured"])]
+    return out
+
+
+def curve_legend_title(scenario) -> str:
+    """What "target plane" and "captured" mean in a simulation plot's legends."""
+    tg = scenario.target
+    where = ", inside the aperture" if tg.aperture is not None else ""
+    return (f"target plane: every atom crossing it{' (in or out of the aperture)' if where else ''}\n"
+            f"captured: at most {tg.capture_velocity:g} m/s{where}")
+
+
+#: how each kind of curve of a simulation plot is drawn (the source filled underneath, the captured
+#: atoms filled on top, so that neither hides under the lines)
+CURVE_STYLE = {
+    "source": {"color": COLORS["muted"], "fill": True, "alpha": 0.3, "lw": 0, "zorder": 1},
+    "no_light": {"color": COLORS["limit"], "lw": 1, "ls": ":", "zorder": 2},
+    "fixed": {"color": COLORS["design"], "lw": 1, "ls": "--", "zorder": 2},
+    "final": {"color": COLORS["sweep"], "lw": 1.5, "zorder": 3},
+    "captured": {"color": COLORS["response"], "fill": True, "alpha": 0.75, "lw": 0, "zorder": 4},
+}
+
+
+def simulation_figure(result):
+    """The figure of :func:`plot_simulation` (a matplotlib Figure, for saving or inspection)."""
     plt = _pyplot()
     sc = result.scenario
-    h = result.histograms()
     doc = result.to_json()
-    pulsed = "arrival_time_edges" in h
-    if pulsed:
-        fig, (ax, axt) = plt.subplots(2, 1, figsize=(8, 7), gridspec_kw={"height_ratios": [3, 2]})
-    else:
-        fig, ax = plt.subplots(1, 1, figsize=(8, 4.5))
-    edges = np.asarray(h["velocity_edges"])
-    n = max(int(doc["atoms"]), 1)
-
-    def steps(counts, **kw):
-        ax.stairs(np.asarray(counts) / n, edges, **kw)
-
-    steps(h["initial"], color=COLORS["muted"], lw=1.2, label="at the source")
-    steps(h["final_no_light"], color=COLORS["limit"], lw=1, ls=":", label="at the target, no light")
-    steps(h["final_fixed_frequency"], color=COLORS["design"], lw=1, ls="--",
-          label="at the target, light held at the start detuning")
-    steps(h["final"], color=COLORS["sweep"], lw=2, fill=False, label="at the target, with the sweep")
+    data = simulation_curves(result)
+    n = data["atoms"]
+    panels = 3 if data["arrival"] else 2
+    fig, axes = plt.subplots(panels, 1, figsize=(10, 3.3 * panels + 0.6))
+    per_bin = f"atoms per bin, fraction of all {n} emitted"
+    for ax, key in zip(axes, ("velocity", "slow", "arrival")):
+        for c in data[key]:
+            ax.stairs(c.values * 100, c.edges * (1e3 if key == "arrival" else 1.0), label=c.label,
+                      **CURVE_STYLE[c.key])
+        ax.set_ylabel(f"{per_bin} (%)", fontsize=8)
+        ax.grid(alpha=0.3)
+    ax, axs = axes[0], axes[1]
     ch = sc.chirp
     ax.axvspan(ch.end_velocity, ch.start_velocity, color=COLORS["band"], alpha=0.07, label="chirp band")
-    ax.axvline(sc.target.capture_velocity, color=COLORS["response"], lw=1.2,
-               label=f"capture velocity ({sc.target.capture_velocity:g} m/s)")
-    ax.set_xlabel("velocity along the beam (m/s)")
-    ax.set_ylabel("fraction of atoms per bin")
-    cap = doc["captured_fraction"]
-    ax.set_title(f"{sc.title}\ncaptured {100 * cap:.2f} % of {doc['atoms']} atoms "
-                 f"(no light {100 * doc['baseline_no_light_fraction']:.2f} %, "
-                 f"fixed frequency {100 * doc['baseline_fixed_frequency_fraction']:.2f} %)", fontsize=9)
-    ax.legend(fontsize=7, loc="upper right")
-    ax.grid(alpha=0.3)
-    if pulsed:
-        tedges = np.asarray(h["arrival_time_edges"]) * 1e3
-        axt.stairs(np.asarray(h["arrival_time"]) / n, tedges, color=COLORS["muted"], lw=1.2,
-                   label="all arrivals")
-        axt.stairs(np.asarray(h["arrival_time_captured"]) / n, tedges, color=COLORS["sweep"], lw=2,
-                   label="captured atoms")
+    for a in (ax, axs):
+        a.axvline(sc.target.capture_velocity, color=COLORS["band"], lw=1.2,
+                  label=f"capture velocity ({sc.target.capture_velocity:g} m/s)")
+        a.set_xlabel("velocity along the beam (m/s)")
+    ax.set_title(f"{sc.title}\ncaptured {100 * doc['captured_fraction']:.2f} % of {n} atoms (no light "
+                 f"{100 * doc['baseline_no_light_fraction']:.2f} %, light held at the start detuning "
+                 f"{100 * doc['baseline_fixed_frequency_fraction']:.2f} %)", fontsize=9)
+    axs.set_title(f"the slow end, finer bins: captured atoms arrive at {_mean_spread(doc)}", fontsize=9)
+    if data["arrival"]:
+        axt = axes[2]
         if result.arrival_design is not None:
             axt.axvline(result.arrival_design * 1e3, color=COLORS["design"], lw=1, ls="--",
                         label="planned arrival of the design atom")
-        axt.set_xlabel("arrival time at the target after the trigger (ms)")
-        axt.set_ylabel("fraction of atoms per bin")
-        axt.legend(fontsize=7, loc="upper right")
-        axt.grid(alpha=0.3)
+        axt.set_yscale("log")
+        axt.set_ylabel(f"{per_bin} (%, log scale)", fontsize=8)
+        axt.set_xlabel("arrival time at the target, " + time_label(sc).replace("time ", "", 1))
+    for i, a in enumerate(axes):
+        legend = _legend_outside(a)
+        if i == 0:
+            legend.set_title(curve_legend_title(sc), prop={"size": 7})
     fig.tight_layout()
-    return save(fig, file)
+    return fig
+
+
+def _mean_spread(doc) -> str:
+    mean, spread = doc.get("final_velocity_mean"), doc.get("final_velocity_spread")
+    if mean is None or not np.isfinite(mean):
+        return "no velocity (none captured)"
+    if spread is None or not np.isfinite(spread):
+        return f"{mean:.3g} m/s"
+    return f"{mean:.3g} m/s on average, spread {spread:.3g} m/s (1σ)"
+
+
+def plot_simulation(result, file) -> Path:
+    """Velocity distributions at the source and at the target plane (with the sweep, without
+    light, with the light held at the start detuning) and of the captured atoms alone, the
+    slow end on finer bins, and for a pulsed source the arrival times at the target (log
+    scale); every histogram as a fraction of all the atoms emitted. ``result`` is a
+    :class:`sweepgen.simulate.SimulationResult`."""
+    return save(simulation_figure(result), file)
 
 
 def plot_drive(report, file) -> Path:
@@ -161,6 +264,11 @@ def plot_drive(report, file) -> Path:
     safe input range (laser profile) and the generator's output range as it
     arrives at the actuator (after the termination/load factor). ``report`` is a
     :class:`sweepgen.checker.CheckReport` of a sweep that could be planned."""
+    return save(drive_figure(report), file)
+
+
+def drive_figure(report):
+    """The figure of :func:`plot_drive` (a matplotlib Figure, for saving or inspection)."""
     plt = _pyplot()
     plan, laser, gen = report.plan, report.laser, report.generator
     sched = plan.schedule()
@@ -169,31 +277,33 @@ def plot_drive(report, file) -> Path:
     scale, label = (1.0, "V") if unit == "V" else (1e-6, "MHz")
     t = np.linspace(0.0, sched.period, 4001)
     drive = chain.to_drive(sched.detuning(t))
-    fig, ax = plt.subplots(figsize=(8, 4.2))
+    fig, ax = plt.subplots(figsize=(10, 4.2))
     ax.plot(t * 1e3, drive * scale, color=COLORS["sweep"], lw=2, label=f"planned drive ({chain.describe()})")
     tracking = getattr(report, "tracking", None)
     if tracking is not None:
         ax.plot(tracking.time * 1e3, tracking.drive * scale, color=COLORS["response"], lw=0.8,
                 drawstyle="steps-post", label="as played (quantised samples)")
     lim = laser.limits
-    ax.axhline(lim.input_max * scale, color=COLORS["limit"], lw=1.4, ls="--", label="actuator safe input range")
+    ax.axhline(lim.input_max * scale, color=COLORS["limit"], lw=1.4, ls="--",
+               label=f"actuator safe input range ({lim.input_min * scale:g} to {lim.input_max * scale:g} {label})")
     ax.axhline(lim.input_min * scale, color=COLORS["limit"], lw=1.4, ls="--")
     out = gen.output
     factor = out.delivered_factor if out.kind == "voltage" else 1.0
     lo, hi = sorted((out.range_min * factor, out.range_max * factor))
     where = "at the actuator" if out.kind == "voltage" else "of the DDS"
-    ax.axhline(hi * scale, color=COLORS["muted"], lw=1, ls=":", label=f"generator output range {where}")
+    ax.axhline(hi * scale, color=COLORS["muted"], lw=1, ls=":",
+               label=f"generator output range {where} ({lo * scale:g} to {hi * scale:g} {label})")
     ax.axhline(lo * scale, color=COLORS["muted"], lw=1, ls=":")
     span = max(drive.max() - drive.min(), 1e-12)
     top = max(drive.max(), min(lim.input_max, hi)) + 0.15 * span
     bottom = min(drive.min(), max(lim.input_min, lo)) - 0.15 * span
     ax.set_ylim(bottom * scale, top * scale)
-    ax.set_xlabel("time after trigger (ms)")
+    ax.set_xlabel(time_label(plan.scenario))
     ax.set_ylabel(f"drive at the actuator ({label})")
     ax.set_title(f"{laser.title}\non {gen.title}", fontsize=9)
-    ax.legend(fontsize=7, loc="best")
+    _legend_outside(ax)
     ax.grid(alpha=0.3)
-    return save(fig, file)
+    return fig
 
 
 def plot_calibration(result, file) -> Path:
@@ -244,14 +354,14 @@ def plot_table(table, numbers, file) -> Path:
     ax.grid(alpha=0.3)
     axd.plot(t[::step] * 1e3, table.drive()[::step], color=COLORS["design"], lw=1.2)
     axd.set_ylabel(f"drive ({table.drive_unit})")
-    axd.set_xlabel("time after trigger (ms)")
+    axd.set_xlabel("time from the table's first sample (ms)")
     axd.grid(alpha=0.3)
     return save(fig, file)
 
 
-def plot_compare(cmp, file) -> Path:
+def plot_compare(cmp, file, *, scenario=None) -> Path:
     """Measured and planned detuning on the schedule's time axis, and the tracking error with the
-    tolerance (``sweepgen.compare.Comparison``)."""
+    tolerance (``sweepgen.compare.Comparison``; ``scenario`` names the time axis)."""
     plt = _pyplot()
     t = (cmp.trace.time + cmp.lag) * 1e3
     fig, (ax, axe) = plt.subplots(2, 1, figsize=(8, 6.5), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
@@ -268,7 +378,8 @@ def plot_compare(cmp, file) -> Path:
         axe.axhline(sign * cmp.tolerance / 1e6, color=COLORS["limit"], ls="--", lw=1,
                     label="tolerance" if sign > 0 else None)
     axe.set_ylabel("measured − planned (MHz)")
-    axe.set_xlabel("time after trigger, schedule axis (ms)")
+    axe.set_xlabel((time_label(scenario) if scenario is not None else "time on the plan's axis (ms)")
+                   + ", the trace aligned to it")
     axe.legend(fontsize=8)
     axe.grid(alpha=0.3)
     return save(fig, file)

@@ -113,6 +113,9 @@ __all__ = ["ARRIVED", "DARK", "HORIZON_FACTOR", "LARGE_COUNT", "NOT_ARRIVED", "P
 DEFAULT_ATOMS = 10000
 #: bins of the velocity and arrival-time histograms
 HISTOGRAM_BINS = 80
+#: the slow end of the velocity histograms: SLOW_BINS bins from 0 to SLOW_END × the capture velocity
+SLOW_END = 1.5
+SLOW_BINS = 60
 
 
 @dataclass
@@ -219,9 +222,17 @@ class SimulationResult:
         return doc
 
     def histograms(self) -> dict:
-        """Counts of atoms per bin: velocities before (at the source) and after (at the
-        target plane: with the sweep, with no light, with the light held at the start
-        detuning), and for pulsed sources the arrival times at the target."""
+        """Counts of atoms per bin (see :meth:`_velocity_histograms` and :meth:`_arrival_histograms`)."""
+        out = self._velocity_histograms()
+        if self.scenario.pulsed:
+            out.update(self._arrival_histograms())
+        return out
+
+    def _velocity_histograms(self) -> dict:
+        """Velocities before (``initial``, at the source) and after, at the target plane: every atom
+        crossing it (``final``: with the sweep, ``final_no_light``, ``final_fixed_frequency``), and the
+        captured atoms alone (``final_captured``), on ``velocity_edges``; and the slow end on finer bins
+        (``slow_edges``, 0 to 1.5 × the capture velocity): ``slow_final`` and ``slow_captured``."""
         sc = self.scenario
         v0 = self.atoms.velocity
         finals = [f.final_velocity for f in (self.flight, self.no_light, self.fixed_frequency)]
@@ -229,35 +240,44 @@ class SimulationResult:
                   + [float(np.nanmax(x)) for x in finals if np.isfinite(x).any()])
         top *= 1.0 + 1e-9
         edges = np.linspace(0.0, top, HISTOGRAM_BINS + 1)
+        slow = np.linspace(0.0, SLOW_END * sc.target.capture_velocity, SLOW_BINS + 1)
 
-        def counts(values):
+        def counts(values, bins=edges):
             values = values[np.isfinite(values)]
-            return np.histogram(values, bins=edges)[0]
+            return np.histogram(values, bins=bins)[0]
 
         def arrived(flight):
             return np.where(flight.fate == ARRIVED, flight.final_velocity, np.nan)
 
-        out = {
+        captured = self.flight.final_velocity[self.captured()]
+        return {
             "velocity_edges": edges,
             "initial": np.histogram(v0, bins=edges)[0],
             "final": counts(arrived(self.flight)),
             "final_no_light": counts(arrived(self.no_light)),
             "final_fixed_frequency": counts(arrived(self.fixed_frequency)),
+            "final_captured": counts(captured),
+            "slow_edges": slow,
+            "slow_final": counts(arrived(self.flight), slow),
+            "slow_captured": counts(captured, slow),
         }
-        if sc.pulsed:
-            t = self.flight.arrival_time
-            t = t[np.isfinite(t)]
-            if t.size:
-                lo, hi = float(t.min()), float(np.quantile(t, 0.995))
-                hi = max(hi, lo + 1e-6)
-                tedges = np.linspace(lo, hi, HISTOGRAM_BINS + 1)
-            else:
-                tedges = np.linspace(0.0, 1e-3, HISTOGRAM_BINS + 1)
-            cap = self.captured()
-            out["arrival_time_edges"] = tedges
-            out["arrival_time"] = np.histogram(t, bins=tedges)[0]
-            out["arrival_time_captured"] = np.histogram(self.flight.arrival_time[cap], bins=tedges)[0]
-        return out
+
+    def _arrival_histograms(self) -> dict:
+        """Arrival times at the target of every atom crossing it (``arrival_time``) and of the captured
+        atoms (``arrival_time_captured``) on ``arrival_time_edges``: from the first arrival to the
+        99.5 % quantile of all arrivals or the last captured atom, whichever is later (so that every
+        captured atom is counted)."""
+        t = self.flight.arrival_time
+        t = t[np.isfinite(t)]
+        t_cap = self.flight.arrival_time[self.captured()]
+        if t.size:
+            lo = float(t.min())
+            hi = max(float(np.quantile(t, 0.995)), float(t_cap.max()) if t_cap.size else lo, lo + 1e-6)
+            tedges = np.linspace(lo, hi * (1.0 + 1e-12), HISTOGRAM_BINS + 1)
+        else:
+            tedges = np.linspace(0.0, 1e-3, HISTOGRAM_BINS + 1)
+        return {"arrival_time_edges": tedges, "arrival_time": np.histogram(t, bins=tedges)[0],
+                "arrival_time_captured": np.histogram(t_cap, bins=tedges)[0]}
 
 
 # ----------------------------------------------------------------------------------

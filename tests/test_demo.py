@@ -41,3 +41,6 @@ def test_demo_writes_the_whole_report(tmp_path):
     assert re.search(rf"`table_sha256`[^\n]*`{upload['table_sha256']}`", summary)
     assert upload["table_sha256"] == sidecar["table_sha256"] != file_sha
     assert all(digest in (file_sha, upload["table_sha256"]) for digest in re.findall(r"[0-9a-f]{64}", summary))
+    # the numbers beside the velocity plot are the JSON's
+    assert (f"share of all {sim['atoms']} atoms the source emitted: the green bars (captured) add up to "
+            f"{100 * sim['captured_fraction']:.2f} %") in summary

@@ -62,7 +62,7 @@ def command(scenario, measured, marker, transition, reference, beat_sign, plot_f
     if plot_file:
         from sweepgen.plots import plot_compare
 
-        plot_compare(cmp, plot_file)
+        plot_compare(cmp, plot_file, scenario=sc)
     doc = to_json(cmp)
     if as_json:
         emit_json(doc)
