@@ -45,6 +45,8 @@ RELEASE_QUANTILE = 0.1
 #: followed atom before the target: it is stopped in all but name, and its neighbours, spread about
 #: it by a metre per second or so, stop and are pushed back (a design choice of this tool)
 STOP_FRACTION = 0.9
+#: ... and warns when it takes more than this fraction: part of the slowed atoms may already stop
+WARN_FRACTION = 0.5
 
 
 @dataclass(frozen=True)

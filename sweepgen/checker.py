@@ -40,8 +40,8 @@ physics
     (default 0.5); ``after_chirp`` (the velocity the hold, the return and the
     rest take from atoms leaving the chirp at the end velocity where it releases
     them, :mod:`sweepgen.afterchirp`: fails when they stop, or lose more than
-    ``STOP_FRACTION`` = 0.9 of it before the target), ``period`` (chirp start + chirp + hold +
-    return fit in one period).
+    ``STOP_FRACTION`` = 0.9 of it before the target; warns above half of it),
+    ``period`` (chirp start + chirp + hold + return fit in one period).
 laser
     ``mode_hop_free`` (sweep span), ``chirp_rate`` and ``return_rate``
     (|dΔ/dt| during each), ``actuator_range`` (drive within the safe input
@@ -384,11 +384,13 @@ def _after_chirp(plan) -> Finding | None:
         what += f"; they reach the target at {ac.arrival_velocity:.3g} m/s"
     advice = ("switch the slowing light off after the chirp (a shutter or an AOM), shorten chirp.hold and "
               "chirp.return_time, or end the chirp at a higher chirp.end_velocity")
-    from sweepgen.afterchirp import STOP_FRACTION
+    from sweepgen.afterchirp import STOP_FRACTION, WARN_FRACTION
 
     limit = STOP_FRACTION * v_end
     headroom, failed = _upper_room(loss, limit)
-    return _finding("after_chirp", loss, limit, "m/s", headroom, failed or ac.stopped, what, advice)
+    failed = failed or ac.stopped
+    status = "fail" if failed else "warn" if loss > WARN_FRACTION * v_end else "pass"
+    return Finding("after_chirp", status, loss, limit, "m/s", headroom, what, advice if status != "pass" else "")
 
 
 def period_finding(plan) -> Finding:

@@ -92,3 +92,14 @@ def test_bad_scenario_is_one_line_exit_2(write_scenario):
     missing = run("simulate", "no-such-scenario")
     assert missing.exit_code == 2 and "no-such-scenario" in missing.stderr
 
+
+
+def test_ideal_and_table_together_are_refused(fast, tmp_path):
+    got = run("simulate", fast, "--ideal", "--table", tmp_path / "old.csv")
+    assert got.exit_code == 2 and "--ideal" in got.stderr and "Traceback" not in got.stderr
+
+
+def test_without_a_laser_the_plan_is_played_and_said_so(fast):
+    doc = json.loads(run("simulate", fast, "--atoms", 100, "--json").stdout)
+    assert doc["played"]["detuning"] == "plan" and "names no laser" in doc["played"]["reason"]
+    assert "ideal_captured_fraction" not in doc

@@ -373,3 +373,54 @@ def test_temperatures_of_the_captured_atoms_are_about_their_own_mean():
     n_ph = r.flight.photons[cap].mean()
     assert doc["transverse_temperature"] == pytest.approx(sp.mass * v_r ** 2 * n_ph / (3 * C.k),
                                                           rel=4 / math.sqrt(cap.sum()))
+
+
+# -- 6. simulate what is played ------------------------------------------------------------------------
+def test_a_sampled_program_is_linear_between_samples_and_finds_its_extremes():
+    from sweepgen.programs import SampledProgram
+
+    rng = np.random.default_rng(4)
+    values = np.cumsum(rng.normal(size=1000))
+    prog = SampledProgram(values, 0.01)
+    dt = 0.01 / 1000
+    t = rng.uniform(-0.02, 0.03, 500)
+    # numpy.interp over one period and the first sample of the next (the program repeats)
+    grid = np.arange(1001) * dt
+    ref = np.interp(t % 0.01, grid, np.append(values, values[0]))
+    np.testing.assert_allclose([prog.at(x) for x in t], ref, rtol=0, atol=1e-9)
+    for t0 in (-0.003, 0.0, 0.0042, 0.0099):
+        for width in (1e-7, 3e-5, 2e-3, 0.011):
+            dense = np.array([prog.at(x) for x in np.linspace(t0, t0 + width, 3001)])
+            lo, hi = prog.extremes(t0, t0 + width)
+            assert lo <= dense.min() + 1e-12 and hi >= dense.max() - 1e-12
+            assert lo >= values.min() and hi <= values.max()
+
+
+@pytest.mark.slow
+def test_simulate_plays_what_the_hardware_plays(tmp_path):
+    # a slow first-order actuator (1 kHz corner): the laser lags the plan by about chirp rate × τ
+    # (Ogata, steady ramp lag, REFERENCES.md); the atoms fly through that, and the plan is flown beside
+    from conftest import CHECKED_SCENARIO, PIEZO_LASER, merged, write_checked
+    from sweepgen.programs import SampledProgram
+    from sweepgen.scenario import load_scenario
+    from sweepgen.simulate import played_detuning
+
+    slow = merged(PIEZO_LASER, response={"model": "first-order", "corner": "1 kHz"},
+                  limits={"max_chirp_rate": "10 THz/s", "max_slew": "1 kV/ms"})
+    quick = merged(CHECKED_SCENARIO, source={"model": "gaussian", "mean_velocity": "150 m/s", "pulse_time": "0 ms",
+                                            "velocity_spread": "10 m/s", "temperature": None},
+                   chirp={"start_time": "auto", "period": "30 ms"})
+    sc = load_scenario(str(write_checked(tmp_path, quick, slow)))
+    p = plan(sc)
+    played = played_detuning(sc, p)
+    assert played.hardware and isinstance(played.program, SampledProgram)
+    tau = 1 / (2 * math.pi * 1e3)
+    assert played.tracking_error == pytest.approx(p.chirp_rate_max * tau, rel=0.05)
+    assert not played_detuning(sc, p, ideal=True).hardware
+    doc = simulate(sc, atoms=400, seed=3, baselines=False).to_json()
+    assert doc["played"]["detuning"] == "hardware" and "first-order" in doc["played"]["reason"]
+    assert doc["ideal_captured_fraction"] > 0.5
+    # the lagging laser stays redder than planned: the atoms leave it faster
+    assert doc["final_velocity_mean"] > doc["ideal_final_velocity_mean"] + 1.0
+    ideal = simulate(sc, atoms=400, seed=3, baselines=False, ideal=True).to_json()
+    assert ideal["played"]["detuning"] == "plan" and "ideal_captured_fraction" not in ideal

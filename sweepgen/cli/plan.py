@@ -24,7 +24,13 @@ ROWS = [
     ("start_time", "chirp start after trigger", "s"),
     ("arrival_time", "arrival at target", "s"),
     ("photons_per_atom", "photons per atom", "photons"),
-    ("survival_fraction", "survival (dark-state loss)", ""),
+    ("max_rate_fraction", "largest scattering rate / Γ", ""),
+    ("effective_saturation", "saturation the atoms see on axis", ""),
+    ("beam_overlap", "atomic beam finding the design force", ""),
+    ("survival_fraction", "band left bright (dark states, depumping)", ""),
+    ("hold_velocity_loss", "velocity the hold takes", "m/s"),
+    ("return_velocity_loss", "velocity the return takes", "m/s"),
+    ("after_chirp_velocity", "those atoms reach the target at", "m/s"),
     ("doppler_limit", "Doppler limit", "K"),
     ("recoil_velocity", "recoil velocity", "m/s"),
 ]
@@ -86,7 +92,9 @@ def _print(sc, doc, report, plot_file):
         value = doc.get(key)
         if value is None and key in ("start_time", "arrival_time"):
             continue
-        if key == "survival_fraction" and sc.species.loss_per_photon == 0:
+        if key == "survival_fraction" and sc.species.loss_per_photon == 0 and sc.species.off_resonant is None:
+            continue
+        if value is None:
             continue
         rows.append((label, si(value, unit)))
     click.echo(table(rows))
@@ -98,5 +106,7 @@ def _print(sc, doc, report, plot_file):
             click.echo(f"  to fix {f.rule}: {f.advice}")
     if fails:
         click.echo(f"NOT PLAYABLE: the design breaks {len(fails)} limit(s); 'sweepgen check' judges every rule")
+    if sc.species.saturation_definition:
+        click.echo(f"light.saturation is measured against: {sc.species.saturation_definition}")
     if plot_file and report.finding("period").status != "fail":
         click.echo(f"plot: {plot_file}", err=True)
