@@ -217,14 +217,17 @@ class SampledPolynomial:
     highest first; piece ``k`` covers ``[x[k], x[k+1])``, the first and last
     pieces extend beyond the ends. Times at or past ``period`` wrap around it.
 
-    Consecutive samples cover few pieces: they are located once per call
-    (``searchsorted`` on the breakpoints), then each piece is a polynomial with
-    scalar coefficients, evaluated by Horner's rule in place, with no gather of
-    coefficients per sample. A call that covers more than :attr:`MAX_PIECES`
-    pieces gathers them per sample instead, which is then cheaper.
+    Consecutive samples cover few pieces: they are located once per block of
+    :attr:`BLOCK` samples (``searchsorted`` on the breakpoints), then each piece
+    is a polynomial with scalar coefficients, evaluated by Horner's rule in
+    place, with no gather of coefficients per sample. A block that covers more
+    than :attr:`MAX_PIECES` pieces gathers them per sample instead, which is
+    then cheaper; both give the same numbers.
     """
 
     MAX_PIECES = 16
+    #: samples evaluated at a time (their temporaries, 256 KiB each, stay in the processor's cache)
+    BLOCK = 1 << 15
 
     def __init__(self, x, c, sample_rate: float, period: float):
         self.x = np.ascontiguousarray(x, dtype=float)
@@ -234,16 +237,22 @@ class SampledPolynomial:
         self._last = len(self.x) - 2
 
     def __call__(self, start: int, stop: int, out=None) -> np.ndarray:
-        """Values at samples ``start .. stop − 1`` (written into ``out`` when given)."""
+        """Values at samples ``start .. stop − 1`` (written into ``out`` when given), a block of
+        :attr:`BLOCK` samples at a time."""
+        out = np.empty(max(stop - start, 0)) if out is None else out
+        for a in range(start, stop, self.BLOCK):
+            b = min(a + self.BLOCK, stop)
+            self._block(a, b, out[a - start:b - start])
+        return out
+
+    def _block(self, start: int, stop: int, out) -> None:
         t = np.arange(start, stop, dtype=float)
         t /= self.sample_rate
-        out = np.empty(t.size) if out is None else out
         wrap = int(np.searchsorted(t, self.period))
         self._sorted(t[:wrap], out[:wrap])
         if wrap < t.size:                     # past the period: increasing again if within the next one
             evaluate = self._sorted if t[-1] < 2.0 * self.period else self._gathered
             evaluate(np.mod(t[wrap:], self.period), out[wrap:])
-        return out
 
     def _piece(self, t: float) -> int:
         return min(max(int(np.searchsorted(self.x, t, side="right")) - 1, 0), self._last)
