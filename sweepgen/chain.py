@@ -569,7 +569,9 @@ def stage_from_section(sec: Section) -> Stage:
             beat = (lo, hi)
         st = OffsetLockStage(name, reference, sign, mult, div, beat, key=sec.key("beat_min"))
     elif kind == "vco":
-        if any(isinstance(sec.data.get(k), list) for k in ("voltage", "frequency")) or sec.has("coefficients"):
+        # measured points: a list with something in it (an empty one is a value of the wrong type)
+        if any(isinstance(sec.data.get(k), list) and sec.data.get(k) for k in ("voltage", "frequency")) \
+                or sec.has("coefficients"):
             st = VcoCalibrated(name, _calibration(sec, "voltage", "V", "frequency"), "V", sec.key("voltage"))
         else:
             coef = sec.quantity("coefficient", "Hz/V", example="40 MHz/V")
