@@ -46,6 +46,12 @@ class Atoms:
         zero = np.zeros(v.size)
         return cls(v, np.asarray(emission_time, dtype=float), zero, zero.copy(), zero.copy(), zero.copy())
 
+    @classmethod
+    def join(cls, parts) -> "Atoms":
+        """The atoms of several parts (chunks of one simulation), in order."""
+        names = ("velocity", "emission_time", "x", "y", "vx", "vy")
+        return cls(*(np.concatenate([getattr(p, name) for p in parts]) for name in names))
+
 
 @dataclass
 class Flight:
@@ -70,6 +76,19 @@ class Flight:
         return cls(fate=np.full(n, NOT_ARRIVED, dtype=np.int8), final_velocity=nan, arrival_time=nan.copy(),
                    photons=np.zeros(n), radius=nan.copy(), transverse_velocity=np.full((n, 2), np.nan),
                    dark=np.zeros(n, dtype=bool), depumped=np.zeros(n, dtype=bool))
+
+    @classmethod
+    def join(cls, parts) -> "Flight":
+        """The flights of several parts (chunks of one simulation), atoms in order; steps and atom-steps
+        summed, the smallest step and the largest velocity change over all parts."""
+        names = ("fate", "final_velocity", "arrival_time", "photons", "radius", "transverse_velocity", "dark",
+                 "depumped")
+        out = cls(*(np.concatenate([getattr(p, name) for p in parts]) for name in names))
+        out.steps = sum(p.steps for p in parts)
+        out.atom_steps = sum(p.atom_steps for p in parts)
+        out.smallest_step = min((p.smallest_step for p in parts), default=math.inf)
+        out.largest_velocity_change = max((p.largest_velocity_change for p in parts), default=0.0)
+        return out
 
 
 def velocity_width(species) -> float:

@@ -288,6 +288,7 @@ OPTION = {
     "--atoms": Range(1, 10**9, "", "beyond 10⁹ atoms the statistical error (3·10⁻⁵) is far below any other "
                                  "uncertainty; run several seeds instead"),
     "--seed": Range(0, 2**63 - 1, "", "a 63-bit seed"),
+    "--workers": Range(1, 4096, "", "processes on one computer; more than its cores gains nothing"),
     "--transition": Range("14 THz", "6 PHz", "Hz", "c/λ over the plausible wavelengths (50 nm to 20 µm)"),
     "--reference": DETUNING,
     "--range": (VOLTS, RF_DRIVE),

@@ -103,14 +103,17 @@ from sweepgen._flight import (ARRIVED, DARK, HORIZON_FACTOR, LARGE_COUNT, NOT_AR
                               propagate, velocity_width)
 from sweepgen.errors import InputError
 from sweepgen.programs import DetuningProgram, SampledProgram
+from sweepgen.workers import run as run_tasks
 
 __all__ = ["ARRIVED", "DARK", "HORIZON_FACTOR", "LARGE_COUNT", "NOT_ARRIVED", "POSITION_FRACTION",
            "STEP_FRACTION", "TURNED_BACK", "Atoms", "Flight", "DetuningProgram", "SampledProgram",
            "Played", "SimulationResult", "draw_atoms", "played_detuning", "played_from", "played_table", "expected_counts", "peak_saturation", "propagate", "simulate",
-           "velocity_width", "DEFAULT_ATOMS"]
+           "velocity_width", "DEFAULT_ATOMS", "CHUNK_ATOMS", "Chunk", "ChunkResult", "chunks", "fly_chunk"]
 
 #: default number of atoms (a few seconds for a shipped pulsed scenario)
 DEFAULT_ATOMS = 10000
+#: most atoms in one part of a simulation (:func:`chunks`); a part is one task for the workers
+CHUNK_ATOMS = 10000
 #: bins of the velocity and arrival-time histograms
 HISTOGRAM_BINS = 80
 #: the slow end of the velocity histograms: SLOW_BINS bins from 0 to SLOW_END × the capture velocity
@@ -355,8 +358,13 @@ def played_from(pb, schedule=None, fallback: str = "the plan itself") -> Played:
 
 def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None, ideal: bool = False,
              played: Played | None = None, baselines: bool = True,
-             step_fraction: float = STEP_FRACTION) -> SimulationResult:
-    """Run the Monte Carlo for ``scenario`` and its two baselines.
+             step_fraction: float = STEP_FRACTION, workers: int | None = None, cluster: str | None = None,
+             progress=None) -> SimulationResult:
+    """Run the Monte Carlo for ``scenario`` and its two baselines, in parts on every core.
+
+    The atoms are flown in parts of at most :data:`CHUNK_ATOMS` (:func:`chunks`),
+    each with its own random streams, through :func:`sweepgen.workers.run`: the
+    result depends on the seed and the atom count, not on the number of workers.
 
     Parameters
     ----------
@@ -378,6 +386,12 @@ def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None, 
         fractions are reported as zero atoms captured; for tests that need only the run).
     step_fraction : float
         The time step's yardstick (:data:`STEP_FRACTION`); smaller is finer.
+    workers : int, optional
+        Processes to use (default: one per core; 1 runs in this process).
+    cluster : str, optional
+        Address of a Dask scheduler to run the parts on instead.
+    progress : callable, optional
+        ``progress(done, total)`` after each part (:func:`sweepgen.workers.run`).
     """
     from sweepgen.planner import plan as make_plan
 
@@ -390,30 +404,80 @@ def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None, 
     schedule = p.schedule()
     if played is None:
         played = played_detuning(scenario, p, ideal=ideal)
-    streams = np.random.SeedSequence(seed).spawn(5)
-    initial = draw_atoms(scenario, atoms, np.random.default_rng(streams[0]))
-
-    def fly(program, stream, light=True):
-        return propagate(scenario, initial, program, np.random.default_rng(streams[stream]), light=light,
-                         step_fraction=step_fraction)
-
-    flight = fly(played.program, 1)
-    if baselines:
-        dark, fixed = fly(played.program, 2, light=False), fly(DetuningProgram.fixed(schedule.start_detuning), 3)
-    else:
-        dark = fixed = Flight.empty(atoms)
+    programs = (played.program, DetuningProgram.fixed(schedule.start_detuning),
+                DetuningProgram(schedule) if played.hardware else None)
+    tasks = chunks(scenario, atoms, seed, programs, baselines=baselines, step_fraction=step_fraction)
+    parts = run_tasks(fly_chunk, tasks, workers=workers, cluster=cluster, progress=progress)
+    initial = Atoms.join([c.atoms for c in parts])
+    flight = Flight.join([c.flight for c in parts])
+    dark, fixed = (Flight.join([c.no_light for c in parts]), Flight.join([c.fixed_frequency for c in parts])
+                   ) if baselines else (Flight.empty(atoms), Flight.empty(atoms))
     result = SimulationResult(scenario=scenario, seed=seed, atoms=initial, flight=flight, no_light=dark,
                               fixed_frequency=fixed, start_detuning=schedule.start_detuning,
                               chirp_start=p.chirp_start, arrival_design=p.arrival_time)
     result.extra["played"] = played.to_json()
     if played.hardware:
-        ideal_flight = fly(DetuningProgram(schedule), 4)
+        ideal_flight = Flight.join([c.ideal for c in parts])
         ideal_result = SimulationResult(scenario, seed, initial, ideal_flight, dark, fixed, 0.0, 0.0, None)
         cap = ideal_result.captured()
         result.extra["ideal_captured_fraction"] = float(cap.mean())
         result.extra["ideal_final_velocity_mean"] = (float(ideal_flight.final_velocity[cap].mean())
                                                      if cap.any() else math.nan)
     return result
+
+
+# -- chunks: the atoms in parts of at most CHUNK_ATOMS, each with its own random streams ---------------
+@dataclass(frozen=True)
+class Chunk:
+    """One part of a simulation: its atom count, its seed, and what it flies through."""
+
+    scenario: object
+    atoms: int
+    seed: np.random.SeedSequence
+    programs: tuple          # the played program, the fixed-frequency baseline's, the plan's (or None)
+    baselines: bool
+    step_fraction: float
+
+
+@dataclass
+class ChunkResult:
+    atoms: Atoms
+    flight: Flight
+    no_light: Flight | None
+    fixed_frequency: Flight | None
+    ideal: Flight | None
+
+
+def chunks(scenario, atoms: int, seed: int, programs: tuple, *, baselines: bool = True,
+           step_fraction: float = STEP_FRACTION) -> list[Chunk]:
+    """The simulation's parts: ``ceil(atoms / CHUNK_ATOMS)`` of them, sizes differing by at most one.
+
+    Their number depends on the atom count alone, and each draws from its own
+    seed, spawned from ``SeedSequence(seed)`` (a single part uses that seed
+    itself), so that the same seed gives the same atoms and the same result on
+    any computer, with any number of workers.
+    """
+    n = -(-atoms // CHUNK_ATOMS)
+    seeds = [np.random.SeedSequence(seed)] if n == 1 else np.random.SeedSequence(seed).spawn(n)
+    sizes = [atoms // n + (i < atoms % n) for i in range(n)]
+    return [Chunk(scenario, size, s, programs, baselines, step_fraction) for size, s in zip(sizes, seeds)]
+
+
+def fly_chunk(chunk: Chunk) -> ChunkResult:
+    """Draw a part's atoms and fly them: with the light, and through the baselines and the plan when asked
+    (random streams: the atoms, the light, no light, the fixed frequency, the plan)."""
+    streams = chunk.seed.spawn(5)
+    sc = chunk.scenario
+    initial = draw_atoms(sc, chunk.atoms, np.random.default_rng(streams[0]))
+    played, fixed, planned = chunk.programs
+
+    def fly(program, stream, light=True):
+        return propagate(sc, initial, program, np.random.default_rng(streams[stream]), light=light,
+                         step_fraction=chunk.step_fraction)
+
+    dark = fly(played, 2, light=False) if chunk.baselines else None
+    fixed_flight = fly(fixed, 3) if chunk.baselines else None
+    return ChunkResult(initial, fly(played, 1), dark, fixed_flight, fly(planned, 4) if planned is not None else None)
 
 
 def draw_atoms(scenario, n: int, rng: np.random.Generator) -> Atoms:

@@ -389,3 +389,52 @@ def test_quartering_the_step_changes_nothing_beyond_the_statistical_error(key):
     se = coarse["final_velocity_spread"] / math.sqrt(n_cap)
     assert abs(fine["final_velocity_mean"] - coarse["final_velocity_mean"]) < 3 * math.sqrt(2) * se
     assert fine["time_step"]["steps"] > 2.5 * coarse["time_step"]["steps"]
+
+
+# -- parts on every core (sweepgen.workers) ------------------------------------------------------
+def _doc_without_timing(result):
+    doc = result.to_json()
+    doc.pop("played")
+    return doc
+
+
+def test_the_same_seed_gives_the_same_result_with_any_number_of_workers(monkeypatch):
+    import sweepgen.simulate as simulation
+
+    monkeypatch.setattr(simulation, "CHUNK_ATOMS", 250)
+    sc = make_scenario(source=NARROW, chirp=QUIET)
+    seen = []
+    one = simulate(sc, atoms=900, seed=4, ideal=True, workers=1, progress=lambda d, t: seen.append((d, t)))
+    two = simulate(sc, atoms=900, seed=4, ideal=True, workers=2)
+    assert seen == [(k, 4) for k in range(1, 5)]          # four parts: 225 atoms each
+    np.testing.assert_array_equal(one.atoms.velocity, two.atoms.velocity)
+    for a, b in ((one.flight, two.flight), (one.no_light, two.no_light), (one.fixed_frequency, two.fixed_frequency)):
+        np.testing.assert_array_equal(a.fate, b.fate)
+        np.testing.assert_array_equal(a.final_velocity, b.final_velocity)
+        np.testing.assert_array_equal(a.photons, b.photons)
+        assert (a.steps, a.atom_steps) == (b.steps, b.atom_steps)
+    assert str(_doc_without_timing(one)) == str(_doc_without_timing(two))
+
+
+def test_parts_are_fixed_by_the_atom_count_and_seeded_from_spawned_sequences():
+    from sweepgen.simulate import CHUNK_ATOMS, chunks
+
+    sc = make_scenario()
+    parts = chunks(sc, 2 * CHUNK_ATOMS + 1, 7, (None, None, None))
+    sizes = [c.atoms for c in parts]
+    assert len(sizes) == 3 and sum(sizes) == 2 * CHUNK_ATOMS + 1 and max(sizes) - min(sizes) <= 1
+    expected = np.random.SeedSequence(7).spawn(3)
+    assert [c.seed.spawn_key for c in parts] == [s.spawn_key for s in expected]
+    assert [c.atoms for c in chunks(sc, CHUNK_ATOMS, 7, (None, None, None))] == [CHUNK_ATOMS]
+
+
+def test_a_single_part_flies_the_streams_of_the_seed_itself():
+    # up to CHUNK_ATOMS atoms the run is what it was before parts: streams SeedSequence(seed).spawn(5)
+    # (atoms, light, no light, fixed frequency, plan)
+    sc = make_scenario(source=NARROW, chirp=QUIET)
+    r = simulate(sc, atoms=400, seed=9, ideal=True)
+    streams = np.random.SeedSequence(9).spawn(5)
+    atoms = draw_atoms(sc, 400, np.random.default_rng(streams[0]))
+    flight = propagate(sc, atoms, DetuningProgram(plan(sc).schedule()), np.random.default_rng(streams[1]))
+    np.testing.assert_array_equal(r.flight.final_velocity, flight.final_velocity)
+    assert r.flight.steps == flight.steps

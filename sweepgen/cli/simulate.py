@@ -2,14 +2,19 @@
 
 from __future__ import annotations
 
+import sys
+
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import PlotFile, bounded, emit_json, handles_errors, json_option, laser_option, table
+from sweepgen.cli._common import (PlotFile, bounded, emit_json, handles_errors, json_option, laser_option,
+                                  progress_bar, table)
 from sweepgen.errors import InputError
 from sweepgen.simulate import DEFAULT_ATOMS
 
 
+#: from this many atoms on, a terminal shows a progress bar (the parts of the run as they finish)
+PROGRESS_ATOMS = 50_000
 #: above this many atoms, simulate states the memory and time it expects and asks before it starts
 CONFIRM_ATOMS = 1_000_000
 
@@ -29,8 +34,6 @@ def _duration(seconds: float) -> str:
 def _confirm_size(sc, atoms: int, seed: int, yes: bool, **how) -> None:
     """Refuse a simulation that cannot fit in memory; above CONFIRM_ATOMS state what one costs and
     start only when confirmed (on a terminal, or by --yes)."""
-    import sys
-
     from sweepgen import costs
 
     if atoms <= CONFIRM_ATOMS:
@@ -58,6 +61,9 @@ def _confirm_size(sc, atoms: int, seed: int, yes: bool, **how) -> None:
               callback=bounded("--atoms"), help="Number of atoms drawn from the source.")
 @click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True, callback=bounded("--seed"),
               help="Random seed; the same seed gives the same result.")
+@click.option("--workers", type=click.IntRange(min=1), default=None, callback=bounded("--workers"),
+              help="Processes to fly the atoms in (default: one per core). The result does not depend on "
+                   "it: the atoms are flown in parts of at most 10 000, each with its own random streams.")
 @click.option("--yes", is_flag=True, help=f"Start a simulation of more than {CONFIRM_ATOMS} atoms without asking "
                                           f"(the expected memory and time are printed all the same).")
 @json_option
@@ -72,7 +78,7 @@ def _confirm_size(sc, atoms: int, seed: int, yes: bool, **how) -> None:
               help="Play the planned sweep itself instead of what the hardware plays (the sweep through the "
                    "laser's chain, quantised by the generator, filtered by the actuator response).")
 @handles_errors
-def command(scenario, atoms, seed, yes, as_json, plot_file, table_file, laser_ref, ideal):
+def command(scenario, atoms, seed, workers, yes, as_json, plot_file, table_file, laser_ref, ideal):
     """Fly atoms from the source of SCENARIO (a built-in key or a path) through
     the slowing light with the detuning the hardware plays (the sweep through
     the laser's tuning chain, quantised to the generator's codes and filtered
@@ -96,7 +102,7 @@ def command(scenario, atoms, seed, yes, as_json, plot_file, table_file, laser_re
     """
     from sweepgen.checker import check_plan, require_playable
     from sweepgen.scenario import load_scenario
-    from sweepgen.simulate import played_table, simulate
+    from sweepgen.simulate import played_table
 
     if ideal and table_file:
         raise InputError("--ideal plays the planned sweep and --table an old table: give one of them",
@@ -106,7 +112,7 @@ def command(scenario, atoms, seed, yes, as_json, plot_file, table_file, laser_re
     sweep = _table_sweep(sc, table_file, laser_ref) if table_file else None
     played = played_table(sc, sweep) if sweep is not None else None
     _confirm_size(sc, atoms, seed, yes, plan=design.plan, ideal=ideal, played=played)
-    result = simulate(sc, atoms=atoms, seed=seed, plan=design.plan, ideal=ideal, played=played)
+    result = _run(sc, atoms, seed, workers, as_json, plan=design.plan, ideal=ideal, played=played)
     doc = result.to_json()
     if sweep is not None:
         doc["table"] = {"file": str(sweep.table.path), "table_sha256": sweep.table.table_sha256(),
@@ -152,6 +158,15 @@ def command(scenario, atoms, seed, yes, as_json, plot_file, table_file, laser_re
     click.echo(table(rows))
     if plot_file:
         click.echo(f"plot: {plot_file}", err=True)
+
+
+def _run(sc, atoms: int, seed: int, workers, quiet: bool, **how):
+    """The simulation on ``workers`` processes, with a progress bar on a terminal for long runs."""
+    from sweepgen.simulate import simulate
+
+    show = atoms >= PROGRESS_ATOMS and sys.stderr.isatty() and not quiet
+    with progress_bar(atoms, f"simulating {atoms} atoms", show=show) as progress:
+        return simulate(sc, atoms=atoms, seed=seed, workers=workers, progress=progress, **how)
 
 
 def _table_sweep(sc, table_file, laser_ref):
