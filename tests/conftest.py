@@ -25,10 +25,16 @@ from hypothesis import settings
 
 # Hypothesis profiles. "thorough" is the default: what ``pytest`` and CI run. "fast" is for
 # local runs, selected with Hypothesis's own option ``pytest --hypothesis-profile=fast``.
+# Both draw the same examples on every run (derandomized), so that a test run's verdict does
+# not depend on luck; "explore" draws fresh random examples, ten times as many, to hunt for
+# new failures (Hypothesis prints the failing example and how to reproduce it).
 # Tests give their example count through ``examples(n)``: n under the thorough profile.
 THOROUGH_EXAMPLES = 100
-settings.register_profile("thorough", max_examples=THOROUGH_EXAMPLES, deadline=None)
-settings.register_profile("fast", max_examples=THOROUGH_EXAMPLES // 10, deadline=None)
+settings.register_profile("thorough", max_examples=THOROUGH_EXAMPLES, deadline=None,
+                          derandomize=True)
+settings.register_profile("fast", max_examples=THOROUGH_EXAMPLES // 10, deadline=None,
+                          derandomize=True)
+settings.register_profile("explore", max_examples=THOROUGH_EXAMPLES * 10, deadline=None)
 settings.load_profile("thorough")
 
 # Every value a loader reads must have a plausible range (sweepgen/plausible.py): under the

@@ -168,3 +168,16 @@ def test_profile_chain_aom_vco_and_validation():
     dds_chain = chain_from_sections(sections({"stage": "offset_lock", "reference": "-1.6 GHz", "sign": 1,
                                               "divider": 8}, {"stage": "dds", "clock": "1 GHz", "bits": 32}))
     assert dds_chain.drive_unit == "Hz" and dds_chain.dds.bits == 32
+
+
+@pytest.mark.parametrize("points", [
+    {"voltage": [], "frequency": "30 MHz", "coefficient": "80 MHz/V"},
+    {"voltage": "0 V", "frequency": [], "coefficient": "80 MHz/V"},
+])
+def test_a_vco_stage_with_an_empty_list_names_the_key_of_the_wrong_form(points):
+    # an empty list is neither measured points nor a single value: the refusal names the key
+    # that has the wrong form (found by the input fuzzing suite), not a key the user never wrote
+    with pytest.raises(InputError) as exc:
+        chain_from_sections(sections({"stage": "vco", **points}))
+    wrong = next(k for k, v in points.items() if v == [])
+    assert f"chain[0].{wrong}" in str(exc.value)
