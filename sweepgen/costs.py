@@ -16,6 +16,9 @@ from __future__ import annotations
 import os
 import time
 
+#: default number of atoms (a few seconds for a shipped pulsed scenario); here, not in simulate.py,
+#: so that ``sweepgen simulate --help`` shows it without importing NumPy
+DEFAULT_ATOMS = 10000
 #: bytes of working memory per simulated atom (measured 400-420, see the module doc)
 BYTES_PER_ATOM = 500
 #: memory the simulation needs whatever the number of atoms (the schedule, histograms, ...)
@@ -42,12 +45,10 @@ def most_atoms(memory: int) -> int:
     return max((int(memory) - BASE_BYTES) // BYTES_PER_ATOM, 0)
 
 
-def simulation_time(scenario, atoms: int, *, seed: int = 0, **how) -> float:
+def simulation_time(pilot, atoms: int) -> float:
     """Seconds a simulation of ``atoms`` atoms takes at most on this computer, from a run of
-    :data:`PILOT_ATOMS` atoms scaled linearly (an upper estimate, see the module doc); ``how``
-    goes to :func:`sweepgen.simulate.simulate` (``ideal``, ``played``)."""
-    from sweepgen.simulate import simulate
-
+    :data:`PILOT_ATOMS` atoms scaled linearly (an upper estimate, see the module doc);
+    ``pilot(n)`` runs the simulation with ``n`` atoms (:func:`sweepgen.simulate.simulate`)."""
     start = time.perf_counter()
-    simulate(scenario, atoms=PILOT_ATOMS, seed=seed, **how)
+    pilot(PILOT_ATOMS)
     return (time.perf_counter() - start) * int(atoms) / PILOT_ATOMS

@@ -101,6 +101,7 @@ from sweepgen import physics
 from sweepgen._flight import (ARRIVED, DARK, HORIZON_FACTOR, LARGE_COUNT, NOT_ARRIVED, POSITION_FRACTION,
                               STEP_FRACTION, TURNED_BACK, Atoms, Flight, expected_counts, peak_saturation,
                               propagate, velocity_width)
+from sweepgen.costs import DEFAULT_ATOMS
 from sweepgen.errors import InputError
 from sweepgen.programs import DetuningProgram, SampledProgram
 from sweepgen.workers import run as run_tasks
@@ -110,8 +111,6 @@ __all__ = ["ARRIVED", "DARK", "HORIZON_FACTOR", "LARGE_COUNT", "NOT_ARRIVED", "P
            "Played", "SimulationResult", "draw_atoms", "played_detuning", "played_from", "played_table", "expected_counts", "peak_saturation", "propagate", "simulate",
            "velocity_width", "DEFAULT_ATOMS", "CHUNK_ATOMS", "Chunk", "ChunkResult", "chunks", "fly_chunk"]
 
-#: default number of atoms (a few seconds for a shipped pulsed scenario)
-DEFAULT_ATOMS = 10000
 #: most atoms in one part of a simulation (:func:`chunks`); a part is one task for the workers
 CHUNK_ATOMS = 10000
 #: bins of the velocity and arrival-time histograms

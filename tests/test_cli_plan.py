@@ -174,3 +174,18 @@ def test_plan_plot_png_and_svg(tmp_path):
     assert b"<svg" in svg.read_bytes()[:400]
     bad = run("plan", "rb87-chopped-oven", "--plot", str(tmp_path / "sweep.gif"))
     assert bad.exit_code == 2 and ".png or .svg" in bad.stderr
+
+
+HEAVY = ("numpy", "scipy", "pint", "matplotlib", "pyvisa", "serial", "h5py")
+
+
+@pytest.mark.parametrize("command", ["plan", "check", "simulate", "export", "upload", "calibrate", "inspect",
+                                     "compare", "emulate", "profiles", "demo"])
+def test_help_imports_no_heavy_library(command):
+    # DEVELOPERS.md, "Heavy imports are lazy": a command's --help is read before anything is computed
+    code = ("import sys; from sweepgen.cli import main\n"
+            f"try: main([{command!r}, '--help'])\n"
+            "except SystemExit: pass\n"
+            f"print(sorted({{m.split('.')[0] for m in sys.modules}} & set({HEAVY!r})))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip().splitlines()[-1] == "[]"

@@ -49,12 +49,10 @@ def guarded(args):
     from inside the physics are silenced (a result that matters is checked for being
     finite where it is made), and expected errors, including click's usage errors,
     become one line on stderr (plus the JSON error document under ``--json``)."""
-    import numpy as np
-
     ctx = click.get_current_context()
     words = list(args)
     ctx.meta[WANTS_JSON] = "--json" in (words[:words.index("--")] if "--" in words else words)
-    with warnings.catch_warnings(), np.errstate(all="ignore"):
+    with warnings.catch_warnings():     # also NumPy's floating-point warnings (its default mode is "warn")
         warnings.simplefilter("ignore")
         try:
             yield

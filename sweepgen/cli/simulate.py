@@ -10,7 +10,7 @@ from sweepgen._format import si
 from sweepgen.cli._common import (PlotFile, bounded, emit_json, handles_errors, json_option, laser_option,
                                   progress_bar, table)
 from sweepgen.errors import InputError
-from sweepgen.simulate import DEFAULT_ATOMS
+from sweepgen.costs import DEFAULT_ATOMS
 
 
 #: from this many atoms on, a terminal shows a progress bar (the parts of the run as they finish)
@@ -44,7 +44,9 @@ def _confirm_size(sc, atoms: int, seed: int, yes: bool, **how) -> None:
                          f"computer's {si(have, 'B')}; run several simulations of at most "
                          f"{costs.most_atoms(have // 2)} atoms with different --seed values and combine them "
                          f"(each seed gives an independent sample)", key="--atoms")
-    seconds = costs.simulation_time(sc, atoms, seed=seed, **how)
+    from sweepgen.simulate import simulate
+
+    seconds = costs.simulation_time(lambda n: simulate(sc, atoms=n, seed=seed, **how), atoms)
     click.echo(f"simulating {atoms} atoms needs about {si(need, 'B')} of memory and at most about "
                f"{_duration(seconds)} on this computer (scaled from {costs.PILOT_ATOMS} atoms)", err=True)
     if yes:
