@@ -29,12 +29,16 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from sweepgen._format import si
 from sweepgen.errors import InputError
 
 #: grid points per period for the cross-correlation
 BINS = 1 << 14
 #: correlation peaks refined by least squares
 CANDIDATES = 5
+#: a trace further from the chirp than this fraction of its span (RMS, at the best alignment) measures
+#: another sweep (a laser that does not sweep at all is a ramp's RMS, span/√12 ≈ 0.29 span, from it)
+MISFIT_FRACTION = 0.25
 EVENTS = ("trigger", "chirp_start", "chirp_end", "return_start", "return_end")
 
 
@@ -137,8 +141,11 @@ def align_xcorr(schedule, trace: Trace) -> tuple[float, dict]:
     t0 = trace.time[0]
     grid = np.arange(t0, trace.time[-1], h)
     m = np.interp(grid, trace.time, trace.detuning)
-    m -= m.mean()
-    fold = np.bincount(np.arange(len(grid)) % BINS, weights=m, minlength=BINS)
+    phase = np.arange(len(grid)) % BINS
+    # the mean trace over one period: a trace of 2.2 periods must not weigh a fifth of the period threefold
+    count = np.bincount(phase, minlength=BINS)
+    fold = np.bincount(phase, weights=m, minlength=BINS) / np.maximum(count, 1)
+    fold[count > 0] -= fold[count > 0].mean()
     p = schedule.detuning(np.arange(BINS) * h)
     p -= p.mean()
     corr = np.fft.irfft(np.conj(np.fft.rfft(fold)) * np.fft.rfft(p), n=BINS)
@@ -180,7 +187,21 @@ def compare(plan, trace: Trace, *, marker: str | None = None, marker_time: float
                  "chirp_error_max": float(np.abs(ec).max()), "chirp_error_at": float(t[in_chirp][i] % sched.period),
                  "chirp_error_rms": float(np.sqrt(np.mean(ec ** 2))), "chirp_error_mean": float(ec.mean()),
                  "error_max": float(np.abs(err).max()), "error_rms": float(np.sqrt(np.mean(err ** 2)))}
+    _refuse_misfit(plan, cmp)
     return cmp
+
+
+def _refuse_misfit(plan, cmp: Comparison) -> None:
+    """Bad input, not a tracking failure: a trace that even at its best alignment stays further from
+    the chirp (RMS) than :data:`MISFIT_FRACTION` of the chirp's span does not measure this plan."""
+    rms, span = cmp.stats["chirp_error_rms"], abs(plan.chirp_span)
+    if rms > MISFIT_FRACTION * span:
+        raise InputError(f"the trace does not fit the planned sweep: at the best alignment ({cmp.alignment['method']}) "
+                         f"it is {si(rms, 'Hz')} RMS from the chirp, {rms / span:.0%} of the chirp's span "
+                         f"{si(span, 'Hz')}; is it a measurement of this scenario (its period and detunings), "
+                         f"with the right marker, --reference, --beat-sign or --transition? (a laser that did not "
+                         f"sweep at all looks like this too)",
+                         file=cmp.trace.path, key=cmp.trace.measured)
 
 
 def to_json(cmp: Comparison) -> dict:

@@ -124,3 +124,33 @@ def test_compare_catches_an_injected_error(tmp_path):
     bad.write_text("time (s),detuning (Hz)\n" + "".join(f"{a:.7f},{b:.1f}\n" for a, b in zip(t, det)))
     result = run("compare", SCENARIO, bad)
     assert result.exit_code == 1 and "EXCEEDED" in result.stdout
+
+
+def _trace_of(name: str, path, periods: float = 2.2):
+    """A noiseless trace of scenario ``name``'s planned sweep over ``periods`` periods from its trigger."""
+    s = plan(load_scenario(name)).schedule()
+    t = np.arange(0, periods * s.period, s.period / 4000)
+    path.write_text("time (s),detuning (Hz)\n" + "".join(f"{a:.9g},{b:.9g}\n" for a, b in zip(t, s.detuning(t))))
+    return path
+
+
+@pytest.mark.parametrize("name", ["rb87-chopped-oven", "na23-continuous-focused", "caf-buffer-gas"])
+def test_compare_finds_its_own_plan_in_a_trace_of_a_fraction_of_periods(tmp_path, name):
+    # 2.2 periods: the fold is the mean over each phase, so the extra fifth of a period does not pull the lag
+    # (a linear chirp shifted in time is the same chirp shifted in detuning: a wrong lag is a false offset)
+    result = run("compare", name, _trace_of(name, tmp_path / "t.csv"), "--json")
+    assert result.exit_code == 0, result.output
+    doc = json.loads(result.stdout)
+    assert doc["chirp_error_rms"] < 1e-3 * doc["tolerance"]
+
+
+@pytest.mark.parametrize("name,trace", [("rb87-chopped-oven", "na23-continuous-focused"),
+                                        ("na23-continuous-focused", "caf-buffer-gas"),
+                                        ("rb87-chopped-oven", "caf-buffer-gas")])
+def test_compare_refuses_a_trace_of_another_sweep(tmp_path, name, trace):
+    path = _trace_of(trace, tmp_path / "other.csv")
+    result = run("compare", name, path)
+    assert result.exit_code == 2 and result.stdout == ""
+    line, = result.stderr.strip().splitlines()
+    assert line.startswith(f"sweepgen: error: {path}: key 'detuning': the trace does not fit the planned sweep")
+    assert "Traceback" not in result.output
