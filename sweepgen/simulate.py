@@ -98,6 +98,7 @@ import numpy as np
 from scipy import constants as C
 
 from sweepgen import physics
+from sweepgen._format import si
 from sweepgen._flight import (ARRIVED, DARK, HORIZON_FACTOR, LARGE_COUNT, NOT_ARRIVED, POSITION_FRACTION,
                               STEP_FRACTION, TURNED_BACK, Atoms, Flight, expected_counts, peak_saturation,
                               propagate, velocity_width)
@@ -350,7 +351,7 @@ def played_from(pb, schedule=None, fallback: str = "the plan itself") -> Played:
     in_chirp = schedule.kinds(tracking.time) == "chirp"
     error = float(np.max(np.abs(tracking.error[in_chirp]))) if np.any(in_chirp) else 0.0
     quantised = "quantised to its codes, " if pb.report.quantisation is not None else ""
-    reason = (f"laser '{pb.laser.key}' driven by generator '{pb.generator.key}' at {pb.report.rate_choice.sample_rate:.6g} Sa/s, "
+    reason = (f"laser '{pb.laser.key}' driven by generator '{pb.generator.key}' at {si(pb.report.rate_choice.sample_rate, 'Sa/s')}, "
               f"{quantised}through the actuator response ({pb.laser.response.model})")
     return Played(SampledProgram(tracking.actual, schedule.period), True, reason, error, pb.report.rate_choice.sample_rate)
 

@@ -438,3 +438,13 @@ def test_a_single_part_flies_the_streams_of_the_seed_itself():
     flight = propagate(sc, atoms, DetuningProgram(plan(sc).schedule()), np.random.default_rng(streams[1]))
     np.testing.assert_array_equal(r.flight.final_velocity, flight.final_velocity)
     assert r.flight.steps == flight.steps
+
+def test_the_played_reason_prints_the_sample_rate_with_a_prefix():
+    # a person reads this line (simulate's human output, the demo's summary): 8 MSa/s, not 8e+06 Sa/s
+    from sweepgen.planner import plan
+    from sweepgen.scenario import load_scenario
+    from sweepgen.simulate import played_detuning
+
+    sc = load_scenario("rb87-chopped-oven")
+    played = played_detuning(sc, plan(sc))
+    assert played.sample_rate == 8e6 and " at 8 MSa/s, " in played.reason
