@@ -522,11 +522,22 @@ def _stage_ranges(chain, sweep) -> list[Finding]:
     for st, up in chain.upstream_values(sweep.detuning):
         for r in st.ranges():
             vals = st.range_values(up, r)
-            out.append(within("stage_range", float(np.min(vals)), float(np.max(vals)), r.low, r.high, r.unit,
-                              f"{r.label}: {np.min(vals):.6g} to {np.max(vals):.6g} {r.unit}, range "
-                              f"{r.low:.6g} to {r.high:.6g} {r.unit}" + (f" ({r.key})" if r.key else ""),
-                              "move the set point of the stage, or narrow the sweep"))
+            lo, hi = float(np.min(vals)), float(np.max(vals))
+            f = within("stage_range", lo, hi, r.low, r.high, r.unit,
+                       f"{r.label}: {si(lo, r.unit, 6)} to {si(hi, r.unit, 6)}, range {si(r.low, r.unit, 6)} to "
+                       f"{si(r.high, r.unit, 6)}", "move the set point of the stage, or narrow the sweep")
+            f.message += _edge_key(r.key, f.limit == r.high)
+            out.append(f)
     return out
+
+
+def _edge_key(key: str, upper: bool) -> str:
+    """`` (chain[0].rf_max)``: where the edge a stage-range finding names was written."""
+    if not key:
+        return ""
+    if upper and key.endswith("_min"):
+        key = key[:-len("_min")] + "_max"
+    return f" ({key})"
 
 
 # -- generator rules ---------------------------------------------------------------

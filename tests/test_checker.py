@@ -485,3 +485,31 @@ def test_tracking_beyond_the_simulated_points_is_within_one_step(tmp_path):
     f = report.finding("tracking")
     assert abs(f.value - worst) <= step                  # the coarser hold staircase: one simulated step
     assert 0.1 * f.limit < worst < f.limit and f.status == "pass"
+
+
+def test_the_sodium_demo_uses_most_of_its_aom_band_and_vco_input_and_says_so():
+    # The three range warnings of na23-continuous-focused are the physics of its hardware, not an artefact:
+    # an 800 MHz optical chirp through a double pass takes 400 MHz of RF (Δ = set_point − 2 (f − centre) for
+    # the minus-first order twice), 74 % of the 80-620 MHz band, centred; each end is 70.6 MHz from its edge.
+    from sweepgen.planner import plan
+    from sweepgen.playback import prepare
+    from sweepgen.scenario import load_scenario
+
+    sc = load_scenario("na23-continuous-focused")
+    p = plan(sc)
+    rf = sorted(350e6 + (-456e6 - d) / 2 for d in (p.start_detuning, p.end_detuning))
+    assert rf[0] - 80e6 == pytest.approx(620e6 - rf[1], rel=1e-3)          # centred in the band
+    findings = {(f.rule, f.unit): f for f in prepare(sc).report.findings if f.status == "warn"}
+    assert set(findings) == {("actuator_range", "V"), ("stage_range", "Hz"), ("stage_range", "V")}
+    aom = findings["stage_range", "Hz"]
+    assert aom.value == pytest.approx(rf[1], rel=1e-9) and aom.limit == 620e6
+    assert aom.headroom == pytest.approx((620e6 - rf[1]) / 620e6) and "(chain[0].rf_max)" in aom.message
+    # the VCO's calibration (the laser file's points), fitted by NumPy's own least squares, read backwards
+    volts = np.arange(11.0)
+    mhz = [30.00, 109.48, 187.61, 264.65, 340.93, 416.00, 490.58, 564.37, 636.60, 708.53, 780.12]
+    fit = np.polynomial.Polynomial.fit(volts, np.array(mhz) * 1e6, 3)
+    v_low = min(r.real for r in (fit - rf[0]).roots() if abs(r.imag) < 1e-9 and 0 <= r.real <= 10)
+    for key in (("actuator_range", "V"), ("stage_range", "V")):
+        f = findings[key]
+        assert f.value == pytest.approx(v_low, abs=1e-3) and f.limit == 0.0
+        assert f.headroom == pytest.approx(v_low / 10.0, abs=1e-4)      # a zero edge against the range's width
