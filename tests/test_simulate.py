@@ -439,6 +439,7 @@ def test_a_single_part_flies_the_streams_of_the_seed_itself():
     np.testing.assert_array_equal(r.flight.final_velocity, flight.final_velocity)
     assert r.flight.steps == flight.steps
 
+
 def test_the_played_reason_prints_the_sample_rate_with_a_prefix():
     # a person reads this line (simulate's human output, the demo's summary): 8 MSa/s, not 8e+06 Sa/s
     from sweepgen.planner import plan
