@@ -81,13 +81,13 @@ class Host:
 @pytest.fixture
 def host():
     h = Host(BoardEmulator(GEN))
-    h.ok(T.HELLO, fr.hello_payload())
+    h.ok(T.HELLO, fr.hello_payload(1))
     return h
 
 
 def test_hello_announces_the_profile():
     h = Host(BoardEmulator(GEN, max_payload=1028))
-    caps = fr.Capabilities.unpack(h.ok(T.HELLO, fr.hello_payload()))
+    caps = fr.Capabilities.unpack(h.ok(T.HELLO, fr.hello_payload(1)))
     assert caps.version == 1 and caps.formats == (fr.Format.UINT32,)
     assert caps.word_bits == 32 and caps.clock == 1_000_000_000 and caps.dac_bits == 0
     assert caps.memory == GEN.sampling.memory and caps.max_payload == 1028
@@ -136,7 +136,7 @@ def test_the_board_commits_exactly_the_table_whose_crc_matches(seed, count, fram
     if tamper is not None:
         sent[tamper % len(sent)] ^= 1 << bit      # damaged before framing: every frame CRC is valid
     h = Host(BoardEmulator(GEN))
-    h.ok(T.HELLO, fr.hello_payload())
+    h.ok(T.HELLO, fr.hello_payload(1))
     h.upload(bytes(sent), count, crc=crc, frame=frame)
     if tamper is None:
         h.ok(T.END)
@@ -156,8 +156,8 @@ def test_a_retransmitted_frame_gets_the_same_reply_without_being_executed_again(
     assert again == first
     assert ("repeat", {"type": "data", "seq": 40}) in host.board.events
     # HELLO is always executed: it discards the unfinished upload even when repeated
-    host.send(T.HELLO, fr.hello_payload(), seq=41)
-    host.send(T.HELLO, fr.hello_payload(), seq=41)
+    host.send(T.HELLO, fr.hello_payload(1), seq=41)
+    host.send(T.HELLO, fr.hello_payload(1), seq=41)
     assert host.refused(T.DATA, fr.data_payload(200, data[200:])).reason == R.BAD_STATE
 
 
@@ -168,7 +168,7 @@ def begin(count=10, fmt=fr.Format.UINT32, rate=RATE, crc=0):
 @pytest.mark.parametrize("steps, msg_type, payload, reason, detail", [
     ([], T.BEGIN, begin(), R.NO_SESSION, 0),
     ([], T.ARM, b"", R.NO_SESSION, 0),
-    ([(T.HELLO, b"\x01")], T.HELLO, b"\x02", R.BAD_VERSION, 1),
+    ([(T.HELLO, b"\x01")], T.HELLO, b"\x03", R.BAD_VERSION, 2),
     ([(T.HELLO, b"\x01")], T.HELLO, b"", R.BAD_LENGTH, 1),
     ([(T.HELLO, b"\x01")], T.STATUS, b"\x00", R.BAD_LENGTH, 0),
     ([(T.HELLO, b"\x01")], T.BEGIN, begin()[:15], R.BAD_LENGTH, 16),
@@ -268,7 +268,7 @@ def test_faults_strike_eligible_frames_after_skip_in_order():
 
 def fault_host(faults):
     h = Host(BoardEmulator(GEN, faults={"skip": 0, **faults}))
-    h.ok(T.HELLO, fr.hello_payload())
+    h.ok(T.HELLO, fr.hello_payload(1))
     h.ok(T.BEGIN, begin(count=2, crc=zlib.crc32(bytes(8))))
     return h
 
@@ -379,9 +379,12 @@ def test_the_announced_memory_is_what_the_emulator_will_buffer():
     from sweepgen.emulators.board import MAX_TABLE_BYTES, capabilities_for
 
     huge = dataclasses.replace(GEN, sampling=dataclasses.replace(GEN.sampling, memory=10**300))
-    caps = capabilities_for(huge)                # a profile's absurd memory does not reach the wire
+    caps = capabilities_for(huge, version=1)     # a profile's absurd memory does not reach the wire
     assert caps.memory == MAX_TABLE_BYTES // 4   # 32-bit tuning words
     assert fr.Capabilities.unpack(caps.pack()) == caps
+    caps2 = capabilities_for(huge)               # version 2 also offers 64-bit words for them
+    assert caps2.memory == MAX_TABLE_BYTES // 8
+    assert fr.CapabilitiesV2.unpack(caps2.pack()) == caps2
 
 
 def test_serve_forever_calls_ready_with_its_port_and_stops_on_request():

@@ -99,7 +99,8 @@ def test_board_emulator():
 
 # --- the ramp-board emulator's fault switches on the command line -------------------------------------
 def board_status(url: str) -> fr.Status:
-    """Ask the board for its STATUS over a fresh connection (the frame protocol, by hand)."""
+    """Ask the board for its STATUS over a fresh connection (the frame protocol, by hand); a version-2
+    reply is given as its channel 1 in the version-1 shape."""
     decoder = fr.Decoder()
     with socket.create_connection(socket_address(url), timeout=5) as sock:
         deadline = time.monotonic() + 5
@@ -113,7 +114,12 @@ def board_status(url: str) -> fr.Status:
                         if frame.seq == 0x5A and frame.type == fr.MsgType.ACK:
                             request, data = fr.parse_ack(frame.payload)
                             assert request == fr.MsgType.STATUS
-                            return fr.Status.unpack(data)
+                            st = fr.parse_status(data)
+                            if isinstance(st, fr.Status):
+                                return st
+                            t = st.tables[0]
+                            return fr.Status(st.state, st.armed, fr.TableId(t.format, t.count, t.crc,
+                                                                            int(t.rate.value)), st.received)
             except socket.timeout:
                 continue
     raise AssertionError("the board did not answer STATUS")

@@ -110,6 +110,7 @@ def test_dry_run_prints_the_frame_log_without_connecting(rendered):
         assert url.server.connections == 0
     assert result.exit_code == 0, result.stderr
     doc = json.loads(result.stdout)
-    assert [e["message"] for e in doc["log"] if e["kind"] != "record"][:4] == ["HELLO", "DISARM", "BEGIN", "DATA"]
+    assert [e["message"] for e in doc["log"] if e["kind"] != "record"][:5] == ["HELLO", "DISARM", "TRIGGER", "BEGIN",
+                                                                                 "DATA"]
     assert doc["log"][0]["kind"] == "record" and doc["table_sha256"] == table.sha256
     assert doc["table"]["crc32"] == table.crc32

@@ -19,7 +19,8 @@ import pytest
 from hypothesis import given, settings, strategies as st
 
 from sweepgen.drivers import load
-from sweepgen.drivers.serial_board import SerialDriver, _Plan, _TableBytes
+from sweepgen.drivers._serial_session import TableBytes
+from sweepgen.drivers.serial_board import BoardTiming, SerialDriver, _Options, _Plan
 from sweepgen.emulators.board import BoardEmulator, FaultPlan
 from sweepgen.errors import CheckFailed, InputError, InstrumentError
 from sweepgen.generator import load_generator
@@ -47,13 +48,16 @@ def test_upload_over_a_socket_url_commits_the_rendered_table():
         assert committed.crc == table.crc32 == zlib.crc32(words.tobytes())
         assert committed.rate == 1_000_000 and not url.board.armed
     assert report["verification"] == {"method": "crc32", "expected_crc32": table.crc32,
-                                      "instrument_crc32": table.crc32, "ok": True, "committed": True}
+                                      "instrument_crc32": table.crc32, "ok": True, "committed": True,
+                                      "channels": {"1": table.crc32}}
     n_frames = -(-words.nbytes // 1024)
-    assert report["bytes"] == words.nbytes + n_frames * (fr.OVERHEAD + fr.DATA_PREFIX) + (13 + 28 + 4 * 12)
+    # HELLO 13 bytes, BEGIN 32, TRIGGER 20, DISARM, END, COMMIT and STATUS 12 each (version 2)
+    assert report["bytes"] == words.nbytes + n_frames * (fr.OVERHEAD + fr.DATA_PREFIX) + (13 + 32 + 20 + 4 * 12)
     assert report["armed"] is False and report["retries"] == 0 and report["restarts"] == 0
     assert report["frames"] == -(-words.nbytes // 1024)
-    assert [s["step"] for s in report["steps"]] == ["open", "hello", "disarm", "begin", "data", "verify",
-                                                  "commit", "status"]
+    assert [s["step"] for s in report["steps"]] == ["open", "hello", "disarm", "trigger", "begin", "data",
+                                                  "verify", "commit", "status"]
+    assert report["protocol"] == 2 and report["trigger"] == "free-running, repeated, start delay 0 ns"
     assert seen[0] == (0, words.nbytes) and seen[-1] == (words.nbytes, words.nbytes)
     assert all(a[0] <= b[0] for a, b in zip(seen, seen[1:]))
 
@@ -121,7 +125,8 @@ timeout = "0.2 s"
         report = deliver_to_board(table, url, gen)
         assert np.array_equal(url.board.committed.codes(), codes)
     assert report["table"]["format"] == "int16"
-    assert report["board"]["dac_bits"] == 16 and report["board"]["formats"] == ["int16", "uint16"]
+    channel = report["board"]["channels"][0]
+    assert channel["bits"] == 16 and channel["formats"] == ["int16"] and channel["range_v"] == [-5.0, 5.0]
 
 
 def test_48_bit_tuning_words_travel_as_uint64(tmp_path):
@@ -130,7 +135,7 @@ def test_48_bit_tuning_words_travel_as_uint64(tmp_path):
     with virtual_board(gen) as url:
         report = deliver_to_board(table, url, gen)
         assert np.array_equal(url.board.committed.codes(), words)
-    assert report["table"]["format"] == "uint64" and report["board"]["word_bits"] == 48
+    assert report["table"]["format"] == "uint64" and report["board"]["channels"][0]["bits"] == 48
 
 
 # --------------------------------------------------------------------------- faults
@@ -246,7 +251,7 @@ def test_words_outside_the_output_range_are_never_sent():
 @pytest.mark.parametrize("change, error, match", [
     ({"count": 300000}, CheckFailed, "exceed the board memory"),
     ({"rate": 2e6}, CheckFailed, "not one the board plays"),
-    ({"rate": 250000.5}, CheckFailed, "whole number of samples per second"),
+    ({"rate": 250000.5}, CheckFailed, "not one the board plays"),
     ({"dtype": "<f4"}, InputError, "float32"),
 ])
 def test_tables_the_board_cannot_take_are_refused_before_connecting(change, error, match):
@@ -266,7 +271,7 @@ def test_tables_the_board_cannot_take_are_refused_before_connecting(change, erro
 def test_table_bytes_reads_any_range_across_chunk_boundaries(count, chunk, reads):
     table, words = dds_table(count)
     data = words.tobytes()
-    source = _TableBytes(_Plan(table, GEN, {}), chunk=chunk)
+    source = TableBytes(_Plan(table, GEN, _Options({})), chunk=chunk)
     for offset, n in reads:
         assert source.read(offset, n) == data[offset:offset + n]
 
@@ -291,12 +296,12 @@ def test_dry_run_checks_and_reports_the_frames_without_connecting():
     report = deliver_to_board(table, "socket://127.0.0.1:9", dry_run=True, arm=True)
     assert report["dry_run"] and report["table"]["crc32"] == zlib.crc32(words.tobytes())
     log = report["log"]
-    assert [e["message"] for e in log] == ["HELLO", "DISARM", "BEGIN", "DATA", "END", "COMMIT", "STATUS",
-                                           "ARM", "STATUS"]
-    data = log[3]
+    assert [e["message"] for e in log] == ["HELLO", "DISARM", "TRIGGER", "BEGIN", "DATA", "END", "COMMIT",
+                                           "STATUS", "ARM", "STATUS"]
+    data = log[4]
     n = -(-words.nbytes // 1024)
     assert data["bytes"] == words.nbytes + n * (fr.OVERHEAD + fr.DATA_PREFIX)
-    assert log[0]["bytes"] == 13 and log[2]["bytes"] == 28
+    assert log[0]["bytes"] == 13 and log[2]["bytes"] == 20 and log[3]["bytes"] == 32
     assert report["bytes"] == sum(e["bytes"] for e in log)
 
 
@@ -382,3 +387,55 @@ def test_an_independent_board_written_from_the_document_accepts_an_upload(link):
     assert report["board"]["name"] == "doc board" and report["retries"] == 0
     # the board announced 512-byte payloads: 508 table bytes per frame, whole words
     assert next(s for s in report["steps"] if s["step"] == "data")["frame_bytes"] == 508
+
+
+# --------------------------------------------------------------------------- versions and triggers
+
+
+PULSED = BoardTiming(source="external", edge="rising", once=False, delay=25e-6)
+
+
+def test_a_version_1_board_is_spoken_to_in_version_1():
+    table, words = dds_table(2000)
+    with virtual_board(GEN, version=1) as url:
+        report = deliver_to_board(table, url)
+        assert np.array_equal(url.board.committed.codes(), words)
+        hellos = [e[1] for e in url.board.events if e[0] in ("hello", "refuse") and e[1].get("type", "hello") == "hello"]
+    assert report["protocol"] == 1 and report["verification"]["ok"]
+    # HELLO(2) refused with BAD_VERSION (detail 1), then HELLO(1) acknowledged
+    assert [h.get("reason") or f"hello {h['version']}" for h in hellos] == ["BAD_VERSION", "hello 1"]
+    assert "trigger" not in [s["step"] for s in report["steps"]]
+
+
+@pytest.mark.parametrize("board_options, reason", [
+    ({"version": 1}, "protocol version 1, which has no trigger"),
+    ({"sources": ("free",)}, "cannot start on an external trigger (it offers: free-running); a pulsed scenario "
+                             "would free-run"),
+])
+def test_a_pulsed_upload_to_a_board_that_cannot_trigger_is_refused_before_anything_is_uploaded(board_options,
+                                                                                            reason):
+    table, _ = dds_table(2000)
+    with virtual_board(GEN, **board_options) as url:
+        with pytest.raises(InstrumentError, match="step 'hello'") as info:
+            deliver_to_board(table, url, arm=True, options={"timing": PULSED})
+        events = [e[0] for e in url.board.events]
+    assert reason in str(info.value) and "nothing was uploaded or armed" in str(info.value)
+    assert info.value.exit_code == 1
+    assert "begin" not in events and "arm" not in events and url.board.committed is None
+    assert str(info.value).endswith("the board's output was switched off")
+
+
+def test_a_pulsed_upload_sets_the_external_trigger_and_the_start_delay():
+    table, _ = dds_table(2000)
+    with virtual_board(GEN) as url:
+        report = deliver_to_board(table, url, arm=True, options={"timing": PULSED})
+        trigger = url.board.trigger
+        assert url.board.armed
+    assert trigger == fr.Trigger(fr.Source.EXTERNAL, fr.Edge.RISING, fr.Mode.REPEAT, 25_000)
+    assert report["trigger"] == "external, rising edge, repeated, start delay 25000 ns" and report["armed"]
+
+
+def test_a_person_cannot_pass_the_timing_as_a_driver_option():
+    table, _ = dds_table(10)
+    with pytest.raises(InputError, match="no option 'timing'"):
+        deliver_to_board(table, "socket://127.0.0.1:9", options={"timing": "external"})

@@ -377,7 +377,7 @@ class BoardPeer(Listening, DocBoard):
                 if self.stop.wait(0.2):
                     return
                 conn.sendall(bytes([byte]))
-        elif self.fault == "endless" and len(self.requests) > 1:
+        elif self.fault == "endless" and any(t != 0x01 for t in self.requests):   # after HELLO
             conn.settimeout(None)                 # push for as long as the host reads
             while not self.stop.is_set():
                 conn.sendall(b"\x00\xa5" * 4096)

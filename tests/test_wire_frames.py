@@ -220,16 +220,64 @@ def _doc_examples():
 
 def test_the_documents_worked_examples_are_valid_frames():
     examples = _doc_examples()
-    assert len(examples) == 4
+    assert len(examples) == 11
     for raw in examples:
         # the CRC a reader checks with any CRC-32 (ISO-HDLC): zlib.crc32 as reference implementation
         assert struct.unpack("<I", raw[-4:])[0] == zlib.crc32(raw[:-4])
         fr.decode(raw)
-    hello, data, ack, refuse = (fr.decode(r) for r in examples)
+    hello, data, ack, refuse = (fr.decode(r) for r in examples[:4])
     assert hello == fr.Frame(fr.MsgType.HELLO, 1, fr.hello_payload(1))
     assert fr.parse_data(data.payload) == (4096, struct.pack("<2I", 0x02AAA000, 0x02AAA100))
     assert fr.parse_ack(ack.payload) == (fr.MsgType.DATA, struct.pack("<I", 4104))
     assert fr.Refusal.unpack(refuse.payload) == fr.Refusal(fr.MsgType.END, fr.Reason.TABLE_CRC, 0xDEADBEEF)
+
+
+def test_the_documents_version_2_examples_say_what_the_text_says():
+    hello2, old_board, caps, trigger, bad_trigger, begin, status = (fr.decode(r) for r in _doc_examples()[4:])
+    assert hello2 == fr.Frame(fr.MsgType.HELLO, 1, b"\x02")
+    assert fr.Refusal.unpack(old_board.payload) == fr.Refusal(fr.MsgType.HELLO, fr.Reason.BAD_VERSION, 1)
+    request, data = fr.parse_ack(caps.payload)
+    c = fr.CapabilitiesV2.unpack(data)
+    assert request == fr.MsgType.HELLO and len(c.channels) == 2 and c.name == "demo"
+    assert c.sources == (fr.Source.FREE, fr.Source.EXTERNAL) and c.edges == (fr.Edge.RISING,)
+    assert c.rates == (fr.Rate(1_000_000, 1), fr.Rate(1_000_000, 3)) and c.max_payload == 4100
+    lo, hi = c.channels[0].range_hz()
+    # FTW = round(f 2^32 / 1 GHz): the words of 1 MHz and 400 MHz (common practice)
+    assert c.channels[0].low == round(1e6 * 2**32 / 1e9) and c.channels[0].high == round(400e6 * 2**32 / 1e9)
+    assert lo == pytest.approx(1e6, rel=1e-6) and hi == pytest.approx(400e6, rel=1e-9)
+    assert fr.Trigger.unpack(trigger.payload) == fr.Trigger(fr.Source.EXTERNAL, fr.Edge.RISING, fr.Mode.ONCE, 2500)
+    assert fr.Refusal.unpack(bad_trigger.payload) == fr.Refusal(fr.MsgType.TRIGGER, fr.Reason.BAD_TRIGGER, 1)
+    b = fr.BeginV2.unpack(begin.payload)
+    assert b == fr.BeginV2(fr.Format.UINT32, 2, 1000, 0x12345678, fr.Rate(1_000_000, 3))
+    assert b.rate.same(fr.Rate(2_000_000, 6)) and not b.rate.same(fr.Rate(333_333, 1))
+    st = fr.parse_status(fr.parse_ack(status.payload)[1])
+    assert st.trigger.delay == 2500 and st.tables == (fr.TableIdV2(3, 1, 1000, 0x12345678, fr.Rate(1_000_000, 3)),)
+
+
+@settings(max_examples=examples(60))
+@given(n_ch=st.integers(1, fr.MAX_CHANNELS), rates=st.lists(st.tuples(st.integers(1, 2**32 - 1),
+                                                                       st.integers(1, 2**32 - 1)), min_size=1,
+                                                             max_size=255),
+       sources=st.sets(st.sampled_from(list(fr.Source))), name=st.text(max_size=80))
+def test_version_2_capabilities_round_trip_and_fit_the_longest_reply(n_ch, rates, sources, name):
+    ch = fr.ChannelCaps(fr.Output.VOLTAGE, (fr.Format.INT16,), 16, 8192, -32768, 32767, 0, -5_000_000, 5_000_000)
+    caps = fr.CapabilitiesV2((ch,) * n_ch, tuple(sorted(sources)), (fr.Edge.FALLING,), 512, 0, 0,
+                             tuple(fr.Rate(*r) for r in rates), name)
+    raw = caps.pack()
+    back = fr.CapabilitiesV2.unpack(raw)
+    assert back.channels == caps.channels and back.rates == caps.rates and back.sources == caps.sources
+    assert len(fr.ack_payload(1, raw)) <= fr.MAX_REPLY
+
+
+@pytest.mark.parametrize("formats, low, high, preferred, chosen", [
+    ((fr.Format.UINT32, fr.Format.UINT64), 5, 2**31, fr.Format.UINT32, fr.Format.UINT32),   # its own format
+    ((fr.Format.UINT64,), 5, 2**31, fr.Format.UINT32, fr.Format.UINT64),                     # widened
+    ((fr.Format.UINT16, fr.Format.INT16), 0, 1000, fr.Format.UINT32, fr.Format.INT16),       # narrowest, lower number
+    ((fr.Format.UINT16,), -1, 1000, fr.Format.INT16, None),                                  # a negative sample
+    ((fr.Format.INT16, fr.Format.UINT32), 0, 40000, fr.Format.UINT16, fr.Format.UINT32),
+])
+def test_the_host_chooses_the_narrowest_format_that_holds_every_sample(formats, low, high, preferred, chosen):
+    assert fr.choose_format(formats, low, high, preferred) == chosen
 
 
 def test_the_document_lists_every_message_type_and_reason_code():

@@ -75,10 +75,16 @@ def _board_fault_options(command):
 @click.option("--mute", is_flag=True, help="Fault: never answer a query.")
 @click.option("--error-after-upload", is_flag=True, help="Fault: report a hardware error after each upload.")
 @click.option("--corrupt-readback", is_flag=True, help="Fault: flip one bit in every readback and checksum.")
+@click.option("--protocol-version", type=click.IntRange(1, 2), default=None, metavar="N",
+              help="Board (--board): the highest frame-protocol version it speaks (default 2; "
+                   "1 is a board without trigger or channels).")
+@click.option("--trigger-sources", default=None, metavar="LIST",
+              help="Board (--board, version 2): the trigger sources it offers, comma-separated among "
+                   "free, external, software (default all; 'free' is a board that cannot be triggered).")
 @_board_fault_options
 @handles_errors
 def command(host, port, generator_ref, board, identity, drop_after, delay, mute, error_after_upload,
-            corrupt_readback, fault_on, fault_skip, stall_time, **board_faults):
+            corrupt_readback, protocol_version, trigger_sources, fault_on, fault_skip, stall_time, **board_faults):
     """Serve the virtual arbitrary-waveform generator until Ctrl-C, printing its
     VISA resource string. It speaks IEEE 488.2 and standard SCPI, enforces the
     generator profile's memory, sample rates and output range, and keeps an
@@ -93,6 +99,11 @@ def command(host, port, generator_ref, board, identity, drop_after, delay, mute,
     --corrupt-memory) take a COUNT: a number of frames that are harmed before
     the board behaves again (a transient fault the driver should retry
     through), or 'always' (a persistent fault the upload must fail on).
+    --protocol-version 1 makes it an older board (no trigger, one channel);
+    --trigger-sources free makes it a board that cannot be triggered. It
+    prints a line on stderr for each connection and each state change
+    (session started, upload begun, verified, committed, trigger set,
+    armed, disarmed, reset).
 
     \b
     Examples:
@@ -114,8 +125,11 @@ def command(host, port, generator_ref, board, identity, drop_after, delay, mute,
             raise InputError("the fault and identity options belong to the virtual instrument, not to --board",
                              key="--board")
         faults = _board_faults(board_faults, timing, fault_on, fault_skip, stall_time)
-        _serve_board(host, port, generator_ref, faults)
+        _serve_board(host, port, generator_ref, faults, _board_kind(protocol_version, trigger_sources))
         return
+    if protocol_version is not None or trigger_sources is not None:
+        raise InputError("--protocol-version and --trigger-sources describe the ramp board; they need --board",
+                         key="--protocol-version" if protocol_version is not None else "--trigger-sources")
     given = [f"--{kind.replace('_', '-')}" for kind in board_faults]
     given += [name for name, used in timing.items() if used]
     if given:
@@ -159,7 +173,24 @@ def _load(generator_ref, default: str, kind: str, wrong: str):
     return gen
 
 
-def _serve_board(host, port, generator_ref, faults: dict) -> None:
+def _board_kind(version, sources) -> dict:
+    """The emulated board's version and trigger sources from the options."""
+    from sweepgen.emulators._board_protocol import ALL_SOURCES
+    from sweepgen.errors import InputError
+
+    out = {} if version is None else {"version": version}
+    if sources is not None:
+        names = [s.strip().lower() for s in sources.split(",") if s.strip()]
+        if not names or set(names) - set(ALL_SOURCES):
+            raise InputError(f"expected trigger sources among {', '.join(ALL_SOURCES)}, got {sources!r}",
+                             key="--trigger-sources")
+        if version == 1:
+            raise InputError("a version-1 board has no trigger sources", key="--trigger-sources")
+        out["sources"] = tuple(names)
+    return out
+
+
+def _serve_board(host, port, generator_ref, faults: dict, kind: dict) -> None:
     from sweepgen.emulators import board
 
     gen = _load(generator_ref, board.DEFAULT_GENERATOR, "board",
@@ -173,7 +204,7 @@ def _serve_board(host, port, generator_ref, faults: dict) -> None:
         click.echo(f"ramp-board emulator ({gen.key}) listening{note}; Ctrl-C stops it", err=True)
 
     with _listening(host, port, "ramp-board emulator"):
-        board.serve_forever(host, port, gen, faults=faults or None, ready=ready, log=_log)
+        board.serve_forever(host, port, gen, faults=faults or None, ready=ready, log=_log, **kind)
 
 
 def _serve_instrument(host, port, generator_ref, faults, identity) -> None:
@@ -194,7 +225,7 @@ def _serve_instrument(host, port, generator_ref, faults, identity) -> None:
 
 
 def _log(line: str) -> None:
-    """A line per connection opened or closed, on stderr."""
+    """A line per connection opened or closed (and per state change of a board), on stderr."""
     click.echo(line, err=True)
 
 

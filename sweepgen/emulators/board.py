@@ -1,9 +1,13 @@
 """Board emulator: the board side of the serial frame protocol, with fault switches.
 
 The emulator behaves like a small ramp board described by a generator profile
-(``kind = "board"``): it answers HELLO with the profile's memory, formats, DDS
-clock and sample rates, receives a table, checks its whole-table CRC, commits it
-only when that CRC matches, and arms and disarms. It never commits a table whose
+(``kind = "board"``), speaking protocol version 2 (or 1, as a board of that
+version would; a board of version 2 also speaks 1 to a host that asks for it).
+It answers HELLO with the profile's channels, memory, formats, output range, DDS
+clock, sample rates and its trigger sources, receives a table for a channel,
+checks its whole-table CRC, commits it only when that CRC matches, takes
+trigger settings, and arms and disarms. The protocol state lives in
+:mod:`sweepgen.emulators._board_protocol`. It never commits a table whose
 CRC does not match (checked at END and again at COMMIT), so tests can compare
 :attr:`BoardEmulator.committed` with the rendered table.
 
@@ -53,10 +57,11 @@ import select
 import socket
 import threading
 import time
-import zlib
 from dataclasses import dataclass
 
 from sweepgen.emulators._board_faults import ALWAYS, FAULT_KINDS, FAULTS, FaultPlan
+from sweepgen.emulators._board_protocol import (ALL_SOURCES, DEFAULT_MAX_PAYLOAD, MAX_TABLE_BYTES, BoardState,
+                                                CommittedTable, capabilities_for)
 from sweepgen.emulators._server import IDLE_TIMEOUT, LOOPBACK, MAX_CONNECTIONS, LoopbackServer, profile_port
 from sweepgen.wire import frames as fr
 
@@ -65,49 +70,8 @@ __all__ = ["ALWAYS", "FAULTS", "FAULT_KINDS", "BoardEmulator", "BoardServer", "B
 
 DEFAULT_GENERATOR = "demo-ramp-board"
 DEFAULT_PORT = 7450        # sweepgen's own choice (as in demo-ramp-board's link)
-DEFAULT_MAX_PAYLOAD = 4096 + fr.DATA_PREFIX
 GAP_TIMEOUT = 0.1          # s: a partial frame is discarded after this much silence
-MAX_TABLE_BYTES = 256 << 20   # bytes of table the emulator holds while receiving (its announced memory obeys it)
 EVENT_LOG = 4096           # events remembered (the latest)
-
-
-# --------------------------------------------------------------------------- the board
-
-
-@dataclass(frozen=True)
-class CommittedTable:
-    """The table a board holds for playing."""
-
-    format: fr.Format
-    count: int
-    crc: int
-    rate: int
-    data: bytes
-
-    def codes(self):
-        """The samples as a NumPy array (little-endian, the table's format)."""
-        import numpy as np
-
-        return np.frombuffer(self.data, dtype=self.format.dtype)
-
-
-def capabilities_for(generator, *, max_payload: int = DEFAULT_MAX_PAYLOAD,
-                     name: str = "sweepgen board emulator") -> fr.Capabilities:
-    """What a board described by ``generator`` announces in its HELLO reply."""
-    out = generator.output
-    if out.kind == "frequency":
-        bits = int(out.word_bits)
-        formats = (fr.Format.UINT32,) if bits <= 32 else (fr.Format.UINT64,)
-        word_bits, dac_bits, clock = bits, 0, int(round(out.clock))
-    else:
-        formats = (fr.Format.INT16, fr.Format.UINT16)
-        word_bits, dac_bits, clock = 0, int(out.dac_bits or 16), 0
-    sampling = generator.sampling
-    rates = sampling.rates if sampling.rates else (sampling.rate_min, sampling.rate_max)
-    # the memory announced is what the emulator will buffer: at most MAX_TABLE_BYTES, and a u32
-    memory = min(int(sampling.memory), MAX_TABLE_BYTES // max(f.itemsize for f in formats), 0xFFFFFFFF)
-    return fr.Capabilities(fr.PROTOCOL_VERSION, formats, word_bits, dac_bits, int(max_payload),
-                           memory, clock, tuple(int(round(r)) for r in rates[:255]), name)
 
 
 def _load_generator(generator):
@@ -118,33 +82,41 @@ def _load_generator(generator):
     return generator
 
 
-class BoardEmulator:
+class BoardEmulator(BoardState):
     """The board side of the protocol, as a state machine plus stream servers.
 
     Parameters
     ----------
     generator : Generator, str or None
         The board's profile (a loaded generator, a built-in key or a path);
-        default ``demo-ramp-board``.
+        default ``demo-ramp-board``. Version 2 announces one channel per
+        output of the profile (``channels``), each with its ``[output]``.
     faults : dict, optional
         Fault switches (module docstring).
     max_payload : int
         Longest frame payload the board accepts (announced in HELLO).
+    version : int
+        The highest protocol version the board speaks (1 or 2; a board of
+        version 2 also speaks 1).
+    sources : sequence of str
+        The trigger sources it offers in version 2 (``free``, ``external``,
+        ``software``); ``("free",)`` is a board that cannot be triggered.
+    log : callable, optional
+        Receives a line for each state change (upload begun, verified,
+        committed, trigger set, armed, disarmed, reset).
     """
 
     def __init__(self, generator=None, *, faults: dict | None = None, max_payload: int = DEFAULT_MAX_PAYLOAD,
-                 name: str = "sweepgen board emulator", gap_timeout: float = GAP_TIMEOUT):
-        self.generator = _load_generator(generator)
+                 name: str = "sweepgen board emulator", gap_timeout: float = GAP_TIMEOUT,
+                 version: int = fr.PROTOCOL_VERSION, sources=ALL_SOURCES, log=None):
+        generator = _load_generator(generator)
         if not fr.MIN_PAYLOAD <= max_payload <= fr.MAX_PAYLOAD:
             raise ValueError(f"max_payload must lie in [{fr.MIN_PAYLOAD}, {fr.MAX_PAYLOAD}]")
-        self.caps = capabilities_for(self.generator, max_payload=max_payload, name=name)
+        super().__init__(generator, max_payload=max_payload, name=name, version=version, sources=sources)
+        self.log = log
         self.faults = FaultPlan.parse(faults, default_stall=2.0 * self.generator.link.timeout)
         self.gap_timeout = gap_timeout
         self._stream = self.new_stream()     # the one stream of serve_fd and of feed() without a stream
-        self.committed: CommittedTable | None = None
-        self.armed = False
-        self.events: list[tuple] = []        # (event, details) in order, for tests and logs
-        self.commits = 0                     # tables committed so far
         self.resets = 0
         self._lock = threading.Lock()
         self._power_up()
@@ -160,28 +132,15 @@ class BoardEmulator:
 
     # -- state -----------------------------------------------------------------------------
     def _power_up(self) -> None:
-        self.session = False
-        self.state = fr.State.IDLE
-        self.pending: fr.Begin | None = None
-        self.buffer = bytearray()
-        self.received = 0
-        self.armed = False
-        self._last_key = None
-        self._last_reply = None
+        self._end_session()
         self.decoder.reset()
 
     def reset(self) -> None:
-        """A board reset: session, unfinished upload and the armed state are lost."""
+        """A board reset: session, unfinished upload and the armed state are lost (tables and
+        trigger settings are kept, as in non-volatile memory)."""
         self.resets += 1
         self._power_up()
-        self.events.append(("reset", {}))
-
-    def _range_limits(self):
-        out = self.generator.output
-        if out.kind != "frequency":
-            return None
-        scale = 2.0 ** out.word_bits / out.clock
-        return int(round(out.range_min * scale)), int(round(out.range_max * scale))
+        self._event("reset")
 
     # -- bytes in, replies out ---------------------------------------------------------------
     def feed(self, data: bytes, now: float | None = None, stream: "Stream | None" = None) -> list:
@@ -192,7 +151,7 @@ class BoardEmulator:
         decoder = stream.decoder
         with self._lock:
             if stream.last_byte is not None and decoder.pending and now - stream.last_byte > self.gap_timeout:
-                self.events.append(("gap", {"discarded": decoder.pending}))
+                self._event("gap", discarded=decoder.pending)
                 decoder.reset()
             stream.last_byte = now
             out = []
@@ -202,10 +161,16 @@ class BoardEmulator:
                 del self.events[:EVENT_LOG // 2]
             return out
 
+    def _damaged(self, msg_type: int, seq: int) -> list:
+        """A frame that failed its CRC: FRAME_CRC when its header names a request, else no reply."""
+        self._event("frame_crc", type=msg_type, seq=seq)
+        if msg_type not in fr.REQUESTS:
+            return []
+        return [(0.0, self._refuse(msg_type, seq, fr.Reason.FRAME_CRC, 0, "frame CRC does not match"))]
+
     def _receive(self, item) -> list:
         if isinstance(item, fr.BadFrame):
-            self.events.append(("frame_crc", {"type": item.type, "seq": item.seq}))
-            return [(0.0, self._refuse(item.type, item.seq, fr.Reason.FRAME_CRC, 0, "frame CRC does not match"))]
+            return self._damaged(item.type, item.seq)
         frame = item
         fault = self.faults.pick(frame.type)
         if fault == "reset" and not self.session:
@@ -213,16 +178,14 @@ class BoardEmulator:
             fault = None
         delay = 0.0
         if fault:
-            self.events.append(("fault", {"kind": fault, "type": frame.name, "seq": frame.seq}))
+            self._event("fault", kind=fault, type=frame.name, seq=frame.seq)
         if fault == "corrupt":
             raw = bytearray(fr.encode(frame.type, frame.seq, frame.payload))
             raw[fr.HEADER_SIZE + len(frame.payload) // 2 if frame.payload else len(raw) - 1] ^= 0x10
             try:
                 frame = fr.decode(raw)          # the real check: a flipped bit fails the CRC
             except fr.FrameError:
-                self.events.append(("frame_crc", {"type": frame.type, "seq": frame.seq}))
-                return [(0.0, self._refuse(frame.type, frame.seq, fr.Reason.FRAME_CRC, 0,
-                                           "frame CRC does not match"))]
+                return self._damaged(frame.type, frame.seq)
         elif fault == "drop":
             return []
         elif fault == "refuse":
@@ -232,163 +195,12 @@ class BoardEmulator:
         elif fault == "reset":
             self.reset()
             return []
-        reply = self._execute(frame, corrupt_memory=(fault == "corrupt_memory"))
+        reply = self.execute(frame, corrupt_memory=(fault == "corrupt_memory"))
         if fault == "corrupt_reply":
             bad = bytearray(reply)
             bad[len(bad) // 2] ^= 0x01
             return [(delay, bytes(bad))]
         return [(delay, reply)]
-
-    def _refuse(self, request_type, seq, reason, detail=0, text="") -> bytes:
-        self.events.append(("refuse", {"type": fr.type_name(request_type), "seq": seq,
-                                       "reason": fr.reason_name(reason), "detail": detail}))
-        return fr.encode(fr.MsgType.REFUSE, seq, fr.Refusal(request_type, reason, detail, text).pack())
-
-    def _ack(self, request_type, seq, data=b"") -> bytes:
-        return fr.encode(fr.MsgType.ACK, seq, fr.ack_payload(request_type, data))
-
-    def _execute(self, frame: fr.Frame, *, corrupt_memory: bool = False) -> bytes:
-        key = (frame.seq, frame.type, zlib.crc32(frame.payload))
-        if frame.type != fr.MsgType.HELLO and key == self._last_key and self._last_reply is not None:
-            self.events.append(("repeat", {"type": frame.name, "seq": frame.seq}))
-            return self._last_reply           # a retransmission: same reply, not executed again
-        reply = self._dispatch(frame, corrupt_memory)
-        self._last_key, self._last_reply = key, reply
-        return reply
-
-    def _dispatch(self, frame: fr.Frame, corrupt_memory: bool) -> bytes:
-        t, seq, p = frame.type, frame.seq, frame.payload
-        R = fr.Reason
-        refuse = lambda reason, detail=0, text="": self._refuse(t, seq, reason, detail, text)  # noqa: E731
-        if t not in fr.REQUESTS:
-            return refuse(R.UNKNOWN_TYPE, 0, f"unknown message type 0x{t:02x}")
-        empty = (fr.MsgType.END, fr.MsgType.COMMIT, fr.MsgType.STATUS, fr.MsgType.ARM, fr.MsgType.DISARM)
-        if t in empty and p:
-            return refuse(R.BAD_LENGTH, 0, f"{frame.name} takes no payload")
-        if t == fr.MsgType.HELLO:
-            if len(p) != 1:
-                return refuse(R.BAD_LENGTH, 1, "hello takes 1 byte")
-            if p[0] != fr.PROTOCOL_VERSION:
-                return refuse(R.BAD_VERSION, fr.PROTOCOL_VERSION, f"this board speaks version {fr.PROTOCOL_VERSION}")
-            self.session = True
-            self.state, self.pending, self.buffer, self.received = fr.State.IDLE, None, bytearray(), 0
-            self.events.append(("hello", {}))
-            return self._ack(t, seq, self.caps.pack())
-        if t == fr.MsgType.DISARM:
-            self.armed = False
-            self.events.append(("disarm", {}))
-            return self._ack(t, seq)
-        if t == fr.MsgType.STATUS:
-            return self._ack(t, seq, fr.Status(self.state, self.armed, self._table_id(), self.received).pack())
-        if not self.session:
-            return refuse(R.NO_SESSION, 0, "no hello since power-up or reset")
-        if t == fr.MsgType.BEGIN:
-            return self._begin(frame, refuse)
-        if t == fr.MsgType.DATA:
-            return self._data(frame, refuse, corrupt_memory)
-        if t == fr.MsgType.END:
-            return self._end(frame, refuse)
-        if t == fr.MsgType.COMMIT:
-            return self._commit(frame, refuse)
-        if t == fr.MsgType.ARM:
-            if self.state != fr.State.IDLE:
-                return refuse(R.BAD_STATE, self.state, "an upload is in progress")
-            if self.committed is None:
-                return refuse(R.NO_TABLE, 0, "no committed table")
-            self.armed = True
-            self.events.append(("arm", {"crc": self.committed.crc}))
-            return self._ack(t, seq, fr.u32(self.committed.crc))
-        raise AssertionError(t)    # every request type is handled above
-
-    def _table_id(self) -> fr.TableId:
-        c = self.committed
-        return fr.TableId(0, 0, 0, 0) if c is None else fr.TableId(c.format, c.count, c.crc, c.rate)
-
-    def _begin(self, frame, refuse) -> bytes:
-        R = fr.Reason
-        try:
-            b = fr.Begin.unpack(frame.payload)
-        except fr.FrameError:
-            return refuse(R.BAD_LENGTH, 16, "begin takes 16 bytes")
-        if self.armed:
-            return refuse(R.ARMED, 0, "disarm first")
-        mask = fr.formats_mask(self.caps.formats)
-        if b.format not in [f.value for f in fr.Format] or not mask & fr.Format(b.format).bit:
-            return refuse(R.BAD_FORMAT, mask, "format not supported")
-        if not 1 <= b.count <= self.caps.memory:
-            return refuse(R.BAD_COUNT, self.caps.memory, "count is zero or exceeds the memory")
-        if b.rate not in self.caps.rates:
-            return refuse(R.BAD_RATE, b.rate, "not a rate this board plays")
-        self.state, self.pending, self.received = fr.State.RECEIVING, b, 0
-        self.buffer = bytearray(b.nbytes)
-        self.events.append(("begin", {"count": b.count, "crc": b.crc, "rate": b.rate, "format": b.format}))
-        return self._ack(frame.type, frame.seq)
-
-    def _data(self, frame, refuse, corrupt_memory) -> bytes:
-        R = fr.Reason
-        if self.state != fr.State.RECEIVING:
-            return refuse(R.BAD_STATE, self.state, "no upload in progress")
-        try:
-            offset, chunk = fr.parse_data(frame.payload)
-        except fr.FrameError:
-            return refuse(R.BAD_LENGTH, 0, "data needs an offset and at least one byte")
-        if offset > self.received:
-            return refuse(R.BAD_OFFSET, self.received, "gap before this frame")
-        end = offset + len(chunk)
-        if end > len(self.buffer):
-            return refuse(R.OVERFLOW, len(self.buffer), "beyond the announced table")
-        self.buffer[offset:end] = chunk
-        if corrupt_memory:
-            self.buffer[offset + len(chunk) // 2] ^= 0x04
-        self.received = max(self.received, end)
-        return self._ack(frame.type, frame.seq, fr.u32(self.received))
-
-    def _check_range(self) -> int | None:
-        limits = self._range_limits()
-        if limits is None:
-            return None
-        import numpy as np
-
-        codes = np.frombuffer(bytes(self.buffer), dtype=fr.Format(self.pending.format).dtype)
-        bad = np.flatnonzero((codes < limits[0]) | (codes > limits[1]))
-        return int(bad[0]) if bad.size else None
-
-    def _end(self, frame, refuse) -> bytes:
-        R = fr.Reason
-        if self.state != fr.State.RECEIVING:
-            return refuse(R.BAD_STATE, self.state, "no upload in progress")
-        if self.received < len(self.buffer):
-            return refuse(R.INCOMPLETE, self.received, "table incomplete")
-        crc = zlib.crc32(self.buffer) & 0xFFFFFFFF
-        if crc != self.pending.crc:
-            self.state, self.pending, self.buffer, self.received = fr.State.IDLE, None, bytearray(), 0
-            self.events.append(("table_crc", {"computed": crc}))
-            return refuse(R.TABLE_CRC, crc, "whole-table CRC does not match; table discarded")
-        bad = self._check_range()
-        if bad is not None:
-            self.state, self.pending, self.buffer, self.received = fr.State.IDLE, None, bytearray(), 0
-            return refuse(R.RANGE, bad, "sample outside the output range; table discarded")
-        self.state = fr.State.VERIFIED
-        self.events.append(("verified", {"crc": crc}))
-        return self._ack(frame.type, frame.seq, fr.u32(crc))
-
-    def _commit(self, frame, refuse) -> bytes:
-        R = fr.Reason
-        if self.armed:
-            return refuse(R.ARMED, 0, "disarm first")
-        if self.state != fr.State.VERIFIED:
-            return refuse(R.BAD_STATE, self.state, "no verified table to commit")
-        crc = zlib.crc32(self.buffer) & 0xFFFFFFFF      # checked again: memory may have changed
-        b = self.pending
-        self.state, self.pending, self.received = fr.State.IDLE, None, 0
-        data, self.buffer = bytes(self.buffer), bytearray()
-        if crc != b.crc:
-            self.events.append(("table_crc", {"computed": crc}))
-            return refuse(R.TABLE_CRC, crc, "whole-table CRC does not match; table discarded")
-        self.committed = CommittedTable(fr.Format(b.format), b.count, crc, b.rate, data)
-        self.commits += 1
-        self.events.append(("commit", {"count": b.count, "crc": crc, "rate": b.rate}))
-        return self._ack(frame.type, frame.seq, self._table_id().pack())
 
     # -- serving byte streams -----------------------------------------------------------------
     def serve_stream(self, read_some, write_all, stop: threading.Event, stream: "Stream | None" = None) -> None:
@@ -504,7 +316,8 @@ class BoardServer(LoopbackServer):
                  faults: dict | None = None, board: BoardEmulator | None = None,
                  stop: threading.Event | None = None, max_connections: int = MAX_CONNECTIONS,
                  idle_timeout: float | None = IDLE_TIMEOUT, log=None, **board_options):
-        self.board = board if board is not None else BoardEmulator(generator, faults=faults, **board_options)
+        self.board = (board if board is not None
+                      else BoardEmulator(generator, faults=faults, log=log, **board_options))
         super().__init__(host, port, stop=stop, max_connections=max_connections, idle_timeout=idle_timeout,
                          log=log)
 
@@ -523,7 +336,7 @@ def listen_port(generator, port: int | None = None) -> int:
 
 
 def serve_forever(host: str, port: int | None, generator, faults: dict | None = None, ready=None, *,
-                  stop: threading.Event | None = None, log=None) -> None:
+                  stop: threading.Event | None = None, log=None, **board_options) -> None:
     """Serve the board emulator on ``host:port`` until interrupted (``sweepgen emulate --board``).
 
     Parameters
@@ -540,11 +353,13 @@ def serve_forever(host: str, port: int | None, generator, faults: dict | None = 
     stop : threading.Event, optional
         Setting it ends the server (otherwise it runs until Ctrl-C).
     log : callable, optional
-        Receives a line per connection opened and closed.
+        Receives a line per connection opened and closed and per state change of the board.
+    board_options
+        ``version`` and ``sources`` of :class:`BoardEmulator`.
     """
     generator = _load_generator(generator)
     port = listen_port(generator, port)
-    server = BoardServer(generator, host=host, port=port, faults=faults, stop=stop, log=log)
+    server = BoardServer(generator, host=host, port=port, faults=faults, stop=stop, log=log, **board_options)
     if ready is not None:
         ready(server.port)
     try:

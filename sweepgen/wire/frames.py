@@ -27,7 +27,9 @@ import struct
 import zlib
 from dataclasses import dataclass
 
-PROTOCOL_VERSION = 1
+#: the highest protocol version sweepgen speaks; it speaks every version in VERSIONS
+PROTOCOL_VERSION = 2
+VERSIONS = (1, 2)
 SYNC = b"\xa5\x5a"
 HEADER_SIZE = 8
 TRAILER_SIZE = 4
@@ -40,8 +42,11 @@ MAX_PAYLOAD = 0xFFFF
 DATA_PREFIX = 4
 #: longest human-readable text a board puts in a refusal or as its name
 MAX_TEXT = 64
-#: longest reply payload a board sends (a HELLO reply with 255 rates and a full name)
-MAX_REPLY = 1 + 19 + 4 * 255 + MAX_TEXT
+#: most output channels a version-2 board announces
+MAX_CHANNELS = 8
+#: longest reply payload a board sends: a version-2 HELLO reply with 8 channels, 255 rates and a full
+#: name (a version-1 HELLO reply is at most 1 + 19 + 4 * 255 + 64 = 1104 bytes)
+MAX_REPLY = 1 + 16 + 40 * MAX_CHANNELS + 8 * 255 + MAX_TEXT
 
 _HEADER = struct.Struct("<2sBBHH")
 
@@ -61,11 +66,18 @@ class MsgType(enum.IntEnum):
     STATUS = 0x06
     ARM = 0x07
     DISARM = 0x08
+    TRIGGER = 0x09        # version 2
+    FIRE = 0x0A           # version 2
     ACK = 0x80
     REFUSE = 0x81
 
 
 REQUESTS = frozenset(t for t in MsgType if t < 0x80)
+#: requests of version 1 (a version-1 session refuses the others as UNKNOWN_TYPE)
+REQUESTS_V1 = frozenset(t for t in REQUESTS if t <= MsgType.DISARM)
+#: requests whose reply a board remembers and sends again for a retransmission (section 2):
+#: the ones that change the upload; HELLO, STATUS, DISARM, TRIGGER, ARM and FIRE are always executed
+REMEMBERED = frozenset({MsgType.BEGIN, MsgType.DATA, MsgType.END, MsgType.COMMIT})
 
 
 class Reason(enum.IntEnum):
@@ -88,6 +100,10 @@ class Reason(enum.IntEnum):
     RANGE = 0x0F          # a sample the board cannot play (detail: index of the first one)
     BUSY = 0x10           # the board cannot take the frame now: send it again
     NO_TABLE = 0x11       # ARM without a committed table
+    BAD_TRIGGER = 0x12    # trigger source, edge or mode not offered (detail: sources | edges << 8)
+    RESERVED = 0x13       # a reserved byte is not zero (detail: its offset in the payload)
+    BAD_CHANNEL = 0x14    # no such output channel (detail: the number of channels)
+    BAD_DELAY = 0x15      # start delay above the longest the board offers (detail: longest, ns)
 
 
 #: refusals after which the host sends the same frame again (same sequence number)
@@ -493,3 +509,326 @@ def parse_u32(data: bytes) -> int:
     if len(data) != 4:
         raise FrameError(f"expected a 4-byte number, got {len(data)} bytes")
     return struct.unpack("<I", data)[0]
+
+
+# --------------------------------------------------------------------------- version 2
+
+
+class Source(enum.IntEnum):
+    """What starts a version-2 board's playback (its bit in the sources mask is ``1 << value``)."""
+
+    FREE = 0         # free-running: plays as soon as it is armed, back to back
+    EXTERNAL = 1     # an edge on the trigger input
+    SOFTWARE = 2     # a FIRE request
+
+
+#: trigger sources by the names the host's timing uses
+SOURCES_BY_NAME = {"free": Source.FREE, "external": Source.EXTERNAL, "software": Source.SOFTWARE}
+
+
+class Edge(enum.IntEnum):
+    RISING = 0
+    FALLING = 1
+
+
+class Mode(enum.IntEnum):
+    REPEAT = 0       # the table plays again on every trigger (free-running: without end)
+    ONCE = 1         # the table plays once, on the first trigger after ARM
+
+
+def mask_of(members) -> int:
+    out = 0
+    for m in members:
+        out |= 1 << int(m)
+    return out
+
+
+def members_of(enum_cls, mask: int) -> tuple:
+    return tuple(m for m in enum_cls if mask & (1 << int(m)))
+
+
+_RATE = struct.Struct("<II")
+
+
+@dataclass(frozen=True)
+class Rate:
+    """A sample rate as a fraction ``num / den`` Sa/s (both u32, ``den`` >= 1), exact for clock/divider rates."""
+
+    num: int
+    den: int = 1
+
+    @property
+    def value(self) -> float:
+        return self.num / self.den
+
+    def same(self, other: "Rate") -> bool:
+        """Whether both fractions are the same rate (compared by cross-multiplication, exactly)."""
+        return self.num * other.den == other.num * self.den
+
+    def pack(self) -> bytes:
+        if not (0 < self.num <= 0xFFFFFFFF and 0 < self.den <= 0xFFFFFFFF):
+            raise FrameError(f"rate {self.num}/{self.den} does not fit two u32 numbers above zero")
+        return _RATE.pack(self.num, self.den)
+
+    @classmethod
+    def unpack_from(cls, data: bytes, offset: int = 0) -> "Rate":
+        return cls(*_RATE.unpack_from(data, offset))
+
+    def __str__(self) -> str:
+        return f"{self.num}" if self.den == 1 else f"{self.num}/{self.den} (= {self.value:.9g})"
+
+
+def find_rate(rate: float, rates, rel: float = 1e-9):
+    """The announced :class:`Rate` within ``rel`` of ``rate`` Sa/s, or None."""
+    for r in rates:
+        if abs(r.value - rate) <= rel * rate:
+            return r
+    return None
+
+
+class Output(enum.IntEnum):
+    """What a version-2 channel's samples drive."""
+
+    FREQUENCY = 1    # DDS tuning words
+    VOLTAGE = 2      # DAC codes
+
+
+_CHANNEL = struct.Struct("<BBBxIqqQii")
+
+
+@dataclass(frozen=True)
+class ChannelCaps:
+    """One output channel of a version-2 board: formats, memory and output range (in sample values)."""
+
+    output: int                     # Output
+    formats: tuple                  # Format members
+    bits: int                       # tuning-word or DAC bits
+    memory: int                     # samples
+    low: int                        # lowest sample value it plays
+    high: int                       # highest sample value it plays
+    clock: int = 0                  # Hz, DDS reference clock (frequency channels)
+    low_uv: int = 0                 # µV at ``low`` (voltage channels)
+    high_uv: int = 0                # µV at ``high`` (voltage channels)
+
+    def pack(self) -> bytes:
+        return _CHANNEL.pack(self.output, formats_mask(self.formats), self.bits, self.memory, self.low,
+                             self.high, self.clock, self.low_uv, self.high_uv)
+
+    @classmethod
+    def unpack_from(cls, data: bytes, offset: int) -> "ChannelCaps":
+        out, mask, bits, memory, low, high, clock, low_uv, high_uv = _CHANNEL.unpack_from(data, offset)
+        return cls(out, formats_from_mask(mask), bits, memory, low, high, clock, low_uv, high_uv)
+
+    def range_hz(self) -> tuple | None:
+        """The output range in Hz of a frequency channel: f = W f_clock / 2^bits (common practice)."""
+        if self.output != Output.FREQUENCY or not self.clock:
+            return None
+        return self.low * self.clock / 2.0 ** self.bits, self.high * self.clock / 2.0 ** self.bits
+
+    def to_json(self) -> dict:
+        out = {"output": Output(self.output).name.lower() if self.output in (1, 2) else self.output,
+               "formats": [Format(f).name.lower() for f in self.formats], "bits": self.bits,
+               "memory": self.memory, "low": self.low, "high": self.high}
+        if self.output == Output.FREQUENCY:
+            out.update(clock=self.clock, range_hz=list(self.range_hz() or ()))
+        else:
+            out.update(range_v=[self.low_uv * 1e-6, self.high_uv * 1e-6])
+        return out
+
+
+_CAPS2 = struct.Struct("<BBBBHBxII")
+
+
+@dataclass(frozen=True)
+class CapabilitiesV2:
+    """What a version-2 board says about itself in its HELLO reply (section 3.1 of the document)."""
+
+    channels: tuple                 # ChannelCaps, channel 1 first
+    sources: tuple                  # Source members it offers
+    edges: tuple                    # Edge members its trigger input offers
+    max_payload: int
+    delay_step: int                 # ns; 0: no start delay
+    delay_max: int                  # ns
+    rates: tuple                    # Rate
+    name: str = ""
+    version: int = 2
+
+    def pack(self) -> bytes:
+        if not 1 <= len(self.channels) <= MAX_CHANNELS:
+            raise FrameError(f"a board announces between 1 and {MAX_CHANNELS} channels")
+        if not 1 <= len(self.rates) <= 255:
+            raise FrameError("a board announces between 1 and 255 sample rates")
+        head = _CAPS2.pack(self.version, len(self.channels), mask_of(self.sources), mask_of(self.edges),
+                           self.max_payload, len(self.rates), self.delay_step, self.delay_max)
+        return (head + b"".join(c.pack() for c in self.channels) + b"".join(r.pack() for r in self.rates)
+                + _clip_text(self.name))
+
+    @classmethod
+    def unpack(cls, data: bytes) -> "CapabilitiesV2":
+        if len(data) < _CAPS2.size:
+            raise FrameError(f"HELLO reply too short ({len(data)} bytes)")
+        version, n_ch, sources, edges, max_payload, n_rates, step, dmax = _CAPS2.unpack_from(data)
+        end = _CAPS2.size + _CHANNEL.size * n_ch + _RATE.size * n_rates
+        if not 1 <= n_ch <= MAX_CHANNELS or not n_rates or len(data) < end:
+            raise FrameError(f"HELLO reply announces {n_ch} channels and {n_rates} rates in {len(data)} bytes")
+        channels = tuple(ChannelCaps.unpack_from(data, _CAPS2.size + _CHANNEL.size * i) for i in range(n_ch))
+        at = _CAPS2.size + _CHANNEL.size * n_ch
+        rates = tuple(Rate.unpack_from(data, at + _RATE.size * i) for i in range(n_rates))
+        if any(r.den == 0 for r in rates):
+            raise FrameError("HELLO reply announces a rate with denominator 0")
+        return cls(channels, members_of(Source, sources), members_of(Edge, edges), max_payload, step, dmax,
+                   rates, _text(data[end:]), version)
+
+    @property
+    def memory(self) -> int:
+        return min(c.memory for c in self.channels)
+
+    def to_json(self) -> dict:
+        return {"protocol": self.version, "name": self.name, "max_payload": self.max_payload,
+                "channels": [c.to_json() for c in self.channels],
+                "trigger_sources": [s.name.lower() for s in self.sources],
+                "edges": [e.name.lower() for e in self.edges],
+                "delay_step_ns": self.delay_step, "delay_max_ns": self.delay_max,
+                "rates": [r.value for r in self.rates]}
+
+
+_BEGIN2 = struct.Struct("<BBxxIIII")
+
+
+@dataclass(frozen=True)
+class BeginV2:
+    """Version-2 BEGIN: a table for ``channel`` (1-based) and its rate as a fraction."""
+
+    format: int
+    channel: int
+    count: int
+    crc: int
+    rate: Rate
+
+    @property
+    def nbytes(self) -> int:
+        return self.count * Format(self.format).itemsize
+
+    def pack(self) -> bytes:
+        return _BEGIN2.pack(self.format, self.channel, self.count, self.crc, self.rate.num, self.rate.den)
+
+    @classmethod
+    def unpack(cls, data: bytes) -> "BeginV2":
+        if len(data) != _BEGIN2.size:
+            raise FrameError(f"BEGIN payload must be {_BEGIN2.size} bytes, got {len(data)}")
+        fmt, channel, count, crc, num, den = _BEGIN2.unpack(data)
+        return cls(fmt, channel, count, crc, Rate(num, den))
+
+
+#: payload offsets of the reserved bytes of each version-2 request (must be zero)
+RESERVED_BYTES = {MsgType.BEGIN: (2, 3), MsgType.TRIGGER: (3,)}
+
+_TABLE2 = struct.Struct("<BBxxIIII")
+
+
+@dataclass(frozen=True)
+class TableIdV2:
+    """A committed table of one channel as a version-2 board reports it (COMMIT and STATUS replies)."""
+
+    format: int          # 0: no table
+    channel: int
+    count: int
+    crc: int
+    rate: Rate
+
+    def pack(self) -> bytes:
+        return _TABLE2.pack(self.format, self.channel, self.count, self.crc, self.rate.num, self.rate.den)
+
+    @classmethod
+    def unpack_from(cls, data: bytes, offset: int = 0) -> "TableIdV2":
+        fmt, channel, count, crc, num, den = _TABLE2.unpack_from(data, offset)
+        return cls(fmt, channel, count, crc, Rate(num, den))
+
+    @classmethod
+    def unpack(cls, data: bytes) -> "TableIdV2":
+        if len(data) != _TABLE2.size:
+            raise FrameError(f"table description must be {_TABLE2.size} bytes, got {len(data)}")
+        return cls.unpack_from(data)
+
+
+_TRIGGER = struct.Struct("<BBBxI")
+
+
+@dataclass(frozen=True)
+class Trigger:
+    """TRIGGER settings: what starts playback, the edge, once or repeated, start delay in ns."""
+
+    source: int = Source.FREE
+    edge: int = Edge.RISING
+    mode: int = Mode.REPEAT
+    delay: int = 0
+
+    def pack(self) -> bytes:
+        return _TRIGGER.pack(self.source, self.edge, self.mode, self.delay)
+
+    @classmethod
+    def unpack(cls, data: bytes) -> "Trigger":
+        if len(data) != _TRIGGER.size:
+            raise FrameError(f"trigger settings must be {_TRIGGER.size} bytes, got {len(data)}")
+        return cls(*_TRIGGER.unpack(data))
+
+    def describe(self) -> str:
+        src = {0: "free-running", 1: "external", 2: "software"}.get(self.source, f"source {self.source}")
+        edge = f", {Edge(self.edge).name.lower()} edge" if self.source == Source.EXTERNAL and self.edge in (0, 1) else ""
+        mode = "once" if self.mode == Mode.ONCE else "repeated"
+        return f"{src}{edge}, {mode}, start delay {self.delay} ns"
+
+
+_STATUS2 = struct.Struct("<BBBBI")
+
+
+@dataclass(frozen=True)
+class StatusV2:
+    """Version-2 STATUS reply: state, armed, pending channel, received bytes, trigger, every channel's table."""
+
+    state: int
+    armed: bool
+    pending: int            # channel of the unfinished upload (0: none)
+    received: int
+    trigger: Trigger
+    tables: tuple           # TableIdV2 of channel 1, 2, ...
+
+    def pack(self) -> bytes:
+        return (_STATUS2.pack(self.state, int(self.armed), len(self.tables), self.pending, self.received)
+                + self.trigger.pack() + b"".join(t.pack() for t in self.tables))
+
+    @classmethod
+    def unpack(cls, data: bytes) -> "StatusV2":
+        if len(data) < _STATUS2.size + _TRIGGER.size:
+            raise FrameError(f"STATUS reply too short ({len(data)} bytes)")
+        state, armed, n_ch, pending, received = _STATUS2.unpack_from(data)
+        head = _STATUS2.size + _TRIGGER.size
+        if len(data) != head + _TABLE2.size * n_ch or not 1 <= n_ch <= MAX_CHANNELS:
+            raise FrameError(f"STATUS reply of {len(data)} bytes does not describe {n_ch} channels")
+        tables = tuple(TableIdV2.unpack_from(data, head + _TABLE2.size * i) for i in range(n_ch))
+        return cls(state, bool(armed), pending, received, Trigger.unpack(data[_STATUS2.size:head]), tables)
+
+
+def parse_status(data: bytes):
+    """A STATUS reply of either version, told apart by its length (20 bytes: version 1)."""
+    return Status.unpack(data) if len(data) == _STATUS.size else StatusV2.unpack(data)
+
+
+def parse_capabilities(version: int, data: bytes):
+    """The HELLO reply of a session of ``version``."""
+    return Capabilities.unpack(data) if version == 1 else CapabilitiesV2.unpack(data)
+
+
+def choose_format(formats, low: int, high: int, preferred=None):
+    """The table format to send samples from ``low`` to ``high`` in: ``preferred`` when offered and
+    wide enough, else the narrowest offered format that holds every sample unchanged (None: none does)."""
+    import numpy as np
+
+    def holds(f):
+        info = np.iinfo(np.dtype(Format(f).dtype))
+        return info.min <= low and high <= info.max
+
+    if preferred is not None and preferred in formats and holds(preferred):
+        return Format(preferred)
+    fitting = sorted((Format(f) for f in formats if holds(f)), key=lambda f: (f.itemsize, f))
+    return fitting[0] if fitting else None
