@@ -257,7 +257,8 @@ def simulated(sc, plan, played, atoms: int, seed: int) -> dict:
     """The row's simulation columns, and every number of the simulation's JSON under ``simulation``."""
     from sweepgen.simulate import simulate
 
-    doc = simulate(sc, atoms=atoms, seed=seed, plan=plan, played=played, baselines=False).to_json()
+    # one process per design: the designs are the parallel work, so the atoms of one fly in this process
+    doc = simulate(sc, atoms=atoms, seed=seed, plan=plan, played=played, baselines=False, workers=1).to_json()
     p = doc["captured_fraction"]
     out = {k: doc.get(k) for k in ROW_KEYS}
     out["captured_error"] = math.sqrt(p * (1.0 - p) / atoms)
