@@ -82,13 +82,19 @@ MAX_ERROR_READS = 64
 #: table bytes per write when streaming a block
 CHUNK_BYTES = 1 << 22
 VERIFY_CHOICES = ("auto", "readback", "checksum", "none")
-TRIGGER_CHOICES = ("EXT", "IMM", "BUS")
+MODE_CHOICES = ("burst", "repeat")
+#: templates sent once for the whole upload unless they name a {channel}
+SHARED = ("identify", "reset", "clear", "format", "trigger", "trigger_edge", "trigger_level", "trigger_delay",
+          "burst", "repeat")
+#: the trigger and playback-mode templates, in the order they are sent, and the value each needs
+TRIGGER_STEPS = (("trigger", "trigger_source"), ("trigger_edge", "edge"), ("trigger_level", "level"),
+                 ("trigger_delay", "delay"), ("burst", "cycles"), ("repeat", "mode"))
 
 
 class _Plan:
     """Everything the upload will send, rendered and checked before any connection."""
 
-    def __init__(self, table, generator, options: dict):
+    def __init__(self, table, generator, options: dict, *, trace: str | None = None):
         if generator is None or getattr(generator, "commands", None) is None:
             raise InputError("the visa driver needs a generator profile of kind 'awg' with [commands]",
                              key="generator")
@@ -101,10 +107,7 @@ class _Plan:
         self.verify = str(options.get("verify") or "auto").lower()
         if self.verify not in VERIFY_CHOICES:
             raise InputError(f"expected one of {', '.join(VERIFY_CHOICES)}, got {self.verify!r}", key="verify")
-        trigger = str(options.get("trigger_source") or "EXT").upper()
-        if trigger not in TRIGGER_CHOICES:
-            raise InputError(f"expected one of {', '.join(TRIGGER_CHOICES)}, got {trigger!r}",
-                             key="trigger_source")
+        timing = _timing_values(options)
         self._check_table(info, generator)
         mode = commands.upload_mode
         try:
@@ -115,17 +118,24 @@ class _Plan:
         self.byte_order = commands.byte_order
         self.count = info.count
         self.rate = float(info.sample_rate)
+        self.channel = int(info.channel)
         values = {
-            "channel": int(info.channel), "name": commands.trace_name, "count": int(info.count),
+            "channel": self.channel, "name": trace or commands.trace_name, "count": int(info.count),
             "rate": self.rate, "frequency": self.rate / info.count, "period": info.count / self.rate,
             "format": fmt["format"], "type": fmt["type"], "bits": fmt["bits"],
-            "border": scpi.border(commands.byte_order), "trigger_source": trigger,
+            "border": scpi.border(commands.byte_order), **timing,
             "amplitude": info.amplitude, "offset": info.offset,
             "high": None if info.amplitude is None else info.offset + info.amplitude / 2,
             "low": None if info.amplitude is None else info.offset - info.amplitude / 2,
         }
         self.values = values
-        self.rendered = {name: commands.render(name, **values) for name in commands.templates}
+        wanted = {t: v for t, v in TRIGGER_STEPS}
+        self.rendered = {name: commands.render(name, **values) for name in commands.templates
+                         if values.get(wanted.get(name, "channel")) is not None}
+        if timing.get("mode") != "burst":
+            self.rendered.pop("burst", None)
+        if timing.get("mode") != "repeat":
+            self.rendered.pop("repeat", None)
         self.prefix, self.suffix = split_data(self.rendered["upload"])
         if mode == "block":
             self.nbytes = info.count * info.itemsize
@@ -144,6 +154,8 @@ class _Plan:
         link = generator.link
         self.timeout = clamp_deadline(float(link.timeout))
         self.throughput = float(link.throughput)
+        self.crc = None                  # CRC-32 of what was sent, once known
+        self.block_bytes = 0             # data bytes of the upload, once sent
 
     @staticmethod
     def _check_table(info, generator) -> None:
@@ -187,53 +199,122 @@ class _Plan:
     def upload_bytes(self, nbytes: int) -> int:
         return len(self.prefix.encode()) + len(self.header) + nbytes + len(self.suffix.encode()) + 1
 
-    def sequence(self, arm: bool) -> list[tuple[str, str]]:
-        """(step, template) in order; error-queue reads are added by the session."""
-        c = self.commands
-        steps = [("identify", "identify"), ("output_off", "output_off")]
-        if c.has("reset"):
-            steps.append(("reset", "reset"))
-        # output off first, at once; after the error queue is cleared it is sent again and its
-        # error check counts, so an instrument that refuses "output off" stops the upload here
-        # (where the profile can ask, the session then reads the state back)
-        steps += [("clear", "clear"), ("output_off", "output_off")]
-        if c.has("format"):
-            steps.append(("format", "format"))
-        steps += [("upload", "upload"), ("wait", "wait")]
-        if self.method != "none":
-            steps.append(("verify", self.method))
-        for name in ("function", "rate", "amplitude", "offset", "trigger"):
-            if c.has(name):
-                steps.append((name, name))
-        if arm:
-            steps.append(("output_on", "output_on"))
-        return steps
 
-    def dry_log(self, arm: bool) -> list[dict]:
-        """The exact command log, with byte counts, without connecting."""
-        log = []
-        nbytes = self.nbytes if self.mode == "block" else len(self.ascii_text())
-        err = self.rendered["error_query"]
-        checked = False
-        for step, template in self.sequence(arm):
-            if template == "upload":
-                log.append({"step": step, "kind": "write", "command": self.upload_text(nbytes),
-                            "bytes": self.upload_bytes(nbytes)})
-                continue
-            text = self.rendered[template]
-            log.append({"step": step, "kind": "query" if "?" in text else "write", "command": text,
-                        "bytes": len(text.encode()) + 1})
-            if step == "clear":
-                checked = True
-            if checked and "?" not in text or step == "wait":
-                log.append({"step": "upload" if step == "wait" else step, "kind": "query", "command": err,
-                            "bytes": len(err.encode()) + 1,
-                            "note": "repeated until the reply matches no_error_pattern"})
-            if checked and step == "output_off" and self.commands.has("output_state"):
-                state = self.rendered["output_state"]
-                log.append({"step": step, "kind": "query", "command": state, "bytes": len(state.encode()) + 1,
-                            "note": "must answer 0 or OFF"})
-        return log
+class _Step(tuple):
+    """One step of the upload: ``(step, plan, template)``; ``label`` names it in the report and errors
+    (with its output where several are uploaded)."""
+
+    __slots__ = ()
+
+    def __new__(cls, step: str, plan: _Plan, template: str, label: str):
+        return super().__new__(cls, (step, plan, template, label))
+
+    step = property(lambda self: self[0])
+    plan = property(lambda self: self[1])
+    template = property(lambda self: self[2])
+    label = property(lambda self: self[3])
+
+
+def _steps(plans: list, arm: bool) -> list[_Step]:
+    """The upload's steps in order; error-queue reads are added by the session.
+
+    Every output is switched off before anything is touched (and, after the error queue is
+    cleared, again with its error check and state read-back), every table is loaded and
+    verified, then configured; the trigger is set; only then, with ``arm``, are the outputs
+    switched on, in the order of ``plans``. A template without ``{channel}`` in :data:`SHARED`
+    is sent once.
+    """
+    c = plans[0].commands
+    several = len(plans) > 1
+
+    def each(step, template=None, only=None):
+        template = template or step
+        if not any(template in p.rendered for p in plans):
+            return []
+        shared = template in SHARED and "{channel}" not in c.templates.get(template, "")
+        targets = plans[:1] if shared else plans
+        return [_Step(step, p, template, f"{step}, output {p.channel}" if several and not shared else step)
+                for p in targets if template in p.rendered and (only is None or only(p))]
+
+    out = each("identify") + each("output_off") + each("reset") + each("clear") + each("output_off") + each("format")
+    for p in plans:
+        out += [_Step(step, p, template, f"{step}, output {p.channel}" if several else step)
+                for step, template in (("upload", "upload"), ("wait", "wait"))]
+        if p.method != "none":
+            out.append(_Step("verify", p, p.method, f"verify, output {p.channel}" if several else "verify"))
+    for name in ("function", "rate", "amplitude", "offset"):
+        out += each(name)
+    for name, _ in TRIGGER_STEPS:
+        out += each(name)
+    if arm:
+        out += each("output_on")
+    return out
+
+
+def _dry_log(plans: list, arm: bool) -> list[dict]:
+    """The exact command log, with byte counts, without connecting."""
+    log = []
+    err = plans[0].rendered["error_query"]
+    has_state = plans[0].commands.has("output_state")
+    checked = False
+    for st in _steps(plans, arm):
+        plan, step = st.plan, st.label
+        if st.template == "upload":
+            nbytes = plan.nbytes if plan.mode == "block" else len(plan.ascii_text())
+            log.append({"step": step, "kind": "write", "command": plan.upload_text(nbytes),
+                        "bytes": plan.upload_bytes(nbytes)})
+            continue
+        text = plan.rendered[st.template]
+        log.append({"step": step, "kind": "query" if "?" in text else "write", "command": text,
+                    "bytes": len(text.encode()) + 1})
+        if st.step == "clear":
+            checked = True
+        if checked and "?" not in text or st.step == "wait":
+            where = step.replace("wait", "upload", 1) if st.step == "wait" else step
+            log.append({"step": where, "kind": "query", "command": err, "bytes": len(err.encode()) + 1,
+                        "note": "repeated until the reply matches no_error_pattern"})
+        if has_state and (checked and st.step == "output_off" or st.step == "output_on"):
+            state = plan.rendered["output_state"]
+            log.append({"step": step, "kind": "query", "command": state, "bytes": len(state.encode()) + 1,
+                        "note": "must answer " + ("1 or ON" if st.step == "output_on" else "0 or OFF")})
+    return log
+
+
+def _timing_values(options: dict) -> dict:
+    """The trigger and playback-mode values of the driver options, checked (:class:`InputError`)."""
+    from sweepgen.dialect import format_value
+
+    out = {}
+    for key in ("trigger_source", "edge"):
+        if options.get(key) is not None:
+            try:
+                out[key] = format_value(key, str(options[key]))
+            except ValueError as exc:
+                raise InputError(str(exc), key=key) from None
+    for key in ("level", "delay"):
+        if options.get(key) is not None:
+            try:
+                value = float(options[key])
+            except (TypeError, ValueError):
+                value = float("nan")
+            if not np.isfinite(value) or key == "delay" and value < 0:
+                raise InputError(f"expected a finite number{' of seconds >= 0' if key == 'delay' else ' (V)'}, "
+                                 f"got {options[key]!r}", key=key)
+            out[key] = value
+    mode = options.get("mode")
+    if mode is not None:
+        if str(mode) not in MODE_CHOICES:
+            raise InputError(f"expected one of {', '.join(MODE_CHOICES)}, got {mode!r}", key="mode")
+        out["mode"] = str(mode)
+        if mode == "burst":
+            try:
+                cycles = int(options.get("cycles", 1))
+            except (TypeError, ValueError):
+                cycles = 0
+            if cycles < 1:
+                raise InputError(f"expected a whole number >= 1, got {options.get('cycles')!r}", key="cycles")
+            out["cycles"] = cycles
+    return out
 
 
 class _WrongInstrument(InstrumentError):
@@ -253,12 +334,13 @@ UNCONFIRMED = "could not confirm that the output is off: check the instrument be
 class _Session:
     """One upload: the plan, the link to the instrument and the running report."""
 
-    def __init__(self, plan: _Plan, delivery: Delivery, report: dict, resource: str):
-        self.plan = plan
+    def __init__(self, plans: list, delivery: Delivery, report: dict, resource: str):
+        self.plans = plans
+        self.plan = plan = plans[0]           # the plan of the step being run
+        self.label = ""                       # the step being run, as the report names it
         self.delivery = delivery
         self.report = report
         self.link = VisaLink(resource, plan.backend, plan.timeout, self._log)
-        self.crc = None
 
     def _log(self, step, kind, command, nbytes, reply=None, duration=None):
         entry = {"step": step, "kind": kind, "command": command, "bytes": nbytes}
@@ -310,10 +392,23 @@ class _Session:
             raise _StillOn("the instrument reports its output ON after output off", step=step, reply=reply)
         return {"query": rendered["output_state"], "reply": reply}
 
+    def confirm_state(self, step: str, *, on: bool) -> dict:
+        """Read the output state back after switching it on: it must answer 1 or ON."""
+        query = self.plan.rendered["output_state"]
+        reply = self.link.query(step, query)
+        state = scpi.parse_boolean(reply)
+        if state is None:
+            raise InstrumentError("the output-state reply is not 0, 1, OFF or ON", step=step,
+                                  reply=reply or "<empty>")
+        if state != on:
+            raise InstrumentError(f"the instrument reports its output {'OFF' if on else 'ON'} after output "
+                                  f"{'on' if on else 'off'}", step=step, reply=reply)
+        return {"query": query, "reply": reply}
+
     # -- the data ------------------------------------------------------------------------------
     def upload(self) -> None:
         plan = self.plan
-        step = "upload"
+        step = self.label or "upload"
         t0 = time.monotonic()
         if plan.mode == "ascii":
             data = plan.ascii_text()
@@ -331,15 +426,16 @@ class _Session:
         try:
             self._stream(step, head, chunks, nbytes, plan.data_timeout(total), crc)
         finally:
-            crc_value = crc.result() if crc is not None else None
-        self.crc = crc_value
+            plan.crc = crc.result() if crc is not None else None
         self.link.sent += total
-        self.report["block_bytes"] = nbytes
+        plan.block_bytes = self.report["block_bytes"] = nbytes
         duration = time.monotonic() - t0
         self._log(step, "write", plan.upload_text(nbytes), total, duration=duration)
         self.report["upload"] = {"bytes": total, "data_bytes": nbytes, "duration": duration,
                                  "throughput": total / duration if duration > 0 else None,
                                  "fast_path": self.link.raw_socket() is not None}
+        if len(self.plans) > 1:
+            self.report.setdefault("uploads", []).append({"output": plan.channel, **self.report["upload"]})
 
     def _stream(self, step, head, chunks, nbytes, allowed: float, crc) -> None:
         """Send the upload message within ``allowed`` seconds, reporting progress."""
@@ -374,21 +470,21 @@ class _Session:
 
     def sent_crc(self) -> int:
         """CRC-32 of the data bytes sent (binary: the table's bytes in the wire byte order)."""
-        if self.crc is None:
-            plan = self.plan
+        plan = self.plan
+        if plan.crc is None:
             if np.dtype(plan.info.dtype) == scpi.wire_dtype(plan.info.dtype, plan.byte_order):
-                self.crc = plan.table.crc32          # cached on the table: shared with other users
+                plan.crc = plan.table.crc32          # cached on the table: shared with other users
             else:
                 value = 0
                 for chunk in plan.wire_chunks():
                     value = zlib.crc32(chunk, value)
-                self.crc = value & 0xFFFFFFFF
-        return self.crc
+                plan.crc = value & 0xFFFFFFFF
+        return plan.crc
 
     def verify(self, template: str) -> dict:
         plan = self.plan
-        step = "verify"
-        nbytes = self.report.get("block_bytes", 0)
+        step = self.label or "verify"
+        nbytes = plan.block_bytes
         timeout = plan.data_timeout(nbytes)
         command = plan.rendered[template]
         if template == "checksum":
@@ -400,7 +496,7 @@ class _Session:
             result = {"method": "checksum", "expected_crc32": expected, "instrument_crc32": value,
                       "ok": value == expected}
         else:
-            got, count = self._readback(command, nbytes, timeout)
+            got, count = self._readback(step, command, nbytes, timeout)
             expected = self.sent_crc()
             result = {"method": "readback", "expected_crc32": expected, "instrument_crc32": got,
                       "bytes": count, "ok": got == expected and count == nbytes}
@@ -410,13 +506,13 @@ class _Session:
                 f"0x{result['instrument_crc32']:08x}, sent 0x{result['expected_crc32']:08x})", step=step)
         return result
 
-    def _readback(self, command: str, nbytes: int, timeout: float) -> tuple[int, int]:
+    def _readback(self, step: str, command: str, nbytes: int, timeout: float) -> tuple[int, int]:
         """CRC-32 and length of the data the instrument sends back for ``command``.
 
         An ASCII readback may be as long as the text sent plus the usual reply
         allowance; a binary one must announce exactly the bytes sent.
         """
-        step, link = "verify", self.link
+        link = self.link
         t0 = time.monotonic()
         deadline = t0 + timeout
         link.write_query(step, command)
@@ -459,46 +555,64 @@ class _Session:
 
     # -- the sequence --------------------------------------------------------------------------
     def run(self) -> None:
-        plan = self.plan
         checked = False
-        for step, template in plan.sequence(self.delivery.arm):
+        for st in _steps(self.plans, self.delivery.arm):
             t0 = time.monotonic()
-            detail = self._step(step, template, checked)
-            if step == "clear":
+            self.plan, self.label = st.plan, st.label
+            detail = self._step(st, checked)
+            if st.step == "clear":
                 checked = True
-            self.report["steps"].append({"step": step, "ok": True, "duration": time.monotonic() - t0, **detail})
+            entry = {"step": st.label, "ok": True, "duration": time.monotonic() - t0, **detail}
+            self.report["steps"].append(entry)
 
-    def _step(self, step: str, template: str, checked: bool) -> dict:
+    def _step(self, st: _Step, checked: bool) -> dict:
         """Run one step of the sequence; returns what the report shows of it."""
-        plan, rendered = self.plan, self.plan.rendered
-        if step == "identify":
+        plan, rendered, step = st.plan, st.plan.rendered, st.label
+        if st.step == "identify":
             reply = self.link.query(step, rendered["identify"])
             self.report["identity"] = reply
             if not re.search(plan.commands.identity_pattern, reply):
                 raise _WrongInstrument(f"this is not the instrument the profile describes (identity "
                                       f"pattern {plan.commands.identity_pattern!r})", step=step, reply=reply)
             return {"identity": reply}
-        if step == "upload":
+        if st.step == "upload":
             self.upload()
             return {"bytes": self.report["upload"]["bytes"]}
-        if step == "wait":
+        if st.step == "wait":
+            upload = step.replace("wait", "upload", 1)
             try:
-                reply = self.wait(step, plan.data_timeout(self.report.get("block_bytes", 0)))
+                reply = self.wait(step, plan.data_timeout(plan.block_bytes))
             except LinkLost as exc:
                 # the table was handed to the link, but the instrument hung up before confirming it:
                 # how far it got depends on socket buffers, so the loss is charged to the upload
-                raise _upload_lost("after the whole block was sent", exc.why) from None
-            self.check_errors("upload")
+                raise _upload_lost("after the whole block was sent", exc.why, upload) from None
+            self.check_errors(upload)
             return {"reply": reply}
-        if step == "verify":
-            result = self.verify(template)
-            self.report["verification"] = result
+        if st.step == "verify":
+            result = self.verify(st.template)
+            self._verified(plan, result)
             return dict(result)
-        detail = self._command(step, rendered[template], checked)
-        if step == "output_off" and checked and plan.commands.has("output_state"):
+        detail = self._command(step, rendered[st.template], checked)
+        has_state = plan.commands.has("output_state")
+        if st.step == "output_off" and checked and has_state:
             self.report["output_state"] = read = self.confirm_off(step)
             detail["detail"] = f"read back: {read['query']} answered {read['reply']}"
+        if st.step == "output_on":
+            self.report["armed"] = True
+            if has_state:
+                read = self.confirm_state(step, on=True)
+                detail["detail"] = f"read back: {read['query']} answered {read['reply']}"
         return detail
+
+    def _verified(self, plan: _Plan, result: dict) -> None:
+        """Record one table's verification; with several tables, ``verification`` holds each."""
+        if len(self.plans) == 1:
+            self.report["verification"] = result
+            return
+        doc = self.report.get("verification") or {"method": result["method"], "ok": True, "outputs": []}
+        doc["outputs"].append({"output": plan.channel, **result})
+        doc["ok"] = doc["ok"] and result["ok"]
+        self.report["verification"] = doc
 
     def _command(self, step: str, text: str, checked: bool) -> dict:
         detail = {}
@@ -508,22 +622,22 @@ class _Session:
             self.link.write(step, text)
         if checked or step == "clear":
             self.check_errors(step)
-        if step == "output_on":
-            self.report["armed"] = True
         return detail
 
     def safe_off(self) -> str:
-        """Switch the output off after a failure; returns what happened (for the message).
+        """Switch every output off after a failure; returns what happened (for the message).
 
         The confirmation must be the answer to the query that asked for it: the
         same connection is used only while it is in step (no reply of an earlier
         query can still be on its way), and only after clearing what it holds;
-        otherwise a new connection is opened.
+        otherwise a new connection is opened. The error queue is cleared first and
+        read last: an instrument that refuses an output's switch-off (an output it
+        does not have, say) has not confirmed anything, and its words are reported.
         """
         link = self.link
         attempts = ["the same connection"] if link.res is not None and link.in_step else []
         attempts.append("a new connection")
-        still_on = None
+        still_on = refused = None
         for attempt in attempts:
             try:
                 if attempt == "a new connection":
@@ -531,20 +645,36 @@ class _Session:
                     link.open()
                 if not link.clear_input():
                     continue                  # it keeps talking unasked: nothing it says can be trusted
-                link.write("output_off", self.plan.rendered["output_off"])
-                read = self.confirm_off("output_off")
+                read = self._all_off()
             except _StillOn as exc:
                 still_on = exc.reply
                 continue
-            except InstrumentError:
+            except InstrumentError as exc:
+                refused = exc.reply if exc.reply and "error" in str(exc) else refused
                 continue
             self.report["armed"] = False
             self.report["output_state"] = read
-            return f"output switched off (confirmed on {attempt})"
+            what = ("output" if len(self.plans) == 1 else
+                    f"every output ({', '.join(str(p.channel) for p in self.plans)})")
+            return f"{what} switched off (confirmed on {attempt})"
         if still_on is not None:
             return (f"the output may still be ON: after output off the instrument reports it on (it said: "
                     f"{still_on}); check the output by hand before touching the setup")
+        if refused is not None:
+            return f"the instrument refused output off (it said: {refused}); {UNCONFIRMED}"
         return UNCONFIRMED
+
+    def _all_off(self) -> dict:
+        """``output_off`` for every output, each read back; the error queue must stay empty."""
+        first = self.plans[0].rendered
+        self.link.write("output_off", first["clear"])      # so that the queue read last is about this
+        read = None
+        for plan in self.plans:
+            self.plan = plan
+            self.link.write("output_off", plan.rendered["output_off"])
+            read = self.confirm_off("output_off")
+        self.check_errors("output_off")
+        return read
 
 
 class _Crc32:
@@ -601,35 +731,42 @@ class VisaDriver(Driver):
     options: ClassVar[dict] = {
         "backend": f"pyvisa backend (default {DEFAULT_BACKEND!r}: pure Python; '@ivi' for an installed VISA)",
         "verify": "auto (checksum, else readback, where the profile can), readback, checksum or none",
-        "trigger_source": "EXT (start on the source trigger; default) or IMM (free running) or BUS",
+        "trigger_source": "the instrument's own name of the trigger source (from the profile's [trigger]); "
+                          "without it no trigger source is sent",
+        "edge": "the instrument's own name of the trigger edge (profile [trigger] rising/falling)",
+        "level": "trigger threshold, V",
+        "delay": "trigger delay, s: the first sample plays this long after the trigger",
+        "mode": "burst (cycles periods per trigger) or repeat (on and on)",
+        "cycles": "periods per trigger in burst mode (default 1)",
     }
 
     def check_destination(self, delivery: Delivery) -> str:
         return _resource(delivery)
 
     def deliver(self, table, delivery: Delivery) -> dict:
+        """Upload one table (see :meth:`deliver_tables`)."""
+        return self.deliver_tables([table], delivery)
+
+    def deliver_tables(self, tables: list, delivery: Delivery) -> dict:
+        """Upload several tables, one per output, in one session (:func:`_steps`): every output
+        off, every table loaded and verified, then configured and triggered, and only with
+        ``delivery.arm`` the outputs switched on in the order of ``tables``. Any failure switches
+        every output off before the error is raised."""
         options = dict(delivery.options)
         unknown = sorted(set(options) - set(self.options))
         if unknown:
             raise InputError(f"driver 'visa' has no option {unknown[0]!r} (options: {', '.join(self.options)})",
                              key="--option")
-        plan = _Plan(table, delivery.generator, options)
+        plans = _plans(tables, delivery.generator, options)
         resource = _resource(delivery)
-        report = {
-            "driver": self.name, "destination": resource, "backend": plan.backend,
-            "dry_run": bool(delivery.dry_run), "armed": False,
-            "table": {"count": plan.count, "sample_rate": plan.rate, "dtype": table.info.dtype,
-                      "channel": table.info.channel, "upload_mode": plan.mode, "byte_order": plan.byte_order,
-                      "amplitude": table.info.amplitude, "offset": table.info.offset},
-            "bytes": 0, "steps": [], "log": [], "verification": None,
-        }
+        report = _report(self.name, resource, plans, delivery)
         if delivery.dry_run:
-            report["log"] = plan.dry_log(delivery.arm)
+            report["log"] = _dry_log(plans, delivery.arm)
             report["bytes"] = sum(e["bytes"] for e in report["log"])
-            report["verification"] = {"method": plan.method, "ok": None}
+            report["verification"] = {"method": plans[0].method, "ok": None}
             return report
         t0 = time.monotonic()
-        session = _Session(plan, delivery, report, resource)
+        session = _Session(plans, delivery, report, resource)
         try:
             session.link.open()
             session.run()
@@ -651,12 +788,41 @@ class VisaDriver(Driver):
             raise
         finally:
             session.link.close_all()
-        if plan.method == "none":
+        if plans[0].method == "none":
             report["verification"] = {"method": "none", "ok": None,
                                       "note": "the profile has neither a readback nor a checksum template"}
         report["bytes"] = session.link.sent
         report["duration"] = time.monotonic() - t0
         return report
+
+
+def _plans(tables: list, generator, options: dict) -> list[_Plan]:
+    """One plan per table; with several, each trace is named after its output and no output twice."""
+    if not tables:
+        raise InputError("nothing to upload", key="table")
+    channels = [int(t.info.channel) for t in tables]
+    if len(set(channels)) != len(channels):
+        raise InputError(f"two tables for the same output ({channels})", key="channel")
+    if len(tables) == 1:
+        return [_Plan(tables[0], generator, options)]
+    base = generator.commands.trace_name if getattr(generator, "commands", None) else "SWEEP"
+    return [_Plan(t, generator, options, trace=f"{base[:12 - len(str(n))]}{n}") for t, n in zip(tables, channels)]
+
+
+def _report(name: str, resource: str, plans: list, delivery: Delivery) -> dict:
+    def table(plan):
+        info = plan.info
+        return {"count": plan.count, "sample_rate": plan.rate, "dtype": info.dtype, "channel": info.channel,
+                "upload_mode": plan.mode, "byte_order": plan.byte_order, "amplitude": info.amplitude,
+                "offset": info.offset}
+
+    report = {"driver": name, "destination": resource, "backend": plans[0].backend,
+              "dry_run": bool(delivery.dry_run), "armed": False, "table": table(plans[0]),
+              "bytes": 0, "steps": [], "log": [], "verification": None}
+    if len(plans) > 1:
+        report["tables"] = [table(p) for p in plans]
+        report["arm_order"] = [p.channel for p in plans]
+    return report
 
 
 def _resource(delivery: Delivery) -> str:
@@ -667,9 +833,9 @@ def _resource(delivery: Delivery) -> str:
     return check_resource(link.address, key="link.resource", file=str(delivery.generator.path or "") or None)
 
 
-def _upload_lost(when: str, why: str) -> LinkLost:
+def _upload_lost(when: str, why: str, step: str = "upload") -> LinkLost:
     """The error of a connection lost between the first byte of the block and the completion reply."""
-    return LinkLost(why, step="upload", message=f"the connection was lost {when}, before the instrument "
+    return LinkLost(why, step=step, message=f"the connection was lost {when}, before the instrument "
                                                   f"confirmed the upload ({why})")
 
 

@@ -743,3 +743,128 @@ def table_findings(plan, table, sweep) -> list[Finding]:
                      f"represented within {si(sweep.error, 'Hz')})",
                      "export a new table from the scenario, or recalibrate the laser (sweepgen calibrate)"))
     return out
+
+
+# ----------------------------------------------------------------------------------
+# Timing and further channels
+# ----------------------------------------------------------------------------------
+def timing_findings(scenario, timing, generator) -> list[Finding]:
+    """``timing.delay`` (only the rest before the chirp may be skipped), ``timing.trigger`` (the
+    generator profile can be told what the scenario asks for), and for each gate ``NAME.window``,
+    ``NAME.coverage`` (open during the whole chirp, for every light it switches) and
+    ``NAME.switch_off`` (closed within its tolerance after the chirp's end); ``NAME.window`` of
+    each marker. ``timing`` is a :class:`sweepgen.playback.PlayTiming`."""
+    when = timing.moments
+    start = when["chirp_start"]
+    delay_ok = timing.delay <= start and timing.delay < timing.period
+    out = [Finding("timing.delay", "pass" if delay_ok else "fail", timing.delay, start, "s", None,
+                   f"the first sample plays {si(timing.delay, 's')} after the trigger; the chirp starts at "
+                   f"{si(start, 's')}", "" if delay_ok else
+                   "lower timing.delay to at most the chirp start: only the rest before the chirp may be skipped")]
+    out += _trigger_findings(timing, generator)
+    for ch in scenario.channels:
+        if ch.kind == "gate":
+            out += _gate_findings(ch, timing)
+    for m in timing.markers:
+        fits = timing.delay <= m.start < m.end <= timing.period
+        out.append(Finding(f"{m.name}.window", "pass" if fits else "fail", m.start, timing.period, "s", None,
+                           f"marker high from {si(m.start, 's')} to {si(m.end, 's')} after the trigger "
+                           f"(table from {si(timing.delay, 's')} to {si(timing.period, 's')})",
+                           "" if fits else "move the marker (at, shift, width) inside the played period"))
+    missing = {m.name for m in scenario.timing.markers} - {m.name for m in timing.markers}
+    for name in sorted(missing):
+        out.append(Finding(f"{name}.window", "fail", None, None, "s", None,
+                           f"marker {name}: this period has no such moment (a continuous beam has no arrival "
+                           f"of a bunch)", "choose another moment for timing.markers." + name + ".at"))
+    return out
+
+
+def _trigger_findings(timing, generator) -> list[Finding]:
+    commands = getattr(generator, "commands", None)
+    if commands is None:
+        return [info("timing.trigger", f"{timing.source} trigger, {timing.mode}: a ramp board's link settings")]
+    wanted = [("trigger", "trigger_source", timing.source, timing.source_name is None),
+              ("trigger_edge", "edge", timing.edge, timing.edge_name is None)]
+    problems = [f"commands.{t} needs the instrument's name for '{word}' ([trigger] {word} = \"...\")"
+                for t, _, word, unnamed in wanted if commands.has(t) and unnamed]
+    for key, value, template in (("delay", timing.delay, "trigger_delay"), ("level", timing.level, "trigger_level")):
+        if value and not commands.has(template):
+            problems.append(f"timing.{key} is set but the profile has no '{template}' template to send it")
+    if timing.mode == "burst" and timing.cycles > 1 and not commands.has("burst"):
+        problems.append("timing.cycles asks for a burst but the profile has no 'burst' template")
+    text = (f"{timing.source} trigger ({timing.source_name or 'no name in the profile'}), {timing.edge} edge, "
+            f"{timing.mode}" + (f" of {timing.cycles} period(s)" if timing.mode == "burst" else ""))
+    if problems:
+        return [Finding("timing.trigger", "fail", None, None, "", None, f"{text}: " + "; ".join(problems),
+                        "describe the instrument's trigger in its generator profile ([trigger], [commands])")]
+    return [info("timing.trigger", text)]
+
+
+def _gate_findings(ch, timing) -> list[Finding]:
+    from sweepgen.timing import gate_window
+
+    g, name = ch.gate, ch.name
+    window = gate_window(g, timing.moments)
+    if window is None:
+        return [Finding(f"{name}.window", "fail", None, None, "s", None,
+                        f"gate {name}: this period has no moment '{g.on if timing.moments.get(g.on) is None else g.off}'",
+                        f"choose other moments for channels.{name}.on/off")]
+    opened, closed = window
+    when = timing.moments
+    fits = timing.delay <= opened < closed <= timing.period
+    out = [Finding(f"{name}.window", "pass" if fits else "fail", opened, timing.period, "s", None,
+                   f"gate {name} open from {si(opened, 's')} to {si(closed, 's')} after the trigger "
+                   f"(table from {si(timing.delay, 's')} to {si(timing.period, 's')})",
+                   "" if fits else "move the gate's on/off (or their shifts) inside the played period")]
+    covers = opened <= when["chirp_start"] and closed >= when["chirp_end"]
+    lights = ", ".join(g.lights)
+    out.append(Finding(f"{name}.coverage", "pass" if covers else "fail", None, None, "s", None,
+                       f"gate {name} lets {lights} through from {si(opened, 's')} to {si(closed, 's')}; the chirp "
+                       f"runs from {si(when['chirp_start'], 's')} to {si(when['chirp_end'], 's')}",
+                       "" if covers else "open the gate before the chirp starts and close it after it ends"))
+    late = closed - when["chirp_end"]
+    out.append(upper(f"{name}.switch_off", late, g.tolerance, "s",
+                     f"gate {name} closes {si(late, 's')} after the chirp's end (tolerance {si(g.tolerance, 's')}): "
+                     f"light left on turns the slowed atoms back",
+                     f"close it sooner (channels.{name}.off, off_shift) or raise channels.{name}.tolerance",
+                     warns=False))
+    return out
+
+
+def channel_findings(playing) -> list[Finding]:
+    """The rules of a further output, named ``NAME.rule``: for a frequency channel its laser's limits,
+    the generator's output and sample-rate rules and its codes; for a gate or marker its input's safe
+    range, the generator's output and its codes."""
+    found = [output_kind_finding(playing)]
+    if found[0].status != "fail":
+        found += generator_findings(playing)
+        if playing.quantisation is None:
+            found.append(Finding("generator_range", "fail", None, None, playing.drive_unit, None,
+                                 playing.quantisation_refusal, "see the message"))
+    if playing.kind == "frequency":
+        sweep = SweepSamples.of(playing.schedule, playing.laser.chain)
+        found = laser_findings(playing, sweep) + found
+        if found and playing.quantisation is not None and playing.rate_choice is not None:
+            found += sample_rate_findings(playing) + quantisation_findings(playing, playing.quantisation, sweep)
+    else:
+        # a gate's or marker's levels are its input's range by default: reaching its edge is no warning
+        rng = _actuator_range(playing.laser.limits, playing)
+        if rng.status == "warn":
+            rng.status, rng.advice = "pass", ""
+        found.insert(0, rng)
+    for f in found:
+        f.rule = f"{playing.name}.{f.rule}"
+    return found
+
+
+def output_findings(channels: dict) -> list[Finding]:
+    """``outputs``: no two channels play on the same output of one generator."""
+    seen, clash = {}, []
+    for name, playing in channels.items():
+        where = (playing.generator.key, playing.output)
+        if where in seen:
+            clash.append(f"{seen[where]} and {name} both play on output {where[1]} of {where[0]}")
+        seen.setdefault(where, name)
+    text = "; ".join(clash) or ", ".join(f"{n} on {p.address}" for n, p in channels.items())
+    return [Finding("outputs", "fail" if clash else "pass", None, None, "", None, text,
+                    "give each channel its own output" if clash else "")]

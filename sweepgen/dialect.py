@@ -29,8 +29,20 @@ placeholders (:data:`PLACEHOLDERS`):
 ``{count}``        samples in the table
 ``{amplitude}``    peak-to-peak volts to program; ``{offset}`` its centre (V)
 ``{high}``, ``{low}``    offset ± amplitude/2 (V)
-``{trigger_source}``    ``EXT`` (pulsed sources: start on the source trigger)
-                        or ``IMM`` (free running)
+``{trigger_source}``    the instrument's own name (``[trigger]`` of the profile) of the
+                        source the scenario's ``[timing] source`` asks for
+                        (``external``: the trigger input; ``internal``: free running;
+                        ``software``); sweepgen assumes no name of its own
+``{edge}``         the instrument's name of the active edge (``[trigger] rising``/``falling``)
+``{level}``        the trigger input's threshold (V)
+``{delay}``        the trigger delay (s): the first sample plays this long after the edge
+``{cycles}``       periods played per trigger in burst mode
+
+Templates of the trigger and playback mode (all optional): ``trigger``
+(source), ``trigger_edge``, ``trigger_level``, ``trigger_delay``, ``burst``
+(one burst of ``{cycles}`` periods per trigger) and ``repeat`` (play on and
+on). ``output_state`` is a query answering 0/OFF or 1/ON: where a profile has it,
+every switch-off and every switch-on is read back and must be what was asked.
 """
 
 from __future__ import annotations
@@ -46,7 +58,7 @@ from sweepgen.wire.scpi import NAME, format_number
 TEMPLATE_KEYS = (
     "identify", "reset", "clear", "output_off", "format", "upload", "wait", "error_query",
     "readback", "checksum", "function", "rate", "amplitude", "offset", "trigger", "output_on",
-    "output_state",
+    "output_state", "trigger_edge", "trigger_level", "trigger_delay", "burst", "repeat",
 )
 #: Settings in [commands] that are not command templates.
 SETTING_KEYS = ("identity_pattern", "no_error_pattern", "upload_mode", "trace_name", "byte_order")
@@ -58,7 +70,7 @@ QUERIES = ("identify", "wait", "error_query", "readback", "checksum", "output_st
 #: Every placeholder a template may use (see the module docstring).
 PLACEHOLDERS = frozenset({
     "channel", "name", "data", "format", "type", "bits", "border", "rate", "frequency", "period",
-    "count", "amplitude", "offset", "high", "low", "trigger_source",
+    "count", "amplitude", "offset", "high", "low", "trigger_source", "edge", "level", "delay", "cycles",
 })
 
 _SAFE_TOKEN = re.compile(r"[A-Za-z0-9_.+\-]+(,[A-Za-z0-9_.+\-]+)?\Z")
@@ -153,14 +165,14 @@ def format_value(key: str, value) -> str:
             raise ValueError(f"trace name must be SCPI character data (a letter, then letters, digits "
                              f"or '_', at most 12 characters), got {value!r}")
         return value
-    if key in ("channel", "count", "bits"):
+    if key in ("channel", "count", "bits", "cycles"):
         least = 0 if key == "count" else 1
         if isinstance(value, bool) or not isinstance(value, int) or value < least:
             raise ValueError(f"{key} must be a whole number >= {least}, got {value!r}")
         return str(value)
-    if key in ("rate", "frequency", "period", "amplitude", "offset", "high", "low"):
+    if key in ("rate", "frequency", "period", "amplitude", "offset", "high", "low", "level", "delay"):
         return format_number(value)
-    if key in ("format", "type", "border", "trigger_source"):
+    if key in ("format", "type", "border", "trigger_source", "edge"):
         if not isinstance(value, str) or not _SAFE_TOKEN.match(value):
             raise ValueError(f"{key} must be SCPI character data, got {value!r}")
         return value

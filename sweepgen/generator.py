@@ -12,6 +12,18 @@ termination setting and the real load: a generator with source impedance
 ``V_prog (R_T + R_s)/R_T``, of which ``R_L/(R_L + R_s)`` reaches a load ``R_L``.
 Set for 50 Ω and driving a high-impedance input, that is twice the programmed
 voltage (common practice of function generators).
+
+Where an instrument limits the amplitude and the offset separately, ``[output]``
+gives ``amplitude_max`` (V peak-to-peak) and ``offset_max`` (largest |offset|, V)
+instead of, or besides, ``range_min``/``range_max``: a window of at most
+``amplitude_max`` centred within ``±offset_max`` (and within the range where one
+is given). ``[outputs.N]`` overrides ``[output]`` keys for output N (per-channel
+settings: another load, range or resolution).
+
+``[trigger]`` gives the instrument's own names of what sweepgen asks for: the
+trigger sources ``external``, ``internal`` and ``software``, the edges
+``rising`` and ``falling``. The names go into the ``{trigger_source}`` and
+``{edge}`` placeholders; sweepgen assumes none of them.
 """
 
 from __future__ import annotations
@@ -21,7 +33,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from sweepgen import catalog
-from sweepgen._config import Section, load_toml
+from sweepgen._config import MISSING, Section, load_toml
 
 HIGH_Z = math.inf
 
@@ -52,6 +64,8 @@ class Output:
     source_impedance: float = 50.0     # ohm
     clock: float | None = None         # Hz, DDS reference clock (frequency outputs)
     word_bits: int | None = None       # bits of the DDS frequency tuning word
+    amplitude_max: float | None = None   # V peak-to-peak programmed, where limited apart from the offset
+    offset_max: float | None = None      # V, largest |offset| programmed, where limited apart
 
     @property
     def delivered_factor(self) -> float:
@@ -72,6 +86,21 @@ class Link:
 
 
 @dataclass(frozen=True)
+class Trigger:
+    """The instrument's own names for trigger sources and edges (``[trigger]`` of the profile)."""
+
+    names: dict = field(default_factory=dict)     # sweepgen's word -> the instrument's name
+
+    def name(self, word: str) -> str | None:
+        """The instrument's name for ``word`` (``external``, ``rising``, ...), None when it has none."""
+        return self.names.get(word)
+
+
+#: sweepgen's words a [trigger] table may name (sources, then edges)
+TRIGGER_WORDS = ("external", "internal", "software", "rising", "falling")
+
+
+@dataclass(frozen=True)
 class Generator:
     key: str
     title: str
@@ -82,6 +111,15 @@ class Generator:
     link: Link
     commands: object = None            # sweepgen.dialect.Commands for an AWG, None for a board
     path: Path | None = field(default=None, compare=False)
+    trigger: Trigger = field(default_factory=Trigger)
+    outputs: dict = field(default_factory=dict)    # output number -> Output where [outputs.N] differs
+
+    def for_output(self, number: int) -> "Generator":
+        """This generator as seen by output ``number``: its own ``[outputs.N]`` settings, if any."""
+        import dataclasses
+
+        own = self.outputs.get(int(number))
+        return self if own is None else dataclasses.replace(self, output=own)
 
 
 def load_generator(ref, *, relative_to=None, file=None, key=None) -> Generator:
@@ -105,7 +143,10 @@ def generator_from_dict(data: dict, path) -> Generator:
     kind = top.string("kind", choices=("awg", "board"))
     channels = top.number("channels", 1, integer=True, minimum=1)
     sampling = _sampling(top)
+    output_data = top.raw("output")
     output = _output(top.section("output"))
+    outputs = _outputs(top, output_data, channels)
+    trigger = _trigger(top.section("trigger", None))
     link = _link(top.section("link"))
     if (kind == "awg") != (link.kind == "visa"):
         raise top.error("link.kind", f"a generator of kind '{kind}' needs link.kind = "
@@ -118,8 +159,55 @@ def generator_from_dict(data: dict, path) -> Generator:
     elif top.has("commands"):
         raise top.error("commands", "a ramp board speaks the serial frame protocol; remove [commands]")
     top.finish()
+    if commands is not None:
+        _check_trigger_names(top, commands, trigger)
     return Generator(key=Path(str(path)).stem, title=title, kind=kind, channels=channels, sampling=sampling,
-                     output=output, link=link, commands=commands, path=Path(str(path)))
+                     output=output, link=link, commands=commands, path=Path(str(path)), trigger=trigger,
+                     outputs=outputs)
+
+
+def _trigger(sec: Section | None) -> Trigger:
+    if sec is None:
+        return Trigger()
+    names = {}
+    for word in TRIGGER_WORDS:
+        value = sec.string(word, None)
+        if value is not None:
+            from sweepgen.dialect import format_value
+
+            try:
+                format_value("trigger_source", value)
+            except ValueError:
+                raise sec.error(word, f"expected SCPI character data (letters, digits, '_'), got {value!r}") from None
+            names[word] = value
+    sec.finish()
+    return Trigger(names)
+
+
+def _check_trigger_names(top: Section, commands, trigger: Trigger) -> None:
+    """A template that sends a trigger source or edge needs the instrument's names for them."""
+    from sweepgen.dialect import placeholders
+
+    for key, words in (("trigger_source", ("external", "internal", "software")), ("edge", ("rising", "falling"))):
+        users = [t for t, text in commands.templates.items() if key in placeholders(text)]
+        if users and not any(trigger.name(w) for w in words):
+            raise top.error("trigger", f"commands.{users[0]} sends {{{key}}}: name the instrument's own words "
+                                       f"for it in [trigger] ({', '.join(words)} = \"...\")")
+
+
+def _outputs(top: Section, base: dict, channels: int) -> dict:
+    """``[outputs.N]``: per-output settings over ``[output]``."""
+    sec = top.section("outputs", None)
+    if sec is None:
+        return {}
+    found = {}
+    for name in list(sec.data):
+        if not name.isdigit() or not 1 <= int(name) <= channels:
+            raise sec.error(name, f"expected an output number 1..{channels}")
+        own = sec.section(name)           # a table (refused otherwise); its keys are read through the merge
+        found[int(name)] = _output(Section({**base, **own.data}, sec.file, own.prefix, kind="generator"))
+    sec.finish()
+    return found
 
 
 def _rates(sm: Section) -> tuple:
@@ -159,14 +247,20 @@ def _sampling(top: Section) -> Sampling:
 def _output(out: Section) -> Output:
     okind = out.string("kind", "voltage", choices=("voltage", "frequency"))
     if okind == "voltage":
-        lo = out.quantity("range_min", "V", example="-5 V")
-        hi = out.quantity("range_max", "V", example="5 V")
+        amp_max = out.quantity("amplitude_max", "V", None, positive=True, example="10 V")
+        off_max = out.quantity("offset_max", "V", None, nonnegative=True, example="5 V")
+        if (amp_max is None) != (off_max is None):
+            raise out.error("offset_max" if off_max is None else "amplitude_max",
+                            "give amplitude_max and offset_max together (separate limits of amplitude and offset)")
+        reach = None if amp_max is None else off_max + amp_max / 2
+        lo = out.quantity("range_min", "V", -reach if reach is not None else MISSING, example="-5 V")
+        hi = out.quantity("range_max", "V", reach if reach is not None else MISSING, example="5 V")
         bits = out.number("dac_bits", integer=True, minimum=2, maximum=32)
         termination = _impedance(out, "termination", HIGH_Z)
         load = _impedance(out, "load", HIGH_Z)
         rs = out.quantity("source_impedance", "ohm", 50.0, nonnegative=True, example="50 ohm")
         output = Output("voltage", lo, hi, dac_bits=bits, termination=termination, load=load,
-                        source_impedance=rs)
+                        source_impedance=rs, amplitude_max=amp_max, offset_max=off_max)
     else:
         clock = out.quantity("clock", "Hz", positive=True, example="1 GHz")
         word_bits = out.number("word_bits", integer=True, minimum=8, maximum=64)

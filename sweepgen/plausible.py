@@ -139,6 +139,8 @@ COEFFICIENT = Range("1 kHz/V", "1 THz/V", "Hz/V",
 CLOCK = Range("1 MHz", "100 GHz", "Hz", "DDS reference clocks (tens of MHz to a few GHz)")
 FIT_RECORD = Range("0 Hz", "1 THz", "Hz", "what a calibration fit is judged by (residuals, uncertainty, hysteresis)")
 COUNT = Range(0, 10**9, "", "counts of calibration points")
+SHIFT = Range("-1000 s", "1000 s", "s", "a shift from a moment of the period, either way, within a period")
+GATE_VOLTS = Range("-50 V", "50 V", "V", "modulator and logic inputs (AOM driver, shutter, TTL) take tens of volts at most")
 FRACTION_OPEN = Range(0, 1, "", "a fraction strictly between 0 and 1", open_low=True, open_high=True)
 
 SCENARIO = {
@@ -178,6 +180,23 @@ SCENARIO = {
     "channels.*.saturation": SATURATION,
     "channels.*.offset": DETUNING,
     "channels.*.detuning": DETUNING,
+    "channels.*.output": Range(1, 64, "", "generator output channels"),
+    "channels.*.on_shift": SHIFT,
+    "channels.*.off_shift": SHIFT,
+    "channels.*.level": Range(0, 1, "", "a fraction of full intensity"),
+    "channels.*.dark": GATE_VOLTS,
+    "channels.*.bright": GATE_VOLTS,
+    "channels.*.input_min": GATE_VOLTS,
+    "channels.*.input_max": GATE_VOLTS,
+    "channels.*.tolerance": Range("0 s", "1 s", "s", "light left on after the chirp: up to a slow shutter's second"),
+    "timing.delay": TIME,
+    "timing.cycles": Range(1, 10**9, "", "periods played per trigger"),
+    "timing.level": Range("-50 V", "50 V", "V", "trigger thresholds of generator inputs (TTL, NIM, ±10 V)"),
+    "timing.markers.*.shift": SHIFT,
+    "timing.markers.*.width": Range("1 ns", "1000 s", "s", "marker pulses from a nanosecond to a whole period"),
+    "timing.markers.*.output": Range(1, 64, "", "generator output channels"),
+    "timing.markers.*.high": GATE_VOLTS,
+    "timing.markers.*.low": GATE_VOLTS,
 }
 
 SPECIES = {
@@ -263,7 +282,12 @@ GENERATOR = {
     "link.baud": Range(50, 10**8, "", "serial line rates, from teleprinters to fast USB bridges"),
     "link.throughput": Range("10 B/s", "100 GB/s", "B/s", "from a slow serial line to the fastest links"),
     "link.timeout": Range("1 ms", "1 h", "s", "a reply later than an hour is a failure, not a wait"),
+    "output.amplitude_max": Range("1 mV", "2 kV", "V", "peak-to-peak amplitudes of generator outputs and their amplifiers"),
+    "output.offset_max": Range("0 V", "1 kV", "V", "offsets of generator outputs and their amplifiers"),
 }
+#: [outputs.N] of a generator profile takes the keys of [output], with the same ranges
+GENERATOR.update({f"outputs.*.{key[len('output.'):]}": rng for key, rng in list(GENERATOR.items())
+                  if key.startswith("output.")})
 
 #: Columns of measurement files (``sweepgen.measurements``), by column kind.
 MEASUREMENT = {

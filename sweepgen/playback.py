@@ -24,6 +24,7 @@ numbers are SI (Hz, Sa/s, s, drive units V or Hz); result objects have
 
 from __future__ import annotations
 
+import dataclasses
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -94,10 +95,173 @@ class ChannelPlayback:
     quantisation: sampling.Quantisation | None
     rate_refusal: str = ""
     quantisation_refusal: str = ""
+    kind: str = "frequency"                     # "frequency" (a detuning) | "gate" | "marker" (a level)
 
     @property
     def drive_unit(self) -> str:
         return self.laser.chain.drive_unit
+
+    @property
+    def address(self) -> str:
+        """Where it plays, in words: ``output 2 of virtual-awg``."""
+        return f"output {self.output} of {self.generator.key}"
+
+    @property
+    def quantity(self) -> str:
+        """What the schedule holds: ``detuning`` (Hz) or ``level`` (fraction of full intensity or high)."""
+        return "detuning" if self.kind == "frequency" else "level"
+
+    def to_json(self) -> dict:
+        out = {"name": self.name, "kind": self.kind, "generator": self.generator.key, "output": self.output,
+               "laser": self.laser.key, "drive_unit": self.drive_unit, "drive_range": list(self.drive_range)}
+        if self.rate_choice is not None:
+            out.update(sample_rate=self.rate_choice.sample_rate, count=self.rate_choice.count)
+        if self.quantisation is not None:
+            out.update(amplitude=self.quantisation.amplitude, offset=self.quantisation.offset)
+        return out
+
+
+@dataclass(frozen=True)
+class MarkerTimes:
+    """A marker's pulse on the trigger axis (s)."""
+
+    name: str
+    output: int
+    start: float
+    end: float
+
+
+@dataclass(frozen=True)
+class PlayTiming:
+    """How and when a playback starts, on one time axis (0 = the trigger edge; SI units).
+
+    ``source``/``edge`` are sweepgen's words; ``source_name``/``edge_name``
+    the generator profile's own names for them (None: the profile names none,
+    e.g. a ramp board). ``moments`` maps :data:`sweepgen.timing.MOMENTS` to
+    times (None where the period has no such moment); the table's first sample
+    plays at ``delay``.
+    """
+
+    source: str                    # "external" | "internal" | "software"
+    source_name: str | None
+    edge: str                      # "rising" | "falling"
+    edge_name: str | None
+    level: float | None            # V, the trigger input's threshold
+    delay: float                   # s from the trigger edge to the first sample
+    mode: str                      # "burst" | "repeat"
+    cycles: int                    # periods per trigger (burst)
+    period: float                  # s
+    moments: dict
+    markers: tuple = ()            # MarkerTimes, ...
+
+    @property
+    def triggered(self) -> bool:
+        """Whether each playback waits for a trigger (a pulsed source), rather than running free."""
+        return self.source != "internal"
+
+    def to_json(self) -> dict:
+        return {"source": self.source, "source_name": self.source_name, "edge": self.edge,
+                "edge_name": self.edge_name, "level": self.level, "delay": self.delay, "mode": self.mode,
+                "cycles": self.cycles, "period": self.period, "moments": dict(self.moments),
+                "markers": [{"name": m.name, "output": m.output, "start": m.start, "end": m.end}
+                            for m in self.markers]}
+
+
+def play_timing(scenario, plan, generator) -> PlayTiming:
+    """The scenario's ``[timing]`` resolved against its plan and the generator's own trigger names."""
+    from sweepgen.timing import moments
+
+    tm = scenario.timing
+    names = getattr(generator, "trigger", None)
+    when = moments(plan)
+    markers = []
+    for m in tm.markers:
+        at = when.get(m.at)
+        if at is not None:
+            markers.append(MarkerTimes(m.name, m.output, at + m.shift, at + m.shift + m.width))
+    return PlayTiming(tm.source, names.name(tm.source) if names else None, tm.edge,
+                      names.name(tm.edge) if names else None, tm.level, tm.delay, tm.mode, tm.cycles,
+                      scenario.chirp.period, when, tuple(markers))
+
+
+# ---------------------------------------------------------------------------------------------
+# Schedules of further channels, on the trigger axis, and the table's own axis
+# ---------------------------------------------------------------------------------------------
+def offset_schedule(schedule, offset: float):
+    """``schedule`` moved by a constant ``offset`` (Hz): a channel following the main sweep."""
+    from sweepgen.schedule import Schedule
+
+    c = schedule.coefficients.copy()
+    c[-1] += offset
+    return Schedule(schedule.segments, (schedule.breakpoints, c), schedule.period,
+                    schedule.start_detuning + offset, schedule.end_detuning + offset)
+
+
+def level_schedule(period: float, intervals, base: float = 0.0):
+    """A piecewise-constant schedule over ``[0, period]``: ``base``, and ``(start, end, value)`` where given.
+
+    Intervals lie within the period and do not overlap (the checker refuses others first)."""
+    from sweepgen.schedule import Schedule, Segment
+
+    edges, values, segments = [0.0], [], []
+    t = 0.0
+    for a, b, value in sorted(intervals):
+        a, b = max(a, t), min(b, period)
+        if b <= a:
+            continue
+        for start, end, v, kind in ((t, a, base, "dark"), (a, b, value, "open")):
+            if end > start:
+                edges.append(end)
+                values.append(v)
+                segments.append(Segment(kind, start, end))
+        t = b
+    if period > t:
+        edges.append(period)
+        values.append(base)
+        segments.append(Segment("dark", t, period))
+    c = np.zeros((4, len(values)))
+    c[-1] = values
+    return Schedule(segments, (np.array(edges), c), period, values[0], values[-1])
+
+
+def delayed(schedule, delay: float):
+    """``schedule`` on the table's axis: its first sample plays ``delay`` after the trigger edge.
+
+    Only a stretch at the start that holds one value may be skipped (the checker's
+    ``timing.delay`` rule); it moves to the end of the period, where the next
+    period's start would have played it.
+    """
+    from sweepgen.schedule import Schedule, Segment
+
+    if delay <= 0:
+        return schedule
+    x, c, period = schedule.breakpoints, schedule.coefficients, schedule.period
+    first = schedule.detuning(0.0)
+    skipped = x[:-1] < delay
+    if np.any(c[:-1, skipped]) or np.any(c[-1, skipped] != first):
+        raise CheckFailed(f"the trigger delay {delay * 1e3:.6g} ms would skip a part of the period that changes")
+    keep = x[1:] > delay
+    edges = np.concatenate([[0.0], x[1:][keep] - delay, [period]])
+    coeffs = np.concatenate([c[:, keep], np.array([[0.0], [0.0], [0.0], [first]])], axis=1)
+    segments = [Segment(s.kind, max(s.start - delay, 0.0), s.end - delay) for s in schedule.segments
+                if s.end > delay] + [Segment(schedule.segments[0].kind, period - delay, period)]
+    return Schedule(segments, (edges, coeffs), period, first, schedule.end_detuning)
+
+
+def gate_laser(name: str, gate):
+    """The actuator of a gate or marker: a straight line from level 0 (``dark``) to 1 (``bright``) volts,
+    with its safe input range; no tuning, no response."""
+    import math
+
+    from sweepgen.chain import AnalogStage, Chain
+    from sweepgen.laser import Laser, Limits
+    from sweepgen.response import Response
+
+    stage = AnalogStage(f"{name} input", 1.0 / (gate.bright - gate.dark), 0.0, gate.dark, "V")
+    chain = Chain([stage], safe_min=gate.input_min, safe_max=gate.input_max)
+    limits = Limits(None, math.inf, gate.input_min, gate.input_max)
+    return Laser(key=name, title=f"{name}: level 0 at {gate.dark:g} V, 1 at {gate.bright:g} V", chain=chain,
+                 limits=limits, response=Response())
 
 
 def channel_playback(schedule, laser, generator, drive, *, linewidth: float | None = None,
@@ -126,6 +290,69 @@ def channel_playback(schedule, laser, generator, drive, *, linewidth: float | No
                            rate_refusal, quant_refusal)
 
 
+def played_on(schedule, laser, generator, output: int, choice, *, name: str, kind: str) -> ChannelPlayback:
+    """What a further channel plays at the main channel's sample-rate choice (one time base)."""
+    lo, hi = drive_range(schedule, laser.chain)
+    quant, refusal = None, ""
+    try:
+        quant = sampling.quantisation(lo, hi, generator, laser.chain)
+    except CheckFailed as exc:
+        refusal = str(exc)
+    return ChannelPlayback(name, output, schedule, laser, generator, (lo, hi), choice, quant, "", refusal, kind)
+
+
+def further_channels(sc: Scenario, plan, main: ChannelPlayback, timing: PlayTiming) -> dict:
+    """What each further output plays: frequency channels through their own lasers, gates and markers
+    as levels; all at the main channel's sample rate, on the table's axis (``timing.delay``).
+
+    A gate or marker whose moments do not fall inside one period is left out here; the checker's
+    timing rules fail it with the reason."""
+    from sweepgen.channels import Gate
+    from sweepgen.timing import gate_window
+
+    out = {}
+    base = plan.schedule()
+    for ch in sc.channels:
+        if not ch.played:
+            continue
+        gen = _channel_generator(sc, ch.generator_ref, main.generator).for_output(ch.output)
+        if ch.kind == "frequency":
+            laser = load_laser(ch.laser_ref, relative_to=sc.base_dir, file=str(sc.path),
+                               key=f"channels.{ch.name}.laser")
+            schedule = offset_schedule(base, ch.offset) if ch.follows else level_schedule(base.period, (), ch.detuning)
+        else:
+            window = gate_window(ch.gate, timing.moments)
+            if window is None:
+                continue
+            laser, schedule = gate_laser(ch.name, ch.gate), level_schedule(base.period, [(*window, ch.gate.level)])
+        try:
+            schedule = delayed(schedule, timing.delay)
+        except CheckFailed:
+            continue                       # it changes before the first sample: the timing rules fail it
+        out[ch.name] = played_on(schedule, laser, gen, ch.output, main.rate_choice, name=ch.name, kind=ch.kind)
+    for m, spec in zip(timing.markers, _marker_specs(sc, timing)):
+        if not timing.delay <= m.start < m.end <= timing.period:
+            continue
+        gate = Gate("trigger", "trigger", dark=spec.low, bright=spec.high, input_min=min(spec.low, spec.high),
+                    input_max=max(spec.low, spec.high))
+        schedule = level_schedule(timing.period, [(m.start, m.end, 1.0)])
+        out[m.name] = played_on(delayed(schedule, timing.delay), gate_laser(m.name, gate),
+                                main.generator.for_output(m.output), m.output, main.rate_choice,
+                                name=m.name, kind="marker")
+    return out
+
+
+def _marker_specs(sc: Scenario, timing: PlayTiming) -> list:
+    names = {m.name for m in timing.markers}
+    return [m for m in sc.timing.markers if m.name in names]
+
+
+def _channel_generator(sc: Scenario, ref: str | None, main_generator):
+    if ref is None:
+        return main_generator
+    return load_generator(ref, relative_to=sc.base_dir, file=str(sc.path), key="channels.generator")
+
+
 # ---------------------------------------------------------------------------------------------
 # The service
 # ---------------------------------------------------------------------------------------------
@@ -151,13 +378,24 @@ def prepare(scenario, *, laser=None, generator=None, sample_rate: float | None =
     laser, generator = scenario_profiles(sc, laser, generator)
     report = checker.CheckReport([], scenario=sc, laser=laser, generator=generator)
     plan = checker.check_design(report)
-    channels = {}
+    channels, timing = {}, None
     if plan is not None:
-        main = channel_playback(plan.schedule(), laser, generator, sc.drive, linewidth=sc.species.linewidth,
-                                sample_rate=sample_rate)
+        timing = play_timing(sc, plan, generator)
+        found = checker.timing_findings(sc, timing, generator)
+        report.findings.extend(found)
+        if any(f.rule == "timing.delay" and f.status == "fail" for f in found):
+            timing = dataclasses.replace(timing, delay=0.0)        # judged on the trigger's axis; never rendered
+        main = channel_playback(delayed(plan.schedule(), timing.delay), laser, generator, sc.drive,
+                                linewidth=sc.species.linewidth, sample_rate=sample_rate)
         checker.check_hardware(report, main)
         channels[MAIN] = main
-    return Playback(sc, laser, generator, report, channels)
+        if main.rate_choice is not None:
+            channels.update(further_channels(sc, plan, main, timing))
+            for name, playing in channels.items():
+                if name != MAIN:
+                    report.findings.extend(checker.channel_findings(playing))
+            report.findings.extend(checker.output_findings(channels))
+    return Playback(sc, laser, generator, report, channels, timing)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -222,15 +460,18 @@ def prepare_table(scenario, table, *, laser=None, generator=None) -> "Playback":
 class Link:
     """How an upload reaches its instrument: driver, destination, trigger.
 
-    ``trigger_source`` is ``EXT`` for a pulsed source (each period starts on
-    the source's trigger) and ``IMM`` for a continuous beam (free running);
-    ramp boards are triggered by their own firmware (None).
+    ``timing`` is the playback's :class:`PlayTiming` (trigger source, edge,
+    level, delay, burst or repeat, markers); ``trigger_source`` is the generator
+    profile's own name for the trigger source it asks for (``[trigger]`` of the
+    profile; None where the profile names none, as for a ramp board, whose
+    driver reads ``timing``).
     """
 
     driver: str                          # "visa" | "serial"
     destination: str                     # VISA resource string or pyserial URL
     trigger_source: str | None = None
     backend: str | None = None           # pyvisa backend (None: the driver's default)
+    timing: PlayTiming | None = None
 
     def options(self) -> dict:
         """The driver options (``Delivery.options``)."""
@@ -239,6 +480,11 @@ class Link:
             out["trigger_source"] = self.trigger_source
         if self.backend is not None:
             out["backend"] = self.backend
+        tm = self.timing
+        if self.driver == "visa" and tm is not None:
+            extra = {"edge": tm.edge_name, "level": tm.level, "delay": tm.delay or None, "mode": tm.mode,
+                     "cycles": tm.cycles if tm.mode == "burst" else None}
+            out.update({k: v for k, v in extra.items() if v is not None})
         return out
 
 
@@ -250,7 +496,8 @@ class Playback:
     laser: object
     generator: object
     report: checker.CheckReport
-    channels: dict                       # name -> ChannelPlayback (empty when the design itself fails)
+    channels: dict                       # name -> ChannelPlayback, MAIN first (empty when the design fails)
+    timing: PlayTiming | None = None     # trigger, delay, burst/repeat, moments, markers (None: no plan)
     _tables: dict = field(default_factory=dict, repr=False)
 
     @property
@@ -319,8 +566,9 @@ class Playback:
         gen = self.generator
         _refuse_empty(resource=resource, serial_port=serial_port)
         if serial_port is None and gen.kind != "board":
-            return Link("visa", resource or gen.link.address,
-                        trigger_source="EXT" if self.scenario.pulsed else "IMM", backend=backend)
+            timing = self.timing
+            return Link("visa", resource or gen.link.address, backend=backend, timing=timing,
+                        trigger_source=None if timing is None else timing.source_name)
         if gen.kind != "board":
             raise InputError(f"generator '{gen.key}' is an arbitrary-waveform generator on a VISA link; "
                              f"--serial-port is for ramp boards (use --resource)", key="--serial-port")
@@ -330,19 +578,45 @@ class Playback:
         if backend is not None:
             raise InputError("--backend chooses the VISA backend; a ramp board is reached through pyserial",
                              key="--backend")
-        return Link("serial", serial_port or gen.link.address)
+        return Link("serial", serial_port or gen.link.address, timing=self.timing)
 
     def upload(self, link: Link, *, arm: bool = False, dry_run: bool = False, progress=None) -> "Delivered":
-        """Upload the main table over ``link``, verified; outputs switch on only with ``arm``."""
+        """Upload every channel's table over ``link``, verified; outputs switch on only with ``arm``.
+
+        All tables are loaded and verified before any output is switched on; the outputs are
+        switched on in the order of :attr:`channels` (the main light, the further channels as
+        the scenario lists them, then the markers); any fault switches every output off.
+        """
         from sweepgen import drivers
         from sweepgen.drivers.base import Delivery
 
+        names = self.uploaded_channels()
         driver = drivers.load(link.driver)()
-        table = self.table()
+        tables = [self.table(name) for name in names]
         delivery = Delivery(destination=link.destination, generator=self.generator, arm=arm, dry_run=dry_run,
                             progress=progress, options=link.options())
-        report = self.record(driver.deliver(table, delivery), table)
-        return Delivered(self, "instrument", link.driver, link.destination, table.info, report)
+        if len(tables) > 1:
+            if not hasattr(driver, "deliver_tables"):
+                raise InputError(f"the {link.driver} driver uploads one table; this scenario plays "
+                                 f"{len(tables)} outputs ({', '.join(names)})", key="channels")
+            report = driver.deliver_tables(tables, delivery)
+            report["channels"] = [{"name": n, "output": self.channels[n].output,
+                                   "table_sha256": t.sha256} for n, t in zip(names, tables)]
+        else:
+            report = driver.deliver(tables[0], delivery)
+        report = self.record(report, tables[0])
+        return Delivered(self, "instrument", link.driver, link.destination, tables[0].info, report)
+
+    def uploaded_channels(self) -> list[str]:
+        """The channels an upload sends, in arming order; refuses channels on another generator
+        (an upload reaches one instrument: export those)."""
+        self.require_playable()
+        elsewhere = [n for n, p in self.channels.items() if p.generator.key != self.generator.key]
+        if elsewhere:
+            raise InputError(f"channel(s) {', '.join(elsewhere)} play on another generator; an upload reaches "
+                             f"one instrument: upload the scenario's outputs here and export the others",
+                             key="channels")
+        return list(self.channels)
 
     def provenance(self, table) -> dict:
         """What was played, by digest: the table's codes (``table_sha256``, as in sidecars) and the

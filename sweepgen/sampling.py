@@ -312,6 +312,8 @@ def quantisation(drive_min: float, drive_max: float, generator, chain) -> Quanti
             # centre the window exactly on the sweep, so the programmed window stays inside the range
             offset = 0.5 * (lo_p + hi_p)
             amplitude = max(hi_p - lo_p, floor)
+        if out.amplitude_max is not None:
+            offset, amplitude = _separate_limits(lo_p, hi_p, offset, amplitude, generator)
         scale = amplitude * k / (2.0 * fs)
         off = offset * k
         cmin = int(np.rint((drive_min - off) / scale))
@@ -328,6 +330,26 @@ def quantisation(drive_min: float, drive_max: float, generator, chain) -> Quanti
     cmin = int(np.rint(drive_min / scale))
     cmax = int(np.rint(drive_max / scale))
     return Quantisation("frequency", unit, dtype, scale, 0.0, cmin, cmax, 2 ** bits - 1, bits)
+
+
+def _separate_limits(lo_p: float, hi_p: float, offset: float, amplitude: float, generator) -> tuple[float, float]:
+    """``(offset, amplitude)`` within an output's separate limits (``amplitude_max`` peak-to-peak,
+    ``|offset| <= offset_max``), covering the programmed window ``[lo_p, hi_p]``; refused otherwise."""
+    out = generator.output
+    a_max, o_max = out.amplitude_max, out.offset_max
+    slack = 1e-12 * max(a_max, 1.0)
+    if hi_p - lo_p > a_max + slack:
+        raise CheckFailed(f"the drive needs {hi_p - lo_p:.6g} V peak-to-peak programmed but generator "
+                          f"'{generator.key}' plays at most {a_max:g} V peak-to-peak (output.amplitude_max)")
+    if abs(offset) <= o_max + slack and amplitude <= a_max + slack:
+        return offset, amplitude
+    offset = min(max(0.5 * (lo_p + hi_p), -o_max), o_max)
+    amplitude = max(2.0 * max(hi_p - offset, offset - lo_p), 1e-6 * a_max)
+    if amplitude > a_max + slack:
+        raise CheckFailed(f"the drive needs {lo_p:.6g} to {hi_p:.6g} V programmed: centred within the offset "
+                          f"limit ±{o_max:g} V that takes {amplitude:.6g} V peak-to-peak, above generator "
+                          f"'{generator.key}''s {a_max:g} V peak-to-peak (output.amplitude_max, offset_max)")
+    return offset, amplitude
 
 
 def drive_to_codes(drive, q: Quantisation) -> np.ndarray:

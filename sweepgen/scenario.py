@@ -21,6 +21,7 @@ from sweepgen.errors import DeprecatedKey, InputError
 from sweepgen.physics import gaussian_beam_saturation, rayleigh_range
 from sweepgen.sources import PULSE_SHAPES, Collimator, EffusiveSource, Emission, GaussianSource
 from sweepgen.species import Species, load_species
+from sweepgen.timing import Timing, timing_from_section
 
 import numpy as np
 
@@ -120,6 +121,7 @@ class Scenario:
     chirp: Chirp
     drive: Drive
     channels: tuple = ()          # Channel, ... ([channels.NAME])
+    timing: Timing = field(default_factory=Timing)   # [timing]: trigger, delay, burst/repeat, markers
     laser_ref: str | None = None
     generator_ref: str | None = None
     digest: str = field(default="", compare=False)
@@ -188,13 +190,14 @@ def scenario_from_dict(data: dict, path, raw: bytes | None = None) -> Scenario:
     chirp = _read_chirp(top.section("chirp"), emission, file)
     drive = _read_drive(top.section("drive", None))
     channels = channels_from_section(top.section("channels", None), species)
+    timing = timing_from_section(top.section("timing", None), pulsed=emission.pulse_time is not None)
     top.finish()
 
     if raw is None:
         raw = json.dumps(data, sort_keys=True, default=str).encode()
     digest = scenario_digest(raw, [catalog.resolve("species", species_ref, relative_to=path.parent)])
     return Scenario(title=title, path=path, species=species, source=source, emission=emission, light=light,
-                    target=target, chirp=chirp, drive=drive, channels=channels, laser_ref=laser_ref,
+                    target=target, chirp=chirp, drive=drive, channels=channels, timing=timing, laser_ref=laser_ref,
                     generator_ref=generator_ref, digest=digest)
 
 

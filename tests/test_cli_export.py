@@ -140,7 +140,8 @@ def _commands_of_the_virtual_awg() -> str:
     from sweepgen import catalog
 
     data = tomllib.loads(catalog.resolve("generators", "virtual-awg").read_text())
-    return "".join(f"{k} = {json.dumps(v)}\n" for k, v in data["commands"].items())
+    commands = "".join(f"{k} = {json.dumps(v)}\n" for k, v in data["commands"].items())
+    return commands + "[trigger]\n" + "".join(f"{k} = {json.dumps(v)}\n" for k, v in data["trigger"].items())
 
 
 # -- refusals ----------------------------------------------------------------------------------

@@ -35,7 +35,7 @@ def test_dry_run_json_is_one_document():
     assert result.exit_code == 0, result.output
     doc = json.loads(result.stdout)
     assert doc["dry_run"] is True and doc["driver"] == "visa" and doc["generator"] == "virtual-awg"
-    assert doc["log"][-2]["command"] == "OUTP1:STAT ON"
+    assert [e["command"] for e in doc["log"][-3:]] == ["OUTP1:STAT ON", "SYST:ERR?", "OUTP1:STAT?"]
     assert doc["bytes"] == sum(e["bytes"] for e in doc["log"])
     assert "CAUTION" not in result.stderr                  # nothing is switched on in a dry run
 

@@ -55,7 +55,7 @@ def test_upload_builtin_dialect_verifies_and_leaves_output_off():
     table, codes = make_table()
     gen = load_generator("virtual-awg")
     with instrument_server(gen) as server:
-        report = deliver(server, table, gen)
+        report = deliver(server, table, gen, options={"trigger_source": "EXT"})
         inst = server.instrument
         np.testing.assert_array_equal(inst.traces["SWEEP"].values, codes)
         ch = inst.channels[1]
@@ -82,7 +82,8 @@ def test_arm_switches_the_output_on_last():
         report = deliver(server, table, gen, arm=True, options={"trigger_source": "IMM"})
         assert server.instrument.outputs_on == [1]
         assert server.instrument.trigger_source == "IMM"
-        assert server.instrument.log[-2].startswith("OUTP1:STAT ON")
+        # switched on last, and read back: the profile has an output-state query
+        assert list(server.instrument.log)[-3:] == ["OUTP1:STAT ON", "SYST:ERR?", "OUTP1:STAT?"]
     assert report["armed"] is True and report["steps"][-1]["step"] == "output_on"
 
 
@@ -141,7 +142,7 @@ def test_dry_run_prints_the_exact_log_without_connecting():
     assert upload["bytes"] == len(b"TRAC:DATA SWEEP,#42048") + 2048 + 1
     commands = [e["command"] for e in report["log"]]
     assert commands[:3] == ["*IDN?", "OUTP1:STAT OFF", "*CLS"]
-    assert commands[-2] == "OUTP1:STAT ON"
+    assert commands[-3:] == ["OUTP1:STAT ON", "SYST:ERR?", "OUTP1:STAT?"]   # switched on last, read back
     assert "SOUR1:FREQ 976.5625" in commands                  # 1 MSa/s / 1024 points
     assert report["bytes"] == sum(e["bytes"] for e in report["log"])
 
@@ -303,7 +304,8 @@ def test_nothing_is_sent_for_a_table_the_generator_cannot_hold():
 
 @pytest.mark.parametrize("options, key", [
     ({"verify": "checksum"}, "verify"), ({"verify": "maybe"}, "verify"), ({"colour": "red"}, "--option"),
-    ({"trigger_source": "NOW"}, "trigger_source"), ({"backend": "@nonexistent"}, "--backend"),
+    ({"trigger_source": "EXT;*RST"}, "trigger_source"), ({"mode": "sometimes"}, "mode"),
+    ({"mode": "burst", "cycles": "0"}, "cycles"), ({"delay": "-1"}, "delay"), ({"backend": "@nonexistent"}, "--backend"),
 ])
 def test_bad_options_are_input_errors(options, key):
     table, _ = make_table()

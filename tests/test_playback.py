@@ -61,7 +61,9 @@ def test_the_trigger_follows_the_source(rb, write_scenario):
     assert not continuous.scenario.pulsed
     link = continuous.link(resource="TCPIP::127.0.0.1::1::SOCKET", backend="@py")
     assert (link.driver, link.destination, link.trigger_source) == ("visa", "TCPIP::127.0.0.1::1::SOCKET", "IMM")
-    assert link.options() == {"trigger_source": "IMM", "backend": "@py"}
+    # the names are the generator profile's own ([trigger] of virtual-awg); a continuous beam repeats
+    assert link.options() == {"trigger_source": "IMM", "backend": "@py", "edge": "POS", "mode": "repeat"}
+    assert rb.link().options()["mode"] == "burst" and rb.link().options()["cycles"] == 1
     assert rb.link().destination == rb.generator.link.address       # the profile's address by default
 
 

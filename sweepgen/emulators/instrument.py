@@ -27,7 +27,20 @@ definite-length blocks:
   repetition frequency of the whole trace, so the sample rate is frequency x points
 * ``[SOURce[n]:]VOLTage[:LEVel][:IMMediate][:AMPLitude] <V peak-to-peak>``,
   ``[SOURce[n]:]VOLTage[:LEVel][:IMMediate]:OFFSet <V>``
-* ``TRIGger[:SEQuence]:SOURce IMMediate|EXTernal|BUS``
+* ``TRIGger[:SEQuence]:SOURce <source>``: ``IMMediate|EXTernal|BUS``, or the names the
+  generator profile's ``[trigger]`` gives its sources (an instrument whose internal
+  trigger is called ``INT`` takes ``INT``)
+* ``TRIGger[:SEQuence]:SLOPe POSitive|NEGative`` (or the profile's edge names),
+  ``TRIGger[:SEQuence]:LEVel <V>``, ``TRIGger[:SEQuence]:DELay <s>``
+* ``TRIGger[:SEQuence]:COUNt <n>|INFinity`` and ``INITiate[:IMMediate]:CONTinuous ON|OFF``: with
+  ``CONTinuous OFF`` each trigger plays a burst of COUNt periods of the trace; with ``ON``
+  the trace plays on and on once started (this instrument's reading of the two nodes)
+
+Every output has its own settings; the profile's ``[outputs.N]`` limits apply to output N
+and, where the profile gives them, ``amplitude_max`` and ``offset_max`` limit the
+amplitude and the offset separately. :meth:`VirtualInstrument.playing` says what each
+output would play; ``on_change`` (a callable taking one line) hears of every change of
+an output, a trace, the trigger or the playback mode.
 
 One extension node of its own, outside the built-in dialect (SCPI lets a device
 add nodes): ``TRACe|DATA:CRC? <name>`` answers the CRC-32 (as ``zlib.crc32``) of
@@ -155,10 +168,11 @@ class VirtualInstrument:
     """
 
     def __init__(self, generator, *, faults: Faults | None = None, identity: str | None = None,
-                 max_line: int | None = None):
+                 max_line: int | None = None, on_change=None):
         from sweepgen import __version__
 
         self.generator = generator
+        self.on_change = on_change
         self.faults = faults or Faults()
         self.identity = identity or f"sweepgen,virtual-awg,0,{__version__}"
         memory = generator.sampling.memory
@@ -192,7 +206,9 @@ class VirtualInstrument:
             self.channels = {n: Channel() for n in range(1, self.generator.channels + 1)}
             self.format = ("ASC", 0)
             self.border = "NORM"
-            self.trigger_source = "IMM"
+            self.trigger_source = self._sources()[0][1] if self._named("internal") else "IMM"
+            self.slope, self.level, self.delay = self._named("rising") or "POS", 0.0, 0.0
+            self.count, self.continuous = 1, True
 
     @property
     def ever_armed(self) -> bool:
@@ -203,7 +219,33 @@ class VirtualInstrument:
     def outputs_on(self) -> list[int]:
         return [n for n, ch in self.channels.items() if ch.output]
 
+    def _changed(self, line: str) -> None:
+        if self.on_change is not None:
+            self.on_change(line)
+
+    def playing(self) -> dict:
+        """What each output would play now, and how it starts (for reports and the emulate log)."""
+        outputs = {}
+        for n, ch in self.channels.items():
+            trace = self.traces.get(ch.user or "") if ch.shape == "USER" else None
+            outputs[n] = {"on": ch.output, "shape": ch.shape, "trace": ch.user if trace is not None else None,
+                          "points": None if trace is None else len(trace.values),
+                          "sample_rate": None if trace is None else ch.frequency * len(trace.values),
+                          "amplitude": ch.amplitude, "offset": ch.offset}
+        mode = "repeat" if self.continuous else f"burst of {self.count}"
+        return {"outputs": outputs, "trigger": {"source": self.trigger_source, "slope": self.slope,
+                                                "level": self.level, "delay": self.delay, "mode": mode}}
+
     def _output_event(self, channel: int, on: bool) -> None:
+        if on:
+            ch = self.channels[channel]
+            what = self.playing()["outputs"][channel]
+            self._changed(f"output {channel} ON: trace {ch.user or ch.shape}, "
+                          f"{what['sample_rate'] or 0:.6g} Sa/s, {ch.amplitude:g} Vpp, offset {ch.offset:g} V, "
+                          f"trigger {self.trigger_source} {self.slope}, delay {self.delay:g} s, "
+                          f"{'repeat' if self.continuous else f'burst of {self.count}'}")
+        else:
+            self._changed(f"output {channel} OFF")
         self._armed_once = self._armed_once or on
         self.output_events.append((channel, on))
         if len(self.output_events) > LOG_LENGTH:
@@ -297,6 +339,16 @@ class VirtualInstrument:
             ("TRIGger[:SEQuence]:SOURce", False, self._trigger_set),
             ("TRIGger[:SEQuence]:SOURce", True, lambda p, c: self._noparams(p) or
              Response(self.trigger_source)),
+            ("TRIGger[:SEQuence]:SLOPe", False, self._slope_set),
+            ("TRIGger[:SEQuence]:SLOPe", True, lambda p, c: self._noparams(p) or Response(self.slope)),
+            ("TRIGger[:SEQuence]:LEVel", False, self._level_set),
+            ("TRIGger[:SEQuence]:DELay", False, self._delay_set),
+            ("TRIGger[:SEQuence]:DELay", True, lambda p, c: self._noparams(p) or
+             Response(scpi.format_number(self.delay))),
+            ("TRIGger[:SEQuence]:COUNt", False, self._count_set),
+            ("INITiate[:IMMediate]:CONTinuous", False, self._continuous_set),
+            ("INITiate[:IMMediate]:CONTinuous", True, lambda p, c: self._noparams(p) or
+             Response("1" if self.continuous else "0")),
         ]
         return CommandTable(common, table)
 
@@ -339,8 +391,13 @@ class VirtualInstrument:
             channel.output = on
             self._output_event(n, on)
 
+    def _output_of(self, channel: Channel):
+        """The profile's output settings for this channel (its own [outputs.N] where given)."""
+        n = next(k for k, v in self.channels.items() if v is channel)
+        return self.generator.for_output(n).output
+
     def _check_playable(self, channel: Channel) -> None:
-        out = self.generator.output
+        out = self._output_of(channel)
         if channel.shape == "USER":
             trace = self.traces.get(channel.user or "")
             if trace is None:
@@ -432,6 +489,7 @@ class VirtualInstrument:
         elif not values.dtype.isnative:
             values = values.astype(values.dtype.newbyteorder("="))
         self.traces[name] = _Trace(values, kind)
+        self._changed(f"trace {name} stored: {count} points")
         if self.faults.error_after_upload:
             self.push_error(-240, "waveform memory write failed")
 
@@ -536,24 +594,74 @@ class VirtualInstrument:
         parser.count(params, 1, 1)
         channel = self._channel(captures)
         value = parser.number(params[0], "amplitude")
-        out = self.generator.output
-        if not 0 < value <= out.range_max - out.range_min + 1e-12:
-            raise SCPIError(-222, f"amplitude must be above 0 and at most {out.range_max - out.range_min:g} Vpp")
+        out = self._output_of(channel)
+        most = out.range_max - out.range_min if out.amplitude_max is None else out.amplitude_max
+        if not 0 < value <= most + 1e-12:
+            raise SCPIError(-222, f"amplitude must be above 0 and at most {most:g} Vpp")
         channel.amplitude = value
 
     def _offset_set(self, params, captures):
         parser.count(params, 1, 1)
         channel = self._channel(captures)
         value = parser.number(params[0], "offset")
-        out = self.generator.output
-        if not out.range_min <= value <= out.range_max:
-            raise SCPIError(-222, f"offset must lie within {out.range_min:g} ... {out.range_max:g} V")
+        out = self._output_of(channel)
+        lo, hi = ((out.range_min, out.range_max) if out.offset_max is None else (-out.offset_max, out.offset_max))
+        if not lo - 1e-12 <= value <= hi + 1e-12:
+            raise SCPIError(-222, f"offset must lie within {lo:g} ... {hi:g} V")
         channel.offset = value
+
+    def _named(self, word: str) -> str | None:
+        trigger = getattr(self.generator, "trigger", None)
+        return trigger.name(word) if trigger is not None else None
+
+    def _sources(self) -> list[tuple[str, str]]:
+        """(word, short form) of the trigger sources: the profile's names, else SCPI's."""
+        named = [(self._named(w), w) for w in ("internal", "external", "software") if self._named(w)]
+        if named:
+            return [(name, re.sub(r"[^A-Z0-9]", "", name) or name.upper()) for name, _ in named]
+        return [("IMMediate", "IMM"), ("EXTernal", "EXT"), ("BUS", "BUS")]
 
     def _trigger_set(self, params, captures):
         parser.count(params, 1, 1)
-        self.trigger_source = parser.choice(params[0], {"IMMediate": "IMM", "EXTernal": "EXT", "BUS": "BUS"},
-                                      "trigger source")
+        source = parser.choice(params[0], dict(self._sources()), "trigger source")
+        if source != self.trigger_source:
+            self._changed(f"trigger source {source}")
+        self.trigger_source = source
+
+    def _slope_set(self, params, captures):
+        parser.count(params, 1, 1)
+        rising, falling = self._named("rising"), self._named("falling")
+        names = {rising or "POSitive": rising or "POS", falling or "NEGative": falling or "NEG"}
+        self.slope = parser.choice(params[0], names, "trigger slope")
+
+    def _level_set(self, params, captures):
+        parser.count(params, 1, 1)
+        value = parser.number(params[0], "trigger level")
+        if abs(value) > 50:
+            raise SCPIError(-222, "trigger level must lie within -50 ... 50 V")
+        self.level = value
+
+    def _delay_set(self, params, captures):
+        parser.count(params, 1, 1)
+        value = parser.number(params[0], "trigger delay")
+        if not 0 <= value <= 1000:
+            raise SCPIError(-222, "trigger delay must lie within 0 ... 1000 s")
+        if value != self.delay:
+            self._changed(f"trigger delay {value:g} s")
+        self.delay = value
+
+    def _count_set(self, params, captures):
+        parser.count(params, 1, 1)
+        text = parser.text_of(params[0]).upper()
+        value = 0 if text in ("INF", "INFINITY") else parser.number(params[0], "trigger count")
+        if text not in ("INF", "INFINITY") and not (value >= 1 and float(value).is_integer()):
+            raise SCPIError(-222, "trigger count must be a whole number >= 1 or INFinity")
+        self.count = int(value)
+
+    def _continuous_set(self, params, captures):
+        parser.count(params, 1, 1)
+        self.continuous = parser.boolean(params[0])
+        self._changed("playback: " + ("repeat" if self.continuous else f"burst of {self.count} per trigger"))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -649,10 +757,12 @@ def serve_forever(host: str, port: int | None, generator, faults: Faults | None 
     """Serve the virtual instrument until interrupted; ``ready(resource)`` is called once listening.
 
     ``port=None`` takes the port of the profile's link resource (else :data:`DEFAULT_PORT`);
-    ``port=0`` picks a free one. ``log(line)`` receives a line per connection opened and closed.
+    ``port=0`` picks a free one. ``log(line)`` receives a line per connection opened and closed
+    and per change of state (outputs, traces, trigger, playback mode).
     """
     port = listen_port(generator, port)
-    server = InstrumentServer(VirtualInstrument(generator, faults=faults, identity=identity), host, port, log=log)
+    instrument = VirtualInstrument(generator, faults=faults, identity=identity, on_change=log)
+    server = InstrumentServer(instrument, host, port, log=log)
     if ready is not None:
         ready(server.resource)
     server.serve_forever()

@@ -1,0 +1,200 @@
+"""Several outputs played in step: the slowing light, a repump through its own laser, a gate and a
+marker, with their trigger, on one time axis; checked, rendered and uploaded to the virtual
+instrument on a real loopback socket (an invented four-output generator described by a profile)."""
+
+from __future__ import annotations
+
+import dataclasses
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from sweepgen.errors import CheckFailed, InstrumentError
+from sweepgen.generator import load_generator
+from sweepgen.playback import MAIN, prepare
+from sweepgen.testing import instrument_server
+
+from conftest import to_toml
+
+BENCH = Path(__file__).parent / "data" / "four-output-bench.toml"
+BASE = "rb87-chopped-oven"
+
+
+def scenario_text(channels: dict | None = None, timing: dict | None = None) -> str:
+    """The built-in Rb scenario on the bench generator, with a repump on its own AOM laser (output 2),
+    a gate (output 3) and an arrival marker (output 4), unless ``channels``/``timing`` replace them."""
+    import tomllib
+
+    from sweepgen import catalog
+
+    data = tomllib.loads(catalog.resolve("scenarios", BASE).read_text())
+    data["generator"] = "./bench.toml"
+    data["channels"] = channels if channels is not None else {
+        "repump": {"kind": "frequency", "role": "repump", "saturation": 1.0, "offset": "0 MHz",
+                   "laser": "demo-aom-vco", "output": 2},
+        "gate": {"kind": "gate", "on": "chirp_start", "on_shift": "-20 us", "off": "chirp_end",
+                 "off_shift": "50 us", "dark": "0 V", "bright": "1 V", "lights": ["main", "repump"], "output": 3}}
+    data["timing"] = timing if timing is not None else {
+        "delay": "0.1 ms", "edge": "rising",
+        "markers": {"arrival": {"at": "arrival", "width": "20 us", "output": 4, "high": "3.3 V"}}}
+    return to_toml(data)
+
+
+@pytest.fixture
+def write(tmp_path):
+    def write(**kw) -> Path:
+        shutil.copy(BENCH, tmp_path / "bench.toml")
+        path = tmp_path / "scenario.toml"
+        path.write_text(scenario_text(**kw))
+        return path
+    return write
+
+
+@pytest.fixture(scope="module")
+def played(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("played")
+    shutil.copy(BENCH, folder / "bench.toml")
+    (folder / "scenario.toml").write_text(scenario_text())
+    return prepare(folder / "scenario.toml")
+
+
+def test_every_output_is_planned_on_one_time_axis(played):
+    pb = played
+    assert pb.ok, [f.message for f in pb.report.failures()]
+    assert list(pb.channels) == [MAIN, "repump", "gate", "arrival"]           # MAIN first, markers last
+    assert [c.output for c in pb.channels.values()] == [1, 2, 3, 4]
+    assert {c.rate_choice.sample_rate for c in pb.channels.values()} == {pb.main.rate_choice.sample_rate}
+    tm = pb.timing
+    # the profile's own names for what the scenario asks for: no built-in EXT/IMM
+    assert (tm.source, tm.source_name, tm.edge, tm.edge_name) == ("external", "EXTERN", "rising", "UP")
+    assert (tm.mode, tm.cycles, tm.delay) == ("burst", 1, pytest.approx(1e-4))
+    plan = pb.plan
+    assert tm.moments["chirp_start"] == pytest.approx(plan.chirp_start)
+    assert tm.moments["chirp_end"] == pytest.approx(plan.chirp_start + plan.chirp_duration)
+    assert tm.markers[0].start == pytest.approx(plan.arrival_time)
+    assert pb.link().options()["trigger_source"] == "EXTERN"
+
+
+def test_the_table_starts_at_the_trigger_delay(played):
+    # sample k plays at delay + k / rate after the trigger: the table is the plan read from there
+    main = played.table(MAIN)
+    frame = next(main.frames(4096 * 64))
+    planned = played.plan.schedule().detuning(played.timing.delay + frame.time)
+    assert np.max(np.abs(frame.detuning - planned)) < 1e-6 * np.max(np.abs(planned))
+
+
+def test_a_repump_follows_the_main_sweep_through_its_own_chain(played):
+    pb = played
+    main, repump = next(pb.table(MAIN).frames(1 << 16)), next(pb.table("repump").frames(1 << 16))
+    np.testing.assert_allclose(repump.detuning, main.detuning, rtol=0, atol=1e-3)   # offset 0 MHz
+    chain = pb.channels["repump"].laser.chain
+    np.testing.assert_allclose(repump.drive, chain.to_drive(repump.detuning), atol=1e-6)
+    assert pb.channels["repump"].laser.key == "demo-aom-vco"
+
+
+def test_the_gate_is_bright_only_while_it_is_open(played):
+    pb = played
+    gate = pb.table("gate")
+    frames = list(gate.frames(1 << 18))
+    t = np.concatenate([f.time for f in frames]) + pb.timing.delay      # on the trigger axis
+    drive = np.concatenate([f.drive for f in frames])
+    when = pb.timing.moments
+    inside = (t >= when["chirp_start"] - 20e-6 + 1e-6) & (t < when["chirp_end"] + 50e-6 - 1e-6)
+    outside = (t < when["chirp_start"] - 20e-6 - 1e-6) | (t > when["chirp_end"] + 50e-6 + 1e-6)
+    step = gate.info.code_scale
+    assert np.all(np.abs(drive[inside] - 1.0) <= step) and np.all(np.abs(drive[outside]) <= step)
+    marker = np.concatenate([f.drive for f in pb.table("arrival").frames(1 << 18)])
+    assert np.count_nonzero(marker > 1.65) == round(20e-6 * gate.info.sample_rate)
+
+
+@pytest.mark.parametrize("change, rule", [
+    ({"off_shift": "1 ms"}, "gate.switch_off"),                   # light left on 1 ms after the chirp
+    ({"on_shift": "0.2 ms"}, "gate.coverage"),                    # opens after the chirp started
+    ({"on": "trigger", "on_shift": "0 s"}, "gate.window"),        # opens before the table's first sample
+])
+def test_a_gate_out_of_step_with_the_chirp_fails(write, change, rule):
+    channels = {"gate": {"kind": "gate", "on": "chirp_start", "off": "chirp_end", "dark": "0 V",
+                         "bright": "1 V", "output": 3, **change}}
+    pb = prepare(write(channels=channels))
+    assert pb.report.finding(rule).status == "fail"
+    with pytest.raises(CheckFailed, match=rule):
+        pb.require_playable()
+
+
+def test_a_delay_past_the_chirp_start_fails(write):
+    pb = prepare(write(channels={}, timing={"delay": "2 ms"}))
+    assert pb.report.finding("timing.delay").status == "fail"
+    assert not pb.ok
+
+
+def test_two_channels_on_one_output_fail(write):
+    channels = {"gate": {"kind": "gate", "on": "chirp_start", "off": "chirp_end", "off_shift": "10 us",
+                         "dark": "0 V", "bright": "1 V", "output": 1}}
+    pb = prepare(write(channels=channels, timing={}))
+    assert pb.report.finding("outputs").status == "fail"
+
+
+def test_a_one_channel_scenario_is_unchanged():
+    pb = prepare(BASE)
+    assert list(pb.channels) == [MAIN] and pb.timing.delay == 0
+    np.testing.assert_array_equal(pb.main.schedule.breakpoints, pb.plan.schedule().breakpoints)
+
+
+# -- upload to the virtual instrument ------------------------------------------------------------
+def test_upload_loads_and_verifies_every_output_and_leaves_them_off(played):
+    gen = load_generator(str(BENCH))
+    with instrument_server(gen) as server:
+        link = played.link(resource=server.resource)
+        done = played.upload(link)
+        inst = server.instrument
+        assert inst.outputs_on == [] and not inst.ever_armed
+        for name, playing in played.channels.items():
+            stored = inst.traces[f"SWEEP{playing.output}"].values
+            np.testing.assert_array_equal(stored, played.table(name).codes())
+        now = inst.playing()
+        assert now["trigger"] == {"source": "EXTERN", "slope": "UP", "level": 0.0, "delay": pytest.approx(1e-4),
+                                  "mode": "burst of 1"}
+        assert [now["outputs"][n]["sample_rate"] for n in (1, 2, 3, 4)] == [played.main.rate_choice.sample_rate] * 4
+    v = done.report["verification"]
+    assert v["ok"] and [o["output"] for o in v["outputs"]] == [1, 2, 3, 4]
+    assert done.verified and done.report["armed"] is False
+
+
+def test_arm_switches_every_output_on_in_order(played):
+    gen = load_generator(str(BENCH))
+    with instrument_server(gen) as server:
+        done = played.upload(played.link(resource=server.resource), arm=True)
+        inst = server.instrument
+        assert inst.outputs_on == [1, 2, 3, 4]
+        assert inst.output_events[-4:] == [(1, True), (2, True), (3, True), (4, True)]
+    assert done.report["arm_order"] == [1, 2, 3, 4] and done.report["armed"] is True
+
+
+def test_a_fault_on_the_second_output_leaves_the_first_switched_off(played):
+    # the real instrument's output 2 reaches only 3 V, less than the profile says: it takes the repump's
+    # amplitude and offset, but refuses to switch the output on, after output 1 was switched on
+    gen = load_generator(str(BENCH))
+    narrow = dataclasses.replace(gen.output, amplitude_max=None, offset_max=None, range_min=-5.0, range_max=3.0)
+    real = dataclasses.replace(gen, outputs={**gen.outputs, 2: narrow})
+    with instrument_server(real) as server:
+        with pytest.raises(InstrumentError) as info:
+            played.upload(played.link(resource=server.resource), arm=True)
+        inst = server.instrument
+        assert inst.outputs_on == []
+        assert (1, True) in inst.output_events and inst.output_events[-1] == (1, False)
+    text = str(info.value)
+    assert info.value.step == "output_on, output 2" and "outside" in text
+    assert text.endswith("every output (1, 2, 3, 4) switched off (confirmed on the same connection)")
+
+
+def test_an_output_the_instrument_does_not_have_is_refused_in_its_words(played):
+    gen = load_generator(str(BENCH))
+    with instrument_server(dataclasses.replace(gen, channels=1, outputs={})) as server:
+        with pytest.raises(InstrumentError) as info:
+            played.upload(played.link(resource=server.resource))
+        assert server.instrument.outputs_on == []
+    text = str(info.value)
+    assert "-114" in text and "channel 2" in text            # the instrument's own words
+    assert "switched off (confirmed" not in text             # never reported as a success
