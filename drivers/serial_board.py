@@ -69,6 +69,22 @@ class BoardTiming:
     def triggered(self) -> bool:
         return self.source != "free"
 
+    @classmethod
+    def from_timing(cls, timing) -> "BoardTiming":
+        """The board's settings for the playback service's timing (``Playback.timing``): an external
+        source starts on its edge, an internal one free-runs, a software one waits for FIRE; a burst
+        plays once per arming, anything else on every trigger."""
+        if isinstance(timing, BoardTiming):
+            return timing
+        source = {"external": "external", "internal": "free", "software": "software",
+                  "free": "free"}.get(str(getattr(timing, "source", "free")).lower())
+        if source is None:
+            raise InputError(f"a ramp board has no trigger source {getattr(timing, 'source', None)!r} "
+                             "(it offers external, free-running and software)", key="timing.source")
+        edge = str(getattr(timing, "edge", None) or "rising").lower()
+        once = str(getattr(timing, "mode", None) or "repeat").lower() in ("burst", "once")
+        return cls(source, edge, once, float(getattr(timing, "delay", None) or 0.0))
+
     def wire(self) -> fr.Trigger:
         """The TRIGGER request's settings (delay in whole ns)."""
         return fr.Trigger(fr.SOURCES_BY_NAME[self.source], fr.Edge[self.edge.upper()],
@@ -81,10 +97,10 @@ class _Options:
     def __init__(self, options: dict):
         options = dict(options)
         timing = options.pop("timing", None)
-        if timing is not None and not isinstance(timing, BoardTiming):
+        if isinstance(timing, str):
             options["timing"] = timing          # given as text by a person: refused below
         _check_options(options)
-        self.timing = timing if isinstance(timing, BoardTiming) else BoardTiming()
+        self.timing = BoardTiming() if timing is None or isinstance(timing, str) else BoardTiming.from_timing(timing)
         self.retries = _option_int(options, "retries", DEFAULT_RETRIES, 0)
         self.restarts = _option_int(options, "restarts", DEFAULT_RESTARTS, 0)
         self.frame_bytes = _option_int(options, "frame_bytes", DEFAULT_FRAME_BYTES, 8)
@@ -233,17 +249,21 @@ class SerialDriver(Driver):
         return _url(delivery)
 
     def deliver(self, table, delivery: Delivery) -> dict:
-        """Upload one table to channel 1."""
-        return self.deliver_all({1: table}, delivery)
+        """Upload one table to its channel (``table.info.channel``, default 1)."""
+        return self.deliver_tables([table], delivery)
 
-    def deliver_all(self, tables: dict, delivery: Delivery) -> dict:
-        """Upload ``tables`` (board channel number, 1-based -> table), every one verified and committed
-        before any output is armed; channels go in ascending order."""
+    def deliver_tables(self, tables, delivery: Delivery) -> dict:
+        """Upload several tables, every one verified and committed before any output is armed.
+
+        ``tables`` is a sequence of tables, each for the board channel its
+        ``info.channel`` names (1-based; default 1), or a mapping channel ->
+        table. Channels are uploaded in ascending order; ARM (only with
+        ``delivery.arm``) starts them together on the trigger.
+        """
         generator = delivery.generator
         options = _Options(delivery.options)
-        if not tables:
-            raise CheckFailed("no table to upload")
-        plans = [_Plan(tables[c], generator, options, c) for c in sorted(tables)]
+        by_channel = _by_channel(tables)
+        plans = [_Plan(by_channel[c], generator, options, c) for c in sorted(by_channel)]
         link_cfg = getattr(generator, "link", None)
         baud = getattr(link_cfg, "baud", None) or DEFAULT_BAUD
         timeout = clamp_deadline(getattr(link_cfg, "timeout", None) or DEFAULT_TIMEOUT)
@@ -283,6 +303,25 @@ class SerialDriver(Driver):
         report["bytes"] = link.sent
         report["duration"] = time.monotonic() - t0
         return report
+
+
+def _by_channel(tables) -> dict:
+    """Board channel -> table from a mapping or a sequence of tables (``info.channel``, default 1)."""
+    if isinstance(tables, dict):
+        by_channel = {int(c): t for c, t in tables.items()}
+    else:
+        by_channel = {}
+        for t in tables:
+            channel = int(getattr(t.info, "channel", None) or 1)
+            if channel in by_channel:
+                raise InputError(f"two tables for board channel {channel}", key="channel")
+            by_channel[channel] = t
+    if not by_channel:
+        raise CheckFailed("no table to upload")
+    bad = [c for c in by_channel if not 1 <= c <= fr.MAX_CHANNELS]
+    if bad:
+        raise InputError(f"board channel {bad[0]} is outside 1 .. {fr.MAX_CHANNELS}", key="channel")
+    return by_channel
 
 
 def _url(delivery: Delivery) -> str:

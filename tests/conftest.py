@@ -353,14 +353,16 @@ def quick_ramp_board():
 
 
 def deliver_to_board(table, url, generator=None, **delivery):
-    """Upload ``table`` with the serial driver to the board at ``url`` (a ``socket://`` URL or a
+    """Upload ``table`` (or a dict board channel -> table) with the serial driver to the board at ``url`` (a ``socket://`` URL or a
     device path) in 1 KiB frames; ``generator`` defaults to quick_ramp_board(), ``options`` adds to
     the driver options, other keywords go to the Delivery. Returns the driver's report."""
     from sweepgen.drivers.base import Delivery
     from sweepgen.drivers.serial_board import SerialDriver
 
     options = {"frame_bytes": 1024, **delivery.pop("options", {})}
-    return SerialDriver().deliver(table, Delivery(url, generator or quick_ramp_board(), options=options, **delivery))
+    tables = table if isinstance(table, (dict, list)) else [table]
+    return SerialDriver().deliver_tables(tables, Delivery(url, generator or quick_ramp_board(), options=options,
+                                                          **delivery))
 
 
 # -- a third-party driver plug-in ----------------------------------------------------------------
