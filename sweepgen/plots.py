@@ -109,6 +109,11 @@ def headroom_rows(report) -> list:
 
 
 def plot_check(report, file) -> Path:
+    """:func:`check_figure` saved to ``file`` (PNG or SVG by extension)."""
+    return save(check_figure(report), file)
+
+
+def check_figure(report):
     """Each finding's headroom to its limit as a horizontal bar, one per rule with a limit
     (``sweepgen.checker.CheckReport``), failures first as in the text report: failures red,
     warnings orange, passes green, each bar labelled with its headroom; the dashed line marks
@@ -135,7 +140,7 @@ def plot_check(report, file) -> Path:
     title = getattr(getattr(report, "scenario", None), "title", "")
     ax.set_title(f"{title}\n{ok}", fontsize=9)
     ax.grid(axis="x", alpha=0.3)
-    return save(fig, file)
+    return fig
 
 
 @dataclass(frozen=True)
@@ -307,6 +312,11 @@ def drive_figure(report):
 
 
 def plot_calibration(result, file) -> Path:
+    """:func:`calibration_figure` saved to ``file`` (PNG or SVG by extension)."""
+    return save(calibration_figure(result), file)
+
+
+def calibration_figure(result):
     """Measured points, the fitted tuning curve with its uncertainty band, and the residuals in
     frequency (``sweepgen.recalibration.Result``); outliers and up/down sweeps marked."""
     plt = _pyplot()
@@ -336,10 +346,15 @@ def plot_calibration(result, file) -> Path:
     axr.set_ylabel("residual (kHz)")
     axr.legend(fontsize=8)
     axr.grid(alpha=0.3)
-    return save(fig, file)
+    return fig
 
 
 def plot_table(table, numbers, file) -> Path:
+    """:func:`table_figure` saved to ``file`` (PNG or SVG by extension)."""
+    return save(table_figure(table, numbers), file)
+
+
+def table_figure(table, numbers):
     """A table read back (``sweepgen.readback.ReadTable``): detuning and drive versus time."""
     plt = _pyplot()
     t = table.time()
@@ -356,10 +371,15 @@ def plot_table(table, numbers, file) -> Path:
     axd.set_ylabel(f"drive ({table.drive_unit})")
     axd.set_xlabel("time from the table's first sample (ms)")
     axd.grid(alpha=0.3)
-    return save(fig, file)
+    return fig
 
 
 def plot_compare(cmp, file, *, scenario=None) -> Path:
+    """:func:`compare_figure` saved to ``file`` (PNG or SVG by extension)."""
+    return save(compare_figure(cmp, scenario=scenario), file)
+
+
+def compare_figure(cmp, *, scenario=None):
     """Measured and planned detuning on the schedule's time axis, and the tracking error with the
     tolerance (``sweepgen.compare.Comparison``; ``scenario`` names the time axis)."""
     plt = _pyplot()
@@ -382,4 +402,4 @@ def plot_compare(cmp, file, *, scenario=None) -> Path:
                    + ", the trace aligned to it")
     axe.legend(fontsize=8)
     axe.grid(alpha=0.3)
-    return save(fig, file)
+    return fig

@@ -93,6 +93,19 @@ def fail_usage(exc: click.UsageError):
     fail(error)
 
 
+@contextlib.contextmanager
+def options_named(**options):
+    """Errors of the API about a parameter (``atoms``) name the command's option instead (``--atoms``)."""
+    from sweepgen.errors import InputError
+
+    try:
+        yield
+    except InputError as exc:
+        if exc.key not in options or type(exc) is not InputError:
+            raise
+        raise InputError(exc.detail, file=exc.file, key=options[exc.key]) from None
+
+
 def emit_json(doc) -> None:
     """Write one JSON document to stdout, and nothing else."""
     ctx = click.get_current_context(silent=True)
@@ -168,6 +181,28 @@ def progress_bar(length: int, label: str, *, show: bool):
         yield progress
 
 
+class LateProgress:
+    """A progress callback whose bar opens only when its length is known (:meth:`start`, called from
+    the API's ``before_write`` / ``before_send`` hook); before that, progress is not drawn."""
+
+    def __init__(self, stack: contextlib.ExitStack):
+        self._stack, self._bar = stack, None
+
+    def start(self, length: int, label: str, *, show: bool) -> None:
+        self._bar = self._stack.enter_context(progress_bar(length, label, show=show))
+
+    def __call__(self, done, total) -> None:
+        if self._bar is not None:
+            self._bar(done, total)
+
+
+@contextlib.contextmanager
+def late_progress():
+    """Yield a :class:`LateProgress`; its bar is closed when the block ends."""
+    with contextlib.ExitStack() as stack:
+        yield LateProgress(stack)
+
+
 # -- shared options ----------------------------------------------------------------------------
 class PlotFile(click.ParamType):
     """A plot to write: a .png or .svg file in a folder that exists (no folder is created)."""
@@ -214,39 +249,11 @@ generator_option = click.option("--generator", "generator_ref", default=None, me
                                 help="Generator profile (built-in key or path) instead of the scenario's.")
 
 
-def prepare_playback(scenario, *, rate=None, laser_ref=None, generator_ref=None):
-    """The playback service for a scenario with the options ``--rate``, ``--laser`` and ``--generator``.
-
-    ``scenario`` is a built-in key, a path or an already loaded scenario;
-    ``rate`` is the ``--rate`` text (a sample rate with its unit). Returns a
-    :class:`sweepgen.playback.Playback`.
-    """
+def profile_option(kind: str, ref):
+    """The laser or generator profile an option (``--laser``, ``--generator``) names, loaded; None
+    when the option was not given. Errors name the option."""
+    if ref is None:
+        return None
     from sweepgen import playback
-    from sweepgen.scenario import Scenario, load_scenario
 
-    sc = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
-    sample_rate = None
-    if rate is not None:
-        sample_rate = option_quantity(rate, "Hz", "--rate", "10 MSa/s")
-    laser = playback.load_profile("laser", laser_ref, key="--laser") if laser_ref else None
-    gen = playback.load_profile("generator", generator_ref, key="--generator") if generator_ref else None
-    return playback.prepare(sc, laser=laser, generator=gen, sample_rate=sample_rate)
-
-
-def read_table_file(table_file):
-    """A table read back for ``--table`` (:class:`sweepgen.readback.ReadTable`)."""
-    from sweepgen import drivers
-
-    return drivers.read_table(table_file)
-
-
-def prepare_table_playback(scenario, table_file, *, rate=None, laser_ref=None, generator_ref=None):
-    """The playback service for ``check --table``: an old table against today's profiles."""
-    from sweepgen import playback
-    from sweepgen.errors import InputError
-
-    if rate is not None:
-        raise InputError("a table plays at its own sample rate; --rate does not go with --table", key="--rate")
-    laser = playback.load_profile("laser", laser_ref, key="--laser") if laser_ref else None
-    gen = playback.load_profile("generator", generator_ref, key="--generator") if generator_ref else None
-    return playback.prepare_table(scenario, read_table_file(table_file), laser=laser, generator=gen)
+    return playback.load_profile(kind, ref, key=f"--{kind}")

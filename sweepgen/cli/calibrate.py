@@ -2,12 +2,10 @@
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import bounded, option_quantity, emit_json, handles_errors, json_option, table
+from sweepgen.cli._common import bounded, emit_json, handles_errors, json_option, option_quantity, options_named, table
 
 
 def _quantity(text, unit, key, example):
@@ -85,6 +83,7 @@ def command(measurements, laser_ref, stage, output, overwrite, degree, outlier_s
       sweepgen calibrate wavemeter.csv --laser my-laser.toml --stage piezo -o my-laser-2025.toml
       sweepgen calibrate beat.tsv --laser demo-ecdl-piezo --stage 1 --reference "-1.2 GHz"
     """
+    import sweepgen
     from sweepgen import recalibration
     from sweepgen.laser import load_laser
 
@@ -92,18 +91,13 @@ def command(measurements, laser_ref, stage, output, overwrite, degree, outlier_s
     if range_text is not None:
         laser = load_laser(laser_ref, key="--laser")
         unit = laser.chain.stages[recalibration.find_stage(laser.chain, stage)].down_unit
-    req = recalibration.Request(
-        measurements, laser_ref, stage, output=output, degree=degree, outlier_sigma=outlier_sigma,
-        drive_range=_drive_range(range_text, unit), transition=_transition(transition, species),
-        reference=_quantity(reference, "Hz", "--reference", "-1.2 GHz"), beat_sign=int(beat_sign),
-        overwrite=overwrite)
-    result = recalibration.calibrate(req)
-    path = recalibration.write(result)
-    plot = Path(plot_file) if plot_file else path.with_suffix(".png")
-    from sweepgen.plots import plot_calibration
-
-    plot_calibration(result, plot)
-    doc = {**recalibration.to_json(result), "plot": str(plot)}
+    with options_named(laser="--laser", stage="--stage"):
+        result = sweepgen.calibrate(
+            measurements, laser_ref, stage, output=output, overwrite=overwrite, degree=degree,
+            outlier_sigma=outlier_sigma, drive_range=_drive_range(range_text, unit),
+            transition=_transition(transition, species), reference=_quantity(reference, "Hz", "--reference", "-1.2 GHz"),
+            beat_sign=int(beat_sign), plot=plot_file)
+    doc = result.to_json()
     if as_json:
         emit_json(doc)
         return

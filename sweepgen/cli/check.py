@@ -6,7 +6,7 @@ import click
 
 from sweepgen._format import si
 from sweepgen.cli._common import (PlotFile, emit_json, generator_option, handles_errors, json_option, laser_option,
-                                  prepare_playback, prepare_table_playback, rate_option, table)
+                                  option_quantity, profile_option, rate_option, table)
 
 _SYMBOL = {"fail": "FAIL", "warn": "warn", "pass": "ok"}
 
@@ -41,22 +41,23 @@ def command(scenario, as_json, rate, laser_ref, generator_ref, plot_file, table_
       sweepgen check my-scenario.toml --laser ./my-laser.toml --json
       sweepgen check my-scenario.toml --table tables/last-month.bin
     """
-    if table_file is not None:
-        report = prepare_table_playback(scenario, table_file, rate=rate, laser_ref=laser_ref,
-                                        generator_ref=generator_ref).report
-    else:
-        report = prepare_playback(scenario, rate=rate, laser_ref=laser_ref, generator_ref=generator_ref).report
-    if plot_file:
-        from sweepgen.plots import plot_check
+    import sweepgen
+    from sweepgen.errors import InputError
 
-        plot_check(report, plot_file)
+    if table_file is not None and rate is not None:
+        raise InputError("a table plays at its own sample rate; --rate does not go with --table", key="--rate")
+    result = sweepgen.check(scenario, sample_rate=option_quantity(rate, "Hz", "--rate", "10 MSa/s"),
+                            laser=profile_option("laser", laser_ref), generator=profile_option("generator", generator_ref),
+                            table=table_file)
+    if plot_file:
+        result.plot(plot_file)
     if as_json:
-        emit_json(report.to_json())
+        emit_json(result.to_json())
     else:
-        _print(report, show_all)
+        _print(result.report, show_all)
         if plot_file:
             click.echo(f"plot: {plot_file}", err=True)
-    if not report.ok:
+    if not result.ok:
         raise SystemExit(1)
 
 

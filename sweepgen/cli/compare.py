@@ -46,31 +46,23 @@ def command(scenario, measured, marker, transition, reference, beat_sign, plot_f
       sweepgen compare rb87-chopped-oven wavemeter-log.csv --plot compare.png
       sweepgen compare my-beam.toml scope.csv --marker trigger
     """
-    from scipy import constants
+    import sweepgen
 
-    from sweepgen.compare import compare, read_trace, to_json
-    from sweepgen.planner import plan
-    from sweepgen.scenario import load_scenario
-
-    sc = load_scenario(scenario)
-    f0 = (option_quantity(transition, "Hz", "--transition", "384.2304844685 THz") if transition
-          else constants.c / sc.species.wavelength)
-    ref = option_quantity(reference, "Hz", "--reference", "-1.2 GHz")
     event, when = _marker(marker)
-    trace = read_trace(measured, transition=f0, reference=ref, beat_sign=int(beat_sign))
-    cmp = compare(plan(sc), trace, marker=event, marker_time=when)
+    result = sweepgen.compare(scenario, measured, marker=event, marker_time=when,
+                              transition=option_quantity(transition, "Hz", "--transition", "384.2304844685 THz"),
+                              reference=option_quantity(reference, "Hz", "--reference", "-1.2 GHz"),
+                              beat_sign=int(beat_sign))
     if plot_file:
-        from sweepgen.plots import plot_compare
-
-        plot_compare(cmp, plot_file, scenario=sc)
-    doc = to_json(cmp)
+        result.plot(plot_file)
+    doc = result.to_json()
     if as_json:
         emit_json(doc)
     else:
         _print(doc)
         if plot_file:
             click.echo(f"plot: {plot_file}", err=True)
-    if not cmp.ok:
+    if not result.ok:
         raise SystemExit(1)
 
 

@@ -8,7 +8,8 @@ import click
 
 from sweepgen._format import si
 from sweepgen.cli._common import (OutputFolder, echo_warnings, emit_json, generator_option, handles_errors,
-                                  json_option, laser_option, prepare_playback, progress_bar, rate_option, table)
+                                  json_option, laser_option, late_progress, option_quantity, options_named,
+                                  profile_option, rate_option, table)
 
 #: tables larger than this get a progress bar when stderr is a terminal
 PROGRESS_BYTES = 8 << 20
@@ -59,40 +60,47 @@ def command(scenario, fmt, output, rate, name, option_pairs, laser_ref, generato
       sweepgen export my-scenario.toml -f raw -O dtype=uint16 -O byte_order=big -o tables/
       sweepgen export caf-buffer-gas -f csv -o tables/ --json
     """
-    from sweepgen import playback
-    from sweepgen.errors import InputError
-    from sweepgen.scenario import load_scenario
+    import sweepgen
+    from sweepgen.errors import CheckFailed, InputError
 
-    file_format = playback.file_format(fmt)            # an unknown format fails before any work
     options = _options(option_pairs)
     if "name" in options:
         raise InputError("give the file name with --name", key="--option")
-    sc = load_scenario(scenario)
-    options["name"] = name if name is not None else playback.default_file_name(sc)
-    file_format.check_options(options)                 # bad options fail before any work
-    pb = prepare_playback(sc, rate=rate, laser_ref=laser_ref, generator_ref=generator_ref)
-    if not pb.ok:
-        _refuse(pb.report, as_json)
-    file_format.check_table(pb.table(), options)        # options that depend on the generator's codes
-    echo_warnings(pb.report)
-    info = pb.table().info
-    show = info.nbytes > PROGRESS_BYTES and sys.stderr.isatty()
-    with progress_bar(info.count, f"writing {output}", show=show) as progress:
-        result = pb.export(file_format, output, options, progress=progress)
-    removed = result.report.get("removed_partials")
+    with late_progress() as progress:
+        def before_write(checked):
+            echo_warnings(checked.report)
+            info = checked.table().info
+            show = info.nbytes > PROGRESS_BYTES and sys.stderr.isatty()
+            progress.start(info.count, f"writing {output}", show=show)
+
+        try:
+            with options_named(options="--option", name="--name"):
+                result = sweepgen.export(
+                    scenario, fmt, output, name=name, options=options,
+                    sample_rate=option_quantity(rate, "Hz", "--rate", "10 MSa/s"),
+                    laser=profile_option("laser", laser_ref), generator=profile_option("generator", generator_ref),
+                    progress=progress, before_write=before_write)
+        except CheckFailed as exc:
+            if not exc.findings:
+                raise
+            _refuse(exc.findings, as_json)
+    info, doc = result.info, result.to_json()
+    removed = doc.get("removed_partials")
     if removed:
         click.echo(f"removed {len(removed)} partial file(s) left in {output} by an interrupted export: "
                    f"{', '.join(removed)}", err=True)
     if as_json:
-        emit_json(result.to_json())
+        emit_json(doc)
     else:
-        _print(pb.scenario, info, result.report)
+        _print(doc["title"], info, doc)
 
 
-def _refuse(report, as_json):
+def _refuse(findings, as_json):
     """Name every failed rule on stderr (and the findings as JSON), then refuse: nothing is written."""
+    from sweepgen.checker import CheckReport
     from sweepgen.errors import CheckFailed
 
+    report = CheckReport(list(findings))
     fails = report.failures()
     for f in fails:
         click.echo(f"FAIL {f.rule}: {f.message}" + (f" (to fix: {f.advice})" if f.advice else ""), err=True)
@@ -101,8 +109,8 @@ def _refuse(report, as_json):
     raise CheckFailed(f"the sweep fails {len(fails)} check rule(s); nothing was written", findings=report.findings)
 
 
-def _print(sc, info, result):
-    click.echo(sc.title)
+def _print(title, info, result):
+    click.echo(title)
     rows = [("data file", result["paths"][0]), ("sidecar", result["paths"][1]),
             ("samples", f"{info.count} ({info.period_count} per period"
                         + (f" + {info.count - info.period_count} padding)" if info.count > info.period_count

@@ -42,25 +42,19 @@ def command(table_file, as_json, plot_file):
       sweepgen inspect tables/sweep.bin
       sweepgen inspect tables/sweep.h5 --plot sweep.png --json
     """
-    from sweepgen import drivers, readback
+    import sweepgen
 
-    read = drivers.read_table(table_file)
-    numbers = readback.analyse(read)
-    doc = {"file": str(read.path), "driver": read.driver, "verified": read.verified, "checks": read.checks,
-           "table_sha256": read.table_sha256(), "drive_unit": read.drive_unit, **numbers,
-           "provenance": read.sidecar.get("provenance"), "tool": read.sidecar.get("tool"),
-           "created": read.sidecar.get("created")}
+    result = sweepgen.inspect(table_file)
+    doc = result.to_json()
     if plot_file:
-        from sweepgen.plots import plot_table
-
-        plot_table(read, numbers, plot_file)
+        result.plot(plot_file)
     if as_json:
         emit_json(doc)
     else:
         _print(doc)
         if plot_file:
             click.echo(f"plot: {plot_file}", err=True)
-    if not read.verified:
+    if not result.ok:
         raise SystemExit(1)
 
 

@@ -8,7 +8,7 @@ import click
 
 from sweepgen._format import si
 from sweepgen.cli._common import (PlotFile, bounded, emit_json, handles_errors, json_option, laser_option,
-                                  progress_bar, table)
+                                  late_progress, options_named, profile_option, table)
 from sweepgen.errors import InputError
 from sweepgen.costs import DEFAULT_ATOMS
 
@@ -31,29 +31,35 @@ def _duration(seconds: float) -> str:
     return f"{seconds / 3600:.1f} h"
 
 
-def _confirm_size(sc, atoms: int, seed: int, yes: bool, **how) -> None:
-    """Refuse a simulation that cannot fit in memory; above CONFIRM_ATOMS state what one costs and
-    start only when confirmed (on a terminal, or by --yes)."""
+def _before_run(yes: bool, progress, quiet: bool):
+    """``before_run`` of :func:`sweepgen.simulate`: above CONFIRM_ATOMS state what the simulation
+    costs and start only when confirmed (on a terminal, or by --yes); then, for long runs on a
+    terminal, open the progress bar."""
+    def before_run(sc, atoms, seed, how):
+        _confirm_size(sc, atoms, seed, yes, how)
+        show = atoms >= PROGRESS_ATOMS and sys.stderr.isatty() and not quiet
+        progress.start(atoms, f"simulating {atoms} atoms", show=show)
+
+    return before_run
+
+
+def _confirm_size(sc, atoms, seed, yes, how):
+    """Above CONFIRM_ATOMS, state the time a simulation takes and ask (or take --yes)."""
     from sweepgen import costs
 
     if atoms <= CONFIRM_ATOMS:
         return
-    need, have = costs.simulation_memory(atoms), costs.physical_memory()
-    if have is not None and need > have // 2:
-        raise InputError(f"{atoms} atoms would need about {si(need, 'B')} of memory, more than half of this "
-                         f"computer's {si(have, 'B')}; run several simulations of at most "
-                         f"{costs.most_atoms(have // 2)} atoms with different --seed values and combine them "
-                         f"(each seed gives an independent sample)", key="--atoms")
     from sweepgen.simulate import simulate
 
     seconds = costs.simulation_time(lambda n: simulate(sc, atoms=n, seed=seed, **how), atoms)
-    click.echo(f"simulating {atoms} atoms needs about {si(need, 'B')} of memory and at most about "
-               f"{_duration(seconds)} on this computer (scaled from {costs.PILOT_ATOMS} atoms)", err=True)
+    click.echo(f"simulating {atoms} atoms needs about {si(costs.simulation_memory(atoms), 'B')} of memory and "
+               f"at most about {_duration(seconds)} on this computer (scaled from {costs.PILOT_ATOMS} atoms)",
+               err=True)
     if yes:
         return
     if not sys.stdin.isatty():
-        raise InputError(f"a simulation of more than {CONFIRM_ATOMS} atoms starts only when confirmed: add --yes "
-                         f"(or use fewer atoms)", key="--atoms")
+        raise InputError(f"a simulation of more than {CONFIRM_ATOMS} atoms starts only when confirmed: add "
+                         f"--yes (or use fewer atoms)", key="--atoms")
     click.confirm("start it?", err=True, abort=True)
 
 
@@ -102,27 +108,19 @@ def command(scenario, atoms, seed, workers, yes, as_json, plot_file, table_file,
     Example:
       sweepgen simulate rb87-chopped-oven --atoms 20000 --seed 3 --plot atoms.png
     """
-    from sweepgen.checker import check_plan, require_playable
-    from sweepgen.scenario import load_scenario
-    from sweepgen.simulate import played_table
+    import sweepgen
 
     if ideal and table_file:
         raise InputError("--ideal plays the planned sweep and --table an old table: give one of them",
                          key="--ideal")
-    sc = load_scenario(scenario)
-    design = require_playable(check_plan(sc), "nothing was simulated")     # the design rules, as plan judges
-    sweep = _table_sweep(sc, table_file, laser_ref) if table_file else None
-    played = played_table(sc, sweep) if sweep is not None else None
-    _confirm_size(sc, atoms, seed, yes, plan=design.plan, ideal=ideal, played=played)
-    result = _run(sc, atoms, seed, workers, as_json, plan=design.plan, ideal=ideal, played=played)
-    doc = result.to_json()
-    if sweep is not None:
-        doc["table"] = {"file": str(sweep.table.path), "table_sha256": sweep.table.table_sha256(),
-                        "laser": sweep.laser.key, "representation_error": sweep.error}
+    with options_named(atoms="--atoms", seed="--seed", laser="--laser", workers="--workers"), \
+            late_progress() as progress:
+        result = sweepgen.simulate(scenario, atoms=atoms, seed=seed, ideal=ideal, table=table_file,
+                                   laser=profile_option("laser", laser_ref), workers=workers, progress=progress,
+                                   before_run=_before_run(yes, progress, as_json))
+    sc, doc = result.scenario, result.to_json()
     if plot_file:
-        from sweepgen.plots import plot_simulation
-
-        plot_simulation(result, plot_file)
+        result.plot(plot_file)
     if as_json:
         emit_json(doc)
         return
@@ -161,29 +159,3 @@ def command(scenario, atoms, seed, workers, yes, as_json, plot_file, table_file,
     if plot_file:
         click.echo(f"plot: {plot_file}", err=True)
 
-
-def _run(sc, atoms: int, seed: int, workers, quiet: bool, **how):
-    """The simulation on ``workers`` processes, with a progress bar on a terminal for long runs."""
-    from sweepgen.simulate import simulate
-
-    show = atoms >= PROGRESS_ATOMS and sys.stderr.isatty() and not quiet
-    with progress_bar(atoms, f"simulating {atoms} atoms", show=show) as progress:
-        return simulate(sc, atoms=atoms, seed=seed, workers=workers, progress=progress, **how)
-
-
-def _table_sweep(sc, table_file, laser_ref):
-    """What a table read back plays through the laser; a table that does not verify is refused."""
-    from sweepgen import playback
-    from sweepgen.cli._common import read_table_file
-    from sweepgen.errors import CheckFailed
-
-    read = read_table_file(table_file)
-    if not read.verified:
-        bad = ", ".join(c["check"] for c in read.checks if not c["ok"])
-        raise CheckFailed(f"{read.path}: does not match its sidecar ({bad}); it was changed or damaged")
-    laser = (playback.load_profile("laser", laser_ref, key="--laser") if laser_ref
-             else playback.scenario_profiles(sc, required=False)[0])
-    if laser is None:
-        raise InputError("a table is played through a laser: name one with --laser or in the scenario",
-                         key="--laser")
-    return playback.table_sweep(read, laser)

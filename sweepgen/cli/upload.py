@@ -6,7 +6,7 @@ import click
 
 from sweepgen._format import si
 from sweepgen.cli._common import (echo_warnings, emit_json, generator_option, handles_errors, json_option,
-                                  laser_option, prepare_playback, progress_bar, table)
+                                  late_progress, laser_option, profile_option, table)
 
 #: tables larger than this get a progress bar on stderr
 PROGRESS_BYTES = 1 << 20
@@ -57,16 +57,22 @@ def command(scenario, resource, serial_port, backend, generator_ref, laser_ref, 
     if resource is not None and serial_port is not None:
         raise InputError("give either --resource (VISA) or --serial-port (ramp board), not both",
                          key="--serial-port")
-    pb = prepare_playback(scenario, laser_ref=laser_ref, generator_ref=generator_ref)
-    link = pb.link(resource=resource, serial_port=serial_port, backend=backend)   # a bad address: exit 2 first
-    info = pb.require_playable().table().info
-    echo_warnings(pb.report)                  # before anything reaches the instrument
-    if arm and not dry_run:
-        click.echo(CAUTION, err=True)
-    show = not dry_run and info.nbytes > PROGRESS_BYTES
-    with progress_bar(info.nbytes, f"uploading to {link.destination}", show=show) as progress:
-        result = pb.upload(link, arm=arm, dry_run=dry_run, progress=progress)
-    doc = result.to_json()
+    import sweepgen
+
+    with late_progress() as progress:
+        def before_send(checked, link):
+            echo_warnings(checked.report)                  # before anything reaches the instrument
+            if arm and not dry_run:
+                click.echo(CAUTION, err=True)
+            nbytes = checked.table().info.nbytes
+            show = not dry_run and nbytes > PROGRESS_BYTES
+            progress.start(nbytes, f"uploading to {link.destination}", show=show)
+
+        result = sweepgen.upload(scenario, resource, serial_port=serial_port, backend=backend, dry_run=dry_run,
+                                 arm=arm, laser=profile_option("laser", laser_ref),
+                                 generator=profile_option("generator", generator_ref), progress=progress,
+                                 before_send=before_send)
+    doc, info = result.to_json(), result.info
     if as_json:
         emit_json(doc)
         return

@@ -1,0 +1,195 @@
+"""The public API (``import sweepgen``): the same documents as the command line, scenarios from dicts,
+notebook displays, errors as exceptions, lazy imports."""
+
+import dataclasses
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+import sweepgen
+from sweepgen._format import si
+from sweepgen.cli import main
+from sweepgen.planner import plan as internal_plan
+from sweepgen.scenario import load_scenario as internal_load
+
+SHIPPED = ["rb87-chopped-oven", "na23-continuous-focused", "caf-buffer-gas"]
+
+
+def cli_json(*args):
+    result = CliRunner().invoke(main, [str(a) for a in args] + ["--json"])
+    return result.exit_code, json.loads(result.stdout)
+
+
+# -- the CLI's --json is the API's to_json() -------------------------------------------------------
+@pytest.mark.parametrize("key", SHIPPED)
+def test_plan_check_and_upload_dry_run_documents_equal_the_command_line(key):
+    assert cli_json("plan", key)[1] == sweepgen.plan(key).to_json()
+    assert cli_json("check", key)[1] == sweepgen.check(key).to_json()
+    code, doc = cli_json("upload", key, "--dry-run")
+    assert code == 0 and doc == sweepgen.upload(key, dry_run=True).to_json()
+
+
+@pytest.mark.parametrize("key", [pytest.param(k, marks=pytest.mark.slow) if k != SHIPPED[0] else k for k in SHIPPED])
+def test_simulate_document_equals_the_command_line(key):
+    code, doc = cli_json("simulate", key, "--atoms", "300", "--seed", "4")
+    assert code == 0 and doc == sweepgen.simulate(key, atoms=300, seed=4).to_json()
+
+
+@pytest.mark.parametrize("key", SHIPPED)
+def test_export_and_inspect_documents_equal_the_command_line(tmp_path, key):
+    options = {"byte_order": "big"}
+    code, doc = cli_json("export", key, "-f", "raw", "-o", tmp_path / "t", "-O", "byte_order=big")
+    api = sweepgen.export(key, "raw", tmp_path / "t", options=options)
+    assert code == 0 and doc == api.to_json()          # the same folder and name: the same paths
+    code, doc = cli_json("inspect", api.paths[0])
+    assert code == 0 and doc == sweepgen.inspect(api.paths[0]).to_json()
+
+
+def test_compare_and_calibrate_documents_equal_the_command_line(tmp_path):
+    s = internal_plan(internal_load(SHIPPED[0])).schedule()
+    t = np.arange(0, 0.04, 4e-6)
+    trace = tmp_path / "trace.csv"
+    trace.write_text("time (s),detuning (Hz)\n" + "".join(f"{a:.7f},{b:.1f}\n" for a, b in
+                                                        zip(t, s.detuning(t + 0.003))))
+    code, doc = cli_json("compare", SHIPPED[0], trace)
+    assert code == 0 and doc == sweepgen.compare(SHIPPED[0], trace).to_json()
+    u = np.linspace(-5, 5, 300)
+    points = tmp_path / "piezo.csv"
+    points.write_text("drive (V),detuning (MHz)\n" + "".join(f"{a:.6f},{-180 + 41 * a + 0.6 * a * a:.6f}\n"
+                                                             for a in u))
+    code, doc = cli_json("calibrate", points, "--laser", "demo-ecdl-piezo", "--stage", "analog", "-o",
+                         tmp_path / "a.toml")
+    api = sweepgen.calibrate(points, "demo-ecdl-piezo", "analog", output=tmp_path / "b.toml")
+    assert code == 0
+    assert {k: v for k, v in doc.items() if k not in ("profile", "plot")} == \
+        {k: v for k, v in api.to_json().items() if k not in ("profile", "plot")}
+    assert api.profile == str(tmp_path / "b.toml") and (tmp_path / "b.png").stat().st_size > 0
+
+
+# -- scenarios from dicts ----------------------------------------------------------------------
+@pytest.mark.parametrize("key", SHIPPED)
+def test_a_dict_built_scenario_equals_the_same_scenario_read_from_toml(key):
+    from_toml = sweepgen.load_scenario(key)
+    from_dict = sweepgen.load_scenario(sweepgen.scenario_dict(key))
+    assert dataclasses.replace(from_dict, path=from_toml.path) == from_toml
+    assert sweepgen.plan(from_dict).to_json() == sweepgen.plan(key).to_json()
+
+
+def test_a_dict_is_copied_and_a_varied_key_changes_the_plan():
+    doc = sweepgen.scenario_dict(SHIPPED[0])
+    sc = sweepgen.load_scenario(doc)
+    doc["chirp"]["force_fraction"] = 0.3
+    assert sc.chirp.force_fraction == 0.6                     # loading took a copy
+    slow, fast = sweepgen.plan(doc), sweepgen.plan(SHIPPED[0])
+    # constant deceleration: the slowing distance (v1² − v2²)/(2 η a_max) scales as 1/η (textbook kinematics)
+    assert slow.slowing_distance == pytest.approx(fast.slowing_distance * 0.6 / 0.3, rel=1e-3)
+
+
+def test_bad_input_is_an_exception_naming_file_and_key():
+    doc = sweepgen.scenario_dict(SHIPPED[0])
+    doc["chirp"]["start_velocity"] = "260 kg"
+    with pytest.raises(sweepgen.InputError) as info:
+        sweepgen.plan(doc)
+    assert info.value.file == "<dict>" and info.value.key == "chirp.start_velocity"
+    with pytest.raises(sweepgen.InputError) as info:
+        sweepgen.check(SHIPPED[0], sample_rate="ten")
+    assert info.value.key == "sample_rate"
+    with pytest.raises(sweepgen.InputError):
+        sweepgen.simulate(SHIPPED[0], atoms=0)
+
+
+def test_quantities_are_pint_quantities_of_the_si_attributes():
+    p = sweepgen.plan(SHIPPED[0])
+    q = p.quantity("chirp_rate_max")
+    assert q.to("Hz/s").magnitude == pytest.approx(p.chirp_rate_max)
+    assert str(p.quantity("start_velocity").units) == "meter / second"
+    assert set(p.quantities()) >= {"start_velocity", "chirp_duration", "slowing_distance"}
+    with pytest.raises(KeyError):
+        p.quantity("findings")
+
+
+def test_sample_rate_takes_floats_text_and_quantities():
+    from sweepgen.units import registry
+
+    ureg = registry()
+    rates = [sweepgen.check(SHIPPED[0], sample_rate=r).sample_rate
+             for r in (10e6, "10 MSa/s", ureg.Quantity(10, "MHz"))]
+    assert rates == [10e6, 10e6, 10e6]
+
+
+# -- notebook displays ---------------------------------------------------------------------------
+def test_each_result_renders_html_with_its_headline_numbers(tmp_path):
+    p = sweepgen.plan(SHIPPED[0])
+    html = p._repr_html_()
+    for key in ("start_velocity", "chirp_rate_max", "slowing_distance"):
+        unit = dict((k, u) for k, _, u in sweepgen.PlanResult.ROWS)[key]
+        assert si(getattr(p, key), unit) in html
+    c = sweepgen.check(SHIPPED[0])
+    html = c._repr_html_()
+    assert "8 MSa/s" in html and all(f.rule in html for f in c.findings) and "warn" in html
+    s = sweepgen.simulate(SHIPPED[0], atoms=300, seed=1)
+    assert si(s.captured_fraction, "") in s._repr_html_() and si(s.final_velocity_mean, "m/s") in s._repr_html_()
+    u = sweepgen.upload(c, dry_run=True)
+    assert u.table_sha256 in u._repr_html_() and "off" in u._repr_html_()
+    e = c.export("npy", tmp_path)
+    assert e.sha256 in e._repr_html_()
+    i = sweepgen.inspect(e.paths[0])
+    assert i.ok and si(i.chirp_span, "Hz") in i._repr_html_()
+    for result in (p, c, s, u, e, i):
+        assert type(result).__name__ in repr(result)
+
+
+def test_plot_returns_a_figure_or_writes_the_file(tmp_path):
+    from matplotlib.figure import Figure
+
+    p = sweepgen.plan(SHIPPED[0])
+    assert isinstance(p.plot(), Figure)
+    assert isinstance(sweepgen.check(SHIPPED[0]).plot(), Figure)
+    path = sweepgen.simulate(SHIPPED[0], atoms=200).plot(tmp_path / "s.png")
+    assert path.stat().st_size > 0
+
+
+# -- upload through the API -----------------------------------------------------------------------
+def test_upload_to_the_virtual_instrument_is_verified_and_off():
+    checked = sweepgen.check(SHIPPED[0])
+    with sweepgen.testing.instrument_server("virtual-awg") as server:
+        result = checked.upload(server.resource)
+        assert result.verified and not result.armed
+        assert server.instrument.outputs_on == []
+
+
+def test_a_failing_sweep_is_refused_with_its_findings(tmp_path):
+    doc = sweepgen.scenario_dict(SHIPPED[0])
+    doc["target"]["distance"] = "0.5 m"
+    checked = sweepgen.check(doc)
+    assert not checked.ok and checked.failures()
+    with pytest.raises(sweepgen.CheckFailed) as info:
+        checked.export("csv", tmp_path / "out")
+    assert info.value.findings and not (tmp_path / "out").exists()
+    with pytest.raises(sweepgen.CheckFailed):
+        sweepgen.upload(checked, dry_run=True)
+
+
+# -- the package stays light ------------------------------------------------------------------------
+def test_import_sweepgen_loads_no_numerics_and_help_loads_no_api():
+    code = ("import sys, sweepgen; heavy = [m for m in ('numpy', 'click', 'sweepgen.api', 'pint') if m in sys.modules];"
+            "print(heavy)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "[]"
+    code = ("import sys; from click.testing import CliRunner; from sweepgen.cli import main;"
+            "CliRunner().invoke(main, ['--help']); print('sweepgen.api' in sys.modules, 'numpy' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "False False"
+
+
+def test_public_functions_keep_their_names_beside_modules_of_the_same_name():
+    import sweepgen.render  # noqa: F401  (an internal module named like a public function)
+    import sweepgen.simulate  # noqa: F401
+
+    assert callable(sweepgen.simulate) and sweepgen.simulate.__module__ == "sweepgen.api"
+    assert sweepgen.render.__module__ == "sweepgen.api" and sweepgen.compare.__module__ == "sweepgen.api"
+    assert set(sweepgen.__all__) <= set(dir(sweepgen))
