@@ -18,6 +18,7 @@ Sources of the expected values, named beside each assertion:
   errors of means and of standard deviations (σ/sqrt(2n)), from the sample sizes.
 """
 
+import importlib
 import math
 
 import numpy as np
@@ -399,7 +400,7 @@ def _doc_without_timing(result):
 
 
 def test_the_same_seed_gives_the_same_result_with_any_number_of_workers(monkeypatch):
-    import sweepgen.simulate as simulation
+    simulation = importlib.import_module("sweepgen.simulate")     # the module (sweepgen.simulate is the public function)
 
     monkeypatch.setattr(simulation, "CHUNK_ATOMS", 250)
     sc = make_scenario(source=NARROW, chirp=QUIET)
