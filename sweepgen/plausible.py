@@ -318,6 +318,8 @@ OPTION = {
     "--range": (VOLTS, RF_DRIVE),
     "--marker": Range("-1 d", "1 d", "s", "a measurement's time axis, within a day of its trigger"),
     "--outlier-sigma": Range(0, 1000, "", "robust standard deviations; 0 keeps every point"),
+    "--confirm-atoms": Range(1, 10**9, "", "as --atoms: the confirmation of a search's winner"),
+    "--evaluations": Range(1, 100_000, "", "designs one search may try: beyond that, narrow the free keys"),
     "--vary": Range(1, 10_000, "", "values of one varied key (N in KEY=START:STOP:N); a scan runs every "
                                   "combination, at most 100 000 designs"),
 }

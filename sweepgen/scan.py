@@ -92,9 +92,9 @@ def endpoints(key: str, low: str, high: str, option: str) -> tuple[float, float,
     return a, b, unit
 
 
-def written(number: float, unit: str):
-    """A value as the file holds it: a string with its unit, or a bare number."""
-    text = f"{number:.12g}"
+def written(number: float, unit: str, digits: int = 12):
+    """A value as the file holds it (``digits`` significant digits): a string with its unit, or a bare number."""
+    text = f"{number:.{digits}g}"
     if unit:
         return f"{text} {unit}"
     value = float(text)

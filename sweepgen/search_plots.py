@@ -137,3 +137,66 @@ def _map(fig, ax, grid: Map, objective: str) -> None:
 def plot_scan(result, file, objective: str = "captured_fraction"):
     """Draw :func:`scan_figure` into ``file`` (PNG or SVG)."""
     return save(scan_figure(result, objective), file)
+
+
+@dataclass(frozen=True)
+class History:
+    """A search in the order it ran: each design's objective (NaN unless it passed), verdict, the
+    best objective so far among passing designs, and each free key's value as a fraction of its range."""
+
+    evaluation: np.ndarray
+    objective: np.ndarray
+    verdict: np.ndarray
+    best_so_far: np.ndarray
+    position: dict
+
+
+def history_points(result) -> History:
+    """The data of :func:`history_figure` from a :class:`sweepgen.optimise.Optimisation`."""
+    s = result.search
+    hist = s.history
+    ok = np.array([h["verdict"] == "pass" and h["objective"] is not None for h in hist], dtype=bool)
+    obj = np.array([h["objective"] if o else np.nan for h, o in zip(hist, ok)], dtype=float)
+    pick = np.fmin if s.goal.minimise else np.fmax
+    best = pick.accumulate(obj) if obj.size else obj
+    position = {f.key: np.array([(h["x"][i] - f.low) / (f.high - f.low) for h in hist])
+                for i, f in enumerate(s.frees)}
+    return History(np.arange(len(hist)), obj, np.array([h["verdict"] for h in hist]), best, position)
+
+
+def history_figure(result):
+    """The objective of every design the search tried, the best so far, and where each free key was."""
+    plt = _pyplot()
+    data = history_points(result)
+    fig, (top, low) = plt.subplots(2, 1, figsize=(7.5, 6), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
+    good = data.verdict == "pass"
+    top.plot(data.evaluation[good], data.objective[good], "o", ms=4, color=COLORS["sweep"],
+             label=VERDICT_STYLE["pass"]["label"])
+    top.step(data.evaluation, data.best_so_far, where="post", color=COLORS["design"], label="best so far")
+    finite = data.objective[np.isfinite(data.objective)]
+    bottom = finite.min() - 0.08 * (np.ptp(finite) or 1.0) if finite.size else 0.0
+    for verdict in ("fail", "invalid"):
+        pick = data.verdict == verdict
+        if pick.any():
+            style = VERDICT_STYLE[verdict]
+            top.plot(data.evaluation[pick], np.full(int(pick.sum()), bottom), style["marker"], color=style["color"],
+                     label=style["label"] + ", drawn below the rest")
+    goal = result.search.goal
+    top.set_ylabel(goal.key.replace("_", " ") + (" (lower is better)" if goal.minimise else ""))
+    top.grid(alpha=0.3)
+    _legend_outside(top)
+    for key, pos in data.position.items():
+        low.plot(data.evaluation, pos, ".", ms=4, label=key)
+    low.set_ylabel("free key in its range\n(0 = low, 1 = high)")
+    low.set_xlabel("design tried (in the order the search asked)")
+    low.set_ylim(-0.05, 1.05)
+    low.grid(alpha=0.3)
+    _legend_outside(low)
+    s = result.search
+    top.set_title(f"{s.start.title}\n{s.atoms} atoms per design, seed {s.seed}", fontsize=9)
+    return fig
+
+
+def plot_history(result, file):
+    """Draw :func:`history_figure` into ``file`` (PNG or SVG)."""
+    return save(history_figure(result), file)

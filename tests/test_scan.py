@@ -88,6 +88,7 @@ def test_scan_refuses_values_the_file_could_not_hold(fast_file, vary, words):
     assert len(lines) == 1 and "option '--vary'" in lines[0] and words in lines[0]
 
 
+@pytest.mark.slow
 def test_known_optimum_along_the_start_velocity(fast_file, tmp_path):
     """The check passes exactly below the closed-form largest start velocity, and the best passing
     design is the fastest one that fits (more of the beam lies in its band)."""
@@ -117,6 +118,7 @@ def test_rows_are_the_simulation_at_the_same_seed(fast_file):
         assert row["captured_error"] == pytest.approx(math.sqrt(p * (1 - p) / n))
 
 
+@pytest.mark.slow
 def test_table_files_and_json_agree(fast_file, tmp_path):
     out = tmp_path / "out"
     result = run_cli("scan", fast_file, "--vary", "chirp.start_velocity=200 m/s:230 m/s:2",
@@ -147,6 +149,7 @@ def test_a_design_that_cannot_exist_is_a_row(fast_file):
     assert result.rows[1]["captured_fraction"] is None and result.rows[0]["captured_fraction"] is not None
 
 
+@pytest.mark.slow
 def test_plot_data_line_and_map(fast_file):
     from sweepgen.search_plots import scan_figure, scan_line, scan_map
 

@@ -30,6 +30,7 @@ COMMANDS = {
     "calibrate": ("calibrate", "Fit a stage of a laser's tuning chain to measurements; write a new profile."),
     "inspect": ("inspect", "Read a table back: verify it, decode it, print its numbers."),
     "scan": ("scan", "Check and simulate a grid of designs (keys varied), with the same seed for each."),
+    "optimise": ("optimise", "Search free keys for the design that delivers the most atoms and passes check."),
     "compare": ("compare", "Compare a measured frequency trace with the planned sweep."),
     "profiles": ("profiles", "List the built-in species, lasers, generators and scenarios."),
     "demo": ("demo", "Run the whole job on built-in data and write a report."),
