@@ -330,9 +330,12 @@ def _url(delivery: Delivery) -> str:
         return check_url(delivery.destination, key="--serial-port")
     generator = delivery.generator
     address = getattr(getattr(generator, "link", None), "address", "")
+    path = getattr(generator, "path", None)
     if not address:
-        raise InputError("no serial port given and the generator profile names none", key="--serial-port")
-    return check_url(address, key="link.port", file=str(generator.path) if getattr(generator, "path", None) else None)
+        raise InputError("no serial port given (--serial-port) and the generator profile names none; expected a "
+                         "serial device or pyserial URL such as socket://127.0.0.1:7450", key="link.port",
+                         file=str(path) if path else None)
+    return check_url(address, key="link.port", file=str(path) if path else None)
 
 
 def check_url(url, *, key: str, file=None) -> str:

@@ -559,7 +559,8 @@ class Playback:
         from sweepgen.drivers.base import Delivery
 
         link = self._link(resource, serial_port, backend)
-        drivers.load(link.driver)().check_destination(Delivery(destination=link.destination, generator=self.generator))
+        given = resource if link.driver == "visa" else serial_port      # None: the profile's, named as its key
+        drivers.load(link.driver)().check_destination(Delivery(destination=given, generator=self.generator))
         return link
 
     def _link(self, resource, serial_port, backend) -> Link:

@@ -171,3 +171,30 @@ def test_board_generator_goes_to_the_serial_driver():
     assert doc["driver"] == "serial" and doc["armed"] is False
     assert doc["verification"]["ok"] is True and url.board.committed.crc == doc["table"]["crc32"]
     assert not url.board.armed
+
+
+@pytest.mark.parametrize("scenario, profile, line, address, key", [
+    ("rb87-chopped-oven", "virtual-awg", 'resource = "TCPIP::127.0.0.1::5025::SOCKET"',
+     "TCPIP::127.0.0.1::99999::SOCKET", "link.resource"),
+    ("rb87-chopped-oven", "virtual-awg", 'resource = "TCPIP::127.0.0.1::5025::SOCKET"', "garbage", "link.resource"),
+    ("rb87-chopped-oven", "virtual-awg", 'resource = "TCPIP::127.0.0.1::5025::SOCKET"', "", "link.resource"),
+    ("caf-buffer-gas", "demo-ramp-board", 'port = "socket://127.0.0.1:7450"', "socket://127.0.0.1:99999", "link.port"),
+    ("caf-buffer-gas", "demo-ramp-board", 'port = "socket://127.0.0.1:7450"', "socket://127.0.0.1:abc", "link.port"),
+    ("caf-buffer-gas", "demo-ramp-board", 'port = "socket://127.0.0.1:7450"', "", "link.port"),
+])
+def test_a_profile_address_that_cannot_name_an_instrument_names_the_profile_and_its_key(
+        tmp_path, scenario, profile, line, address, key):
+    # no option was given: the address is the profile's, so the refusal names its file and key, not an option
+    from sweepgen import catalog
+
+    text = catalog.resolve("generators", profile).read_text()
+    assert line in text
+    gen = tmp_path / "gen.toml"
+    gen.write_text(text.replace(line, line.split(" = ")[0] + f' = "{address}"'))
+    sc = tmp_path / "scenario.toml"
+    sc.write_text(catalog.resolve("scenarios", scenario).read_text().replace(f'generator = "{profile}"',
+                                                                           'generator = "gen.toml"'))
+    result = run(sc)
+    assert result.exit_code == 2
+    line_out, = result.stderr.strip().splitlines()
+    assert line_out.startswith(f"sweepgen: error: {gen}: key '{key}': ")
