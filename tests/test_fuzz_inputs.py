@@ -464,3 +464,24 @@ def test_a_measured_value_outside_its_range_is_refused(tmp_path, column, value, 
         measurements.read(path).require(column, unit, "test")
     assert caught.value.file.endswith("m.csv")
     assert column in str(caught.value)
+
+
+@pytest.mark.parametrize("value", ['"' + "y" * (7 << 20) + '"', '"' + '\\"' * (3 << 20) + '"',
+                                   '"""' + '""y' * (2 << 20) + '"""', '"' + "y" * (7 << 20)])
+def test_a_string_of_megabytes_is_scanned_for_nesting_in_little_memory(value):
+    # the scan that bounds nesting skips strings; a repetition that keeps a backtracking state per
+    # character took 380 MB for a 3 MB string (a file may hold 8 MiB)
+    import tracemalloc
+
+    from sweepgen._config import nesting
+
+    text = f"a = [[[1]]]\nt = {value}\n" + "b" + ".c" * 40 + " = 1\n"
+    tracemalloc.start()
+    try:
+        depth, line = nesting(text)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < 2 * len(text) + (8 << 20)          # the blanked copy of the text, not a multiple of it
+    if value.endswith('"'):
+        assert (depth, line) == (40, 3)                # the 40 dots of the last line, nothing in the string
