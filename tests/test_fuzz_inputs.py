@@ -485,3 +485,17 @@ def test_a_string_of_megabytes_is_scanned_for_nesting_in_little_memory(value):
     assert peak < 2 * len(text) + (8 << 20)          # the blanked copy of the text, not a multiple of it
     if value.endswith('"'):
         assert (depth, line) == (40, 3)                # the 40 dots of the last line, nothing in the string
+
+
+def test_control_characters_in_a_message_are_written_as_escapes(tmp_path):
+    # a key (or an instrument's reply) may hold terminal commands and line breaks: the error stays one
+    # line of printable text
+    files = base_files()
+    text = '"a\\u001b[31mred\\u0000\\u009bx\\ny" = 1\n' + to_toml(files["scenario"])
+    write_case(tmp_path, files, raw={"scenario": text.encode()})
+    result, out = run_in(tmp_path, "plan")
+    error = assert_refused(result, out, "scenario.toml")
+    line = result.stderr.strip()
+    assert "key 'a\\x1b[31mred\\x00\\x9bx y'" in line            # the line break collapses to a space
+    assert not any(ord(c) < 0x20 or 0x7f <= ord(c) < 0xa0 for c in line)
+    assert error["key"] == "a\x1b[31mred\x00\x9bx\ny"             # the JSON document keeps the key as it is

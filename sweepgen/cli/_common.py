@@ -74,9 +74,14 @@ def fail(exc: SweepgenError):
     ctx = click.get_current_context(silent=True)
     if ctx is not None and ctx.meta.get(WANTS_JSON) and not ctx.meta.get(EMITTED):
         emit_json(error_document(exc))
-    text = " ".join(str(exc).split())
+    text = " ".join(str(exc).split()).translate(_CONTROL)
     click.echo(f"sweepgen: error: {text}", err=True)
     sys.exit(exc.exit_code)
+
+
+#: control characters in a message (an instrument's reply, a key of a user file) written as escapes,
+#: so that what reaches the terminal is one line of text and never a terminal command
+_CONTROL = {c: f"\\x{c:02x}" for c in [*range(0x20), *range(0x7f, 0xa0)]}
 
 
 def fail_usage(exc: click.UsageError):
