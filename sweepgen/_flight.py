@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from sweepgen import physics
+from sweepgen import _kernel, physics
 
 #: largest velocity change per step as a fraction of the natural velocity width λΓ/2π
 STEP_FRACTION = 0.1
@@ -24,7 +24,10 @@ LARGE_COUNT = 10.0
 #: atoms not arrived HORIZON_FACTOR * distance / capture_velocity after the last emission are "not arrived"
 HORIZON_FACTOR = 5.0
 
-ARRIVED, TURNED_BACK, DARK, NOT_ARRIVED = 1, 2, 3, 0
+ARRIVED, TURNED_BACK, DARK, NOT_ARRIVED = _kernel.ARRIVED, _kernel.TURNED_BACK, _kernel.DARK, 0
+#: how a step is computed when propagate is not told: compiled when numba is installed
+KERNELS = ("compiled", "numpy") if _kernel.AVAILABLE else ("numpy",)
+KERNEL = KERNELS[0]
 _NONE = np.empty(0, dtype=np.intp)
 
 
@@ -69,6 +72,7 @@ class Flight:
     atom_steps: int = 0
     smallest_step: float = math.inf
     largest_velocity_change: float = 0.0   # m/s, the bound the step rule enforced
+    kernel: str = ""                       # how the steps were computed: "compiled" or "numpy"
 
     @classmethod
     def empty(cls, n: int) -> "Flight":
@@ -88,6 +92,7 @@ class Flight:
         out.atom_steps = sum(p.atom_steps for p in parts)
         out.smallest_step = min((p.smallest_step for p in parts), default=math.inf)
         out.largest_velocity_change = max((p.largest_velocity_change for p in parts), default=0.0)
+        out.kernel = parts[0].kernel if parts else ""
         return out
 
 
@@ -105,7 +110,7 @@ def peak_saturation(light, z_max: float) -> float:
 
 
 def propagate(scenario, atoms: Atoms, program, rng: np.random.Generator, *,
-              light: bool = True, step_fraction: float = STEP_FRACTION) -> Flight:
+              light: bool = True, step_fraction: float = STEP_FRACTION, kernel: str | None = None) -> Flight:
     """Fly the atoms from the source to the target plane (see :mod:`sweepgen.simulate`).
 
     ``program`` is the main light's detuning (:mod:`sweepgen.programs`). Each step
@@ -116,8 +121,16 @@ def propagate(scenario, atoms: Atoms, program, rng: np.random.Generator, *,
     done are parked (moved far behind the source, where there is no light, and no
     longer counted) and dropped from the working arrays whenever they make up a
     sixteenth of them.
+
+    ``kernel`` chooses how a step is computed: ``"compiled"`` (one pass per step,
+    :mod:`sweepgen._kernel`, when numba is installed) or ``"numpy"`` (array by
+    array); the default is :data:`KERNEL`. The two give statistically identical
+    results from different draws.
     """
-    run = _Propagation(scenario, atoms, program, rng, light, step_fraction)
+    kernel = KERNEL if kernel is None else kernel
+    if kernel not in ("compiled", "numpy") or (kernel == "compiled" and not _kernel.AVAILABLE):
+        raise ValueError(f"kernel {kernel!r} is not available (have: {', '.join(KERNELS)})")
+    run = (_Compiled if kernel == "compiled" else _Propagation)(scenario, atoms, program, rng, light, step_fraction)
     if atoms.velocity.size == 0:
         return run.out
     t = run.t_first
@@ -131,11 +144,11 @@ def propagate(scenario, atoms: Atoms, program, rng: np.random.Generator, *,
         if t >= run.t_end:
             break
         dt, detuning = run.choose_step(t)
-        z_new = run.drift(dt)
-        hits = run.scatter(t, dt, detuning, z_new) if light else None
-        run.settle(t, dt, z_new, hits)
+        run.advance(t, dt, detuning)
         t = t + dt
-    return run.finish()
+    out = run.finish()
+    out.kernel = kernel
+    return out
 
 
 @dataclass
@@ -208,6 +221,12 @@ class _Propagation:
         self.atom_steps = 0
         self.smallest = math.inf
         self.dv_seen = 0.0
+
+    def advance(self, t: float, dt: float, detuning: float) -> None:
+        """One step of every atom in flight: drift, scatter, settle."""
+        z_new = self.drift(dt)
+        hits = self.scatter(t, dt, detuning, z_new) if self.light else None
+        self.settle(t, dt, z_new, hits)
 
     @property
     def in_flight(self) -> int:
@@ -502,6 +521,47 @@ class _Propagation:
         out.steps, out.atom_steps, out.smallest_step = self.steps, self.atom_steps, self.smallest
         out.largest_velocity_change = self.dv_seen
         return out
+
+
+class _Compiled(_Propagation):
+    """A run whose step is one compiled pass over the atoms (:func:`sweepgen._kernel.step`)."""
+
+    def __init__(self, scenario, atoms, program, rng, light, step_fraction):
+        super().__init__(scenario, atoms, program, rng, light, step_fraction)
+        lt, off = scenario.light, self.rates.off
+        self.k = _kernel.constants(
+            recoil=self.recoil, distance=self.distance, light_start=self.light_start, peak=lt.peak,
+            focused=lt.focused, focus=lt.focus if lt.focused else 0.0,
+            rayleigh=lt.rayleigh_range if lt.focused else 1.0, waist=lt.waist if lt.focused else 1.0,
+            gamma=self.gamma, wavelength=self.wavelength, fraction=self.rates.fraction,
+            split=off.splitting if off is not None else 0.0, strength=off.strength if off is not None else 0.0,
+            branching=off.branching if off is not None else 0.0, pumping=self.pumping, loss=self.p_loss > 0,
+            light=light, large=LARGE_COUNT)
+        self.repump_s = np.array([ch.saturation for ch in self.rates.repumps], dtype=float)
+        self.finished = np.empty(0, dtype=np.intp)
+        self.no_budget = np.empty(0)
+
+    def _gap(self, d_lo: float, d_hi: float) -> float:
+        w = self.w
+        centre = -0.5 * self.wavelength * (d_lo + d_hi)
+        return _kernel.nearest(w.v, w.dark, w.alive, centre) - 0.5 * self.wavelength * (d_hi - d_lo)
+
+    def advance(self, t: float, dt: float, detuning: float) -> None:
+        w = self.w
+        if self.finished.size < w.size:
+            self.finished = np.empty(w.size, dtype=np.intp)
+        detuning = detuning if self.light else 0.0
+        repump_d = np.array([ch.detuning_with(detuning) for ch in self.rates.repumps], dtype=float)
+        large = bool(dt * self.r_peak >= LARGE_COUNT)
+        done, self.n_dark = _kernel.step(
+            self.rng, self.k, self.repump_s, repump_d, t, dt, detuning, large, w.v, w.z, w.x, w.y, w.vx, w.vy,
+            w.clock, w.pump, w.photons, w.alive, w.dark, w.depumped, w.budget if w.has_budget else self.no_budget,
+            w.idx, self.out.fate, self.out.final_velocity, self.out.arrival_time, self.out.radius,
+            self.out.transverse_velocity, self.finished, w.buf)
+        if done:
+            rows = self.finished[:done].copy()
+            self._record(rows)
+            w.park(rows, self.PARK)
 
 
 # -- the rates, in place ------------------------------------------------------------------------

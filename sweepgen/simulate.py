@@ -80,7 +80,12 @@ beside the Doppler limit ``ħΓ/2k_B``.
 Baselines use the same initial atoms (common random numbers): no light at all,
 and the light held at the schedule's start detuning.
 
-Speed (``tests/benchmarks/bench_simulate.py``): per step the working set of
+Speed (``tests/benchmarks/bench_simulate.py``): the atoms are flown in parts on
+every core (:func:`chunks`, :mod:`sweepgen.workers`). With numba installed
+(``sweepgen[fast]``) each step is one compiled pass over the atoms in flight
+(:mod:`sweepgen._kernel`; a second pass first when depumping is followed);
+without it, the NumPy step below, which gives statistically identical results
+(tests/test_kernel.py). In the NumPy step, per step the working set of
 atoms in flight costs a few in-place array passes (the step rule's nearest
 velocity, the saturation at each atom, the expected counts at the start and
 mid-point velocities, the transverse drift, the tests that pick the atoms that
@@ -218,6 +223,7 @@ class SimulationResult:
                 "smallest": f.smallest_step,
                 "steps": f.steps,
                 "atom_steps": f.atom_steps,
+                "kernel": f.kernel,
             },
             "histograms": self.histograms(),
         }

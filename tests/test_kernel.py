@@ -1,0 +1,125 @@
+"""The compiled step (sweepgen._kernel, numba) against the NumPy step of sweepgen._flight.
+
+The two draw different random numbers, so they are compared as samples: for the
+shipped scenarios (a focused beam with depumping and a repump; a molecule with a
+photon budget; a continuous beam), the same initial atoms flown by each with
+independent seeds give fractions and means that agree within four standard
+errors of their difference (binomial sqrt(f(1-f)/n) and σ/sqrt(n) for each run).
+Without numba the NumPy step is chosen by itself (checked in a child process
+where importing numba fails).
+"""
+
+import json
+import math
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from sweepgen import _flight
+from sweepgen.planner import plan
+from sweepgen.scenario import load_scenario
+from sweepgen.simulate import ARRIVED, DARK, DetuningProgram, draw_atoms, propagate
+
+numba = pytest.importorskip("numba")
+
+
+def _figures(sc, flight):
+    """``{name: (value, standard error)}`` of the statistics compared."""
+    n = flight.fate.size
+    slow = (flight.fate == ARRIVED) & (flight.final_velocity <= sc.target.capture_velocity)
+
+    def frac(mask):
+        f = float(mask.mean())
+        return f, math.sqrt(max(f * (1 - f), 1.0 / n) / n)
+
+    def mean(x):
+        return float(x.mean()), float(x.std(ddof=1)) / math.sqrt(x.size)
+
+    return {"captured": frac(slow), "dark": frac(flight.fate == DARK), "ended dark": frac(flight.dark),
+            "depumped": frac(flight.depumped), "slow velocity": mean(flight.final_velocity[slow]),
+            "photons": mean(flight.photons), "arrival": mean(flight.arrival_time[slow])}
+
+
+@pytest.mark.parametrize("key", ["rb87-chopped-oven", "caf-buffer-gas", "na23-continuous-focused"])
+def test_compiled_and_numpy_steps_agree_within_the_statistical_error(key):
+    sc = load_scenario(key)
+    program = DetuningProgram(plan(sc).schedule())
+    atoms = draw_atoms(sc, 4000, np.random.default_rng(3))
+    runs = {k: propagate(sc, atoms, program, np.random.default_rng(seed), kernel=k)
+            for k, seed in (("compiled", 10), ("numpy", 20))}
+    assert runs["compiled"].kernel == "compiled" and runs["numpy"].kernel == "numpy"
+    a, b = (_figures(sc, runs[k]) for k in ("compiled", "numpy"))
+    for name in a:
+        (x, sx), (y, sy) = a[name], b[name]
+        if sx == sy == 0.0 or math.isnan(x):
+            assert x == y or (math.isnan(x) and math.isnan(y)), name
+            continue
+        assert abs(x - y) < 4 * math.hypot(sx, sy), (name, x, y)
+    # the same step rule: the step counts agree to a few per cent (the rule sees the same atoms)
+    assert abs(runs["compiled"].steps / runs["numpy"].steps - 1) < 0.1
+
+
+def test_compiled_step_is_reproducible_and_default_with_numba():
+    sc = load_scenario("rb87-chopped-oven")
+    program = DetuningProgram(plan(sc).schedule())
+    atoms = draw_atoms(sc, 500, np.random.default_rng(1))
+    one, two = (propagate(sc, atoms, program, np.random.default_rng(5)) for _ in range(2))
+    assert _flight.KERNEL == "compiled" and one.kernel == "compiled"
+    np.testing.assert_array_equal(one.final_velocity, two.final_velocity)
+    np.testing.assert_array_equal(one.photons, two.photons)
+
+
+def test_clock_run_out_gives_one_plus_poisson_photons():
+    # the compiled clock: an atom whose clock runs out with u left scatters 1 + Poisson(u) photons
+    # (reference: numpy's Poisson sampler); a step at one fixed expected count for many atoms
+    from sweepgen import _kernel
+
+    n, lam = 200_000, 0.7
+    rng = np.random.default_rng(2)
+    k = _kernel.constants(recoil=1e-9, distance=1e9, light_start=-1e9, peak=1.0, focused=False, focus=0.0,
+                          rayleigh=1.0, waist=1.0, gamma=1.0, wavelength=1.0, fraction=1.0, split=0.0, strength=0.0,
+                          branching=0.0, pumping=False, loss=False, light=True, large=1e9)
+    # rate f Γ s/(1 + s + x²) with x = 0 (v = 0, detuning 0): s/(1+s) = 1/2 for s = 1 → λ = dt/2
+    v = np.full(n, 1e-300)
+    clock = rng.standard_exponential(n)
+    photons = np.zeros(n)
+    args = [v, np.zeros(n), np.zeros(n), np.zeros(n), np.zeros(n), np.zeros(n), clock, np.ones(n), photons,
+            np.ones(n, bool), np.zeros(n, bool), np.zeros(n, bool), np.empty(0), np.arange(n), np.zeros(n, np.int8),
+            np.zeros(n), np.zeros(n), np.zeros(n), np.zeros((n, 2)), np.empty(n, np.intp), np.empty(n)]
+    _kernel.step(rng, k, np.empty(0), np.empty(0), 0.0, 2 * lam, 0.0, False, *args)
+    # photons in one step: Poisson(λ) for a unit-rate clock started afresh (the first photon when the clock
+    # runs out, then 1 + Poisson(overshoot) = Poisson(λ) in all)
+    counts = np.bincount(photons.astype(int), minlength=4)[:4] / n
+    from scipy import stats
+
+    expected = stats.poisson.pmf(np.arange(4), lam)
+    assert np.all(np.abs(counts - expected) < 4 * np.sqrt(expected / n)), (counts, expected)
+    # and the clocks left are again Exp(1) (memorylessness): mean 1, variance 1
+    assert abs(clock.mean() - 1.0) < 4 / np.sqrt(n) and abs(clock.var() - 1.0) < 8 / np.sqrt(n)
+
+
+def test_without_numba_the_numpy_step_is_used():
+    code = (
+        "import sys, json\n"
+        "sys.modules['numba'] = None\n"          # importing numba now fails, as when it is not installed
+        "from sweepgen import _flight, _kernel\n"
+        "from sweepgen.scenario import load_scenario\n"
+        "from sweepgen.simulate import simulate\n"
+        "doc = simulate(load_scenario('rb87-chopped-oven'), atoms=300, seed=1, baselines=False, ideal=True).to_json()\n"
+        "try:\n"
+        "    from sweepgen.simulate import propagate\n"
+        "    propagate(None, None, None, None, kernel='compiled')\n"
+        "    refused = False\n"
+        "except ValueError:\n"
+        "    refused = True\n"
+        "print(json.dumps({'available': _kernel.AVAILABLE, 'default': _flight.KERNEL,\n"
+        "                  'used': doc['time_step']['kernel'], 'refused': refused,\n"
+        "                  'captured': doc['captured_fraction']}))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    got = json.loads(out.stdout.strip().splitlines()[-1])
+    assert got == {"available": False, "default": "numpy", "used": "numpy", "refused": True,
+                   "captured": got["captured"]}
+    assert 0.0 < got["captured"] < 1.0
