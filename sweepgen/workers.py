@@ -125,12 +125,19 @@ def _in_pool(fn, tasks, n: int, progress) -> list:
 
 
 def _stop(pool: ProcessPoolExecutor) -> None:
-    """Cancel the tasks not started and terminate the processes running the others."""
+    """Cancel the tasks not started and terminate the processes running the others.
+
+    The pool's own manager thread reaps the terminated processes too; it is waited for, so that
+    no process still counts as running when this returns (a process reaped by that thread reads
+    as alive here until the thread has recorded its exit)."""
     processes = list((getattr(pool, "_processes", None) or {}).values())
+    manager = getattr(pool, "_executor_manager_thread", None)
     pool.shutdown(wait=False, cancel_futures=True)
     for proc in processes:
         if proc.is_alive():
             proc.terminate()
+    if manager is not None:
+        manager.join(timeout=10.0)
     for proc in processes:
         proc.join()
 
