@@ -113,6 +113,22 @@ def test_broken_scenarios_are_refused(tmp_path, name, change, fragment):
     assert "Traceback" not in result.stderr
 
 
+def test_paths_in_messages_are_normalised(tmp_path):
+    """A path given with '..' (on the command line, or inside a file) is named as the file it is:
+    'bad/../bad/file.toml' is 'bad/file.toml', in the line on stderr and the error document."""
+    folder = tmp_path / "bad"
+    folder.mkdir()
+    (folder / "file.toml").write_text(to_toml(scenario_dict(chirp={"force_fraction": "lots"})))
+    (folder / "names-a-laser.toml").write_text(to_toml(scenario_dict(laser="../bad/laser.toml")))
+    (folder / "laser.toml").write_text("title = 'test laser'\n[limits\n")
+    for given, broken in [("bad/../bad/file.toml", "file.toml"), ("bad/names-a-laser.toml", "laser.toml")]:
+        result = run("check" if "laser" in given else "plan", given, "--json")
+        assert result.exit_code == 2, (given, result.output)
+        where = folder / broken
+        assert json.loads(result.stdout)["error"]["file"] == str(where)
+        assert result.stderr.startswith(f"sweepgen: error: {where}: ") and ".." not in result.stderr
+
+
 # One decision for every command (README.md, exit codes): a sweep that cannot exist is bad input
 # (exit 2); a sweep that exists but breaks a limit is a failed check (exit 1).
 COMMANDS = [["plan"], ["check"], ["export", "-f", "csv", "-o", "out"], ["upload", "--dry-run"],
