@@ -167,8 +167,14 @@ def plan(scenario: ScenarioSource) -> PlanResult:
     """
     from sweepgen.checker import check_plan
 
+    from sweepgen.timing import plan_timing
+
     report = check_plan(load_scenario(scenario))
-    return PlanResult({**report.plan.to_json(), **report.to_json()}, title=report.scenario.title, inner=report)
+    doc = {**report.plan.to_json(), **report.to_json()}
+    timing = plan_timing(report.scenario, report.plan)
+    if timing is not None:
+        doc["timing"] = timing                 # the [timing] and gates on the trigger's axis
+    return PlanResult(doc, title=report.scenario.title, inner=report)
 
 
 def check(scenario: ScenarioSource, *, sample_rate: QuantityLike | None = None, laser=None, generator=None,

@@ -513,8 +513,13 @@ class Playback:
         return self.channels.get(MAIN)
 
     def to_json(self) -> dict:
-        """The ``check --json`` document: ``ok``, ``findings`` and ``playback``."""
-        return self.report.to_json()
+        """The ``check --json`` document: ``ok``, ``findings`` and ``playback``; with several outputs or a
+        ``[timing]`` table also ``channels`` (what each output plays) and ``timing``."""
+        doc = self.report.to_json()
+        if self.timing is not None and (len(self.channels) > 1 or self.scenario.timing.given):
+            doc["channels"] = [p.to_json() for p in self.channels.values()]
+            doc["timing"] = self.timing.to_json()
+        return doc
 
     def require_playable(self) -> "Playback":
         """Raise :class:`CheckFailed` (exit 1) unless no rule fails."""
@@ -528,24 +533,44 @@ class Playback:
         """
         if channel not in self._tables:
             self.require_playable()
-            self._tables[channel] = render(self.channels[channel], digest=self.scenario.digest)
+            playing = self.channels[channel]
+            table = render(playing, digest=self.scenario.digest)
+            if len(self.channels) > 1 or self.timing is not None and self.timing.delay:
+                table.info.extra["channel"] = {"name": channel, "kind": playing.kind, "output": playing.output,
+                                               "generator": playing.generator.key, "quantity": playing.quantity}
+                table.info.extra["timing"] = self.timing.to_json()
+            self._tables[channel] = table
         return self._tables[channel]
 
     # -- delivery ---------------------------------------------------------------------------
     def export(self, file_format: "FileFormat", directory, options: dict, *, progress=None) -> "Delivered":
-        """Write the main table and its sidecar into ``directory`` with a file driver.
+        """Write each channel's table and its sidecar into ``directory`` with a file driver.
 
         ``options`` are the driver's; ``name`` is the file name without
-        extension (see :func:`default_file_name`).
+        extension (see :func:`default_file_name`) of the main table; a further
+        channel's files are named ``NAME-CHANNEL``. Every sidecar says which
+        channel, output and generator its table is for, and the timing.
         """
         from sweepgen import sidecar
         from sweepgen.drivers.base import Delivery
 
-        table = self.table()
-        delivery = Delivery(destination=str(directory), generator=self.generator, options=dict(options),
-                            progress=progress, sidecar=sidecar.provenance(self.scenario, self.laser, self.generator))
-        report = file_format.driver.deliver(table, delivery)
-        return Delivered(self, "file", file_format.name, str(directory), table.info, report)
+        self.require_playable()
+        reports = {}
+        for name, playing in self.channels.items():
+            table = self.table(name)
+            own = dict(options)
+            if name != MAIN:
+                own["name"] = f"{options.get('name') or default_file_name(self.scenario)}-{name}"
+            laser = playing.laser if playing.kind == "frequency" else None
+            delivery = Delivery(destination=str(directory), generator=playing.generator, options=own,
+                                progress=progress if name == MAIN else None,
+                                sidecar=sidecar.provenance(self.scenario, laser, playing.generator))
+            reports[name] = file_format.driver.deliver(table, delivery)
+        report = reports[MAIN]
+        if len(reports) > 1:
+            report = {**report, "channels": [{"name": n, "output": self.channels[n].output, "paths": r["paths"],
+                                              "table_sha256": r.get("table_sha256")} for n, r in reports.items()]}
+        return Delivered(self, "file", file_format.name, str(directory), self.table().info, report)
 
     def link(self, *, resource: str | None = None, serial_port: str | None = None,
              backend: str | None = None) -> Link:

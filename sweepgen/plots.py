@@ -53,12 +53,17 @@ def _legend_outside(ax, *args, x: float = 1.01):
     return ax.legend(*args, loc="upper left", bbox_to_anchor=(x, 1.0), borderaxespad=0.0, fontsize=8)
 
 
-def plan_figure(plan, *, response=None):
+def plan_figure(plan, *, response=None, lanes=None):
     """The figure of :func:`plot_plan` (a matplotlib Figure, for saving or inspection)."""
     plt = _pyplot()
     sched = plan.schedule()
     t = np.linspace(0.0, sched.period, 4001)
-    fig, (ax, axv) = plt.subplots(2, 1, figsize=(10, 6.5), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
+    if lanes:
+        fig, (ax, axv, axt) = plt.subplots(3, 1, figsize=(10, 6.5 + 0.3 * len(lanes)), sharex=True,
+                                           gridspec_kw={"height_ratios": [3, 2, 0.25 * len(lanes) + 0.4]})
+        _timing_lanes(axt, lanes)
+    else:
+        fig, (ax, axv) = plt.subplots(2, 1, figsize=(10, 6.5), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
     ax.plot(t * 1e3, sched.detuning(t) / 1e6, color=COLORS["sweep"], lw=2, label="laser detuning Δ(t)")
     ax.plot(t * 1e3, plan.design_resonance(t) / 1e6, color=COLORS["design"], lw=1.2, ls="--",
             label="resonance of the design atom, −v_s/λ")
@@ -86,14 +91,29 @@ def plan_figure(plan, *, response=None):
     axv.grid(alpha=0.3)
     (h1, l1), (h2, l2) = axv.get_legend_handles_labels(), ax2.get_legend_handles_labels()
     _legend_outside(axv, h1 + h2, l1 + l2, x=1.12)
+    if lanes:
+        axv.set_xlabel("")
+        axt.set_xlabel(time_label(plan.scenario))
     return fig
 
 
-def plot_plan(plan, file, *, response=None) -> Path:
+def _timing_lanes(ax, lanes) -> None:
+    """One row per lane of :func:`sweepgen.timing.lanes`: when each thing is on, in ms."""
+    for row, (label, spans) in enumerate(lanes[::-1]):
+        ax.broken_barh([(a * 1e3, max(b - a, 0.0) * 1e3) for a, b in spans], (row - 0.35, 0.7),
+                       color=COLORS["sweep"] if row % 2 else COLORS["design"], alpha=0.7)
+    ax.set_yticks(range(len(lanes)))
+    ax.set_yticklabels([label for label, _ in lanes[::-1]], fontsize=7)
+    ax.set_ylim(-0.6, len(lanes) - 0.4)
+    ax.grid(axis="x", alpha=0.3)
+
+
+def plot_plan(plan, file, *, response=None, lanes=None) -> Path:
     """Detuning versus time over one period, with the design atom's own resonance
-    and, when given, the actuator's simulated response (``(t, detuning)``); legends
+    and, when given, the actuator's simulated response (``(t, detuning)``) and the
+    timing lanes (:func:`sweepgen.timing.lanes`: the table, gates, markers); legends
     beside the axes, never over the sweep."""
-    return save(plan_figure(plan, response=response), file)
+    return save(plan_figure(plan, response=response, lanes=lanes), file)
 
 
 def headroom_rows(report) -> list:

@@ -307,7 +307,10 @@ class PlanResult(_Judged):
             raise CheckFailed("one period cannot hold the sweep (rule period): nothing to draw",
                               findings=self.report.findings)
         plan = self.report.plan
-        return plan_figure(plan, response=actuator_response(plan))
+        timing = self._doc.get("timing")
+        lanes = None if timing is None else [(lane["label"], [tuple(s) for s in lane["spans"]])
+                                             for lane in timing["lanes"]]
+        return plan_figure(plan, response=actuator_response(plan), lanes=lanes)
 
 
 class CheckResult(_Judged):

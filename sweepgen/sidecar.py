@@ -47,6 +47,14 @@ sweepgen. Its keys (SI units; frequencies and detunings in Hz):
 ``drive_range``, ``code_range``, ``safe_range``
     The drive over one period (exact extremes), the codes that span it, and
     the actuator's safe input range it was checked against.
+``channel``, ``timing`` (scenarios with several outputs or a trigger delay)
+    Which channel the table plays (``name``, ``kind``: ``frequency``, ``gate`` or
+    ``marker``, ``output``, ``generator``, ``quantity``: ``detuning``, or ``level``
+    for a gate or marker, whose "detuning" scaling then gives the level, a
+    fraction of full intensity or of high), and when: the trigger source and
+    edge (sweepgen's words and the profile's names), ``delay`` (sample ``i``
+    plays at ``delay + i / sample_rate`` after the trigger edge), burst or
+    repeat, and the moments of the period on the trigger's axis.
 ``created``
     When the file was written (UTC, ISO 8601).
 ``provenance``
@@ -154,7 +162,7 @@ def build(info, *, driver: str, data_file: str, sha256: str | None, nbytes: int,
     doc["generator"] = {"output": info.output, "channel": info.channel,
                         "amplitude": info.amplitude, "offset": info.offset,
                         "code_dtype": np.dtype(info.dtype).str}
-    for key in ("chain", "sampling", "quantisation", "drive_range", "code_range", "safe_range"):
+    for key in ("chain", "sampling", "quantisation", "drive_range", "code_range", "safe_range", "channel", "timing"):
         if key in extra:
             doc[key] = extra[key]
     prov = {"scenario_digest": info.scenario_digest or None}

@@ -128,3 +128,43 @@ def gate_window(gate, when: dict) -> tuple[float, float] | None:
     if on is None or off is None:
         return None
     return on + gate.on_shift, off + gate.off_shift
+
+
+def lanes(scenario, plan) -> list[tuple[str, list[tuple[float, float]]]]:
+    """What happens when, on the trigger axis, one lane each: the source pulse, the played table
+    (from ``delay``), every gate's open window and every marker's pulse; ``(label, [(start,
+    end), ...])`` in seconds. For ``plan`` and its plot."""
+    when = moments(plan)
+    tm, period = scenario.timing, scenario.chirp.period
+    out = []
+    if when["pulse"] is not None:
+        duration = getattr(scenario.emission, "pulse_duration", None) or period * 2e-3
+        out.append(("source pulse", [(when["pulse"], when["pulse"] + duration)]))
+    out.append((f"table (first sample {tm.delay * 1e3:.4g} ms after the trigger)", [(tm.delay, period)]))
+    out.append(("chirp", [(when["chirp_start"], when["chirp_end"])]))
+    for ch in scenario.channels:
+        if ch.kind == "gate":
+            window = gate_window(ch.gate, when)
+            if window is not None:
+                out.append((f"{ch.name}: light on ({', '.join(ch.gate.lights)})", [window]))
+    for m in tm.markers:
+        at = when.get(m.at)
+        if at is not None:
+            out.append((f"{m.name}: marker at {m.at}, output {m.output}", [(at + m.shift, at + m.shift + m.width)]))
+    return out
+
+
+def timeline_json(scenario, plan) -> dict:
+    """The ``timing`` part of ``plan --json``: the settings, the moments and the lanes (s, trigger axis)."""
+    tm = scenario.timing
+    return {"delay": tm.delay, "mode": tm.mode, "cycles": tm.cycles, "source": tm.source, "edge": tm.edge,
+            "level": tm.level, "moments": moments(plan),
+            "lanes": [{"label": label, "spans": [list(s) for s in spans]} for label, spans in lanes(scenario, plan)]}
+
+
+def plan_timing(scenario, plan) -> dict | None:
+    """:func:`timeline_json` for a scenario that says anything about timing (a ``[timing]`` table or
+    a gate), else None: what ``plan --json`` adds under ``timing``."""
+    if not (scenario.timing.given or any(ch.kind == "gate" for ch in scenario.channels)):
+        return None
+    return timeline_json(scenario, plan)

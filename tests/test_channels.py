@@ -198,3 +198,105 @@ def test_an_output_the_instrument_does_not_have_is_refused_in_its_words(played):
     text = str(info.value)
     assert "-114" in text and "channel 2" in text            # the instrument's own words
     assert "switched off (confirmed" not in text             # never reported as a success
+
+
+# -- no combination of channels writes a table outside any actuator's safe range -------------------
+from hypothesis import HealthCheck, given, settings, strategies as st  # noqa: E402
+
+from conftest import run_cli  # noqa: E402
+
+
+@st.composite
+def channel_sets(draw):
+    channels = {}
+    if draw(st.booleans()):
+        follow = draw(st.booleans())
+        value = f"{draw(st.floats(-600, 600, allow_nan=False)):.3f} MHz"
+        channels["repump"] = {"kind": "frequency", "saturation": 1.0, "output": 2,
+                              "laser": draw(st.sampled_from(["demo-aom-vco", "demo-ecdl-piezo"])),
+                              "offset" if follow else "detuning": value}
+    if draw(st.booleans()):
+        dark, bright = draw(st.floats(-8, 8)), draw(st.floats(-8, 8))
+        if abs(bright - dark) < 0.01:
+            bright = dark + 0.5
+        lo = min(dark, bright) - draw(st.floats(-1, 1))
+        hi = max(dark, bright) + draw(st.floats(-1, 1))
+        channels["gate"] = {"kind": "gate", "on": "chirp_start", "off": "chirp_end", "off_shift": "20 us",
+                            "dark": f"{dark:.4f} V", "bright": f"{bright:.4f} V", "output": 3,
+                            "level": draw(st.floats(0, 1)),
+                            "input_min": f"{lo:.4f} V", "input_max": f"{max(hi, lo + 0.01):.4f} V"}
+    markers = {}
+    if draw(st.booleans()):
+        markers["arrival"] = {"at": "arrival", "width": "20 us", "output": 4,
+                              "high": f"{draw(st.floats(0.5, 9)):.3f} V"}
+    return channels, {"delay": f"{draw(st.floats(0, 0.5)):.4f} ms", "markers": markers}
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(chosen=channel_sets())
+def test_no_combination_of_channels_leaves_a_safe_range(write, chosen):
+    channels, timing = chosen
+    path = write(channels=channels, timing=timing)
+    text = path.read_text().replace('sample_rate = "auto"', 'sample_rate = "1 MSa/s"')
+    path.write_text(text)
+    pb = prepare(path)
+    if not pb.ok:
+        with pytest.raises(CheckFailed):
+            pb.table(MAIN)
+        return
+    for name, playing in pb.channels.items():
+        table = pb.table(name)
+        drive = table.info.code_offset + table.info.code_scale * table.codes().astype(float)
+        lim = playing.laser.limits
+        assert lim.input_min - 1e-9 <= drive.min() and drive.max() <= lim.input_max + 1e-9, name
+        k = playing.generator.output.delivered_factor
+        out = playing.generator.output
+        assert out.range_min * k - 1e-9 <= drive.min() and drive.max() <= out.range_max * k + 1e-9, name
+
+
+# -- the commands ----------------------------------------------------------------------------------
+def test_export_writes_a_table_and_a_sidecar_per_channel(write, tmp_path):
+    import json
+
+    result = run_cli("export", write(), "-f", "raw", "-o", tmp_path / "out", "--json")
+    assert result.exit_code == 0, result.output
+    doc = json.loads(result.stdout)
+    assert [c["name"] for c in doc["channels"]] == [MAIN, "repump", "gate", "arrival"]
+    for ch in doc["channels"]:
+        side = json.loads(Path(ch["paths"][1]).read_text())
+        assert side["generator"]["channel"] == ch["output"] and side["channel"]["name"] == ch["name"]
+        assert side["timing"]["delay"] == pytest.approx(1e-4) and side["timing"]["source_name"] == "EXTERN"
+        codes = np.fromfile(ch["paths"][0], dtype=side["numpy_dtype"])
+        drive = side["scaling"]["drive"]["offset"] + side["scaling"]["drive"]["scale"] * codes
+        lo, hi = side["safe_range"]
+        assert lo - 1e-9 <= drive.min() and drive.max() <= hi + 1e-9
+
+
+def test_check_and_plan_show_every_channel_and_the_timing(write):
+    import json
+
+    path = write()
+    check = run_cli("check", path, "--json")
+    assert check.exit_code == 0, check.output
+    doc = json.loads(check.stdout)
+    assert [c["output"] for c in doc["channels"]] == [1, 2, 3, 4] and doc["timing"]["edge_name"] == "UP"
+    assert {"repump.actuator_range", "gate.coverage", "gate.switch_off", "arrival.window"} <= {
+        f["rule"] for f in doc["findings"]}
+    plan = run_cli("plan", path, "--plot", "plan.png")
+    assert plan.exit_code == 0, plan.output
+    assert "timing (0 = the trigger edge): external trigger, rising edge, burst" in plan.stdout
+    assert "gate: light on (main, repump)" in plan.stdout and Path("plan.png").stat().st_size > 0
+
+
+def test_upload_is_off_until_arm_and_a_refusal_is_exit_1(write, tmp_path):
+    path = write()
+    gen = load_generator(str(BENCH))
+    with instrument_server(gen) as server:
+        result = run_cli("upload", path, "--resource", server.resource)
+        assert result.exit_code == 0, result.output
+        assert server.instrument.outputs_on == [] and not server.instrument.ever_armed
+    with instrument_server(dataclasses.replace(gen, channels=1, outputs={})) as server:
+        result = run_cli("upload", path, "--resource", server.resource, "--arm")
+        assert result.exit_code == 1
+        assert "-114" in result.stderr and "switched off (confirmed" not in result.output
+        assert not server.instrument.ever_armed

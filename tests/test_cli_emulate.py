@@ -207,3 +207,30 @@ def test_port_in_use_is_a_usage_error():
         port = busy.getsockname()[1]
         result = run_cli("emulate", "--port", port)
     assert result.exit_code == 2 and "cannot listen" in result.stderr
+
+
+def test_a_line_per_change_of_state(rm, tmp_path):
+    # a user watching `sweepgen emulate` sees what the instrument was told: trace, trigger, outputs
+    import shutil
+    from pathlib import Path
+
+    shutil.copy(Path(__file__).parent / "data" / "four-output-bench.toml", tmp_path / "bench.toml")
+    with Emulator("--generator", str(tmp_path / "bench.toml")) as emulator:
+        inst = open_visa(rm, emulator.address, timeout_ms=3000)
+        inst.write("FORM:DATA ASC;:TRAC:DATA SWEEP2," + ",".join(["0"] * 32))
+        inst.write("SOUR2:FUNC:USER SWEEP2;SHAP USER;:SOUR2:FREQ 1000;:TRIG:SOUR EXTERN;:TRIG:DEL 0.0001")
+        inst.write("TRIG:COUN 2;:INIT:CONT OFF;:OUTP2:STAT ON")
+        assert inst.query("OUTP2:STAT?") == "1"
+        inst.write("OUTP2:STAT OFF")
+        assert inst.query("SYST:ERR?").startswith("0,")
+        inst.close()
+        time.sleep(0.3)
+        code, err = emulator.stop()
+    assert code == 0
+    lines = err.splitlines()
+    assert "trace SWEEP2 stored: 32 points" in lines
+    assert "trigger source EXTERN" in lines and "trigger delay 0.0001 s" in lines
+    assert "playback: burst of 2 per trigger" in lines
+    on = next(line for line in lines if line.startswith("output 2 ON"))
+    assert "32000 Sa/s" in on and "trigger EXTERN UP" in on and "burst of 2" in on
+    assert lines.index(on) < lines.index("output 2 OFF")

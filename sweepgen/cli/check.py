@@ -54,19 +54,20 @@ def command(scenario, as_json, rate, laser_ref, generator_ref, plot_file, table_
     if as_json:
         emit_json(result.to_json())
     else:
-        _print(result.report, show_all)
+        _print(result.report, show_all, result.to_json())
         if plot_file:
             click.echo(f"plot: {plot_file}", err=True)
     if not result.ok:
         raise SystemExit(1)
 
 
-def _print(report, show_all):
+def _print(report, show_all, doc=None):
     sc = report.scenario
     click.echo(f"{sc.title}")
     click.echo(f"  laser: {report.laser.key} ({report.laser.chain.describe()}); generator: {report.generator.key}")
     if report.rate_choice is not None:
         click.echo(f"  sample rate: {report.rate_choice.reason}")
+    _print_outputs(doc or {})
     rows = []
     shown = report.ordered() if show_all else [f for f in report.ordered() if f.status != "pass"]
     for f in shown:
@@ -83,3 +84,14 @@ def _print(report, show_all):
     summary = (f"{len(fails)} failed, {len(report.warnings())} warning(s), {passed} passed"
                + ("" if show_all else " (--all lists them)"))
     click.echo(("NOT PLAYABLE: " if fails else "ok: ") + summary)
+
+
+def _print_outputs(doc):
+    """Every output and the trigger, for a scenario with several outputs or a [timing] table."""
+    channels, tm = doc.get("channels"), doc.get("timing")
+    if channels and len(channels) > 1:
+        click.echo("  outputs: " + "; ".join(f"{c['name']} ({c['kind']}) on output {c['output']} of {c['generator']}"
+                                             for c in channels))
+    if tm:
+        click.echo(f"  trigger: {tm['source']} ({tm['source_name'] or 'no name in the profile'}), {tm['edge']} "
+                   f"edge, delay {si(tm['delay'], 's')}, {tm['mode']}")

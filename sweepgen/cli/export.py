@@ -122,6 +122,8 @@ def _print(title, info, result):
             ("table_sha256", f"{result['table_sha256']} (the codes, as upload records them)")]
     if info.amplitude is not None:
         rows.insert(5, ("program", f"amplitude {si(info.amplitude, 'V')} pp, offset {si(info.offset, 'V')}"))
+    for ch in result.get("channels", [])[1:]:
+        rows.append((f"{ch['name']} (output {ch['output']})", f"{ch['paths'][0]} + sidecar {ch['paths'][1]}"))
     click.echo(table(rows))
 
 

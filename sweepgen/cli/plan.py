@@ -53,6 +53,9 @@ def _print(result, drawn):
     sc = result.scenario
     click.echo(f"{sc.title}  [{sc.species.key}, {'pulsed' if sc.pulsed else 'continuous'} source]")
     click.echo(table(result.rows()))
+    timing = result.to_json().get("timing")
+    if timing is not None:
+        _print_timing(timing)
     fails = result.failures()
     for f in fails:
         headroom = "" if f.headroom is None else f" (headroom {f.headroom * 100:.0f} %)"
@@ -65,3 +68,14 @@ def _print(result, drawn):
         click.echo(f"light.saturation is measured against: {sc.species.saturation_definition}")
     if drawn:
         click.echo(f"plot: {drawn}", err=True)
+
+
+def _print_timing(timing):
+    """The timing on the trigger's axis: how the playback starts, then when each thing is on."""
+    from sweepgen._format import si
+
+    mode = f"burst of {timing['cycles']} period(s) per trigger" if timing["mode"] == "burst" else "repeat"
+    level = f", threshold {si(timing['level'], 'V')}" if timing["level"] is not None else ""
+    click.echo(f"timing (0 = the trigger edge): {timing['source']} trigger, {timing['edge']} edge{level}, {mode}")
+    click.echo(table([(lane["label"], ", ".join(f"{si(a, 's')} to {si(b, 's')}" for a, b in lane["spans"]))
+                      for lane in timing["lanes"]]))
