@@ -326,10 +326,17 @@ class _Propagation:
         z_mid *= 0.5
         # the transverse positions are at the step's end already; the beam changes little across a step
         s = saturation_seen(z_mid, w.x, w.y, w.lit, self.beam, self.beam.peak, w.s, w.buf)
+        detuning = self._seen(detuning, z_mid)
         expected = midpoint_counts(w.v, s, detuning, dt, self.rates, self.recoil, w.buf, w.buf2, w.expected)
         if self.pumping:
             self._pump(dt, detuning, s, z_mid, expected)
         return self._photons(t, dt, z_new, expected)
+
+    def _seen(self, detuning: float, z_mid: np.ndarray):
+        """The light's detuning; per atom, with the Zeeman shift at each atom's place, when the program
+        has a field (``shift_at``, :class:`sweepgen.tapered.FieldProgram`)."""
+        shift = getattr(self.program, "shift_at", None)
+        return detuning if shift is None else detuning + shift(z_mid)
 
     def _pump(self, dt: float, detuning: float, s: np.ndarray, z_mid: np.ndarray, expected: np.ndarray) -> None:
         """Depump bright atoms through the off-resonant level, pump dark ones back with the repump lights.
@@ -360,7 +367,7 @@ class _Propagation:
         was_dark = w.dark[turn]
         elapsed = (clock[turn] + hazard[turn]) / hazard[turn]      # part of the step before the switch
         bright_part = np.where(was_dark, 0.0, elapsed)
-        lam_dark = off_resonant_counts(v_mid[turn], s[turn], detuning, dt, rates, np.empty(turn.size),
+        lam_dark = off_resonant_counts(v_mid[turn], s[turn], _rows(detuning, turn), dt, rates, np.empty(turn.size),
                                        np.empty(turn.size))
         lam_back = self._repump(turn, detuning, dt, z_mid)
         end_dark, end_clock, bright_part = self._switches(~was_dark, 1.0 - elapsed, bright_part, lam_dark, lam_back)
@@ -375,7 +382,8 @@ class _Propagation:
         w = self.w
         if not self.rates.repumps:
             return np.zeros(rows.size)
-        return repump_counts(w.v[rows], z_mid[rows], w.x[rows], w.y[rows], detuning, dt, self.rates)
+        return repump_counts(w.v[rows], z_mid[rows], w.x[rows], w.y[rows], _rows(detuning, rows), dt,
+                             self.rates)
 
     def _switches(self, dark, rest, bright_part, lam_dark, lam_back):
         """Follow the atoms that just switched (now ``dark`` or not) through the ``rest`` of the step.
@@ -645,6 +653,11 @@ def off_resonant_counts(v, s, detuning, dt, rates, work, out):
     out /= x
     out *= off.branching * rates.fraction * rates.gamma * dt
     return out
+
+
+def _rows(detuning, rows):
+    """The entries ``rows`` of a per-atom detuning (a single detuning is every atom's)."""
+    return detuning[rows] if isinstance(detuning, np.ndarray) else detuning
 
 
 def repump_counts(v, z, x, y, detuning, dt, rates):

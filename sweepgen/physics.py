@@ -189,3 +189,34 @@ def closed_form_slowing(v_start, v_end, deceleration, wavelength):
         "span": (v_start - v_end) / wavelength,
         "chirp_rate": deceleration / wavelength,
     }
+
+
+def zeeman_moment(ground_g, ground_m, excited_g, excited_m):
+    """Effective magnetic moment of a transition between two Zeeman sub-levels, J/T.
+
+    ``μ′ = (g_e m_e − g_g m_g) μ_B`` (Foot 2005, §9.3, eq. 9.12, recalled): the
+    transition frequency moves by ``μ′B/h`` in a field ``B``. For the stretched
+    states of an alkali D2 line (``|F = I+1/2, m_F = F⟩ → |F′ = F+1, m_F′ = F+1⟩``)
+    it is one Bohr magneton.
+    """
+    return (excited_g * excited_m - ground_g * ground_m) * C.physical_constants["Bohr magneton"][0]
+
+
+def tapered_field_scale(start_velocity, wavelength, moment):
+    """``B₀ = h v₀ / (λ μ′)``, T: the field whose Zeeman shift ``μ′B₀/h`` equals the Doppler shift
+    ``v₀/λ`` of the start velocity (Foot 2005, §9.3, eq. 9.12, recalled)."""
+    return C.h * start_velocity / (wavelength * moment)
+
+
+def tapered_field_length(start_velocity, deceleration):
+    """``L₀ = v₀² / 2a``, m: where an atom starting at ``v₀`` comes to rest at constant deceleration ``a``
+    (Foot 2005, §9.3, eq. 9.11, recalled)."""
+    return start_velocity ** 2 / (2.0 * deceleration)
+
+
+def tapered_field(z, b0, l0, bias):
+    """``B(z) = B₀ √(1 − z/L₀) + B_bias`` (T) for ``0 ≤ z ≤ L₀`` (Foot 2005, §9.3, eq. 9.12, recalled):
+    the field that keeps an atom decelerating at ``a = v₀²/2L₀`` in resonance with light of one
+    frequency, its velocity being ``v(z) = v₀ √(1 − z/L₀)``."""
+    z = np.asarray(z, dtype=float)
+    return b0 * np.sqrt(np.clip(1.0 - z / l0, 0.0, None)) + bias

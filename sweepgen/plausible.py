@@ -220,6 +220,10 @@ SPECIES = {
                                           "hyperfine and rotational splittings, either sign", magnitude=True),
     "off_resonant_level.strength": Range(1e-6, 100, "", "a line strength relative to the cycling transition"),
     "off_resonant_level.branching": Range(0, 1, "", "a probability"),
+    "zeeman.ground_g": Range(-10, 10, "", "Landé g-factors of atomic and molecular levels lie within a few units"),
+    "zeeman.excited_g": Range(-10, 10, "", "as zeeman.ground_g"),
+    "zeeman.ground_m": Range(-50, 50, "", "magnetic quantum numbers of the levels used for laser cooling"),
+    "zeeman.excited_m": Range(-50, 50, "", "as zeeman.ground_m"),
 }
 
 LASER = {

@@ -423,3 +423,38 @@ def compare_figure(cmp, *, scenario=None):
     axe.legend(fontsize=8)
     axe.grid(alpha=0.3)
     return fig
+def field_curves(plan, field, points: int = 401) -> dict:
+    """The data of :func:`field_figure` (SI units): the tapered field ``B(z)`` over the slower, the
+    design atom's velocity versus position in both methods."""
+    z = np.linspace(field.start, field.end, points)
+    tr = plan.trajectory
+    return {"z": z, "field": field.field(z), "field_velocity": field.velocity(z),
+            "chirp_position": np.asarray(tr.position), "chirp_velocity": np.asarray(tr.velocity)}
+
+
+def field_figure(plan, field):
+    """The tapered-field slower beside the chirp: its field profile (upper panel) and the design atom's
+    velocity versus position in both methods (lower panel)."""
+    plt = _pyplot()
+    c = field_curves(plan, field)
+    fig, (ax, axv) = plt.subplots(2, 1, figsize=(10, 6.5), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
+    ax.plot(c["z"], c["field"] * 1e3, color=COLORS["response"], lw=2,
+            label=f"B(z) = B₀√(1 − z/L₀) + B_bias\nB₀ = {field.b0 * 1e3:.4g} mT, L₀ = {field.l0:.4g} m")
+    ax.axhline(0.0, color=COLORS["muted"], lw=0.8)
+    ax.set_ylabel("field along the beam (mT)")
+    ax.set_title(f"{plan.scenario.title}: tapered-field alternative", fontsize=10)
+    _legend_outside(ax)
+    ax.grid(alpha=0.3)
+    axv.plot(c["chirp_position"], c["chirp_velocity"], color=COLORS["sweep"], lw=2, label="chirp: design atom")
+    axv.plot(c["z"], c["field_velocity"], color=COLORS["response"], lw=1.5, ls="--",
+             label="tapered field: design atom")
+    axv.set_xlabel("distance from the source (m)")
+    axv.set_ylabel("velocity (m/s)")
+    axv.grid(alpha=0.3)
+    _legend_outside(axv)
+    return fig
+
+
+def plot_field(plan, field, file) -> Path:
+    """Save :func:`field_figure` (PNG or SVG by extension)."""
+    return save(field_figure(plan, field), file)

@@ -445,6 +445,11 @@ class SimulationResult(Result):
         """The scenario simulated (:class:`sweepgen.Scenario`)."""
         return self._inner.scenario
 
+    @property
+    def run(self):
+        """The Monte Carlo run itself (:class:`sweepgen.simulate.SimulationResult`: every atom's fate)."""
+        return self._inner
+
     def _figure(self):
         from sweepgen.plots import simulation_figure
 

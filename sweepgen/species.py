@@ -22,6 +22,10 @@ documented default so that older files keep working:
   excites (``splitting`` from the cycling excited level, signed, Hz; relative
   line ``strength``; ``branching`` of its decay to the dark ground level); used
   for hyperfine depumping and repumping. Absent: no depumping.
+* ``[zeeman]``: the Landé factors and magnetic quantum numbers of the two
+  sub-levels of the slowing transition (``ground_g``, ``ground_m``,
+  ``excited_g``, ``excited_m``, ``source``), for the tapered-field comparison
+  (:mod:`sweepgen.tapered`). Absent: no such comparison.
 """
 
 from __future__ import annotations
@@ -32,7 +36,7 @@ from pathlib import Path
 
 from sweepgen import catalog
 from sweepgen._config import Section, load_toml
-from sweepgen.physics import TWO_LEVEL_FRACTION, multilevel_rate_fraction
+from sweepgen.physics import TWO_LEVEL_FRACTION, multilevel_rate_fraction, zeeman_moment
 
 
 @dataclass(frozen=True)
@@ -42,6 +46,21 @@ class OffResonantLevel:
     splitting: float       # Hz, its frequency minus the cycling excited level's (signed)
     strength: float        # line strength relative to the cycling transition
     branching: float       # probability that its decay ends in the dark ground level
+
+
+@dataclass(frozen=True)
+class Zeeman:
+    """The two Zeeman sub-levels of the slowing transition (Landé factors g_F, quantum numbers m_F)."""
+
+    ground_g: float
+    ground_m: float
+    excited_g: float
+    excited_m: float
+
+    @property
+    def moment(self) -> float:
+        """Effective magnetic moment μ′ (J/T), :func:`sweepgen.physics.zeeman_moment`."""
+        return zeeman_moment(self.ground_g, self.ground_m, self.excited_g, self.excited_m)
 
 
 @dataclass(frozen=True)
@@ -60,6 +79,7 @@ class Species:
     effective_saturation_intensity: float | None = None   # W/m², what the slowed atoms really need
     saturation_definition: str = ""   # the transition and polarisation saturation_intensity belongs to
     off_resonant: OffResonantLevel | None = None
+    zeeman: Zeeman | None = None
     sources: dict = field(default_factory=dict, compare=False)
 
     @property
@@ -168,6 +188,21 @@ def _off_resonant(top: Section, sources: dict) -> OffResonantLevel | None:
     return OffResonantLevel(splitting=splitting, strength=strength, branching=branching)
 
 
+def _zeeman(top: Section, sources: dict) -> Zeeman | None:
+    """``[zeeman]``: ground_g, ground_m, excited_g, excited_m, source."""
+    if not top.has("zeeman"):
+        return None
+    item = top.section("zeeman")
+    values = {name: item.number(name) for name in ("ground_g", "ground_m", "excited_g", "excited_m")}
+    sources["zeeman"] = _source_of(item)
+    item.finish()
+    zeeman = Zeeman(**values)
+    if zeeman.moment == 0:
+        raise item.error("excited_m", "the transition's frequency does not move in a field "
+                                      "(g_e m_e = g_g m_g): no tapered-field slower can use it")
+    return zeeman
+
+
 def load_species(ref, *, relative_to=None, file=None, key=None) -> Species:
     """Load a species profile by built-in key or path."""
     path = catalog.resolve("species", ref, relative_to=relative_to, file=file, key=key)
@@ -194,6 +229,7 @@ def species_from_dict(data: dict, path) -> Species:
     isat, isat_eff, definition = _saturation(top, sources)
     fraction = _rate_fraction(top, sources)
     off = _off_resonant(top, sources)
+    zeeman = _zeeman(top, sources)
     if off is not None and kind == "molecule":
         raise top.error("off_resonant_level", "molecules lose to dark states through loss_per_photon; "
                                               "off_resonant_level is for atoms")
@@ -210,4 +246,4 @@ def species_from_dict(data: dict, path) -> Species:
     return Species(key=Path(str(path)).stem, title=title, kind=kind, wavelength=wavelength, mass=mass,
                    gamma=gamma, saturation_intensity=isat, loss_per_photon=loss or 0.0, rate_fraction=fraction,
                    effective_saturation_intensity=isat_eff, saturation_definition=definition,
-                   off_resonant=off, sources=sources)
+                   off_resonant=off, zeeman=zeeman, sources=sources)

@@ -13,8 +13,13 @@ from sweepgen.cli._common import PlotFile, emit_json, handles_errors, json_optio
 @click.option("--plot", "plot_file", type=PlotFile(), default=None, metavar="FILE",
               help="Also draw the sweep, the design atom and (when the scenario names a laser) the "
                    "actuator's simulated response (PNG or SVG by extension).")
+@click.option("--compare-field", is_flag=True, default=False,
+              help="Also work out the tapered-field (Zeeman) slower with the same deceleration and light: "
+                   "its field profile, peak field and length (the species file needs a [zeeman] table).")
+@click.option("--field-plot", type=PlotFile(), default=None, metavar="FILE",
+              help="Draw the tapered-field slower beside the chirp (implies --compare-field).")
 @handles_errors
-def command(scenario, as_json, plot_file):
+def command(scenario, as_json, plot_file, compare_field, field_plot):
     """Plan the detuning sweep for SCENARIO (a built-in key or a path), and
     judge it by the design rules of 'sweepgen check' (slowing distance,
     deceleration, beam overlap, end velocity, survival, after the chirp,
@@ -31,13 +36,53 @@ def command(scenario, as_json, plot_file):
     import sweepgen
 
     result = sweepgen.plan(scenario)
+    field = _field(result.report.plan, field_plot) if (compare_field or field_plot) else None
     drawn = _plot(result, plot_file) if plot_file else ""
+    doc = result.to_json()
+    if field is not None:
+        doc["tapered_field"] = field.to_json()
     if as_json:
-        emit_json(result.to_json())
+        emit_json(doc)
     else:
         _print(result, drawn)
+        if field is not None:
+            _print_field(field)
     if not result.ok:
         raise SystemExit(1)
+
+
+FIELD_ROWS = [
+    ("moment_bohr_magnetons", "effective magnetic moment μ′ (μ_B)", ""),
+    ("deceleration", "deceleration (constant)", "m/s²"),
+    ("b0", "B₀ = h v₀ / (λ μ′)", "T"),
+    ("bias", "B_bias", "T"),
+    ("peak_field", "peak field |B|", "T"),
+    ("l0", "L₀ = v₀² / 2a", "m"),
+    ("length", "field length (start to end velocity)", "m"),
+    ("start_position", "field starts at", "m"),
+    ("laser_detuning", "light held at", "Hz"),
+]
+
+
+def _field(plan, field_plot):
+    """The tapered-field slower of ``plan`` (drawn into ``field_plot`` when given)."""
+    from sweepgen.tapered import tapered_field
+
+    field = tapered_field(plan)
+    if field_plot:
+        from sweepgen.plots import plot_field
+
+        plot_field(plan, field, field_plot)
+        click.echo(f"field plot: {field_plot}", err=True)
+    return field
+
+
+def _print_field(field):
+    from sweepgen._format import si
+
+    doc = field.to_json()
+    click.echo("tapered-field alternative (same deceleration and light; C. J. Foot, Atomic Physics, §9.3):")
+    click.echo(table([(label, si(doc[key], unit) if unit else f"{doc[key]:.4g}") for key, label, unit in FIELD_ROWS]))
 
 
 def _plot(result, plot_file) -> str:

@@ -85,8 +85,12 @@ def _confirm_size(sc, atoms, seed, yes, how):
 @click.option("--ideal", is_flag=True, default=False,
               help="Play the planned sweep itself instead of what the hardware plays (the sweep through the "
                    "laser's chain, quantised by the generator, filtered by the actuator response).")
+@click.option("--compare-field", is_flag=True, default=False,
+              help="Also fly the same atoms through the tapered-field (Zeeman) slower with the same "
+                   "deceleration and light (see 'sweepgen plan --compare-field') and report both.")
 @handles_errors
-def command(scenario, atoms, seed, workers, yes, as_json, plot_file, table_file, laser_ref, ideal):
+def command(scenario, atoms, seed, workers, yes, as_json, plot_file, table_file, laser_ref, ideal,
+            compare_field):
     """Fly atoms from the source of SCENARIO (a built-in key or a path) through
     the slowing light with the detuning the hardware plays (the sweep through
     the laser's tuning chain, quantised to the generator's codes and filtered
@@ -119,6 +123,10 @@ def command(scenario, atoms, seed, workers, yes, as_json, plot_file, table_file,
                                    laser=profile_option("laser", laser_ref), workers=workers, progress=progress,
                                    before_run=_before_run(yes, progress, as_json))
     sc, doc = result.scenario, result.to_json()
+    if compare_field:
+        from sweepgen.tapered import compare
+
+        doc["tapered_field"] = compare(sc, atoms=atoms, seed=seed, chirp=result.run, workers=workers).to_json()
     if plot_file:
         result.plot(plot_file)
     if as_json:
@@ -156,6 +164,22 @@ def command(scenario, atoms, seed, workers, yes, as_json, plot_file, table_file,
     if sc.target.aperture is None:
         rows = [r for r in rows if r[0] != "lost: outside the aperture"]
     click.echo(table(rows))
+    if "tapered_field" in doc:
+        _print_field(doc["tapered_field"])
     if plot_file:
         click.echo(f"plot: {plot_file}", err=True)
+
+
+def _print_field(cmp):
+    """The two methods on the same atoms, with their binomial errors."""
+    def pct(key):
+        return f"{100 * cmp[key + '_fraction']:.2f} ± {100 * cmp[key + '_error']:.2f} %"
+
+    f = cmp["field"]
+    click.echo(f"tapered-field slower, same atoms and light (peak field {si(f['peak_field'], 'T')}, length "
+               f"{si(f['length'], 'm')}, light held at {si(f['laser_detuning'], 'Hz')}):")
+    click.echo(table([("captured, chirp", pct("chirp_captured")),
+                      ("captured, tapered field", pct("field_captured")),
+                      ("final velocity, chirp", si(cmp["chirp_final_velocity_mean"], "m/s")),
+                      ("final velocity, tapered field", si(cmp["field_final_velocity_mean"], "m/s"))]))
 
