@@ -39,8 +39,8 @@ FAILING = 1e3
 INVALID = 1e4
 #: energy of a passing design whose objective has no value (no atom captured to average over)
 NO_VALUE = 1e2
-#: a rule binds at the optimum when its headroom is below this
-BINDING_HEADROOM = 0.1
+#: how many of the winner's rules nearest their limits the report names
+NEAREST = 3
 #: a free key binds when it lies within this fraction of its range from a bound
 AT_BOUND = 0.01
 #: significant digits of a free key's values
@@ -288,14 +288,23 @@ class Optimisation:
                 "best": b["captured_fraction"], "best_error": b["captured_error"],
                 "difference": delta, "error": error, "significant": delta > 2 * error}
 
-    def binding(self) -> list:
-        """What limits the winner: its rules with a headroom below :data:`BINDING_HEADROOM` (smallest
-        first) and the free keys at one of their bounds."""
+    def nearest(self) -> list:
+        """The winner's :data:`NEAREST` rules closest to their limits: ``{"rule", "headroom"}``, smallest first."""
         row = self.best_row or self.best
         if row is None:
             return []
-        out = [{"rule": r, "headroom": h} for r, h in sorted(row["headrooms"].items(), key=lambda kv: kv[1])
-               if h < BINDING_HEADROOM]
+        return [{"rule": r, "headroom": h} for r, h in sorted(row["headrooms"].items(), key=lambda kv: kv[1])][:NEAREST]
+
+    def binding(self) -> list:
+        """What limits the winner: its rules within the checker's warning distance of their limits
+        (headroom below :data:`sweepgen.checker.WARN_HEADROOM`, smallest first) and the free keys at one
+        of their bounds."""
+        from sweepgen.checker import WARN_HEADROOM
+
+        row = self.best_row or self.best
+        if row is None:
+            return []
+        out = [b for b in self.nearest() if b["headroom"] < WARN_HEADROOM]
         for f in self.search.frees:
             x = quantity_parts(str(row["values"][f.key]), f.key, "")[0]
             for name, edge in (("low", f.low), ("high", f.high)):
@@ -317,7 +326,7 @@ class Optimisation:
                                                "evaluation": best["evaluation"]},
             "confirmation": {"atoms": self.confirm_atoms, "seed": self.confirm_seed,
                              "start": self.start_row, "best": self.best_row},
-            "improvement": self.improvement(), "binding": self.binding(),
+            "improvement": self.improvement(), "binding": self.binding(), "nearest_limits": self.nearest(),
             "history": [{k: h[k] for k in ("evaluation", "values", "verdict", "failing_rules", "objective",
                                             "energy")} for h in s.history],
             **self.extras,

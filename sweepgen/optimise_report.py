@@ -15,7 +15,6 @@ import os
 from pathlib import Path
 
 from sweepgen.errors import InputError
-from sweepgen.optimise import BINDING_HEADROOM
 
 #: the four files, by kind: name after the stem (and number), and extension
 KINDS = {"scenario": ("best", ".toml"), "report": ("optimise", ".md"), "json": ("optimise", ".json"),
@@ -146,13 +145,17 @@ def _start_value(free) -> str:
 
 
 def _binding(result) -> list:
+    from sweepgen.checker import WARN_HEADROOM
+
     rows = result.binding()
     lines = ["## What binds at the optimum", ""]
     if not rows:
-        return lines + [f"No rule is within {100 * BINDING_HEADROOM:.0f} % of its limit and no free key at a bound.", ""]
+        lines.append(f"No rule is within {100 * WARN_HEADROOM:.0f} % of its limit (where check warns) and no "
+                     f"free key at a bound.")
     for b in rows:
         if "rule" in b:
             lines.append(f"- rule `{b['rule']}`: headroom {100 * b['headroom']:.1f} %")
         else:
             lines.append(f"- `{b['free']}` at its {b['bound']} bound ({b['value']:g} {b['unit']})".rstrip())
-    return lines + [""]
+    near = ", ".join(f"`{b['rule']}` {100 * b['headroom']:.1f} %" for b in result.nearest())
+    return lines + ["", f"Rules nearest their limits (headroom): {near}.", ""]
