@@ -36,6 +36,9 @@ from sweepgen.errors import InputError
 BINS = 1 << 14
 #: correlation peaks refined by least squares
 CANDIDATES = 5
+#: periods of the trace folded for the cross-correlation (the refinement uses the whole trace): a day's
+#: trace on the fold's grid would be 10¹¹ points
+FOLD_PERIODS = 64
 #: a trace further from the chirp than this fraction of its span (RMS, at the best alignment) measures
 #: another sweep (a laser that does not sweep at all is a ramp's RMS, span/√12 ≈ 0.29 span, from it)
 MISFIT_FRACTION = 0.25
@@ -139,7 +142,7 @@ def align_xcorr(schedule, trace: Trace) -> tuple[float, dict]:
     period = schedule.period
     h = period / BINS
     t0 = trace.time[0]
-    grid = np.arange(t0, trace.time[-1], h)
+    grid = np.arange(t0, min(trace.time[-1], t0 + FOLD_PERIODS * period), h)
     m = np.interp(grid, trace.time, trace.detuning)
     phase = np.arange(len(grid)) % BINS
     # the mean trace over one period: a trace of 2.2 periods must not weigh a fifth of the period threefold

@@ -74,3 +74,23 @@ def test_marker_alignment(planned, tmp_path):
     assert cmp.ok and cmp2.ok
     with pytest.raises(InputError, match="transition"):
         read_trace(path)
+
+
+def test_a_trace_that_spans_a_day_is_folded_in_bounded_memory(planned):
+    # three periods of samples and one more a day later: the fold's grid (period / 16384) over the
+    # whole span would be 7·10¹⁰ points (525 GiB); the fold takes the first FOLD_PERIODS periods
+    import tracemalloc
+
+    p, s = planned
+    trace, _ = synthetic(s, lag=0.004, span=0.06)
+    t = np.append(trace.time, trace.time[0] + 86000.0)
+    det = np.append(trace.detuning, s.detuning(t[-1:] + 0.004))
+    tracemalloc.start()
+    try:
+        cmp = compare(p, Trace("day", t, det, None, "detuning"))
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < 200 << 20
+    off = (cmp.lag - 0.004 + s.period / 2) % s.period - s.period / 2
+    assert off == pytest.approx(0.0, abs=1e-7) and cmp.ok
