@@ -779,6 +779,9 @@ class VisaDriver(Driver):
                            "instrument is unknown): check its output by hand")
             else:
                 outcome = session.safe_off()
+                if isinstance(exc, _StillOn) and outcome.startswith("the output may still be ON"):
+                    outcome = ("asked again, on a new connection too, it still does: the output may still be ON; "
+                               "check the output by hand before touching the setup")
             error = InstrumentError(_message(exc), step=exc.step, reply=exc.reply)
             error.args = (f"{error}; {outcome}",)
             raise error from None
