@@ -400,7 +400,7 @@ class FileDriver(Driver):
         checks = readback.file_checks(data, doc)
         try:
             values = self.load_values(data, doc)
-        except (ValueError, OSError, KeyError, TypeError, IndexError) as exc:
+        except (ValueError, OSError, KeyError, TypeError, IndexError, EOFError) as exc:   # (EOF: an empty .npy)
             raise InputError(f"cannot read the values as the sidecar describes them ({exc})",
                              file=str(data)) from None
         table = readback.ReadTable(data, doc, values, self.name, checks)

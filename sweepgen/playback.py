@@ -422,8 +422,14 @@ def table_sweep(table, laser) -> TableSweep:
     if unit != laser.chain.drive_unit:
         raise InputError(f"the table drives in {unit} but laser '{laser.key}' takes {laser.chain.drive_unit}",
                          file=str(table.path), key="scaling.drive.unit")
-    n = int(doc.get("period_count", table.count))
-    detuning = laser.chain.to_detuning(table.drive()[:n])
+    n = readback.period_samples(table)
+    drive = table.drive()[:n]
+    with np.errstate(all="ignore"):
+        detuning = laser.chain.to_detuning(drive)
+    if not np.all(np.isfinite(detuning)):
+        raise InputError(f"the drive this scaling gives is not finite through laser '{laser.key}' "
+                         f"(from {np.min(drive):.6g} to {np.max(drive):.6g} {unit})",
+                         file=f"{table.path}.json", key="scaling.drive")
     gain = np.abs(laser.chain.gain(np.array([detuning.min(), detuning.max()])))
     step = abs(doc["scaling"]["drive"]["scale"]) / float(gain.min())       # Hz of detuning per code
     schedule, error = readback.table_schedule(detuning, table.sample_rate, n, step)

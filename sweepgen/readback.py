@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from sweepgen.errors import InputError
+from sweepgen.errors import CheckFailed, InputError, clip
 
 #: most pieces of the piecewise-linear schedule made from a table (longer tables are averaged down)
 MAX_NODES = 1 << 16
@@ -127,7 +127,7 @@ def load_sidecar(path) -> dict:
     raw = read_bounded(path, MAX_SIDECAR_BYTES, "a table's sidecar")
     try:
         doc = json.loads(raw.decode("utf-8-sig"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+    except (UnicodeDecodeError, ValueError) as exc:          # (also a number of more than 4300 digits)
         raise InputError(f"not a readable JSON sidecar ({exc})", file=str(path)) from None
     except RecursionError:
         raise InputError("not a readable JSON sidecar (nested too deeply)", file=str(path)) from None
@@ -138,8 +138,14 @@ def load_sidecar(path) -> dict:
 def require_keys(doc: dict, path) -> None:
     """Refuse a sidecar that lacks, or has in the wrong form, anything a reader of the table uses:
     each refusal names the key (see :mod:`sweepgen.sidecar` for what they mean)."""
+    from sweepgen.sidecar import LAYOUT_VERSION
+
     if not isinstance(doc, dict) or "sweepgen_sidecar" not in doc:
         raise InputError("not a sweepgen sidecar (no 'sweepgen_sidecar' key)", file=str(path))
+    version = doc["sweepgen_sidecar"]
+    if isinstance(version, bool) or not isinstance(version, int) or not 1 <= version <= LAYOUT_VERSION:
+        raise InputError(f"expected a layout version from 1 to {LAYOUT_VERSION} (a newer one is read by a newer "
+                         f"sweepgen), got {clip(repr(version), 40)}", file=str(path), key="sweepgen_sidecar")
     for key in ("driver", "data_file", "sample_rate", "count", "numpy_dtype", "scaling", "generator"):
         if key not in doc:
             raise InputError("missing from the sidecar (required to read the table)", file=str(path), key=key)
@@ -302,10 +308,23 @@ def rate_window(d, step: float) -> int:
     return max(1, int(np.ceil(step / (RATE_QUANTISATION * per_sample))))
 
 
+def period_samples(table: ReadTable) -> int:
+    """The samples of one period the table holds; a table holding fewer than two, or fewer than its
+    sidecar's period, is refused: as damaged (:class:`CheckFailed`) when it does not verify."""
+    n = int(table.sidecar.get("period_count", table.count))
+    if len(table.values) >= max(n, 2):
+        return n
+    if not table.verified:
+        bad = ", ".join(c["check"] for c in table.checks if not c["ok"])
+        raise CheckFailed(f"{table.path}: does not match its sidecar ({bad}); it was changed or damaged")
+    raise InputError(f"holds {len(table.values)} samples of a period of {n}; a sweep needs at least 2",
+                     file=str(table.path))
+
+
 def analyse(table: ReadTable) -> dict:
     """The numbers of the sweep a table plays (SI units, Hz for detunings), like ``plan``'s."""
     doc = table.sidecar
-    d = table.detuning()[: int(doc.get("period_count", table.count))]
+    d = table.detuning()[: period_samples(table)]
     rate = table.sample_rate
     det = doc["scaling"]["detuning"] or {}
     step = float(det.get("step") or abs(det.get("scale", 0.0)) or 0.0)

@@ -154,3 +154,48 @@ def test_compare_refuses_a_trace_of_another_sweep(tmp_path, name, trace):
     line, = result.stderr.strip().splitlines()
     assert line.startswith(f"sweepgen: error: {path}: key 'detuning': the trace does not fit the planned sweep")
     assert "Traceback" not in result.output
+
+
+def _one_error_line(result, code):
+    assert result.exit_code == code, result.output
+    assert result.exception is None or isinstance(result.exception, SystemExit), result.exception
+    line, = result.stderr.strip().splitlines()
+    assert line.startswith("sweepgen: error: ")
+    return line
+
+
+@pytest.fixture(params=["raw", "npy", "csv"])
+def exported_as(request, tmp_path):
+    fmt = request.param
+    result = run("export", SCENARIO, "-f", fmt, "-o", tmp_path / "t", "--name", "old", "--json")
+    assert result.exit_code == 0, result.output
+    data, side = (tmp_path / "t" / ("old." + {"raw": "bin"}.get(fmt, fmt)),) * 2
+    return data, side.with_name(side.name + ".json")
+
+
+@pytest.mark.parametrize("command", [["inspect", "SIDE"], ["check", SCENARIO, "--table", "SIDE"],
+                                     ["simulate", SCENARIO, "--atoms", 200, "--table", "SIDE"]])
+def test_broken_sidecars_and_tables_are_refused_in_one_line(exported_as, command):
+    data, side = exported_as
+    words = [side if w == "SIDE" else w for w in command]
+    good = json.loads(side.read_text())
+    # a number of 100000 digits (beyond Python's limit for converting integers from text)
+    side.write_text(json.dumps(good).replace(f'"count": {good["count"]}', '"count": ' + "9" * 100000))
+    assert str(side) in _one_error_line(run(*words), 2)
+    # a layout newer than this version reads
+    side.write_text(json.dumps({**good, "sweepgen_sidecar": 99}))
+    assert f"{side}: key 'sweepgen_sidecar': " in _one_error_line(run(*words), 2)
+    side.write_text(json.dumps(good))
+    # an emptied data file: damaged (exit 1), or unreadable as the sidecar says (exit 2)
+    saved = data.read_bytes()
+    data.write_bytes(b"")
+    result = run(*words)
+    line = _one_error_line(result, 1 if "damaged" in result.stderr else 2)
+    assert line.endswith("it was changed or damaged") or "cannot read the values as the sidecar describes" in line
+    data.write_bytes(saved)
+    if command[0] != "inspect":
+        # a drive scaling that overflows: the detuning it plays is not finite
+        scaled = json.loads(json.dumps(good))
+        scaled["scaling"]["drive"]["scale"] = 1e308
+        side.write_text(json.dumps(scaled))
+        assert f"{side}: key 'scaling.drive': " in _one_error_line(run(*words), 2)
