@@ -209,6 +209,16 @@ def test_port_in_use_is_a_usage_error():
     assert result.exit_code == 2 and "cannot listen" in result.stderr
 
 
+@pytest.mark.parametrize("board", [[], ["--board"]])
+def test_a_host_name_that_does_not_resolve_names_the_host_option(board):
+    # RFC 6761: names under .invalid never resolve
+    result = run_cli("emulate", "--host", "no-such-host.invalid", "--port", "0", *board)
+    assert result.exit_code == 2
+    warning, error = result.stderr.strip().splitlines()
+    assert warning.startswith("sweepgen: warning: listening on no-such-host.invalid")
+    assert error.startswith("sweepgen: error: option '--host': cannot listen on no-such-host.invalid:0")
+
+
 def test_a_line_per_change_of_state(rm, tmp_path):
     # a user watching `sweepgen emulate` sees what the instrument was told: trace, trigger, outputs
     import shutil

@@ -119,7 +119,7 @@ def command(host, port, generator_ref, board, identity, drop_after, delay, mute,
     timing = {"--fault-on": bool(fault_on), "--fault-skip": fault_skip is not None,
               "--stall-time": stall_time is not None}
     if host not in ("127.0.0.1", "localhost", "::1"):
-        click.echo(f"sweepgen: listening on {host}: other computers on that network can connect", err=True)
+        click.echo(f"sweepgen: warning: listening on {host}: other computers on that network can connect", err=True)
     if board:
         if identity or mute or error_after_upload or corrupt_readback or drop_after or delay:
             raise InputError("the fault and identity options belong to the virtual instrument, not to --board",
@@ -239,4 +239,8 @@ def _listening(host, port, what: str):
     except KeyboardInterrupt:
         click.echo(f"{what} stopped", err=True)
     except OSError as exc:
-        raise InputError(f"cannot listen on {host}:{port} ({exc.strerror or exc})", key="--port") from None
+        import socket
+
+        unresolved = isinstance(exc, socket.gaierror) or exc.errno in (socket.EAI_NONAME, socket.EAI_AGAIN)
+        key = "--host" if unresolved else "--port"
+        raise InputError(f"cannot listen on {host}:{port} ({exc.strerror or exc})", key=key) from None
