@@ -97,22 +97,20 @@ def _interrupt_after_first(done, total):
 
 @pytest.mark.parametrize("how", [{"workers": 1}, {"workers": 2}])
 def test_ctrl_c_cancels_pending_tasks_and_keeps_what_finished(how):
-    tasks = _tasks(8, [0.2] * 8)
-    start = time.monotonic()
+    tasks = _tasks(8, [0.3] * 8)
     with pytest.raises(workers.Interrupted) as info:
         workers.run(_draw, tasks, progress=_interrupt_after_first, **how)
-    elapsed = time.monotonic() - start
     exc = info.value
     assert isinstance(exc, KeyboardInterrupt) and exc.total == 8
-    assert 1 <= len(exc.finished) < 8
+    # the first task, and at most the tasks already running beside it: the pending ones never ran
+    assert 1 <= len(exc.finished) <= max(how["workers"], 1) + 1
     expected = _expected(tasks)
     assert all(exc.finished[i][0] == expected[i] for i in exc.finished)
-    assert elapsed < 8 * 0.2                      # the pending tasks did not run
     assert not multiprocessing.active_children()  # no process left behind
 
 
 def test_ctrl_c_on_the_cluster_keeps_what_finished(cluster):
-    tasks = _tasks(8, [0.2] * 8)
+    tasks = _tasks(8, [0.3] * 8)
     with pytest.raises(workers.Interrupted) as info:
         workers.run(_draw, tasks, cluster=cluster, progress=_interrupt_after_first)
     assert 1 <= len(info.value.finished) < 8
