@@ -46,11 +46,33 @@ def registry():
     return build_registry(cache_folder())
 
 
+def import_pint():
+    """pint, imported without its optional Dask support.
+
+    When Dask is installed (the ``cluster`` extra), importing pint imports
+    ``dask.base`` too (0.1 s at every start of every command); sweepgen never
+    gives pint a Dask array, so pint is imported while ``dask`` is marked as
+    missing, and the mark is removed at once: Dask itself stays importable (the
+    workers' cluster client imports it when asked)."""
+    import sys
+
+    if "pint" in sys.modules or "dask" in sys.modules:
+        import pint
+        return pint
+    sys.modules["dask"] = None          # importlib.util.find_spec("dask") is now None
+    try:
+        import pint
+    finally:
+        del sys.modules["dask"]
+    return pint
+
+
 def cache_folder():
     """Where pint's parsed definitions are kept: ``<user cache>/sweepgen/pint-<version>``
     (``~/.cache/sweepgen/...`` on Linux; the user cache directory comes from platformdirs)."""
-    import pint
     import platformdirs
+
+    pint = import_pint()
 
     return platformdirs.user_cache_path("sweepgen", appauthor=False) / f"pint-{pint.__version__}"
 
@@ -62,7 +84,7 @@ def build_registry(folder=None):
     by a crash or another process writing it) costs speed, never correctness:
     the folder is cleared and the registry is built from the definitions.
     """
-    import pint
+    pint = import_pint()
 
     if folder is not None:
         try:

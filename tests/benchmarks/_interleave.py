@@ -25,6 +25,12 @@ from typing import Callable
 
 #: rounds when a benchmark does not say (the issue asks for the median of at least five)
 REPEAT = 5
+#: the libraries a planning command cannot do without (the floor of bench_startup and bench_export_memory)
+LIBRARIES = "import numpy, scipy.integrate, pint"
+#: ... imported as sweepgen imports them: pint without its optional Dask support, which it would import
+#: whenever Dask is installed (sweepgen.units.import_pint), so an environment with the cluster extra
+#: measures the same floor as one without
+LIBRARIES_CODE = "import sys; sys.modules['dask'] = None; import numpy, scipy.integrate, pint"
 
 
 def medians(cases: dict[str, Callable[[], dict]], repeat: int = REPEAT, *, warmup: int = 1) -> dict[str, dict]:

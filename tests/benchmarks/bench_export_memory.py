@@ -31,9 +31,8 @@ import sys
 import tempfile
 from pathlib import Path
 
-from _interleave import command, compiled_env, load, medians
+from _interleave import LIBRARIES, LIBRARIES_CODE, command, compiled_env, load, medians
 
-LIBRARIES = "import numpy, scipy.integrate, pint"
 TARGET_MIB = 64
 
 
@@ -78,7 +77,7 @@ def main(argv=None):
                   "--generator", str(gen), "--rate", f"{rate!r} Sa/s"]
         env = compiled_env(folder / "pyc")
         m = medians({"bare": lambda: bare_interpreter(env),
-                     "libraries": lambda: command([py, "-c", LIBRARIES], env=env),
+                     "libraries": lambda: command([py, "-c", LIBRARIES_CODE], env=env),
                      "export": lambda: command(export, env=env)}, args.repeat)
         written = (folder / "out" / f"{args.scenario}.bin").stat().st_size
     finally:

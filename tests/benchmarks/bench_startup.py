@@ -20,17 +20,16 @@ import shutil
 import sys
 import tempfile
 
-from _interleave import command, compiled_env, load, medians
+from _interleave import LIBRARIES, LIBRARIES_CODE, command, compiled_env, load, medians
 
 SCENARIOS = ["rb87-chopped-oven", "na23-continuous-focused", "caf-buffer-gas"]
-LIBRARIES = "import numpy, scipy.integrate, pint"
 
 
 def cases(scenarios, env) -> dict:
     py = sys.executable
     out = {"import click": [py, "-c", "import click"],
            "sweepgen --help": [py, "-m", "sweepgen", "--help"],
-           LIBRARIES: [py, "-c", LIBRARIES]}
+           LIBRARIES: [py, "-c", LIBRARIES_CODE]}
     for key in scenarios:
         out[f"plan {key} --json"] = [py, "-m", "sweepgen", "plan", key, "--json"]
         out[f"check {key}"] = [py, "-m", "sweepgen", "check", key]
