@@ -52,6 +52,23 @@ def test_every_histogram_is_a_share_of_all_atoms_and_the_captured_ones_add_up(pu
     assert slow["final"].values.sum() > slow["captured"].values.sum()
 
 
+def test_atoms_that_never_reach_the_target_still_count_in_every_share():
+    """Some atoms of the test scenario are turned back and never cross the target plane: the shares
+    are still of every atom emitted (normalised to the atoms that arrived, the captured bars would
+    add up to more than captured_fraction)."""
+    r = simulate(make_scenario(), atoms=600, seed=4)
+    doc = r.to_json()
+    turned_back = doc["lost_by_reason"]["turned_back"]
+    assert turned_back > 0.05
+    data = plots.simulation_curves(r)
+    for panel in ("velocity", "slow", "arrival"):
+        captured = {c.key: c for c in data[panel]}["captured"]
+        assert captured.values.sum() == pytest.approx(doc["captured_fraction"], abs=1e-12), panel
+    curves = {c.key: c for c in data["velocity"]}
+    assert curves["source"].values.sum() == pytest.approx(1.0)
+    assert curves["final"].values.sum() == pytest.approx(1.0 - turned_back)
+
+
 def test_the_simulation_figure_says_what_it_shows(pulsed_result):
     fig = plots.simulation_figure(pulsed_result)
     ax, axs, axt = fig.axes[:3]
