@@ -46,22 +46,27 @@ BITS_PER_BYTE = 10             # on the line: start bit, 8 data bits, stop bit (
 
 @dataclass(frozen=True)
 class BoardTiming:
-    """What starts a board's playback: ``Delivery.options["timing"]`` (set by the playback service).
+    """What starts a board's playback: ``Delivery.options["timing"]`` (the playback service's timing,
+    mapped by :meth:`from_timing`, or one of these).
 
-    ``source`` is ``free`` (plays as soon as it is armed, a continuous beam),
+    ``source`` is ``free`` (plays as soon as it is armed: a continuous beam),
     ``external`` (an edge on the trigger input: a pulsed source) or
-    ``software``; ``once`` plays the table once per ARM instead of on every
-    trigger; ``delay`` (s) is the start delay after the trigger.
+    ``software``; ``mode`` is ``each`` (every trigger plays the table once),
+    ``once`` (only the first trigger after arming) or ``continuous`` (the
+    first trigger starts it, then it plays back to back); ``delay`` (s) is the
+    start delay from the trigger to the first sample.
     """
 
     source: str = "free"
     edge: str = "rising"
-    once: bool = False
+    mode: str = "each"
     delay: float = 0.0
 
     def __post_init__(self):
         if self.source not in fr.SOURCES_BY_NAME or self.edge not in ("rising", "falling"):
             raise ValueError(f"no trigger source {self.source!r} or edge {self.edge!r}")
+        if self.mode not in ("each", "once", "continuous"):
+            raise ValueError(f"no playing mode {self.mode!r}")
         if not 0 <= self.delay <= 4.0:
             raise ValueError(f"start delay {self.delay!r} s is outside [0, 4] s (a u32 of ns)")
 
@@ -73,7 +78,7 @@ class BoardTiming:
     def from_timing(cls, timing) -> "BoardTiming":
         """The board's settings for the playback service's timing (``Playback.timing``): an external
         source starts on its edge, an internal one free-runs, a software one waits for FIRE; a burst
-        plays once per arming, anything else on every trigger."""
+        of one period plays the table on each trigger, ``repeat`` plays on and on from the first."""
         if isinstance(timing, BoardTiming):
             return timing
         source = {"external": "external", "internal": "free", "software": "software",
@@ -82,13 +87,17 @@ class BoardTiming:
             raise InputError(f"a ramp board has no trigger source {getattr(timing, 'source', None)!r} "
                              "(it offers external, free-running and software)", key="timing.source")
         edge = str(getattr(timing, "edge", None) or "rising").lower()
-        once = str(getattr(timing, "mode", None) or "repeat").lower() in ("burst", "once")
-        return cls(source, edge, once, float(getattr(timing, "delay", None) or 0.0))
+        burst = str(getattr(timing, "mode", None) or "burst").lower() == "burst"
+        cycles = int(getattr(timing, "cycles", None) or 1)
+        if burst and cycles != 1:
+            raise CheckFailed(f"a ramp board plays its table once per trigger, not a burst of {cycles} periods "
+                              "(timing.cycles); use one cycle or mode = \"repeat\"")
+        return cls(source, edge, "each" if burst else "continuous", float(getattr(timing, "delay", None) or 0.0))
 
     def wire(self) -> fr.Trigger:
         """The TRIGGER request's settings (delay in whole ns)."""
-        return fr.Trigger(fr.SOURCES_BY_NAME[self.source], fr.Edge[self.edge.upper()],
-                          fr.Mode.ONCE if self.once else fr.Mode.REPEAT, int(round(self.delay * 1e9)))
+        return fr.Trigger(fr.SOURCES_BY_NAME[self.source], fr.Edge[self.edge.upper()], fr.Mode[self.mode.upper()],
+                          int(round(self.delay * 1e9)))
 
 
 class _Options:
@@ -263,7 +272,7 @@ class SerialDriver(Driver):
         generator = delivery.generator
         options = _Options(delivery.options)
         by_channel = _by_channel(tables)
-        plans = [_Plan(by_channel[c], generator, options, c) for c in sorted(by_channel)]
+        plans = [_Plan(by_channel[c], _for_output(generator, c), options, c) for c in sorted(by_channel)]
         link_cfg = getattr(generator, "link", None)
         baud = getattr(link_cfg, "baud", None) or DEFAULT_BAUD
         timeout = clamp_deadline(getattr(link_cfg, "timeout", None) or DEFAULT_TIMEOUT)
@@ -272,7 +281,7 @@ class SerialDriver(Driver):
         url = _url(delivery)
         report = {
             "driver": self.name, "destination": url, "dry_run": bool(delivery.dry_run), "armed": False,
-            "table": plans[0].table_json(), "channels": [p.table_json() for p in plans],
+            "table": plans[0].table_json(), "tables": [p.table_json() for p in plans],
             "trigger": options.timing.wire().describe(),
             "bytes": sum(p.nbytes for p in plans), "frames": 0, "retries": 0, "restarts": 0,
             "damaged_replies": 0, "steps": [], "verification": None,
@@ -303,6 +312,11 @@ class SerialDriver(Driver):
         report["bytes"] = link.sent
         report["duration"] = time.monotonic() - t0
         return report
+
+
+def _for_output(generator, channel: int):
+    """The profile as output ``channel`` sees it (its own ``[outputs.N]`` settings, if any)."""
+    return generator.for_output(channel) if hasattr(generator, "for_output") else generator
 
 
 def _by_channel(tables) -> dict:

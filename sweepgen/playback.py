@@ -491,6 +491,8 @@ class Link:
             extra = {"edge": tm.edge_name, "level": tm.level, "delay": tm.delay or None, "mode": tm.mode,
                      "cycles": tm.cycles if tm.mode == "burst" else None}
             out.update({k: v for k, v in extra.items() if v is not None})
+        elif self.driver == "serial" and tm is not None:
+            out["timing"] = tm           # the serial driver maps it onto the board's TRIGGER settings
         return out
 
 

@@ -212,7 +212,7 @@ class DocBoard2:
         if self.armed:
             return self.refuse(t, seq, 0x07)
         edges = 0b01 if self.sources & 0b010 else 0
-        if not self.sources & (1 << source) or mode > 1 or source == 1 and not edges & (1 << edge):
+        if not self.sources & (1 << source) or mode > 2 or source == 1 and not edges & (1 << edge):
             return self.refuse(t, seq, 0x12, self.sources | edges << 8)
         if delay > 1_000_000_000:
             return self.refuse(t, seq, 0x15, 1_000_000_000)
@@ -281,7 +281,7 @@ def two_tables():
     return {1: t1, 2: t2}, {1: w1, 2: w2}
 
 
-PULSED = BoardTiming(source="external", edge="rising", once=True, delay=12.5e-6)
+PULSED = BoardTiming(source="external", edge="rising", mode="once", delay=12.5e-6)
 
 
 @pytest.mark.parametrize("link", ["pty", "socket"])
@@ -301,7 +301,7 @@ def test_a_version_2_board_written_from_the_document_takes_two_channels_and_the_
     assert not board.armed                                    # outputs stay off without --arm
     assert struct.unpack("<BBBxI", board.trigger) == (1, 0, 1, 12_500)
     assert report["protocol"] == 2 and report["board"]["name"] == "doc board 2"
-    assert [c["channel"] for c in report["channels"]] == [1, 2] and report["verification"]["committed"]
+    assert [c["channel"] for c in report["tables"]] == [1, 2] and report["verification"]["committed"]
     assert board.requests.index(0x09) < board.requests.index(0x02)          # TRIGGER before the first BEGIN
     assert 0x07 not in board.requests                                        # never ARM
 

@@ -97,6 +97,29 @@ def test_board_emulator():
     assert code == 0 and "ramp-board emulator" in err
 
 
+@pytest.mark.slow
+def test_board_emulator_prints_a_line_per_connection_and_state_change():
+    table, words = dds_table(2000)
+    with Emulator("--board", "--trigger-sources", "free,external") as emulator:
+        deliver_to_board(table, emulator.address, arm=True)
+        code, err = emulator.stop()
+    lines = [line for line in err.splitlines() if line.startswith(("board:", "connection"))]
+    said = ["connection" if line.startswith("connection") else line.split(" (")[0] for line in lines]
+    assert said == ["connection", "board: hello", "board: disarm", "board: trigger", "board: begin",
+                    "board: verified", "board: commit", "board: arm", "connection"]
+    assert "opened" in lines[0] and "hello (version 2)" in lines[1] and "external" not in lines[3]
+    assert f"crc {zlib.crc32(words.tobytes()):#010x}" in lines[6] and "closed" in lines[-1]
+    assert code == 0
+
+
+def test_board_kind_options_need_the_board_and_known_sources():
+    for args, key in ([["--protocol-version", "1"], "--protocol-version"],
+                      [["--board", "--trigger-sources", "free,laser"], "--trigger-sources"],
+                      [["--board", "--protocol-version", "1", "--trigger-sources", "free"], "--trigger-sources"]):
+        result = run_cli("emulate", "--port", "0", *args)
+        assert result.exit_code == 2 and key in result.output + (result.stderr or ""), result.output
+
+
 # --- the ramp-board emulator's fault switches on the command line -------------------------------------
 def board_status(url: str) -> fr.Status:
     """Ask the board for its STATUS over a fresh connection (the frame protocol, by hand); a version-2

@@ -57,7 +57,7 @@ def test_upload_over_a_socket_url_commits_the_rendered_table():
     assert report["frames"] == -(-words.nbytes // 1024)
     assert [s["step"] for s in report["steps"]] == ["open", "hello", "disarm", "trigger", "begin", "data",
                                                   "verify", "commit", "status"]
-    assert report["protocol"] == 2 and report["trigger"] == "free-running, repeated, start delay 0 ns"
+    assert report["protocol"] == 2 and report["trigger"] == "free-running, back to back, start delay 0 ns"
     assert seen[0] == (0, words.nbytes) and seen[-1] == (words.nbytes, words.nbytes)
     assert all(a[0] <= b[0] for a, b in zip(seen, seen[1:]))
 
@@ -392,7 +392,7 @@ def test_an_independent_board_written_from_the_document_accepts_an_upload(link):
 # --------------------------------------------------------------------------- versions and triggers
 
 
-PULSED = BoardTiming(source="external", edge="rising", once=False, delay=25e-6)
+PULSED = BoardTiming(source="external", edge="rising", mode="each", delay=25e-6)
 
 
 def test_a_version_1_board_is_spoken_to_in_version_1():
@@ -431,8 +431,8 @@ def test_a_pulsed_upload_sets_the_external_trigger_and_the_start_delay():
         report = deliver_to_board(table, url, arm=True, options={"timing": PULSED})
         trigger = url.board.trigger
         assert url.board.armed
-    assert trigger == fr.Trigger(fr.Source.EXTERNAL, fr.Edge.RISING, fr.Mode.REPEAT, 25_000)
-    assert report["trigger"] == "external, rising edge, repeated, start delay 25000 ns" and report["armed"]
+    assert trigger == fr.Trigger(fr.Source.EXTERNAL, fr.Edge.RISING, fr.Mode.EACH, 25_000)
+    assert report["trigger"] == "external, rising edge, on every trigger, start delay 25000 ns" and report["armed"]
 
 
 def test_a_person_cannot_pass_the_timing_as_a_driver_option():

@@ -408,6 +408,15 @@ class BoardPeer(Listening, DocBoard):
         return super().handle(t, seq, p)
 
 
+def _board_scenario(tmp_path) -> str:
+    """The board scenario running free (an internal trigger): the peer is a version-1 board, which
+    has no trigger, and would rightly be refused a pulsed scenario before anything misbehaves."""
+    text = catalog.builtin_dir("scenarios").joinpath(f"{BOARD_SCENARIO}.toml").read_text()
+    path = tmp_path / "free-running.toml"
+    path.write_text(text + '\n[timing]\nsource = "internal"\nmode = "repeat"\n')
+    return str(path)
+
+
 def _board_profile(tmp_path) -> str:
     text = catalog.builtin_dir("generators").joinpath("demo-ramp-board.toml").read_text()
     path = tmp_path / "peer-board.toml"
@@ -418,7 +427,7 @@ def _board_profile(tmp_path) -> str:
 @pytest.fixture(scope="module")
 def board_dry_run(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("dry-board")
-    return Run("upload", BOARD_SCENARIO, "--generator", _board_profile(tmp), "--dry-run", cwd=tmp)
+    return Run("upload", _board_scenario(tmp), "--generator", _board_profile(tmp), "--dry-run", cwd=tmp)
 
 
 # a HELLO and a DISARM frame each take 1 s + (frame + 128 B) / 80 kB/s to answer, 6 attempts for the
@@ -444,8 +453,8 @@ BOARD_CASES = {
 def test_a_board_that_misbehaves(fault, tmp_path, board_dry_run):
     state, words, ending, deadlines = BOARD_CASES[fault]
     with BoardPeer(fault, **state) as board:
-        run = Run("upload", BOARD_SCENARIO, "--generator", _board_profile(tmp_path), "--serial-port", board.url,
-                  "--arm", cwd=tmp_path)
+        run = Run("upload", _board_scenario(tmp_path), "--generator", _board_profile(tmp_path), "--serial-port",
+                  board.url, "--arm", cwd=tmp_path)
     run.check_failure(words, ending, deadlines, board_dry_run)
     assert not board.ever_armed_by_host
 

@@ -71,7 +71,8 @@ def test_a_ramp_board_goes_over_serial_and_refuses_visa_options():
     board = prepare("caf-buffer-gas")
     link = board.link()
     assert link.driver == "serial" and link.destination == board.generator.link.address
-    assert link.options() == {}
+    # the board's driver reads the playback's timing itself (a pulsed source: external trigger)
+    assert link.options() == {"timing": board.timing} and board.timing.source == "external"
     with pytest.raises(InputError, match="--resource"):
         board.link(resource="TCPIP::127.0.0.1::1::SOCKET")
     with pytest.raises(InputError, match="--backend"):

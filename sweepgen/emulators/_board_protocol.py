@@ -96,11 +96,15 @@ def capabilities_for(generator, *, max_payload: int = DEFAULT_MAX_PAYLOAD, name:
         whole = tuple(int(round(r)) for r in rates if abs(r - round(r)) <= 1e-9 * r)[:255]
         return fr.Capabilities(1, formats, ch.bits if dds else 0, 0 if dds else ch.bits, int(max_payload),
                                memory(formats), ch.clock, whole, name)
-    ch = fr.ChannelCaps(ch.output, ch.formats, ch.bits, memory(ch.formats), ch.low, ch.high, ch.clock, ch.low_uv, ch.high_uv)
     n = max(1, min(int(generator.channels), fr.MAX_CHANNELS))
+    blocks = []
+    for number in range(1, n + 1):           # each output with its own [outputs.N] settings, if any
+        c = _channel_caps(generator.for_output(number) if hasattr(generator, "for_output") else generator)
+        blocks.append(fr.ChannelCaps(c.output, c.formats, c.bits, memory(c.formats), c.low, c.high, c.clock,
+                                     c.low_uv, c.high_uv))
     srcs = source_members(sources)
     edges = (fr.Edge.RISING, fr.Edge.FALLING) if fr.Source.EXTERNAL in srcs else ()
-    return fr.CapabilitiesV2((ch,) * n, srcs, edges, int(max_payload), DELAY_STEP, DELAY_MAX,
+    return fr.CapabilitiesV2(tuple(blocks), srcs, edges, int(max_payload), DELAY_STEP, DELAY_MAX,
                              tuple(rate_fraction(r) for r in rates[:255]), name)
 
 
@@ -140,7 +144,8 @@ class BoardState:
     def _event(self, name: str, **details) -> None:
         self.events.append((name, details))
         if self.log is not None and name in STATE_EVENTS:
-            said = ", ".join(f"{k} {v:#010x}" if k == "crc" else f"{k} {v}" for k, v in details.items())
+            said = ", ".join(f"{k} {v:#010x}" if k == "crc" else str(v) if k == "said" else f"{k} {v}"
+                             for k, v in details.items())
             self.log(f"board: {name}{' (' + said + ')' if said else ''}")
 
     def _forget_upload(self) -> None:
@@ -376,7 +381,7 @@ class BoardState:
         if self.armed:
             return refuse(R.ARMED, 0, "disarm first")
         offered = fr.mask_of(caps.sources) | fr.mask_of(caps.edges) << 8
-        if (want.source not in [int(s) for s in caps.sources] or want.mode not in (0, 1)
+        if (want.source not in [int(s) for s in caps.sources] or want.mode not in (0, 1, 2)
                 or want.source == fr.Source.EXTERNAL and want.edge not in [int(e) for e in caps.edges]):
             return refuse(R.BAD_TRIGGER, offered, "trigger source, edge or mode not offered")
         step = caps.delay_step
@@ -385,7 +390,7 @@ class BoardState:
             return refuse(R.BAD_DELAY, caps.delay_max if step else 0, "start delay too long")
         edge = want.edge if want.source == fr.Source.EXTERNAL else fr.Edge.RISING
         self.trigger = fr.Trigger(want.source, edge, want.mode, delay)
-        self._event("trigger", settings=self.trigger.describe())
+        self._event("trigger", said=self.trigger.describe())
         return self._ack(frame.type, frame.seq, self.trigger.pack())
 
     def _fire(self, frame, refuse) -> bytes:

@@ -532,8 +532,9 @@ class Edge(enum.IntEnum):
 
 
 class Mode(enum.IntEnum):
-    REPEAT = 0       # the table plays again on every trigger (free-running: without end)
+    EACH = 0         # every trigger plays the table once (free-running: back to back, without end)
     ONCE = 1         # the table plays once, on the first trigger after ARM
+    CONTINUOUS = 2   # the first trigger after ARM starts it; it then plays back to back without end
 
 
 def mask_of(members) -> int:
@@ -760,7 +761,7 @@ class Trigger:
 
     source: int = Source.FREE
     edge: int = Edge.RISING
-    mode: int = Mode.REPEAT
+    mode: int = Mode.EACH
     delay: int = 0
 
     def pack(self) -> bytes:
@@ -775,7 +776,9 @@ class Trigger:
     def describe(self) -> str:
         src = {0: "free-running", 1: "external", 2: "software"}.get(self.source, f"source {self.source}")
         edge = f", {Edge(self.edge).name.lower()} edge" if self.source == Source.EXTERNAL and self.edge in (0, 1) else ""
-        mode = "once" if self.mode == Mode.ONCE else "repeated"
+        mode = {0: "on every trigger", 1: "once", 2: "continuously"}.get(self.mode, f"mode {self.mode}")
+        if self.source == Source.FREE and self.mode != Mode.ONCE:
+            mode = "back to back"
         return f"{src}{edge}, {mode}, start delay {self.delay} ns"
 
 
