@@ -429,3 +429,128 @@ def test_virtual_board_yields_a_pyserial_url_carrying_the_board():
             pass
     with pytest.raises(OSError):
         socket.create_connection(address, timeout=1).close()
+
+
+# --------------------------------------------------------------------------- version 2
+
+
+TWO = dataclasses.replace(GEN, channels=2)
+
+
+def begin2(channel=1, count=2, crc=None, rate=fr.Rate(RATE), fmt=fr.Format.UINT32, data=None):
+    crc = zlib.crc32(data if data is not None else bytes(4 * count)) if crc is None else crc
+    return fr.BeginV2(fmt, channel, count, crc, rate).pack()
+
+
+@pytest.fixture
+def host2():
+    h = Host(BoardEmulator(TWO))
+    caps = fr.CapabilitiesV2.unpack(h.ok(T.HELLO, fr.hello_payload(2)))
+    assert len(caps.channels) == 2 and caps.sources == tuple(fr.Source)
+    return h
+
+
+def commit2(h, channel, words):
+    data = words.tobytes()
+    h.ok(T.BEGIN, begin2(channel, words.size, data=data))
+    h.ok(T.DATA, fr.data_payload(0, data))
+    h.ok(T.END)
+    return fr.TableIdV2.unpack(h.ok(T.COMMIT))
+
+
+def test_version_2_channels_hold_their_own_tables_and_arm_together(host2):
+    one, two = words_for([5e6, 6e6, 7e6]), words_for([300e6, 200e6])
+    assert commit2(host2, 1, one) == fr.TableIdV2(fr.Format.UINT32, 1, 3, zlib.crc32(one.tobytes()), fr.Rate(RATE))
+    commit2(host2, 2, two)
+    st = fr.StatusV2.unpack(host2.ok(T.STATUS))
+    assert [t.crc for t in st.tables] == [zlib.crc32(one.tobytes()), zlib.crc32(two.tobytes())] and not st.armed
+    crcs = host2.ok(T.ARM)
+    assert struct_u32s(crcs) == [zlib.crc32(one.tobytes()), zlib.crc32(two.tobytes())]
+    assert host2.ok(T.ARM) == crcs                           # ARM while armed: the same, nothing restarted
+    assert [e[0] for e in host2.board.events].count("arm") == 1
+
+
+def struct_u32s(data):
+    return list(np.frombuffer(data, "<u4"))
+
+
+def test_a_rate_that_is_not_a_whole_number_travels_as_a_fraction():
+    gen = dataclasses.replace(GEN, sampling=dataclasses.replace(GEN.sampling, rates=(1e6 / 3, 1e6),
+                                                                rate_min=1e6 / 3))
+    h = Host(BoardEmulator(gen))
+    caps = fr.CapabilitiesV2.unpack(h.ok(T.HELLO, fr.hello_payload(2)))
+    assert caps.rates[0] == fr.Rate(1_000_000, 3)
+    h.ok(T.BEGIN, begin2(rate=fr.Rate(2_000_000, 6)))         # the same rate, another fraction
+    assert h.refused(T.BEGIN, begin2(rate=fr.Rate(333_333, 1))).reason == R.BAD_RATE
+    assert h.refused(T.BEGIN, begin2(rate=fr.Rate(1, 0))).reason == R.BAD_RATE
+    # a version-1 session hears only the whole-number rates
+    assert fr.Capabilities.unpack(h.ok(T.HELLO, fr.hello_payload(1))).rates == (1_000_000,)
+
+
+@pytest.mark.parametrize("steps, msg_type, payload, reason, detail", [
+    # the order of the checks: type, length, reserved bytes, session, then the request's own
+    ([], T.TRIGGER, bytes([1, 0, 0, 7, 0, 0, 0, 0]), R.UNKNOWN_TYPE, 0),   # before HELLO: version 1's types
+    ([(T.HELLO, b"\x02"), (T.HELLO, b"\x05")], T.BEGIN, begin2()[:3] + b"\x01" + begin2()[4:], R.RESERVED, 3),
+    ([(T.HELLO, b"\x02")], T.BEGIN, begin2()[:19], R.BAD_LENGTH, 20),
+    ([(T.HELLO, b"\x02")], T.BEGIN, begin2()[:3] + b"\x01" + begin2()[4:], R.RESERVED, 3),
+    ([(T.HELLO, b"\x02")], T.TRIGGER, bytes([1, 0, 0, 7, 0, 0, 0, 0]), R.RESERVED, 3),
+    ([(T.HELLO, b"\x02")], T.BEGIN, begin2(channel=3), R.BAD_CHANNEL, 2),
+    ([(T.HELLO, b"\x02")], T.BEGIN, begin2(channel=0), R.BAD_CHANNEL, 2),
+    ([(T.HELLO, b"\x02")], T.TRIGGER, fr.Trigger(3, 0, 0, 0).pack(), R.BAD_TRIGGER, 0b111 | 0b11 << 8),
+    ([(T.HELLO, b"\x02")], T.TRIGGER, fr.Trigger(1, 0, 3, 0).pack(), R.BAD_TRIGGER, 0b111 | 0b11 << 8),
+    ([(T.HELLO, b"\x02")], T.TRIGGER, fr.Trigger(1, 0, 0, 2 * 10**9).pack(), R.BAD_DELAY, 10**9),
+    ([(T.HELLO, b"\x02")], T.FIRE, b"", R.BAD_STATE, fr.State.IDLE),
+    ([(T.HELLO, b"\x01")], T.TRIGGER, fr.Trigger().pack(), R.UNKNOWN_TYPE, 0),
+    ([(T.HELLO, b"\x02")], T.DATA, b"", R.BAD_LENGTH, 0),
+    ([(T.HELLO, b"\x02")], T.TRIGGER, b"", R.BAD_LENGTH, 8),
+])
+def test_version_2_refusals_follow_the_document(steps, msg_type, payload, reason, detail):
+    h = Host(BoardEmulator(TWO))
+    for t, p in steps:
+        h.send(t, p)               # a refused HELLO(5) leaves the version-2 session as it was
+    refusal = h.refused(msg_type, payload)
+    assert (refusal.reason, refusal.detail) == (reason, detail)
+
+
+def test_busy_is_never_replayed_and_a_resent_status_is_fresh():
+    h = Host(BoardEmulator(TWO, faults={"refuse": 1, "skip": 0, "on": "begin"}))
+    h.ok(T.HELLO, fr.hello_payload(2))
+    assert h.refused(T.BEGIN, begin2(), seq=50).reason == R.BUSY
+    assert h.send(T.BEGIN, begin2(), seq=50).type == T.ACK        # the same frame again: executed afresh
+    first = h.send(T.STATUS, seq=51)
+    h.ok(T.DATA, fr.data_payload(0, bytes(8)))
+    again = h.send(T.STATUS, seq=51)                               # the same STATUS frame: state as it is now
+    assert fr.StatusV2.unpack(fr.parse_ack(first.payload)[1]).received == 0
+    assert fr.StatusV2.unpack(fr.parse_ack(again.payload)[1]).received == 8
+
+
+def test_disarm_during_an_upload_leaves_it_and_the_trigger_needs_the_output_off(host2):
+    words = words_for([5e6, 6e6])
+    commit2(host2, 1, words)
+    set_to = host2.ok(T.TRIGGER, fr.Trigger(fr.Source.SOFTWARE, fr.Edge.FALLING, fr.Mode.ONCE, 1234).pack())
+    # the edge means nothing without the external input; the delay goes to the board's 10 ns steps
+    assert fr.Trigger.unpack(set_to) == fr.Trigger(fr.Source.SOFTWARE, fr.Edge.RISING, fr.Mode.ONCE, 1230)
+    host2.ok(T.ARM)
+    assert host2.refused(T.TRIGGER, fr.Trigger().pack()).reason == R.ARMED
+    host2.ok(T.FIRE)
+    host2.ok(T.DISARM)
+    host2.ok(T.BEGIN, begin2(2))
+    host2.ok(T.DATA, fr.data_payload(0, bytes(4)))
+    host2.ok(T.DISARM)                                             # during the upload: it goes on
+    host2.ok(T.DATA, fr.data_payload(4, bytes(4)))
+    assert fr.StatusV2.unpack(host2.ok(T.STATUS)).received == 8
+
+
+def test_a_damaged_frame_is_answered_only_when_it_names_a_request():
+    h = Host(BoardEmulator(TWO))
+    for msg_type, answered in ((T.ACK, False), (T.REFUSE, False), (0x42, False), (T.STATUS, True)):
+        raw = bytearray(fr.encode(msg_type, 9, b"\x06"))
+        raw[-1] ^= 0x80
+        assert len(h.raw(bytes(raw))) == int(answered), msg_type
+
+
+def test_a_version_1_board_refuses_version_2_with_its_own_version():
+    h = Host(BoardEmulator(GEN, version=1))
+    refusal = h.refused(T.HELLO, fr.hello_payload(2))
+    assert (refusal.reason, refusal.detail) == (R.BAD_VERSION, 1)
+    assert fr.Capabilities.unpack(h.ok(T.HELLO, fr.hello_payload(1))).version == 1
