@@ -30,6 +30,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from sweepgen._json import plain
 from sweepgen.errors import InputError
 from sweepgen.scan import Base, Design, evaluate, objective_keys, quantity_parts, split_option, written
 
@@ -177,8 +178,9 @@ class Search:
         return Design(self.start.path, self.start.data, values, atoms or self.atoms,
                       self.seed if seed is None else seed, simulate_failing=False)
 
-    def run(self, designs: list) -> list:
-        """Rows of ``designs``, through the shared runner; progress counts every design of the search."""
+    def run(self, designs: list, fn=evaluate) -> list:
+        """``fn`` (default: the rows) of ``designs``, through the shared runner; progress counts every design
+        of the search."""
         from sweepgen import workers as runner
 
         done = len(self.history)
@@ -187,7 +189,7 @@ class Search:
             if self.progress is not None:
                 self.progress(min(done + n, self.budget), self.budget)
 
-        return runner.run(evaluate, designs, workers=self.workers, cluster=self.cluster, progress=progress)
+        return runner.run(fn, designs, workers=self.workers, cluster=self.cluster, progress=progress)
 
     def energies(self, func, population) -> list:
         """The map differential evolution calls with a whole generation (``func`` is not used: the
@@ -345,6 +347,7 @@ def optimise(ref, frees_text, *, goal: Goal = Goal(), atoms: int, seed: int = 0,
     ``goal`` that passes check; confirm it with a fresh seed and ``confirm_atoms`` (default 10 ×
     ``atoms``) beside the starting design. Ctrl-C ends the search: the result holds what finished
     (``finished`` False) and nothing is confirmed."""
+    from sweepgen import workers as runner
     from sweepgen.scan import base
 
     start = base(ref)
@@ -356,15 +359,42 @@ def optimise(ref, frees_text, *, goal: Goal = Goal(), atoms: int, seed: int = 0,
     done = search(s)
     result = Optimisation(s, done, confirm_atoms=confirm_atoms or 10 * atoms, confirm_seed=fresh_seed(seed))
     if done and s.best() is not None:
-        confirm(result)
+        try:
+            confirm(result)
+        except runner.Interrupted:
+            result.finished, result.start_row, result.best_row = False, None, None
     return result
 
 
 def confirm(result: Optimisation) -> None:
-    """The winner and the starting design again, with the fresh seed and the confirmation's atoms."""
+    """The winner and the starting design again, with the fresh seed and the confirmation's atoms, and
+    the winner beside a tapered-field slower of the same deceleration (:func:`confirmation`), at once."""
     s = result.search
     best = s.best()
     first = Design(s.start.path, s.start.data, {}, result.confirm_atoms, result.confirm_seed,
                    simulate_failing=True)
     winner = s.design(best["x"], atoms=result.confirm_atoms, seed=result.confirm_seed)
-    result.start_row, result.best_row = s.run([first, winner])
+    result.start_row, result.best_row, field = s.run([("design", first), ("design", winner), ("field", winner)],
+                                                     confirmation)
+    result.extras["tapered_field"] = field
+
+
+def confirmation(task) -> dict:
+    """One task of the confirmation: ``("design", d)`` → :func:`sweepgen.scan.evaluate`; ``("field", d)`` →
+    :func:`field_comparison`."""
+    kind, design = task
+    return evaluate(design) if kind == "design" else field_comparison(design)
+
+
+def field_comparison(design: Design) -> dict:
+    """The design's chirp and a tapered-field slower with its deceleration and light, on the same atoms
+    (:func:`sweepgen.tapered.compare`); ``{"unavailable": why}`` when there is none to work out (a species
+    without g-factors, a design that cannot exist)."""
+    from sweepgen import tapered
+    from sweepgen.errors import SweepgenError
+
+    try:
+        doc = tapered.compare(design.scenario(), atoms=design.atoms, seed=design.seed, workers=1).to_json()
+    except SweepgenError as exc:
+        return {"unavailable": getattr(exc, "detail", None) or str(exc)}
+    return plain(doc)

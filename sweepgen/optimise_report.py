@@ -106,9 +106,7 @@ def markdown(result, doc) -> str:
              *[f"- free: `{f.key}` from {f.low:g} to {f.high:g} {f.unit}".rstrip() for f in s.frees],
              f"- optimiser: {doc['optimiser']}; {doc['evaluations']} designs, {s.atoms} atoms each, seed {s.seed} "
              f"(the same for every design)", ""]
-    lines += _confirmation(result) + _binding(result)
-    for title, text in result.extras.get("comparisons", {}).items():
-        lines += [f"## {title}", "", text, ""]
+    lines += _confirmation(result) + _binding(result) + _tapered(result.extras.get("tapered_field"))
     if "plot" in doc["files"]:
         lines += ["## History of the search", "", f"![history]({Path(doc['files']['plot']).name})", ""]
     if not result.finished:
@@ -159,3 +157,25 @@ def _binding(result) -> list:
             lines.append(f"- `{b['free']}` at its {b['bound']} bound ({b['value']:g} {b['unit']})".rstrip())
     near = ", ".join(f"`{b['rule']}` {100 * b['headroom']:.1f} %" for b in result.nearest())
     return lines + ["", f"Rules nearest their limits (headroom): {near}.", ""]
+
+
+def _tapered(doc) -> list:
+    """The winner's chirp beside a tapered-field slower of the same deceleration and light."""
+    if doc is None:
+        return []
+    lines = ["## The tapered-field alternative", ""]
+    if "unavailable" in doc:
+        return lines + [f"Not worked out: {doc['unavailable']}", ""]
+    f = doc["field"]
+    lines += [f"The winner's atoms ({doc['atoms']}, seed {doc['seed']}) through a tapered-field (Zeeman) slower "
+              f"with the same deceleration ({f['deceleration']:.4g} m/s²) and light, the light held at "
+              f"{f['laser_detuning'] / 1e6:.6g} MHz: B(z) = B₀·√(1 − z/L₀) + B_bias (Foot, Atomic Physics, "
+              f"2005, §9.3, eqs. 9.11–9.12), B₀ = {1e3 * f['b0']:.4g} mT, L₀ = {f['l0']:.4g} m, "
+              f"B_bias = {1e3 * f['bias']:.4g} mT, peak |B| = {1e3 * f['peak_field']:.4g} mT, "
+              f"{f['length']:.4g} m long from {f['start_position']:.4g} m.", "",
+              "| method | captured | final velocity (mean) |", "|---|---|---|"]
+    for name, key in (("chirp (the winner)", "chirp"), ("tapered field", "field")):
+        v = doc[f"{key}_final_velocity_mean"]
+        lines.append(f"| {name} | {_pct(doc[f'{key}_captured_fraction'], doc[f'{key}_captured_error'])} | "
+                     + ("—" if v is None else f"{v:.3g} m/s") + " |")
+    return lines + [""]

@@ -43,6 +43,10 @@ def test_finds_the_closed_form_optimum_and_names_the_binding_rule(fast_file, tmp
     sc = load_scenario(doc["files"]["scenario"])          # the new file: loads, passes, holds the winner
     assert check_plan(sc).ok and sc.chirp.start_velocity == pytest.approx(best)
     assert (tmp_path / "out" / "fast-best.toml").read_text().count("# a fast scenario") == 1
+    field = doc["tapered_field"]                     # the winner beside a tapered-field slower, same atoms
+    assert field["atoms"] == 3000 and field["seed"] == doc["confirmation"]["seed"] and field["field"]["b0"] > 0
+    assert field["chirp_captured_fraction"] == doc["confirmation"]["best"]["captured_fraction"]
+    assert "## The tapered-field alternative" in (tmp_path / "out" / "fast-optimise.md").read_text()
 
 
 @pytest.mark.slow
@@ -57,6 +61,27 @@ def test_files_are_never_replaced(fast_file, tmp_path):
                                                              "fast-optimise-2.json", "fast-optimise-2.png"}
     report = (tmp_path / "fast-optimise.md").read_text()
     assert "## What binds at the optimum" in report and "![history](fast-optimise.png)" in report
+
+
+@pytest.mark.slow
+def test_the_winner_beside_a_tapered_field_slower(tmp_path):
+    """The report's comparison is sweepgen.tapered's, on the confirmation's atoms and seed."""
+    from sweepgen import tapered
+    from sweepgen.optimise_report import _tapered
+    from sweepgen.scan import Design
+
+    path = tmp_path / "rb.toml"
+    path.write_text(to_toml({**FAST, "species": "rb87-d2"}))
+    start = base(path)
+    design = Design(start.path, start.data, {"chirp.start_velocity": "200 m/s"}, 200, 9)
+    doc = service.field_comparison(design)
+    same = tapered.compare(design.scenario(), atoms=200, seed=9).to_json()
+    assert doc["field"] == pytest.approx(same["field"]) and doc["atoms"] == 200 and doc["seed"] == 9
+    assert doc["field_captured_fraction"] == same["field_captured_fraction"]
+    text = "\n".join(_tapered(doc))
+    assert f"B₀ = {1e3 * same['field']['b0']:.4g} mT" in text and "| tapered field |" in text
+    impossible = Design(start.path, start.data, {"chirp.end_velocity": "300 m/s"}, 200, 9)
+    assert "end velocity below the start velocity" in service.field_comparison(impossible)["unavailable"]
 
 
 @pytest.mark.parametrize("free, words", [
