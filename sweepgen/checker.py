@@ -449,7 +449,7 @@ def check_hardware(report: CheckReport, playing) -> None:
     report.quantisation = quant = _judged_quantisation(report, playing)
     if quant is not None:
         add(quantisation_findings(playing, quant, sweep))
-    tracking_findings(report, playing.schedule, choice.sample_rate, quant)
+    tracking_findings(report, playing.schedule, choice.sample_rate, quant, preshaped=playing.preshaped)
 
 
 def _judged_quantisation(report: CheckReport, playing):
@@ -658,16 +658,45 @@ def quantisation_findings(playing, quant, sweep: SweepSamples) -> list[Finding]:
 
 
 # -- tracking through the actuator response ----------------------------------------
-def tracking_findings(report: CheckReport, schedule, sample_rate: float, quant=None) -> None:
+def tracking_findings(report: CheckReport, schedule, sample_rate: float, quant=None, *, preshaped=None) -> None:
     """How the laser tracks the sweep through its actuator: ``tracking`` during the chirp and
-    ``return_settling`` before the next chirp starts."""
+    ``return_settling`` before the next chirp starts. With a pre-shaped drive (``preshaped``,
+    :class:`sweepgen.preshape.PreShaped`) the laser is judged against the plan, and
+    ``tracking_without_preshape`` reports what the plan's own drive would give."""
     from sweepgen.response import track
 
     plan, laser = report.plan, report.laser
+    add = report.findings.append
+    planned = None if preshaped is None else preshaped.planned
+    tr = track(schedule, laser.chain, laser.response, sample_rate, quant=quant, planned=planned)
+    report.tracking = tr
+    if planned is not None:
+        add(_unshaped_tracking(report, planned, sample_rate, preshaped))
+        schedule = planned
+    _tracking_rules(report, schedule, tr)
+
+
+def _unshaped_tracking(report: CheckReport, planned, sample_rate: float, preshaped) -> Finding:
+    """The tracking the plan's own drive would give, beside the pre-shaped drive's (an info finding)."""
+    from sweepgen.preshape import bandwidth_note
+    from sweepgen.response import track
+
+    laser = report.laser
+    tr = track(planned, laser.chain, laser.response, sample_rate)
+    chirp = planned.segment("chirp")
+    inside = (tr.time >= chirp.start) & (tr.time < chirp.end) if chirp is not None else tr.time < 0
+    worst = float(np.max(np.abs(tr.error[inside]))) if np.any(inside) else 0.0
+    return info("tracking_without_preshape",
+                f"without the pre-shaped drive the laser would be off the plan by up to {si(worst, 'Hz')} during "
+                f"the chirp (tolerance {si(tracking_tolerance(report.plan), 'Hz')}); the drive played is "
+                f"{bandwidth_note(preshaped)}", worst, "Hz")
+
+
+def _tracking_rules(report: CheckReport, schedule, tr) -> None:
+    """``tracking`` and ``return_settling`` of the simulated laser ``tr`` against ``schedule``."""
+    plan, laser = report.plan, report.laser
     sc = plan.scenario
     add = report.findings.append
-    tr = track(schedule, laser.chain, laser.response, sample_rate, quant=quant)
-    report.tracking = tr
     tol = tracking_tolerance(plan)
     err = np.abs(tr.error)
     chirp = schedule.segment("chirp")
@@ -684,7 +713,8 @@ def tracking_findings(report: CheckReport, schedule, sample_rate: float, quant=N
                   f"through {desc} the laser is off the planned detuning by up to {si(worst, 'Hz')} during "
                   f"the chirp (at {at * 1e3:.4g} ms); tolerance {sc.drive.tracking_fraction:g} × the lag detuning "
                   f"{si(tol / sc.drive.tracking_fraction, 'Hz')}",
-                  "lower the chirp rate (chirp.force_fraction), use a faster actuator, or raise drive.tracking_fraction"))
+                  "pre-shape the drive (drive.preshape = true), lower the chirp rate (chirp.force_fraction), use a "
+                  "faster actuator, or raise drive.tracking_fraction"))
     ret = schedule.segment("return")
     if chirp is not None and ret is not None:
         n = len(tr.time)

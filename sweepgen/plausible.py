@@ -177,6 +177,8 @@ SCENARIO = {
     "drive.channel": Range(1, 64, "", "generator output channels"),
     "drive.max_step": Range("1 Hz", "10 GHz", "Hz", "a detuning step per sample, up to a whole sweep"),
     "drive.tracking_fraction": FRACTION_OPEN,
+    "drive.preshape_bandwidth": Range("0.01 Hz", "10 GHz", "Hz",
+                                      "the bandwidth a pre-shaped drive may use, as response.corner"),
     "channels.*.saturation": SATURATION,
     "channels.*.offset": DETUNING,
     "channels.*.detuning": DETUNING,

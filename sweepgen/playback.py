@@ -35,6 +35,7 @@ from sweepgen import checker, sampling
 from sweepgen.errors import CheckFailed, InputError
 from sweepgen.generator import load_generator
 from sweepgen.laser import load_laser
+from sweepgen.preshape import preshaped_playback
 from sweepgen.render import drive_range, render
 from sweepgen.scenario import Scenario, load_scenario
 
@@ -96,6 +97,7 @@ class ChannelPlayback:
     rate_refusal: str = ""
     quantisation_refusal: str = ""
     kind: str = "frequency"                     # "frequency" (a detuning) | "gate" | "marker" (a level)
+    preshaped: object = None                    # sweepgen.preshape.PreShaped when the drive is pre-shaped
 
     @property
     def drive_unit(self) -> str:
@@ -385,8 +387,9 @@ def prepare(scenario, *, laser=None, generator=None, sample_rate: float | None =
         report.findings.extend(found)
         if any(f.rule == "timing.delay" and f.status == "fail" for f in found):
             timing = dataclasses.replace(timing, delay=0.0)        # judged on the trigger's axis; never rendered
-        main = channel_playback(delayed(plan.schedule(), timing.delay), laser, generator, sc.drive,
-                                linewidth=sc.species.linewidth, sample_rate=sample_rate)
+        main = preshaped_playback(channel_playback(delayed(plan.schedule(), timing.delay), laser, generator,
+                                                   sc.drive, linewidth=sc.species.linewidth,
+                                                   sample_rate=sample_rate), sc.drive)
         checker.check_hardware(report, main)
         channels[MAIN] = main
         if main.rate_choice is not None:

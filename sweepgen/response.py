@@ -172,6 +172,28 @@ class Response:
         numerator /= denominator
         return numerator
 
+    def preshape(self, wanted, sample_rate: float, reference: "Response"):
+        """The drive whose periodic steady-state response (:meth:`steady_state`) is ``reference``'s
+        response to ``wanted`` (both sampled at ``sample_rate``, one period).
+
+        :meth:`steady_state` multiplies the drive's DFT by ``H(e^{iθ_k})``; this
+        divides by it: ``U_k = F(e^{iθ_k}) / H(e^{iθ_k}) · Y_k`` with ``F`` the
+        reference's (Oppenheim and Schafer, ch. 8). The reference, faster than
+        this response and of at least its order, keeps ``|F/H|`` bounded: the
+        bandwidth the drive may use (:mod:`sweepgen.preshape`).
+        """
+        y = np.asarray(wanted, dtype=float)
+        if self.model == "none" or y.size == 0:
+            return reference.steady_state(y, sample_rate)
+        y0 = float(y[0])
+        spectrum = np.fft.rfft(y - y0)
+        theta = np.arange(spectrum.size) * (2.0 * math.pi / y.size)
+        spectrum *= reference.frequency_response(theta, sample_rate)
+        spectrum /= self.frequency_response(theta, sample_rate)
+        u = np.fft.irfft(spectrum, y.size)
+        u += y0
+        return u
+
     def steady_state(self, x, sample_rate: float):
         """The response, at the sample instants, to the sampled drive ``x`` held between samples
         and repeated forever: the periodic steady state over one period.
@@ -238,8 +260,20 @@ class Tracking:
 MAX_SIM_POINTS = 1 << 18
 
 
+def simulation_grid(period: float, sample_rate: float, max_points: int = MAX_SIM_POINTS) -> tuple[int, float]:
+    """``(n, rate)``: the points of one period and their sample rate, as :func:`track` simulates them
+    (the played rate, divided by a whole number beyond ``max_points`` points; at least two points)."""
+    n = int(round(period * sample_rate))
+    sim_sample_rate = sample_rate
+    if n > max_points:
+        step = math.ceil(n / max_points)
+        sim_sample_rate = sample_rate / step
+        n = int(round(period * sim_sample_rate))
+    return max(n, 2), sim_sample_rate
+
+
 def track(schedule, chain, response: Response, sample_rate: float, *, quant=None,
-          max_points: int = MAX_SIM_POINTS) -> Tracking:
+          max_points: int = MAX_SIM_POINTS, planned=None) -> Tracking:
     """How the laser tracks one period of ``schedule`` played at ``sample_rate`` through ``chain``
     and ``response``.
 
@@ -248,18 +282,15 @@ def track(schedule, chain, response: Response, sample_rate: float, *, quant=None
     :mod:`sweepgen.sampling`), held between samples, filtered by the response
     in its periodic steady state, and mapped back to detuning with the chain's
     inverse. The response is applied to the drive at the actuator (the one
-    place where the profile states it).
+    place where the profile states it). ``planned`` (a schedule) is what the
+    laser should do when ``schedule`` is not the plan itself (a pre-shaped
+    drive, :mod:`sweepgen.preshape`); by default ``schedule``.
     """
-    n = int(round(schedule.period * sample_rate))
-    sim_sample_rate = sample_rate
-    if n > max_points:
-        step = math.ceil(n / max_points)
-        sim_sample_rate = sample_rate / step
-        n = int(round(schedule.period * sim_sample_rate))
-    n = max(n, 2)
+    n, sim_sample_rate = simulation_grid(schedule.period, sample_rate, max_points)
     t = np.arange(n) / sim_sample_rate
-    planned = schedule.sampled(sim_sample_rate)(0, n)
-    drive = chain.to_drive(planned)
+    commanded = schedule.sampled(sim_sample_rate)(0, n)
+    drive = chain.to_drive(commanded)
+    planned = commanded if planned is None else planned.sampled(sim_sample_rate)(0, n)
     if quant is not None:
         from sweepgen.sampling import codes_to_drive, drive_to_codes
 

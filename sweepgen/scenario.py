@@ -107,6 +107,8 @@ class Drive:
     #                                       (None: 0.1 × natural linewidth, sampling.DEFAULT_STEP_FRACTION)
     tracking_fraction: float = 0.25       # tolerance as a fraction of the lag detuning Δv_lag/λ
     #                                       (checker rules "tracking" and "return_settling")
+    preshape: bool = False                # play the drive whose actuator response follows the plan
+    preshape_bandwidth: float | None = None   # Hz, its reference response (None: sweepgen.preshape default)
 
 
 @dataclass(frozen=True)
@@ -304,7 +306,7 @@ def _read_force_fraction(ch: Section) -> float:
 
 
 def _read_drive(dv: Section | None) -> Drive:
-    """``[drive]`` (optional): sample rate, channel, largest step, tracking tolerance."""
+    """``[drive]`` (optional): sample rate, channel, largest step, tracking tolerance, pre-shaping."""
     if dv is None:
         return Drive()
     rate_raw = dv.raw("sample_rate", "auto")
@@ -313,8 +315,13 @@ def _read_drive(dv: Section | None) -> Drive:
     channel = dv.number("channel", 1, integer=True, minimum=1)
     max_step = dv.quantity("max_step", "Hz", None, positive=True, example="500 kHz")
     tracking = dv.number("tracking_fraction", 0.25, minimum=0.0, maximum=1.0, exclusive=True)
+    preshape = dv.raw("preshape", False)
+    if not isinstance(preshape, bool):
+        raise dv.error("preshape", f"expected true or false, got {preshape!r}")
+    bandwidth = dv.quantity("preshape_bandwidth", "Hz", None, positive=True, example="20 kHz")
     dv.finish()
-    return Drive(sample_rate=rate, channel=channel, max_step=max_step, tracking_fraction=tracking)
+    return Drive(sample_rate=rate, channel=channel, max_step=max_step, tracking_fraction=tracking,
+                 preshape=preshape, preshape_bandwidth=bandwidth)
 
 
 def scenario_digest(raw: bytes, others=()) -> str:

@@ -191,7 +191,7 @@ COMPLETE = {
                       light={"waist": "5 mm", "focus": "-0.2 m"}, target={"aperture": "10 mm"},
                       chirp={"start_time": "0.4 ms"},
                       drive={"sample_rate": "10 MSa/s", "channel": 2, "max_step": "600 kHz",
-                             "tracking_fraction": 0.25}),
+                             "tracking_fraction": 0.25, "preshape": True, "preshape_bandwidth": "20 kHz"}),
         scenario_dict(source={"model": "gaussian", "temperature": None, "mean_velocity": "170 m/s",
                               "velocity_spread": "30 m/s", "pulse_time": None},
                       chirp={"start_velocity": "200 m/s", "start_time": None, "force_fraction": None,
