@@ -357,8 +357,9 @@ def played_from(pb, schedule=None, fallback: str = "the plan itself") -> Played:
     in_chirp = schedule.kinds(tracking.time) == "chirp"
     error = float(np.max(np.abs(tracking.error[in_chirp]))) if np.any(in_chirp) else 0.0
     quantised = "quantised to its codes, " if pb.report.quantisation is not None else ""
+    shaped = "a pre-shaped drive " if pb.main is not None and pb.main.preshaped is not None else ""
     reason = (f"laser '{pb.laser.key}' driven by generator '{pb.generator.key}' at {si(pb.report.rate_choice.sample_rate, 'Sa/s')}, "
-              f"{quantised}through the actuator response ({pb.laser.response.model})")
+              f"{shaped}{quantised}through the actuator response ({pb.laser.response.model})")
     return Played(SampledProgram(tracking.actual, schedule.period), True, reason, error, pb.report.rate_choice.sample_rate)
 
 
