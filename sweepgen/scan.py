@@ -344,12 +344,12 @@ def scan(ref, axes, *, atoms: int, seed: int = 0, workers: int | None = None, cl
     """
     from sweepgen import workers as runner
 
+    designs = math.prod(len(a.values) for a in axes)     # counted before the grid is built (10⁸ took 8 GB)
+    if designs > MAX_DESIGNS:
+        raise InputError(f"{designs} designs; at most {MAX_DESIGNS} in one scan (use fewer values)", key="--vary")
     start = base(ref)
     check_axes(start, axes)
     combos = grid(axes)
-    if len(combos) > MAX_DESIGNS:
-        raise InputError(f"{len(combos)} designs; at most {MAX_DESIGNS} in one scan (use fewer values)",
-                         key="--vary")
     tasks = [Design(start.path, start.data, c, atoms, seed) for c in combos]
     result = ScanResult(start.path, start.title, start.stem, list(axes), atoms, seed, [], len(tasks),
                         where=placement(workers, cluster, len(tasks)))

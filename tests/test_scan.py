@@ -184,3 +184,19 @@ def test_same_rows_on_one_two_workers_and_a_dask_cluster(fast_file):
     assert one == two == dask.rows
     assert dask.where == {"cluster": cluster.scheduler_address}
     assert np.unique([r["captured_fraction"] for r in one]).size > 1     # the designs do differ
+
+
+def test_a_grid_beyond_the_most_designs_is_refused_before_it_is_built():
+    # 10⁴ × 10⁴ values: 10⁸ designs, refused by their count; building them first took 8 GB and minutes
+    import tracemalloc
+
+    axes = [service.Axis(key, tuple(float(v) for v in range(10_000)), tuple(float(v) for v in range(10_000)), "")
+            for key in ("chirp.force_fraction", "light.saturation")]
+    tracemalloc.start()
+    try:
+        with pytest.raises(InputError, match=r"100000000 designs; at most 100000") as info:
+            service.scan("rb87-chopped-oven", axes, atoms=10)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert info.value.key == "--vary" and peak < 20 << 20
