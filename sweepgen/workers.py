@@ -148,6 +148,9 @@ def _client(address: str):
     except ImportError:
         raise InputError("--cluster needs Dask's distributed scheduler: pip install 'sweepgen[cluster]'",
                          key="--cluster") from None
+    port = address.rpartition(":")[2] if "://" in address and address.count(":") >= 2 else None
+    if port is not None and port.isdigit() and not 1 <= int(port) <= 65535:
+        raise InputError(f"port {port} in {address!r} is not a TCP port (1 to 65535)", key="--cluster")
     try:
         return Client(address, timeout="10s")
     except (OSError, TimeoutError, ValueError) as exc:
