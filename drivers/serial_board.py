@@ -372,10 +372,31 @@ def check_url(url, *, key: str, file=None) -> str:
         if not parts.hostname or port is None or not 1 <= port <= 65535:
             raise InputError(f"expected {scheme}://HOST:PORT with a TCP port from 1 to 65535, got {url!r}",
                              key=key, file=file)
+        _check_url_options(scheme, parts.query, url, key=key, file=file)
     elif scheme and not _url_handler(scheme):
         raise InputError(f"not a serial device or pyserial URL: {url!r} (invalid URL, protocol {scheme!r} not known)",
                          key=key, file=file)
     return url
+
+
+#: the options pyserial's socket:// and rfc2217:// handlers take after '?' (pyserial's URL handlers
+#: documentation), each with a test of its value
+_URL_OPTIONS = {
+    "socket": {"logging": lambda v: v in ("debug", "info", "warning", "error")},
+    "rfc2217": {"logging": lambda v: v in ("debug", "info", "warning", "error"), "ign_set_control": lambda v: v == "",
+                "poll_modem": lambda v: v == "", "timeout": lambda v: v.replace(".", "", 1).isdigit()},
+}
+
+
+def _check_url_options(scheme: str, query: str, url: str, *, key: str, file=None) -> None:
+    """Refuse an option after '?' that pyserial's handler does not take, before opening the port."""
+    from urllib.parse import parse_qsl
+
+    known = _URL_OPTIONS[scheme]
+    for name, value in parse_qsl(query, keep_blank_values=True):
+        if name not in known or not known[name](value):
+            raise InputError(f"{url!r}: option {name}={value!r} after '?' is not one a {scheme}:// URL takes "
+                             f"({', '.join(known)}; logging is debug, info, warning or error)", key=key, file=file)
 
 
 def _url_handler(scheme: str) -> bool:

@@ -146,6 +146,10 @@ def test_contradictory_destinations_are_usage_errors(args, key):
      "expected socket://HOST:PORT with a TCP port from 1 to 65535"),
     ("caf-buffer-gas", "--serial-port", "socket://:7450", "expected socket://HOST:PORT"),
     ("caf-buffer-gas", "--serial-port", "nosuchscheme://x", "not a serial device or pyserial URL"),
+    ("caf-buffer-gas", "--serial-port", "socket://127.0.0.1:7450?logging=banana",
+     "option logging='banana' after '?' is not one a socket:// URL takes"),
+    ("caf-buffer-gas", "--serial-port", "socket://127.0.0.1:7450?speed=fast",
+     "option speed='fast' after '?' is not one a socket:// URL takes"),
     ("caf-buffer-gas", "--serial-port", "", "expected an address, got an empty one"),
 ])
 def test_an_address_that_cannot_name_an_instrument_is_refused_before_connecting(scenario, option, address, words):
