@@ -81,6 +81,7 @@ class Species:
     off_resonant: OffResonantLevel | None = None
     zeeman: Zeeman | None = None
     sources: dict = field(default_factory=dict, compare=False)
+    path: str | None = field(default=None, compare=False)    # the file it was read from, for messages
 
     @property
     def saturation_factor(self) -> float:
@@ -246,4 +247,4 @@ def species_from_dict(data: dict, path) -> Species:
     return Species(key=Path(str(path)).stem, title=title, kind=kind, wavelength=wavelength, mass=mass,
                    gamma=gamma, saturation_intensity=isat, loss_per_photon=loss or 0.0, rate_fraction=fraction,
                    effective_saturation_intensity=isat_eff, saturation_definition=definition,
-                   off_resonant=off, zeeman=zeeman, sources=sources)
+                   off_resonant=off, zeeman=zeeman, sources=sources, path=str(path))

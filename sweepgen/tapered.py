@@ -112,7 +112,8 @@ def tapered_field(plan) -> TaperedField:
     sp = plan.species
     if sp.zeeman is None:
         raise InputError(f"species '{sp.key}' gives no [zeeman] table (ground_g, ground_m, excited_g, "
-                         f"excited_m, source), so no tapered-field slower can be worked out", key="zeeman")
+                         f"excited_m, source), so no tapered-field slower can be worked out", key="zeeman",
+                         file=sp.path)
     tr = plan.trajectory
     moment = sp.zeeman.moment
     v0, v1 = plan.start_velocity, plan.end_velocity

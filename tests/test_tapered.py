@@ -51,8 +51,9 @@ def test_alkali_stretched_transitions_have_one_bohr_magneton(key):
 
 def test_species_without_zeeman_table_is_refused_clearly():
     sc = load_scenario("caf-buffer-gas")
-    with pytest.raises(InputError, match=r"no \[zeeman\] table"):
+    with pytest.raises(InputError, match=r"no \[zeeman\] table") as info:
         tapered.tapered_field(plan(sc))
+    assert info.value.key == "zeeman" and info.value.file.endswith("caf-a-x.toml")      # the file it is missing from
 
 
 def test_zeeman_table_that_does_not_shift_is_refused():
