@@ -91,6 +91,8 @@ def _print(doc, info, dry_run, arm):
     for what in ("scenario", "laser", "generator"):
         if isinstance(prov.get(what), dict):
             click.echo(f"  {what} {prov[what]['file']} sha256 {prov[what]['sha256']}")
+    for ch in doc.get("channels", []):
+        click.echo(f"  output {ch['output']}: {ch['name']}, table_sha256 {ch['table_sha256']}")
     if dry_run:
         click.echo(f"dry run: nothing was sent; the command log for {where}:")
         rows = []
@@ -127,7 +129,9 @@ def _print(doc, info, dry_run, arm):
     duration = doc.get("duration")
     click.echo(f"uploaded to {where}: {doc.get('bytes')} bytes"
                + (f" in {si(duration, 's', 3)}" if duration else "") + f"; {verified}")
+    outputs = doc.get("arm_order")
+    what = "output" if not outputs else f"outputs {', '.join(str(n) for n in outputs)}"
     if doc.get("armed"):
-        click.echo("output: ON")
+        click.echo(f"{what}: ON" + (" (switched on in this order, each read back)" if outputs else ""))
     else:
-        click.echo("output: off" + ("" if arm else " (pass --arm to switch it on)"))
+        click.echo(f"{what}: off" + ("" if arm else f" (pass --arm to switch {'them' if outputs else 'it'} on)"))

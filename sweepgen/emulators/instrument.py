@@ -660,8 +660,9 @@ class VirtualInstrument:
 
     def _continuous_set(self, params, captures):
         parser.count(params, 1, 1)
-        self.continuous = parser.boolean(params[0])
-        self._changed("playback: " + ("repeat" if self.continuous else f"burst of {self.count} per trigger"))
+        before, self.continuous = self.continuous, parser.boolean(params[0])
+        if before != self.continuous or not self.continuous:
+            self._changed("playback: " + ("repeat" if self.continuous else f"burst of {self.count} per trigger"))
 
 
 # ---------------------------------------------------------------------------------------------
