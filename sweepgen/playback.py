@@ -746,7 +746,8 @@ def actuator_response(plan, laser=None, generator=None):
     ``laser`` and ``generator`` default to the ones the plan's scenario names.
     With a generator the drive is played as it would be (its sample rate and
     codes, the same :func:`channel_playback` the checker judges); without one
-    it is simulated unquantised at :func:`sweepgen.response.preview_sample_rate`.
+    it is simulated unquantised at :func:`sweepgen.response.preview_sample_rate`;
+    a pre-shaped drive (``[drive] preshape``) is played pre-shaped.
     ``plots.plot_plan(plan, file, response=actuator_response(plan))`` overlays it.
     """
     from sweepgen import response
@@ -759,11 +760,12 @@ def actuator_response(plan, laser=None, generator=None):
     if generator is None:
         sample_rate = response.preview_sample_rate(laser.response, schedule.period)
     else:
-        playing = channel_playback(schedule, laser, generator, plan.scenario.drive,
-                                   linewidth=plan.species.linewidth)
+        playing = preshaped_playback(channel_playback(schedule, laser, generator, plan.scenario.drive,
+                                                      linewidth=plan.species.linewidth), plan.scenario.drive)
         if playing.rate_choice is None:
             raise CheckFailed(playing.rate_refusal)
         sample_rate, quant = playing.rate_choice.sample_rate, playing.quantisation
+        schedule = playing.schedule                           # the pre-shaped drive's, when asked for
     tr = response.track(schedule, laser.chain, laser.response, sample_rate, quant=quant)
     return tr.time, tr.actual
 

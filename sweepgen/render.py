@@ -296,6 +296,8 @@ def render(playing, *, digest: str = "") -> RenderedTable:
         "safe_range": [playing.laser.limits.input_min, playing.laser.limits.input_max],
         "detuning_scaling": detuning_scaling(chain, q, code_lo, code_hi),
     }
+    if getattr(playing, "preshaped", None) is not None:
+        extra["preshape"] = playing.preshaped.to_json()
     info = TableInfo(sample_rate=sample_rate, count=count, period_count=period_count, dtype=np.dtype(q.dtype).str,
                      output=playing.generator.output.kind, drive_unit=chain.drive_unit,
                      code_scale=float(q.code_scale), code_offset=float(q.code_offset), amplitude=q.amplitude,

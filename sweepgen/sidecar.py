@@ -55,6 +55,11 @@ sweepgen. Its keys (SI units; frequencies and detunings in Hz):
     edge (sweepgen's words and the profile's names), ``delay`` (sample ``i``
     plays at ``delay + i / sample_rate`` after the trigger edge), burst or
     repeat, and the moments of the period on the trigger's axis.
+``preshape`` (a pre-shaped drive, ``[drive] preshape``)
+    The reference response the drive was pre-shaped for (``bandwidth``, Hz;
+    ``reference_model``) and the ``sample_rate`` it was computed at. The
+    table holds the drive played: its ``scaling.detuning`` is what that drive
+    commands through the chain, not the laser's detuning (which follows the plan).
 ``created``
     When the file was written (UTC, ISO 8601).
 ``provenance``
@@ -162,7 +167,8 @@ def build(info, *, driver: str, data_file: str, sha256: str | None, nbytes: int,
     doc["generator"] = {"output": info.output, "channel": info.channel,
                         "amplitude": info.amplitude, "offset": info.offset,
                         "code_dtype": np.dtype(info.dtype).str}
-    for key in ("chain", "sampling", "quantisation", "drive_range", "code_range", "safe_range", "channel", "timing"):
+    for key in ("chain", "sampling", "quantisation", "drive_range", "code_range", "safe_range", "channel", "timing",
+                "preshape"):
         if key in extra:
             doc[key] = extra[key]
     prov = {"scenario_digest": info.scenario_digest or None}

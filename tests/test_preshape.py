@@ -128,6 +128,32 @@ def test_export_plays_the_pre_shaped_drive(tmp_path):
     assert np.max(np.abs(frame.drive - plain_drive)) > 0.05          # volts: it is not the plan's drive
     res = run_cli("export", tmp_path / "scenario.toml", "--format", "npy", "-o", "out", "--json")
     assert res.exit_code == 0, res.stderr
+    sidecar = json.loads(next((tmp_path / "out").glob("*.json")).read_text())
+    assert sidecar["preshape"]["bandwidth"] == pytest.approx(pb.main.preshaped.bandwidth)
+    assert sidecar["drive_range"] == pytest.approx(list(pb.main.drive_range))
+
+
+def test_upload_plays_the_pre_shaped_drive(tmp_path):
+    import dataclasses
+
+    from conftest import deliver_to_board
+
+    from sweepgen.testing import virtual_board
+
+    pb = playback.prepare(str(_slow(tmp_path, sample_rate="20 MSa/s")))       # a rate the board plays
+    table = pb.table()
+    gen = dataclasses.replace(pb.generator, link=dataclasses.replace(pb.generator.link, timeout=0.5))
+    with virtual_board(gen) as url:
+        deliver_to_board(table, url, gen)
+        stored = url.board.committed.codes()
+    # the board holds the pre-shaped drive's codes, not the plan's
+    assert np.array_equal(np.asarray(stored), table.codes())
+    from sweepgen.sampling import drive_to_codes
+
+    n = table.info.period_count
+    t = np.arange(n) / table.info.sample_rate
+    plan_codes = drive_to_codes(pb.laser.chain.to_drive(pb.main.preshaped.planned.detuning(t)), pb.main.quantisation)
+    assert np.max(np.abs(np.asarray(stored[:n], dtype=float) - plan_codes)) > 100
 
 
 def test_check_json_reports_both_and_the_ideal_actuator_is_left_alone(tmp_path):
