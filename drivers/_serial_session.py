@@ -100,6 +100,8 @@ class Session:
                                   "uploaded or armed", step="hello")
         self.version, self.caps = version, caps
         self.report["board"] = caps.to_json()
+        self.report["table"] = self.plans[0].table_json()        # in the format chosen for this board
+        self.report["tables"] = [p.table_json() for p in self.plans]
         self.report["protocol"] = version
         memory = caps.memory
         self.step("hello", f"{caps.name or 'board'}: protocol {version}, memory {memory} samples, "

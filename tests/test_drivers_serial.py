@@ -439,3 +439,18 @@ def test_a_person_cannot_pass_the_timing_as_a_driver_option():
     table, _ = dds_table(10)
     with pytest.raises(InputError, match="no option 'timing'"):
         deliver_to_board(table, "socket://127.0.0.1:9", options={"timing": "external"})
+
+
+def test_the_host_widens_a_table_to_the_only_format_a_channel_announces():
+    board = BoardEmulator(GEN)
+    caps = board.caps_by_version[2]
+    only_64 = dataclasses.replace(caps.channels[0], formats=(fr.Format.UINT64,))
+    board.caps = board.caps_by_version[2] = dataclasses.replace(caps, channels=(only_64,))
+    table, words = dds_table(1500)                       # rendered as 32-bit words
+    with virtual_board(GEN, board=board) as url:
+        report = deliver_to_board(table, url)
+        held = url.board.committed
+    assert held.format == fr.Format.UINT64 and np.array_equal(held.codes(), words.astype("<u8"))
+    # the whole-table CRC is over the bytes as sent: 8-byte little-endian words (zlib's CRC-32)
+    assert held.crc == zlib.crc32(words.astype("<u8").tobytes()) != table.crc32
+    assert report["table"]["format"] == "uint64" and report["verification"]["instrument_crc32"] == held.crc
