@@ -200,3 +200,8 @@ def test_a_grid_beyond_the_most_designs_is_refused_before_it_is_built():
     finally:
         tracemalloc.stop()
     assert info.value.key == "--vary" and peak < 20 << 20
+
+
+def test_bad_input_leaves_no_folder(fast_file, tmp_path):
+    result = run_cli("scan", fast_file, "--vary", "chirp.force_fraction=0.5:1.5:3", "-o", tmp_path / "new")
+    assert result.exit_code == 2 and not (tmp_path / "new").exists()

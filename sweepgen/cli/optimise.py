@@ -59,10 +59,10 @@ def command(scenario, free, objective, minimise, atoms, confirm_atoms, evaluatio
     from sweepgen import optimise_report
 
     goal = service.Goal(objective, minimise).check()
-    Path(output).mkdir(exist_ok=True)
     with progress_bar(evaluations, "designs", show=not as_json and sys.stderr.isatty()) as progress:
         result = service.optimise(scenario, free, goal=goal, atoms=atoms, seed=seed, budget=evaluations,
                                   confirm_atoms=confirm_atoms, workers=workers, cluster=cluster, progress=progress)
+    Path(output).mkdir(exist_ok=True)           # only now: bad input leaves no folder behind
     files = optimise_report.write(result, output, result.search.start.stem)
     doc = result.to_json()
     if as_json:

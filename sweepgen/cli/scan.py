@@ -66,13 +66,13 @@ def command(scenario, vary, atoms, seed, workers, cluster, output, as_json):
     from sweepgen.search_plots import plot_scan
 
     axes = [service.parse_vary(v) for v in vary]
-    Path(output).mkdir(exist_ok=True)
     total = 1
     for axis in axes:
         total *= len(axis.values)
     with progress_bar(total, "designs", show=not as_json and sys.stderr.isatty()) as progress:
         result = service.scan(scenario, axes, atoms=atoms, seed=seed, workers=workers, cluster=cluster,
                               progress=progress)
+    Path(output).mkdir(exist_ok=True)           # only now: bad input leaves no folder behind
     paths = service.write(result, output, result.stem)
     if result.rows:
         paths["plot"] = str(plot_scan(result, Path(output) / f"{result.stem}-scan.png"))
