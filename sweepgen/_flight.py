@@ -125,11 +125,14 @@ def propagate(scenario, atoms: Atoms, program, rng: np.random.Generator, *,
     ``kernel`` chooses how a step is computed: ``"compiled"`` (one pass per step,
     :mod:`sweepgen._kernel`, when numba is installed) or ``"numpy"`` (array by
     array); the default is :data:`KERNEL`. The two give statistically identical
-    results from different draws.
+    results from different draws. A program with a magnetic field (``shift_at``: each
+    atom sees the detuning shifted where it is) always takes the NumPy step.
     """
     kernel = KERNEL if kernel is None else kernel
     if kernel not in ("compiled", "numpy") or (kernel == "compiled" and not _kernel.AVAILABLE):
         raise ValueError(f"kernel {kernel!r} is not available (have: {', '.join(KERNELS)})")
+    if getattr(program, "shift_at", None) is not None:
+        kernel = "numpy"            # the compiled step knows one detuning for all atoms, not a field's shift
     run = (_Compiled if kernel == "compiled" else _Propagation)(scenario, atoms, program, rng, light, step_fraction)
     if atoms.velocity.size == 0:
         return run.out

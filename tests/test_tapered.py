@@ -99,6 +99,21 @@ def test_design_atom_stays_at_the_plans_lag_all_along_the_field():
     assert seen == pytest.approx(-p.trajectory.lag[0] / lam, abs=1e-6 * p.species.linewidth)
 
 
+def test_a_field_is_flown_by_the_step_that_shifts_each_atom():
+    """The compiled step gives every atom the light's one detuning; a field shifts it atom by atom
+    (``shift_at``), so a field program is flown by the NumPy step (with the compiled one, the
+    tapered-field slower captured nothing)."""
+    from sweepgen import _flight
+    from sweepgen.simulate import draw_atoms
+
+    sc = _sodium("500 m/s")
+    field = tapered.tapered_field(plan(sc))
+    rng = np.random.default_rng(1)
+    flight = _flight.propagate(tapered.in_field(sc), draw_atoms(sc, 20, rng),
+                               tapered.FieldProgram(field, sc.chirp.period), rng)
+    assert flight.kernel == "numpy"
+
+
 @pytest.mark.slow
 def test_simulated_field_slower_brings_atoms_to_the_end_velocity():
     sc = _sodium("500 m/s")
