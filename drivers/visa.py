@@ -464,7 +464,7 @@ class _Session:
         except visa_errors() as exc:
             error = link.failure(step, exc, allowed)
             if isinstance(error, LinkLost):
-                error = _upload_lost("while the block was being sent", error.why)
+                error = _upload_lost("while the block was being sent", error.why, step)
             raise error from None
         link.in_step = True
 

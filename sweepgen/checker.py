@@ -744,7 +744,7 @@ def tracking_tolerance(plan) -> float:
 # ----------------------------------------------------------------------------------
 # A table read back, in place of the plan's sweep
 # ----------------------------------------------------------------------------------
-def table_findings(plan, table, sweep) -> list[Finding]:
+def table_findings(plan, table, sweep, delay: float = 0.0) -> list[Finding]:
     """Rules for a table read back (``check --table``).
 
     ``table_integrity``: the file matches its sidecar (size, SHA-256, count, codes).
@@ -765,7 +765,8 @@ def table_findings(plan, table, sweep) -> list[Finding]:
     planned = plan.schedule()
     seg = planned.segment("chirp")
     t = np.linspace(seg.start, np.nextafter(seg.end, seg.start), GRID)
-    diff = np.abs(sweep.schedule.detuning(t) - planned.detuning(t))
+    # the table's sample 0 plays ``delay`` after the trigger (``[timing] delay``): its axis is shifted
+    diff = np.abs(sweep.schedule.detuning(t - delay) - planned.detuning(t))
     worst, at = float(diff.max()), float(t[int(np.argmax(diff))])
     out.append(upper("table_match", worst, tracking_tolerance(plan), "Hz",
                      f"played through laser '{sweep.laser.key}', the table is off the plan by up to {si(worst, 'Hz')} "

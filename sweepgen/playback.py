@@ -451,7 +451,7 @@ def prepare_table(scenario, table, *, laser=None, generator=None) -> "Playback":
     report = checker.CheckReport([], scenario=sc, laser=laser, generator=generator)
     plan = checker.check_design(report)
     sweep = table_sweep(table, laser)
-    report.findings.extend(checker.table_findings(plan or report.plan, table, sweep))
+    report.findings.extend(checker.table_findings(plan or report.plan, table, sweep, sc.timing.delay))
     main = channel_playback(sweep.schedule, laser, generator, sc.drive, linewidth=sc.species.linewidth,
                             sample_rate=table.sample_rate)
     if main.rate_choice is not None:

@@ -300,3 +300,41 @@ def test_upload_is_off_until_arm_and_a_refusal_is_exit_1(write, tmp_path):
         assert result.exit_code == 1
         assert "-114" in result.stderr and "switched off (confirmed" not in result.output
         assert not server.instrument.ever_armed
+
+
+def test_a_table_exported_with_a_trigger_delay_still_matches_its_plan(write, tmp_path):
+    import json
+
+    path = write()
+    assert run_cli("export", path, "-f", "raw", "-o", tmp_path / "out").exit_code == 0
+    result = run_cli("check", path, "--table", tmp_path / "out" / "scenario.bin", "--json")
+    assert result.exit_code == 0, result.output
+    match = next(f for f in json.loads(result.stdout)["findings"] if f["rule"] == "table_match")
+    assert match["status"] == "pass" and match["value"] < 0.1 * match["limit"]
+
+
+def test_a_connection_lost_during_the_second_table_leaves_every_output_off(played):
+    # the instrument hangs up in the middle of output 2's block; a new connection switches all off
+    from sweepgen.drivers.base import Delivery
+    from sweepgen.drivers.visa import VisaDriver
+    from sweepgen.emulators.instrument import Faults
+
+    gen = load_generator(str(BENCH))
+    tables = [played.table(n) for n in played.channels]
+    link = played.link(resource="TCPIP::127.0.0.1::5025::SOCKET")
+    log = VisaDriver().deliver_tables(tables, Delivery("", gen, dry_run=True, options=link.options()))["log"]
+    upto = 0
+    for entry in log:
+        upto += entry["bytes"]
+        if entry["step"] == "upload, output 2" and entry["kind"] == "write":
+            upto -= entry["bytes"] // 2
+            break
+    with instrument_server(gen, faults=Faults(drop_after=upto)) as server:
+        server.instrument.execute("OUTP1:STAT OFF")
+        with pytest.raises(InstrumentError) as info:
+            played.upload(played.link(resource=server.resource), arm=True)
+        inst = server.instrument
+        assert inst.outputs_on == [] and not inst.ever_armed
+        assert "SWEEP1" in inst.traces and "SWEEP2" not in inst.traces
+    assert info.value.step == "upload, output 2"
+    assert str(info.value).endswith("every output (1, 2, 3, 4) switched off (confirmed on a new connection)")
