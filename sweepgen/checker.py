@@ -670,10 +670,13 @@ def tracking_findings(report: CheckReport, schedule, sample_rate: float, quant=N
     planned = None if preshaped is None else preshaped.planned
     tr = track(schedule, laser.chain, laser.response, sample_rate, quant=quant, planned=planned)
     report.tracking = tr
+    note = ""
     if planned is not None:
-        add(_unshaped_tracking(report, planned, sample_rate, preshaped))
+        unshaped = _unshaped_tracking(report, planned, sample_rate, preshaped)
+        add(unshaped)
         schedule = planned
-    _tracking_rules(report, schedule, tr)
+        note = f", with the pre-shaped drive (without it: {si(unshaped.value, 'Hz')})"
+    _tracking_rules(report, schedule, tr, note)
 
 
 def _unshaped_tracking(report: CheckReport, planned, sample_rate: float, preshaped) -> Finding:
@@ -692,8 +695,9 @@ def _unshaped_tracking(report: CheckReport, planned, sample_rate: float, preshap
                 f"{bandwidth_note(preshaped)}", worst, "Hz")
 
 
-def _tracking_rules(report: CheckReport, schedule, tr) -> None:
-    """``tracking`` and ``return_settling`` of the simulated laser ``tr`` against ``schedule``."""
+def _tracking_rules(report: CheckReport, schedule, tr, note: str = "") -> None:
+    """``tracking`` and ``return_settling`` of the simulated laser ``tr`` against ``schedule``; ``note``
+    ends the ``tracking`` message's first part."""
     plan, laser = report.plan, report.laser
     sc = plan.scenario
     add = report.findings.append
@@ -711,7 +715,7 @@ def _tracking_rules(report: CheckReport, schedule, tr) -> None:
         at = float(tr.time[in_chirp][np.argmax(err[in_chirp])])
         add(upper("tracking", worst, tol, "Hz",
                   f"through {desc} the laser is off the planned detuning by up to {si(worst, 'Hz')} during "
-                  f"the chirp (at {at * 1e3:.4g} ms); tolerance {sc.drive.tracking_fraction:g} × the lag detuning "
+                  f"the chirp (at {at * 1e3:.4g} ms){note}; tolerance {sc.drive.tracking_fraction:g} × the lag detuning "
                   f"{si(tol / sc.drive.tracking_fraction, 'Hz')}",
                   "pre-shape the drive (drive.preshape = true), lower the chirp rate (chirp.force_fraction), use a "
                   "faster actuator, or raise drive.tracking_fraction"))

@@ -161,6 +161,9 @@ def test_check_json_reports_both_and_the_ideal_actuator_is_left_alone(tmp_path):
     assert res.exit_code == 0, res.stderr
     rules = {f["rule"]: f for f in json.loads(res.stdout)["findings"]}
     assert rules["tracking_without_preshape"]["value"] > rules["tracking"]["limit"] > rules["tracking"]["value"]
+    res = run_cli("check", tmp_path / "scenario.toml")             # the text report says both in one line
+    line = next(x for x in res.stdout.splitlines() if " tracking " in x)
+    assert "with the pre-shaped drive (without it: 10.31 MHz)" in line
     pb = playback.prepare(str(_slow(tmp_path, model={"model": "none"})))
     assert pb.main.preshaped is None and pb.report.finding("tracking_without_preshape") is None
 
