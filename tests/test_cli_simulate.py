@@ -103,3 +103,16 @@ def test_without_a_laser_the_plan_is_played_and_said_so(fast):
     doc = json.loads(run("simulate", fast, "--atoms", 100, "--json").stdout)
     assert doc["played"]["detuning"] == "plan" and "names no laser" in doc["played"]["reason"]
     assert "ideal_captured_fraction" not in doc
+
+
+def test_a_bad_laser_key_in_the_scenario_file_names_the_file_not_the_option(tmp_path):
+    # the option --laser was not given: the empty name is the scenario's own key 'laser'
+    from conftest import CHECKED_SCENARIO, merged, write_checked
+
+    path = write_checked(tmp_path, merged(CHECKED_SCENARIO, laser=""))
+    result = run("simulate", str(path), "--atoms", "100")
+    assert result.exit_code == 2
+    line, = result.stderr.strip().splitlines()
+    assert line.startswith(f"sweepgen: error: {path}: key 'laser': ")
+    given = run("simulate", str(path), "--atoms", "100", "--laser", "")
+    assert given.exit_code == 2 and given.stderr.startswith("sweepgen: error: option '--laser': ")

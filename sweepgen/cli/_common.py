@@ -100,13 +100,14 @@ def fail_usage(exc: click.UsageError):
 
 @contextlib.contextmanager
 def options_named(**options):
-    """Errors of the API about a parameter (``atoms``) name the command's option instead (``--atoms``)."""
+    """Errors of the API about a parameter (``atoms``) name the command's option instead (``--atoms``);
+    an error about a key of a file (the scenario's own ``laser``) keeps naming the file and its key."""
     from sweepgen.errors import InputError
 
     try:
         yield
     except InputError as exc:
-        if exc.key not in options or type(exc) is not InputError:
+        if exc.key not in options or type(exc) is not InputError or exc.file is not None:
             raise
         raise InputError(exc.detail, file=exc.file, key=options[exc.key]) from None
 
