@@ -17,6 +17,8 @@ codes by ``code = offset + scale * value`` (sidecar ``scaling.code``):
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 
 from sweepgen.drivers.base import FileDriver
@@ -116,5 +118,7 @@ class RawDriver(FileDriver):
             out.write(convert(chunk, spec))
 
     def load_values(self, path, doc):
-        return np.fromfile(path, dtype=np.dtype(doc["numpy_dtype"]), count=int(doc["count"]),
-                           offset=int(doc.get("header_bytes") or 0))
+        # at most the values the file holds: NumPy allocates the count it is given before reading
+        dtype, offset = np.dtype(doc["numpy_dtype"]), int(doc.get("header_bytes") or 0)
+        held = max(Path(path).stat().st_size - offset, 0) // dtype.itemsize
+        return np.fromfile(path, dtype=dtype, count=min(int(doc["count"]), held), offset=offset)

@@ -182,6 +182,10 @@ def test_broken_sidecars_and_tables_are_refused_in_one_line(exported_as, command
     # a number of 100000 digits (beyond Python's limit for converting integers from text)
     side.write_text(json.dumps(good).replace(f'"count": {good["count"]}', '"count": ' + "9" * 100000))
     assert str(side) in _one_error_line(run(*words), 2)
+    # a count of 10¹² values (1.8 TiB of int16): read as many as the file holds, then refused as damaged
+    side.write_text(json.dumps({**good, "count": 10 ** 12}))
+    result = run(*words)
+    assert result.exit_code == 1 and isinstance(result.exception, (SystemExit, type(None))), result.exception
     # a layout newer than this version reads
     side.write_text(json.dumps({**good, "sweepgen_sidecar": 99}))
     assert f"{side}: key 'sweepgen_sidecar': " in _one_error_line(run(*words), 2)
