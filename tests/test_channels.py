@@ -338,3 +338,30 @@ def test_a_connection_lost_during_the_second_table_leaves_every_output_off(playe
         assert "SWEEP1" in inst.traces and "SWEEP2" not in inst.traces
     assert info.value.step == "upload, output 2"
     assert str(info.value).endswith("every output (1, 2, 3, 4) switched off (confirmed on a new connection)")
+
+
+@pytest.mark.parametrize("lo, hi, offset, amplitude", [
+    (6.0, 9.0, 5.0, 8.0),        # centre 7.5 V is past the offset limit: offset 5 V, 8 Vpp reaches 9 V
+    (-2.0, 2.0, 0.0, 4.0),
+])
+def test_separate_amplitude_and_offset_limits_play_what_they_allow(lo, hi, offset, amplitude):
+    # an output limited to 10 Vpp and |offset| <= 5 V reaches 6..9 V with the offset at its limit
+    from sweepgen import sampling
+
+    gen = load_generator(str(BENCH))
+    chain = prepare(BASE).laser.chain
+    chain = dataclasses.replace(chain, safe_min=-20.0, safe_max=20.0)
+    q = sampling.quantisation(lo, hi, gen, chain)
+    assert (q.offset, q.amplitude) == (pytest.approx(offset), pytest.approx(amplitude))
+    assert q.offset - q.amplitude / 2 <= lo and hi <= q.offset + q.amplitude / 2
+
+
+def test_separate_limits_refuse_an_amplitude_beyond_them():
+    from sweepgen import sampling
+
+    gen = load_generator(str(BENCH))
+    chain = dataclasses.replace(prepare(BASE).laser.chain, safe_min=-20.0, safe_max=20.0)
+    with pytest.raises(CheckFailed, match="amplitude_max"):
+        sampling.quantisation(-6.0, 6.0, gen, chain)                   # 12 Vpp of a 10 Vpp output
+    with pytest.raises(CheckFailed, match="amplitude_max"):
+        sampling.quantisation(-3.0, 3.0, gen.for_output(3), chain)     # output 3: 5 Vpp
