@@ -466,9 +466,15 @@ def _judged_quantisation(report: CheckReport, playing):
 # -- laser rules -------------------------------------------------------------------
 def laser_findings(playing, sweep: SweepSamples) -> list[Finding]:
     """The laser's limits: mode-hop-free range, chirp and return rates, the actuator's safe input
-    range, slew, and each stage's own range."""
+    range, slew, and each stage's own range. The optical ones (mode-hop-free range, chirp and return
+    rates) judge what the laser's frequency does: with a pre-shaped drive, the plan it follows; the
+    drive's own (safe range, slew, stage ranges) judge the drive played."""
     laser, schedule = playing.laser, playing.schedule
-    return [_mode_hop_free(laser.limits, sweep), *_chirp_rates(laser.limits, schedule),
+    optical = sweep
+    if playing.preshaped is not None:
+        schedule = playing.preshaped.planned
+        optical = SweepSamples.of(schedule, laser.chain)
+    return [_mode_hop_free(laser.limits, optical), *_chirp_rates(laser.limits, schedule),
             _actuator_range(laser.limits, playing), _slew_rate(laser.limits, playing.drive_unit, sweep),
             *_stage_ranges(laser.chain, sweep)]
 

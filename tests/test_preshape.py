@@ -180,3 +180,13 @@ def test_drive_keys_are_read_strictly():
 
 def test_preshape_of_an_ideal_actuator_is_nothing():
     assert preshape(None, None, Response(), 1e6) is None
+
+
+def test_optical_limits_judge_what_the_laser_does(tmp_path):
+    # the pre-shaped drive commands steeper detuning changes than the plan, but the laser's frequency
+    # follows the plan: the laser's chirp-rate limit judges the plan, the drive's slew limit the drive
+    plain = playback.prepare(str(_slow(tmp_path, preshape=False)))
+    pb = playback.prepare(str(_slow(tmp_path)))
+    for rule in ("chirp_rate", "return_rate", "mode_hop_free"):
+        assert pb.report.finding(rule).value == pytest.approx(plain.report.finding(rule).value, rel=1e-9)
+    assert pb.report.finding("slew_rate").value > plain.report.finding("slew_rate").value
