@@ -192,11 +192,11 @@ def test_plan_plot_png_and_svg(tmp_path):
     assert bad.exit_code == 2 and ".png or .svg" in bad.stderr
 
 
-HEAVY = ("numpy", "scipy", "pint", "matplotlib", "pyvisa", "serial", "h5py")
+HEAVY = ("numpy", "scipy", "pint", "matplotlib", "pyvisa", "serial", "h5py", "dask", "distributed")
 
 
 @pytest.mark.parametrize("command", ["plan", "check", "simulate", "export", "upload", "calibrate", "inspect",
-                                     "compare", "emulate", "profiles", "demo"])
+                                     "compare", "emulate", "profiles", "demo", "scan", "optimise"])
 def test_help_imports_no_heavy_library(command):
     # DEVELOPERS.md, "Heavy imports are lazy": a command's --help is read before anything is computed
     code = ("import sys; from sweepgen.cli import main\n"
