@@ -19,15 +19,16 @@ Example
 from __future__ import annotations
 
 import copy
+import importlib
 import os
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any, Callable, Union
 
 from sweepgen.costs import DEFAULT_ATOMS
 from sweepgen.errors import CheckFailed, InputError
 from sweepgen.results import (CalibrationResult, CheckResult, CompareResult, ExportResult, InspectResult,
-                              PlanResult, SimulationResult, UploadResult)
+                              PlanResult, ScanResult, SimulationResult, UploadResult)
 
 #: what names a scenario: a built-in key, a path, a dict with the TOML's keys and unit strings, or a loaded one
 ScenarioSource = Union[str, "os.PathLike[str]", Mapping, Any]
@@ -602,3 +603,73 @@ def compare(scenario: ScenarioSource, measured: str | os.PathLike, *, marker: st
                                                                                  "--reference"), beat_sign=beat_sign)
     cmp = run(make_plan(sc), trace, marker=marker, marker_time=_quantity(marker_time, "s", "marker_time", "--marker"))
     return CompareResult(to_json(cmp), title=f"{sc.title} against {trace.path}", inner=(cmp, sc))
+
+
+# ---------------------------------------------------------------------------------------------
+# Many designs
+# ---------------------------------------------------------------------------------------------
+#: atoms per design of a scan (as ``sweepgen scan``)
+SCAN_ATOMS = 2000
+
+
+def scan(scenario: ScenarioSource, vary: str | Sequence[str] | Mapping[str, str], *, atoms: int = SCAN_ATOMS,
+         seed: int = 0, workers: int | None = None, cluster: str | None = None,
+         output: str | os.PathLike | None = None, progress: Callable | None = None) -> ScanResult:
+    """Check and simulate every design of a grid over keys of a scenario, all with the same seed
+    (``sweepgen scan``), so that the differences between designs are not noise.
+
+    Parameters
+    ----------
+    scenario : str, path-like or dict
+        A built-in key, a path or a dict with the TOML's keys (see :func:`load_scenario`).
+    vary : str, list of str, or dict
+        ``"KEY=START:STOP:N"`` (N values from START to STOP, with their unit), several of them, or
+        ``{KEY: "START:STOP:N"}``; every combination is a design.
+    atoms : int
+        Atoms per design.
+    seed : int
+        The seed every design uses (common random numbers).
+    workers : int, optional
+        Local processes (default: one per core; 1 runs in this process).
+    cluster : str, optional
+        Address of a Dask scheduler to run the designs on instead.
+    output : str or path-like, optional
+        Folder for ``NAME-scan.csv``, ``NAME-scan.json`` and ``NAME-scan.png`` (default: nothing written).
+    progress : callable, optional
+        ``progress(done, total)`` after each design.
+
+    Returns
+    -------
+    ScanResult
+        ``rows`` (each design's ``values``, ``verdict``, ``captured_fraction`` with its
+        ``captured_error``, ``final_velocity_mean`` in m/s), ``best()``; ``interrupted``
+        when Ctrl-C stopped it (the designs that finished are kept).
+
+    Example
+    -------
+    >>> r = scan("rb87-chopped-oven", {"chirp.force_fraction": "0.5:0.7:3"}, atoms=300)  # doctest: +SKIP
+    >>> r.best()["values"]                                                                  # doctest: +SKIP
+    {'chirp.force_fraction': 0.6}
+    """
+    service = importlib.import_module("sweepgen.scan")
+    if isinstance(vary, str):
+        vary = [vary]
+    elif isinstance(vary, Mapping):
+        vary = [f"{key}={value}" for key, value in vary.items()]
+    axes = [service.parse_vary(str(v)) for v in vary]
+    start = scenario
+    if isinstance(scenario, Mapping):
+        data = copy.deepcopy(dict(scenario))
+        start = service.Base(DICT_NAME, data, load_scenario(data).title)
+    result = service.scan(start, axes, atoms=atoms, seed=seed, workers=workers, cluster=cluster, progress=progress)
+    doc = result.to_json()
+    if output is not None:
+        from sweepgen.search_plots import plot_scan
+
+        Path(output).mkdir(exist_ok=True)           # the last level only, as export does
+        paths = service.write(result, output, result.stem)
+        if result.rows:
+            paths["plot"] = str(plot_scan(result, Path(output) / f"{result.stem}-scan.png"))
+        doc["files"] = paths
+    return ScanResult(doc, title=result.title, inner=result)
+

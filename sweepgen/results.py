@@ -32,7 +32,7 @@ from sweepgen._format import si
 from sweepgen.errors import CheckFailed
 
 __all__ = ["Result", "PlanResult", "CheckResult", "SimulationResult", "ExportResult", "UploadResult",
-           "CalibrationResult", "InspectResult", "CompareResult"]
+           "CalibrationResult", "InspectResult", "CompareResult", "ScanResult"]
 
 #: (JSON key, label, unit) of the numbers a plan prints, in the order it prints them
 PLAN_ROWS = (
@@ -163,13 +163,13 @@ class Result:
         return out
 
     # -- displays --------------------------------------------------------------------------
-    def rows(self) -> list[tuple[str, str]]:
+    def table_rows(self) -> list[tuple[str, str]]:
         """``(label, value with unit)`` of the headline numbers, as ``repr`` and HTML show them."""
         return [(label, si(self._doc[key], unit)) for key, label, unit in self.ROWS
                 if self._doc.get(key) is not None]
 
     def __repr__(self) -> str:
-        rows = self.rows()
+        rows = self.table_rows()
         width = max((len(label) for label, _ in rows), default=0)
         lines = [f"<{type(self).__name__}: {self._title}>"]
         lines += [f"  {label.ljust(width)}  {value}" for label, value in rows]
@@ -177,7 +177,7 @@ class Result:
 
     def _repr_html_(self) -> str:
         body = "".join(f"<tr><td style='text-align:left'>{html.escape(label)}</td>"
-                       f"<td style='text-align:right'>{html.escape(value)}</td></tr>" for label, value in self.rows())
+                       f"<td style='text-align:right'>{html.escape(value)}</td></tr>" for label, value in self.table_rows())
         return (f"<table><caption style='text-align:left'><b>{html.escape(type(self).__name__)}</b>: "
                 f"{html.escape(self._title)}</caption>{body}</table>{self._html_more()}")
 
@@ -287,7 +287,7 @@ class PlanResult(_Judged):
 
         return self.report.plan.schedule().detuning(np.asarray(t, dtype=float))
 
-    def rows(self):
+    def table_rows(self):
         sc = self.scenario
         rows = []
         for key, label, unit in self.ROWS:
@@ -336,7 +336,7 @@ class CheckResult(_Judged):
         """The scenario checked (:class:`sweepgen.Scenario`)."""
         return self._inner.scenario
 
-    def rows(self):
+    def table_rows(self):
         pb = self._inner
         rows = [("laser", f"{pb.laser.key} ({pb.laser.chain.describe()})"), ("generator", pb.generator.key)]
         choice = pb.report.rate_choice
@@ -479,7 +479,7 @@ class ExportResult(_Delivered):
     ROWS = (("sha256", "file sha256", None), ("table_sha256", "table_sha256", None),
             ("bytes", "bytes", "B"), ("period_count", "samples per period", "samples"))
 
-    def rows(self):
+    def table_rows(self):
         return [("data file", str(self._doc["paths"][0])), ("sidecar", str(self._doc["paths"][1]))] + [
             (label, str(self._doc[key]) if unit is None else si(self._doc[key], unit))
             for key, label, unit in self.ROWS if self._doc.get(key) is not None]
@@ -493,7 +493,7 @@ class UploadResult(_Delivered):
     whether the output was switched on.
     """
 
-    def rows(self):
+    def table_rows(self):
         d = self._doc
         return [("destination", str(d.get("destination"))), ("driver", str(d.get("driver"))),
                 ("bytes", si(d.get("bytes"), "B")), ("table_sha256", str(d.get("table_sha256"))),
@@ -509,8 +509,8 @@ class CalibrationResult(Result):
     ROWS = (("residual_rms", "residuals, RMS", "Hz"), ("residual_max", "residuals, max", "Hz"),
             ("uncertainty", "fit uncertainty (1σ, max)", "Hz"), ("change_from_old", "change from the old stage", "Hz"))
 
-    def rows(self):
-        return [("stage", str(self._doc["stage"])), ("profile written", str(self._doc["profile"]))] + super().rows()
+    def table_rows(self):
+        return [("stage", str(self._doc["stage"])), ("profile written", str(self._doc["profile"]))] + super().table_rows()
 
     def _figure(self):
         from sweepgen.plots import calibration_figure
@@ -531,8 +531,8 @@ class InspectResult(Result):
         """True when the file matches its sidecar."""
         return bool(self._doc["verified"])
 
-    def rows(self):
-        return [("file", str(self._doc["file"])), ("verified", "yes" if self.ok else "NO")] + super().rows()
+    def table_rows(self):
+        return [("file", str(self._doc["file"])), ("verified", "yes" if self.ok else "NO")] + super().table_rows()
 
     def _figure(self):
         from sweepgen.plots import table_figure
@@ -559,3 +559,31 @@ class CompareResult(Result):
 
         cmp, scenario = self._inner
         return compare_figure(cmp, scenario=scenario)
+
+
+class ScanResult(Result):
+    """The designs of a scan, each checked and simulated with the same seed (what ``sweepgen scan``
+    prints): ``rows`` (each design's ``values``, ``verdict``, ``failing_rules``,
+    ``captured_fraction`` and ``captured_error``, ``final_velocity_mean`` in m/s), ``axes``,
+    ``interrupted``; :meth:`best` is the passing design that captures most."""
+
+    def best(self, objective: str = "captured_fraction") -> dict | None:
+        """The passing row with the largest ``objective`` (None when no design passes)."""
+        return self._inner.best(objective)
+
+    def table_rows(self):
+        out = []
+        for row in self._doc["rows"]:
+            values = ", ".join(f"{k} = {v}" for k, v in row["values"].items())
+            p = row.get("captured_fraction")
+            captured = "—" if p is None else f"{100 * p:.2f} ± {100 * row['captured_error']:.2f} % captured"
+            verdict = {"pass": "ok", "fail": "FAIL " + ",".join(row["failing_rules"]),
+                       "invalid": "cannot exist"}.get(row["verdict"], row["verdict"])
+            out.append((values, f"{captured}, {verdict}"))
+        return out
+
+    def _figure(self):
+        from sweepgen.search_plots import scan_figure
+
+        return scan_figure(self._inner)
+

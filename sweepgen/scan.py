@@ -338,7 +338,7 @@ def scan(ref, axes, *, atoms: int, seed: int = 0, workers: int | None = None, cl
          progress=None) -> ScanResult:
     """Check and simulate every design of the grid of ``axes`` over scenario ``ref``, with the same seed.
 
-    Runs on all local cores by default (``workers`` to choose) or on the Dask scheduler at
+    ``ref`` is a built-in key, a path or a :class:`Base` (a table built elsewhere). Runs on all local cores by default (``workers`` to choose) or on the Dask scheduler at
     ``cluster`` (:func:`sweepgen.workers.run`). Ctrl-C returns the designs that finished,
     with ``interrupted`` set.
     """
@@ -347,7 +347,7 @@ def scan(ref, axes, *, atoms: int, seed: int = 0, workers: int | None = None, cl
     designs = math.prod(len(a.values) for a in axes)     # counted before the grid is built (10⁸ took 8 GB)
     if designs > MAX_DESIGNS:
         raise InputError(f"{designs} designs; at most {MAX_DESIGNS} in one scan (use fewer values)", key="--vary")
-    start = base(ref)
+    start = ref if isinstance(ref, Base) else base(ref)
     check_axes(start, axes)
     combos = grid(axes)
     tasks = [Design(start.path, start.data, c, atoms, seed) for c in combos]

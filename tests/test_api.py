@@ -193,3 +193,14 @@ def test_public_functions_keep_their_names_beside_modules_of_the_same_name():
     assert callable(sweepgen.simulate) and sweepgen.simulate.__module__ == "sweepgen.api"
     assert sweepgen.render.__module__ == "sweepgen.api" and sweepgen.compare.__module__ == "sweepgen.api"
     assert set(sweepgen.__all__) <= set(dir(sweepgen))
+
+
+def test_scan_document_equals_the_command_line_and_takes_a_dict(tmp_path):
+    vary = "chirp.force_fraction=0.5:0.6:2"
+    code, doc = cli_json("scan", SHIPPED[0], "--vary", vary, "--atoms", "100", "--workers", "1", "-o", tmp_path / "c")
+    api = sweepgen.scan(SHIPPED[0], vary, atoms=100, workers=1, output=tmp_path / "c")
+    assert code == 0 and doc == api.to_json() and (tmp_path / "c" / "rb87-chopped-oven-scan.png").is_file()
+    from_dict = sweepgen.scan(sweepgen.scenario_dict(SHIPPED[0]), {"chirp.force_fraction": "0.5:0.6:2"}, atoms=100,
+                              workers=1)
+    assert [r["captured_fraction"] for r in from_dict.rows] == [r["captured_fraction"] for r in api.rows]
+    assert api.best() in api.rows and "force_fraction = 0.6" in api._repr_html_()

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import importlib
 import io
 import json
 import math
@@ -12,10 +13,11 @@ import pytest
 from conftest import run_cli, scenario_dict, to_toml
 from scipy import constants as C
 
-from sweepgen import scan as service
 from sweepgen.errors import InputError
 from sweepgen.scenario import load_scenario
 from sweepgen.simulate import simulate
+
+service = importlib.import_module("sweepgen.scan")      # the module (sweepgen.scan is the public function)
 
 #: a pulsed Gaussian beam of two-level Rb-87 (no laser or generator: the plan itself is played)
 FAST = scenario_dict(source={"model": "gaussian", "temperature": None, "mean_velocity": "250 m/s",

@@ -191,22 +191,26 @@ class LateProgress:
     """A progress callback whose bar opens only when its length is known (:meth:`start`, called from
     the API's ``before_write`` / ``before_send`` hook); before that, progress is not drawn."""
 
-    def __init__(self, stack: contextlib.ExitStack):
+    def __init__(self, stack: contextlib.ExitStack, label: str | None = None, show: bool = False):
         self._stack, self._bar = stack, None
+        self._label, self._show = label, show
 
     def start(self, length: int, label: str, *, show: bool) -> None:
         self._bar = self._stack.enter_context(progress_bar(length, label, show=show))
 
     def __call__(self, done, total) -> None:
+        if self._bar is None and self._label is not None:
+            self.start(total, self._label, show=self._show)      # the total is known from the first call
         if self._bar is not None:
             self._bar(done, total)
 
 
 @contextlib.contextmanager
-def late_progress():
-    """Yield a :class:`LateProgress`; its bar is closed when the block ends."""
+def late_progress(label: str | None = None, *, show: bool = False):
+    """Yield a :class:`LateProgress`; its bar is closed when the block ends. With ``label`` the bar
+    opens by itself at the first progress report (when ``show``)."""
     with contextlib.ExitStack() as stack:
-        yield LateProgress(stack)
+        yield LateProgress(stack, label, show)
 
 
 # -- shared options ----------------------------------------------------------------------------

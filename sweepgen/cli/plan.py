@@ -97,7 +97,7 @@ def _plot(result, plot_file) -> str:
 def _print(result, drawn):
     sc = result.scenario
     click.echo(f"{sc.title}  [{sc.species.key}, {'pulsed' if sc.pulsed else 'continuous'} source]")
-    click.echo(table(result.rows()))
+    click.echo(table(result.table_rows()))
     timing = result.to_json().get("timing")
     if timing is not None:
         _print_timing(timing)

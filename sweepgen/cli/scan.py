@@ -6,8 +6,8 @@ import sys
 
 import click
 
-from sweepgen.cli._common import (OutputFolder, bounded, emit_json, handles_errors, json_option, progress_bar,
-                                  table)
+from sweepgen.cli._common import (OutputFolder, bounded, emit_json, handles_errors, json_option, late_progress,
+                                  options_named, table)
 
 #: atoms per design unless --atoms says otherwise
 SCAN_ATOMS = 2000
@@ -60,43 +60,34 @@ def command(scenario, vary, atoms, seed, workers, cluster, output, as_json):
       sweepgen scan my.toml --vary "chirp.start_velocity=220 m/s:300 m/s:5" \\
                             --vary light.saturation=1:5:5 -o scans/
     """
-    from pathlib import Path
+    import sweepgen
 
-    from sweepgen import scan as service
-    from sweepgen.search_plots import plot_scan
-
-    axes = [service.parse_vary(v) for v in vary]
-    total = 1
-    for axis in axes:
-        total *= len(axis.values)
-    with progress_bar(total, "designs", show=not as_json and sys.stderr.isatty()) as progress:
-        result = service.scan(scenario, axes, atoms=atoms, seed=seed, workers=workers, cluster=cluster,
-                              progress=progress)
-    Path(output).mkdir(exist_ok=True)           # only now: bad input leaves no folder behind
-    paths = service.write(result, output, result.stem)
-    if result.rows:
-        paths["plot"] = str(plot_scan(result, Path(output) / f"{result.stem}-scan.png"))
+    with options_named(vary="--vary", atoms="--atoms", seed="--seed", workers="--workers", cluster="--cluster"), \
+            late_progress("designs", show=not as_json and sys.stderr.isatty()) as progress:
+        result = sweepgen.scan(scenario, list(vary), atoms=atoms, seed=seed, workers=workers, cluster=cluster,
+                               output=output, progress=progress)
+    paths = result.files
     if as_json:
-        emit_json({**result.to_json(), "files": paths})
+        emit_json(result.to_json())
     else:
         _print(result, paths)
     if result.interrupted:
-        click.echo(f"sweepgen: interrupted: {len(result.rows)} of {result.total} designs finished and were "
+        click.echo(f"sweepgen: interrupted: {len(result.rows)} of {result.designs} designs finished and were "
                    f"written", err=True)
         raise SystemExit(130)
 
 
 def _print(result, paths) -> None:
-    click.echo(f"{result.title}  [{result.total} designs, {result.atoms} atoms each, seed {result.seed}, "
+    click.echo(f"{result.title}  [{result.designs} designs, {result.atoms} atoms each, seed {result.seed}, "
                f"{where_text(result.where)}]")
-    heads = [f"{a.key}" for a in result.axes]
+    heads = [a["key"] for a in result.axes]
     rows = []
     for r in result.rows:
         p = r["captured_fraction"]
         captured = "—" if p is None else f"{100 * p:.2f} ± {100 * r['captured_error']:.2f} %"
         verdict = {"pass": "ok", "fail": "FAIL " + ",".join(r["failing_rules"]),
                    "invalid": "cannot exist"}[r["verdict"]]
-        rows.append([*[str(r["values"][a.key]) for a in result.axes], captured, verdict])
+        rows.append([*[str(r["values"][a["key"]]) for a in result.axes], captured, verdict])
     click.echo(table(rows, headers=(*heads, "captured", "check")))
     best = result.best()
     if best is not None:
