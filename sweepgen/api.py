@@ -275,7 +275,8 @@ def simulate(scenario: ScenarioSource, *, atoms: int = DEFAULT_ATOMS, seed: int 
     True
     """
     from sweepgen.checker import check_plan, require_playable
-    from sweepgen.simulate import played_detuning, played_table, simulate as run
+    from sweepgen.playback import played_detuning, played_table
+    from sweepgen.simulate import simulate as run
 
     if ideal and table is not None:
         raise InputError("ideal plays the planned sweep and table an old table: give one of them", key="ideal")
@@ -287,7 +288,7 @@ def simulate(scenario: ScenarioSource, *, atoms: int = DEFAULT_ATOMS, seed: int 
     design = require_playable(check_plan(sc), "nothing was simulated")
     sweep = _table_sweep(sc, table, laser) if table is not None else None
     played = played_table(sc, sweep) if sweep is not None else played_detuning(sc, design.plan, ideal=ideal)
-    how = {"plan": design.plan, "ideal": ideal, "played": played}
+    how = {"plan": design.plan, "played": played}
     _check_memory(atoms)
     if before_run is not None:
         before_run(sc, atoms, seed, how)

@@ -81,7 +81,8 @@ def _check(sc, out: Path, files: dict, echo):
 def _simulate(pb, out: Path, files: dict, echo, *, atoms: int, seed: int) -> dict:
     """2. Simulate the atoms through what the hardware plays (and, beside it, the plan itself)."""
     from sweepgen import plots
-    from sweepgen.simulate import played_from, simulate
+    from sweepgen.playback import played_from
+    from sweepgen.simulate import simulate
 
     sim = simulate(pb.scenario, atoms=atoms, seed=seed, plan=pb.plan, played=played_from(pb))
     doc_sim = sim.to_json()

@@ -32,10 +32,12 @@ from pathlib import Path
 import numpy as np
 
 from sweepgen import checker, sampling
+from sweepgen._format import si
 from sweepgen.errors import CheckFailed, InputError
 from sweepgen.generator import load_generator
 from sweepgen.laser import load_laser
 from sweepgen.preshape import preshaped_playback
+from sweepgen.programs import DetuningProgram, Played, SampledProgram
 from sweepgen.render import drive_range, render
 from sweepgen.scenario import Scenario, load_scenario
 
@@ -776,3 +778,59 @@ def _refuse_empty(**addresses) -> None:
         if given is not None and not given.strip():
             raise InputError("expected an address, got an empty one (leave the option out to use the "
                              "generator profile's)", key=f"--{name.replace('_', '-')}")
+
+# ---------------------------------------------------------------------------------------------
+# What the atoms see: the detuning a playback plays, for the simulation
+# ---------------------------------------------------------------------------------------------
+def played_detuning(scenario, plan, *, ideal: bool = False) -> Played:
+    """The main light's detuning as the atoms see it.
+
+    With ``ideal`` the plan's schedule. Otherwise what the hardware plays, from
+    the playback service (:func:`prepare`, the very models the
+    checker judges): the planned detuning through the laser's tuning chain, at
+    the generator's sample rate, quantised to its codes and filtered by the
+    actuator response (:func:`sweepgen.response.track`), joined linearly
+    between samples. Without a laser and generator, or when the generator
+    cannot play the sweep at all, the plan is played and ``reason`` says why.
+    """
+    schedule = plan.schedule()
+    if ideal:
+        return Played(DetuningProgram(schedule), False, "the plan itself (--ideal)")
+    if scenario.laser_ref is None or scenario.generator_ref is None:
+        return Played(DetuningProgram(schedule), False, "the scenario names no laser and generator, so the "
+                                                        "plan itself is played")
+    return played_from(prepare(scenario), schedule)
+
+
+def played_table(scenario, sweep) -> Played:
+    """What a table read back plays (``sweep``: :class:`TableSweep`): through the
+    laser's chain, at the table's own sample rate and codes, filtered by the actuator response
+    (:func:`prepare_table`); without a generator profile, the table's detuning
+    as it is, without the actuator response."""
+    if scenario.generator_ref is None:
+        return Played(DetuningProgram(sweep.schedule), False,
+                      f"the table {sweep.table.path.name} through laser '{sweep.laser.key}', without the actuator "
+                      f"response (the scenario names no generator)")
+    pb = prepare_table(scenario, sweep.table, laser=sweep.laser)
+    return played_from(pb, sweep.schedule, f"the table's detuning through laser '{sweep.laser.key}'")
+
+
+def played_from(pb, schedule=None, fallback: str = "the plan itself") -> Played:
+    """The detuning a checked playback (:class:`Playback`) plays, from its
+    tracking (computed once, by the checker's ``tracking`` rule); ``schedule`` (default: the
+    plan's, with ``fallback`` naming it) when the generator cannot play it."""
+    schedule = pb.plan.schedule() if schedule is None else schedule
+    tracking = pb.report.tracking
+    if tracking is None:
+        main = pb.main
+        why = (main.rate_refusal if main is not None and main.rate_refusal else
+               "; ".join(f.message for f in pb.report.failures()[:1]))
+        return Played(DetuningProgram(schedule), False, f"the generator cannot play the sweep ({why}), so "
+                                                        f"{fallback} is played")
+    in_chirp = schedule.kinds(tracking.time) == "chirp"
+    error = float(np.max(np.abs(tracking.error[in_chirp]))) if np.any(in_chirp) else 0.0
+    quantised = "quantised to its codes, " if pb.report.quantisation is not None else ""
+    shaped = "a pre-shaped drive " if pb.main is not None and pb.main.preshaped is not None else ""
+    reason = (f"laser '{pb.laser.key}' driven by generator '{pb.generator.key}' at {si(pb.report.rate_choice.sample_rate, 'Sa/s')}, "
+              f"{shaped}{quantised}through the actuator response ({pb.laser.response.model})")
+    return Played(SampledProgram(tracking.actual, schedule.period), True, reason, error, pb.report.rate_choice.sample_rate)

@@ -14,6 +14,7 @@ Both repeat with their period, so any real time is valid.
 from __future__ import annotations
 
 import bisect
+from dataclasses import dataclass
 import math
 
 import numpy as np
@@ -163,3 +164,18 @@ class SampledProgram:
             if seg.size:
                 mn, mx = min(mn, float(seg.min())), max(mx, float(seg.max()))
         return mn, mx
+
+
+@dataclass(frozen=True)
+class Played:
+    """Which detuning the atoms see: the hardware's (through chain, codes and actuator) or the plan's."""
+
+    program: object                 # DetuningProgram or SampledProgram
+    hardware: bool                  # True: the detuning the hardware plays
+    reason: str                     # why the plan is played, or what plays the hardware
+    tracking_error: float | None = None   # Hz, largest |played − planned| during the chirp
+    sample_rate: float | None = None      # Sa/s of the played table
+
+    def to_json(self) -> dict:
+        return {"detuning": "hardware" if self.hardware else "plan", "reason": self.reason,
+                "tracking_error_max": self.tracking_error, "sample_rate": self.sample_rate}

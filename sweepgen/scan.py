@@ -246,10 +246,9 @@ def judge(sc):
     if sc.laser_ref is None or sc.generator_ref is None:
         return checker.check_plan(sc), None
     from sweepgen import playback
-    from sweepgen.simulate import played_from
 
     pb = playback.prepare(sc)
-    played = played_from(pb) if pb.channels else None
+    played = playback.played_from(pb) if pb.channels else None
     return pb.report, played
 
 

@@ -5,7 +5,7 @@ emits over its pulse, a continuous beam uniformly over one period; from a disc o
 the source's radius, in directions set by its divergence or by a collimating
 aperture) with velocities drawn from the source model, and fly along +z through
 the slowing light, which travels along -z and is on all the time with the
-detuning the hardware plays (by default; the plan itself with ``ideal=True``).
+detuning its caller gives (the hardware's, from the playback service, or the plan itself).
 The model, per atom and time step ``dt`` (README.md, "Physics background"):
 
 * scattering rate ``R = f Γ s / (1 + s + (2·2π(Δ + v/λ)/Γ)²)``
@@ -103,18 +103,17 @@ import numpy as np
 from scipy import constants as C
 
 from sweepgen import physics
-from sweepgen._format import si
 from sweepgen._flight import (ARRIVED, DARK, HORIZON_FACTOR, LARGE_COUNT, NOT_ARRIVED, POSITION_FRACTION,
                               STEP_FRACTION, TURNED_BACK, Atoms, Flight, expected_counts, peak_saturation,
                               propagate, velocity_width)
 from sweepgen.costs import DEFAULT_ATOMS
 from sweepgen.errors import InputError
-from sweepgen.programs import DetuningProgram, SampledProgram
+from sweepgen.programs import DetuningProgram, Played
 from sweepgen.workers import run as run_tasks
 
 __all__ = ["ARRIVED", "DARK", "HORIZON_FACTOR", "LARGE_COUNT", "NOT_ARRIVED", "POSITION_FRACTION",
-           "STEP_FRACTION", "TURNED_BACK", "Atoms", "Flight", "DetuningProgram", "SampledProgram",
-           "Played", "SimulationResult", "draw_atoms", "played_detuning", "played_from", "played_table", "expected_counts", "peak_saturation", "propagate", "simulate",
+           "STEP_FRACTION", "TURNED_BACK", "Atoms", "Flight", "DetuningProgram",
+           "Played", "SimulationResult", "draw_atoms", "expected_counts", "peak_saturation", "propagate", "simulate",
            "velocity_width", "DEFAULT_ATOMS", "CHUNK_ATOMS", "Chunk", "ChunkResult", "chunks", "fly_chunk"]
 
 #: most atoms in one part of a simulation (:func:`chunks`); a part is one task for the workers
@@ -289,81 +288,7 @@ class SimulationResult:
                 "arrival_time_captured": np.histogram(t_cap, bins=tedges)[0]}
 
 
-# ----------------------------------------------------------------------------------
-@dataclass(frozen=True)
-class Played:
-    """Which detuning the atoms see: the hardware's (through chain, codes and actuator) or the plan's."""
-
-    program: object                 # DetuningProgram or SampledProgram
-    hardware: bool                  # True: the detuning the hardware plays
-    reason: str                     # why the plan is played, or what plays the hardware
-    tracking_error: float | None = None   # Hz, largest |played − planned| during the chirp
-    sample_rate: float | None = None      # Sa/s of the played table
-
-    def to_json(self) -> dict:
-        return {"detuning": "hardware" if self.hardware else "plan", "reason": self.reason,
-                "tracking_error_max": self.tracking_error, "sample_rate": self.sample_rate}
-
-
-def played_detuning(scenario, plan, *, ideal: bool = False) -> Played:
-    """The main light's detuning as the atoms see it.
-
-    With ``ideal`` the plan's schedule. Otherwise what the hardware plays, from
-    the playback service (:func:`sweepgen.playback.prepare`, the very models the
-    checker judges): the planned detuning through the laser's tuning chain, at
-    the generator's sample rate, quantised to its codes and filtered by the
-    actuator response (:func:`sweepgen.response.track`), joined linearly
-    between samples. Without a laser and generator, or when the generator
-    cannot play the sweep at all, the plan is played and ``reason`` says why.
-    """
-    schedule = plan.schedule()
-    if ideal:
-        return Played(DetuningProgram(schedule), False, "the plan itself (--ideal)")
-    if scenario.laser_ref is None or scenario.generator_ref is None:
-        return Played(DetuningProgram(schedule), False, "the scenario names no laser and generator, so the "
-                                                        "plan itself is played")
-    from sweepgen import playback
-
-    return played_from(playback.prepare(scenario), schedule)
-
-
-def played_table(scenario, sweep) -> Played:
-    """What a table read back plays (``sweep``: :class:`sweepgen.playback.TableSweep`): through the
-    laser's chain, at the table's own sample rate and codes, filtered by the actuator response
-    (:func:`sweepgen.playback.prepare_table`); without a generator profile, the table's detuning
-    as it is, without the actuator response."""
-    if scenario.generator_ref is None:
-        return Played(DetuningProgram(sweep.schedule), False,
-                      f"the table {sweep.table.path.name} through laser '{sweep.laser.key}', without the actuator "
-                      f"response (the scenario names no generator)")
-    from sweepgen import playback
-
-    pb = playback.prepare_table(scenario, sweep.table, laser=sweep.laser)
-    return played_from(pb, sweep.schedule, f"the table's detuning through laser '{sweep.laser.key}'")
-
-
-def played_from(pb, schedule=None, fallback: str = "the plan itself") -> Played:
-    """The detuning a checked playback (:class:`sweepgen.playback.Playback`) plays, from its
-    tracking (computed once, by the checker's ``tracking`` rule); ``schedule`` (default: the
-    plan's, with ``fallback`` naming it) when the generator cannot play it."""
-    schedule = pb.plan.schedule() if schedule is None else schedule
-    tracking = pb.report.tracking
-    if tracking is None:
-        main = pb.main
-        why = (main.rate_refusal if main is not None and main.rate_refusal else
-               "; ".join(f.message for f in pb.report.failures()[:1]))
-        return Played(DetuningProgram(schedule), False, f"the generator cannot play the sweep ({why}), so "
-                                                        f"{fallback} is played")
-    in_chirp = schedule.kinds(tracking.time) == "chirp"
-    error = float(np.max(np.abs(tracking.error[in_chirp]))) if np.any(in_chirp) else 0.0
-    quantised = "quantised to its codes, " if pb.report.quantisation is not None else ""
-    shaped = "a pre-shaped drive " if pb.main is not None and pb.main.preshaped is not None else ""
-    reason = (f"laser '{pb.laser.key}' driven by generator '{pb.generator.key}' at {si(pb.report.rate_choice.sample_rate, 'Sa/s')}, "
-              f"{shaped}{quantised}through the actuator response ({pb.laser.response.model})")
-    return Played(SampledProgram(tracking.actual, schedule.period), True, reason, error, pb.report.rate_choice.sample_rate)
-
-
-def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None, ideal: bool = False,
+def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None,
              played: Played | None = None, baselines: bool = True,
              step_fraction: float = STEP_FRACTION, workers: int | None = None, cluster: str | None = None,
              progress=None) -> SimulationResult:
@@ -382,12 +307,12 @@ def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None, 
         Seed of :class:`numpy.random.SeedSequence`; the same seed gives the same result.
     plan : sweepgen.planner.Plan, optional
         The plan (computed when not given).
-    ideal : bool
-        Play the plan itself instead of what the hardware plays (:func:`played_detuning`).
-        When the hardware is played, the plan is also flown with the same atoms and
-        its captured fraction reported beside (``ideal_captured_fraction``).
-    played : Played, optional
-        The detuning to play instead (e.g. :func:`played_table`).
+    played : sweepgen.programs.Played, optional
+        The detuning the atoms fly through; by default the plan itself. What the
+        hardware plays comes from the playback service
+        (:func:`sweepgen.playback.played_detuning`, :func:`sweepgen.playback.played_table`);
+        when it is the hardware's, the plan is also flown with the same atoms and its
+        captured fraction reported beside (``ideal_captured_fraction``).
     baselines : bool
         Also run the no-light and fixed-frequency baselines (otherwise their
         fractions are reported as zero atoms captured; for tests that need only the run).
@@ -410,7 +335,7 @@ def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None, 
     p = make_plan(scenario) if plan is None else plan
     schedule = p.schedule()
     if played is None:
-        played = played_detuning(scenario, p, ideal=ideal)
+        played = Played(DetuningProgram(schedule), False, "the plan itself")
     programs = (played.program, DetuningProgram.fixed(schedule.start_detuning),
                 DetuningProgram(schedule) if played.hardware else None)
     tasks = chunks(scenario, atoms, seed, programs, baselines=baselines, step_fraction=step_fraction)

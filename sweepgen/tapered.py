@@ -197,7 +197,8 @@ def compare(scenario, *, atoms: int = 2000, seed: int = 0, plan=None, chirp=None
     it. Pure: no printing, no files.
     """
     from sweepgen.planner import plan as make_plan
-    from sweepgen.simulate import Played, simulate
+    from sweepgen.programs import Played
+    from sweepgen.simulate import simulate
 
     p = make_plan(scenario) if plan is None else plan
     field = tapered_field(p)

@@ -403,7 +403,7 @@ def test_simulate_plays_what_the_hardware_plays(tmp_path):
     from conftest import CHECKED_SCENARIO, PIEZO_LASER, merged, write_checked
     from sweepgen.programs import SampledProgram
     from sweepgen.scenario import load_scenario
-    from sweepgen.simulate import played_detuning
+    from sweepgen.playback import played_detuning
 
     slow = merged(PIEZO_LASER, response={"model": "first-order", "corner": "1 kHz"},
                   limits={"max_chirp_rate": "10 THz/s", "max_slew": "1 kV/ms"})
@@ -417,10 +417,10 @@ def test_simulate_plays_what_the_hardware_plays(tmp_path):
     tau = 1 / (2 * math.pi * 1e3)
     assert played.tracking_error == pytest.approx(p.chirp_rate_max * tau, rel=0.05)
     assert not played_detuning(sc, p, ideal=True).hardware
-    doc = simulate(sc, atoms=400, seed=3, baselines=False).to_json()
+    doc = simulate(sc, atoms=400, seed=3, baselines=False, played=played).to_json()
     assert doc["played"]["detuning"] == "hardware" and "first-order" in doc["played"]["reason"]
     assert doc["ideal_captured_fraction"] > 0.5
     # the lagging laser stays redder than planned: the atoms leave it faster
     assert doc["final_velocity_mean"] > doc["ideal_final_velocity_mean"] + 1.0
-    ideal = simulate(sc, atoms=400, seed=3, baselines=False, ideal=True).to_json()
+    ideal = simulate(sc, atoms=400, seed=3, baselines=False).to_json()   # the plan, by default
     assert ideal["played"]["detuning"] == "plan" and "ideal_captured_fraction" not in ideal

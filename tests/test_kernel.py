@@ -107,7 +107,7 @@ def test_without_numba_the_numpy_step_is_used():
         "from sweepgen import _flight, _kernel\n"
         "from sweepgen.scenario import load_scenario\n"
         "from sweepgen.simulate import simulate\n"
-        "doc = simulate(load_scenario('rb87-chopped-oven'), atoms=300, seed=1, baselines=False, ideal=True).to_json()\n"
+        "doc = simulate(load_scenario('rb87-chopped-oven'), atoms=300, seed=1, baselines=False).to_json()\n"
         "try:\n"
         "    from sweepgen.simulate import propagate\n"
         "    propagate(None, None, None, None, kernel='compiled')\n"

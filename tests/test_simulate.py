@@ -405,8 +405,8 @@ def test_the_same_seed_gives_the_same_result_with_any_number_of_workers(monkeypa
     monkeypatch.setattr(simulation, "CHUNK_ATOMS", 250)
     sc = make_scenario(source=NARROW, chirp=QUIET)
     seen = []
-    one = simulate(sc, atoms=900, seed=4, ideal=True, workers=1, progress=lambda d, t: seen.append((d, t)))
-    two = simulate(sc, atoms=900, seed=4, ideal=True, workers=2)
+    one = simulate(sc, atoms=900, seed=4, workers=1, progress=lambda d, t: seen.append((d, t)))
+    two = simulate(sc, atoms=900, seed=4, workers=2)
     assert seen == [(k, 4) for k in range(1, 5)]          # four parts: 225 atoms each
     np.testing.assert_array_equal(one.atoms.velocity, two.atoms.velocity)
     for a, b in ((one.flight, two.flight), (one.no_light, two.no_light), (one.fixed_frequency, two.fixed_frequency)):
@@ -433,7 +433,7 @@ def test_a_single_part_flies_the_streams_of_the_seed_itself():
     # up to CHUNK_ATOMS atoms the run is what it was before parts: streams SeedSequence(seed).spawn(5)
     # (atoms, light, no light, fixed frequency, plan)
     sc = make_scenario(source=NARROW, chirp=QUIET)
-    r = simulate(sc, atoms=400, seed=9, ideal=True)
+    r = simulate(sc, atoms=400, seed=9)
     streams = np.random.SeedSequence(9).spawn(5)
     atoms = draw_atoms(sc, 400, np.random.default_rng(streams[0]))
     flight = propagate(sc, atoms, DetuningProgram(plan(sc).schedule()), np.random.default_rng(streams[1]))
@@ -445,7 +445,7 @@ def test_the_played_reason_prints_the_sample_rate_with_a_prefix():
     # a person reads this line (simulate's human output, the demo's summary): 8 MSa/s, not 8e+06 Sa/s
     from sweepgen.planner import plan
     from sweepgen.scenario import load_scenario
-    from sweepgen.simulate import played_detuning
+    from sweepgen.playback import played_detuning
 
     sc = load_scenario("rb87-chopped-oven")
     played = played_detuning(sc, plan(sc))

@@ -63,7 +63,7 @@ def spread_error(v) -> float:
 def run(key: str, atoms: int, fraction: float, seed: int, workers) -> dict:
     sc = load_scenario(key)
     t0 = time.perf_counter()
-    result = simulate(sc, atoms=atoms, seed=seed, ideal=True, baselines=False, step_fraction=fraction,
+    result = simulate(sc, atoms=atoms, seed=seed, baselines=False, step_fraction=fraction,
                       workers=workers)
     doc = result.to_json()
     cap = result.captured()
