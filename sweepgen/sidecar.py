@@ -191,7 +191,9 @@ def provenance(scenario, laser=None, generator=None) -> dict:
 
     ``scenario_digest`` (in :func:`build`) already covers the scenario and its
     species file; this adds the scenario file itself and the laser and
-    generator profiles (objects with ``key`` and ``path``, as loaded).
+    generator profiles (objects with ``key`` and ``path``, as loaded). A scenario
+    built from a dict (:func:`sweepgen.load_scenario`) has no file: its entry is
+    None and ``scenario_digest`` alone names it.
     """
     def entry(key, path):
         if path is None:
@@ -199,7 +201,8 @@ def provenance(scenario, laser=None, generator=None) -> dict:
         path = Path(str(path))
         return {"key": key, "file": path.name, "sha256": file_digest(path)}
 
-    return {"scenario": entry(Path(str(scenario.path)).stem, scenario.path),
+    from_file = Path(str(scenario.path)).is_file()
+    return {"scenario": entry(Path(str(scenario.path)).stem, scenario.path) if from_file else None,
             "laser": entry(getattr(laser, "key", None), getattr(laser, "path", None)),
             "generator": entry(getattr(generator, "key", None), getattr(generator, "path", None))}
 

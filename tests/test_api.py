@@ -204,3 +204,11 @@ def test_scan_document_equals_the_command_line_and_takes_a_dict(tmp_path):
                               workers=1)
     assert [r["captured_fraction"] for r in from_dict.rows] == [r["captured_fraction"] for r in api.rows]
     assert api.best() in api.rows and "force_fraction = 0.6" in api._repr_html_()
+
+
+def test_a_dict_built_scenario_exports_and_uploads_named_by_its_digest(tmp_path):
+    doc = sweepgen.scenario_dict(SHIPPED[0])
+    exported = sweepgen.export(doc, "csv", tmp_path / "t")
+    assert exported.to_json()["paths"][0].endswith("dict.csv")
+    dry = sweepgen.upload(doc, dry_run=True).to_json()
+    assert dry["provenance"]["scenario"] is None and dry["provenance"]["scenario_digest"]
