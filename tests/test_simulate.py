@@ -450,3 +450,26 @@ def test_the_played_reason_prints_the_sample_rate_with_a_prefix():
     sc = load_scenario("rb87-chopped-oven")
     played = played_detuning(sc, plan(sc))
     assert played.sample_rate == 8e6 and " at 8 MSa/s, " in played.reason
+
+
+@pytest.mark.slow
+def test_halving_the_step_moves_no_statistic_of_a_large_run_beyond_its_error():
+    # the convergence study (tests/benchmarks/study_convergence.py, 10⁶ atoms, README "Performance") at a
+    # fifth of its size: 2·10⁵ atoms of the 87Rb scenario, the plan played, the default step against half of
+    # it (two runs of the same seed; errors taken as of independent runs: binomial sqrt(f(1-f)/n),
+    # σ/sqrt(n) for means). The former step (0.1) moved this mean final velocity by 2.5 errors at 10⁶ atoms.
+    sc = load_scenario("rb87-chopped-oven")
+    n = 200_000
+    runs = [simulate(sc, atoms=n, seed=3, ideal=True, baselines=False, step_fraction=f)
+            for f in (STEP_FRACTION, STEP_FRACTION / 2)]
+    figures = []
+    for r in runs:
+        cap = r.captured()
+        v, photons = r.flight.final_velocity[cap], r.flight.photons[cap]
+        f = float(cap.mean())
+        figures.append({"captured": (f, math.sqrt(f * (1 - f) / n)),
+                        "mean velocity": (float(v.mean()), float(v.std(ddof=1)) / math.sqrt(v.size)),
+                        "photons": (float(photons.mean()), float(photons.std(ddof=1)) / math.sqrt(v.size))})
+    for name, (x, sx) in figures[0].items():
+        y, sy = figures[1][name]
+        assert abs(x - y) < 3 * math.hypot(sx, sy), (name, x, y)

@@ -18,9 +18,19 @@ alike, and the best of the repeats of each is compared. All three run in this
 one thread, so they are timed in processor time (``time.process_time``), which
 other work on a shared machine disturbs less than the wall clock.
 
-    python tests/benchmarks/bench_simulate.py [--scenario KEY_OR_PATH] [--atoms N] [--repeat N]
+The step is computed by the default kernel (compiled with numba when it is
+installed); ``--kernel numpy`` times the NumPy step instead.
 
-Prints the throughputs and their ratios (simulation / floor; the issue's aim is >= 0.5).
+``--cores`` times the whole simulation (:func:`sweepgen.simulate.simulate`,
+the plan played, no baselines: one flight per atom) of 10⁵ atoms of every
+shipped scenario on all cores against one core (``workers=1``), interleaved,
+median of ``--repeat`` rounds after a warm-up round, in wall time (the aim is
+>= 1.8 on two cores). The parts, and so the work, are the same either way.
+
+    python tests/benchmarks/bench_simulate.py [--scenario KEY_OR_PATH] [--atoms N] [--repeat N] [--kernel K]
+    python tests/benchmarks/bench_simulate.py --cores [--atoms N] [--repeat N]
+
+Prints the throughputs and their ratios (simulation / floor; the issue's aim is >= 0.5 per core).
 """
 
 from __future__ import annotations
@@ -30,9 +40,13 @@ import time
 
 import numpy as np
 
+import importlib
+
 from sweepgen.planner import plan
 from sweepgen.scenario import load_scenario
 from sweepgen.simulate import DetuningProgram, draw_atoms, propagate
+
+SCENARIOS = ("rb87-chopped-oven", "na23-continuous-focused", "caf-buffer-gas")
 
 
 class Recorder:
@@ -75,27 +89,56 @@ def floor_time(block: int, total: int, rng) -> float:
     return (time.process_time() - t0) * total / (reps * block)
 
 
+def cores(atoms: int, repeat: int) -> None:
+    """Wall time of 10⁵ atoms (``atoms``) of each shipped scenario on all cores against one core."""
+    from _interleave import load, medians
+
+    from sweepgen.workers import cores as count
+
+    simulation = importlib.import_module("sweepgen.simulate")
+    print(load())
+    for key in SCENARIOS:
+        sc = load_scenario(key)
+        p = plan(sc)
+
+        def timed(workers, sc=sc, p=p):
+            t0 = time.perf_counter()
+            r = simulation.simulate(sc, atoms=atoms, seed=1, plan=p, ideal=True, baselines=False, workers=workers)
+            return {"seconds": time.perf_counter() - t0, "atom_steps": r.flight.atom_steps}
+
+        m = medians({"one core": lambda: timed(1), "all cores": lambda: timed(None)}, repeat)
+        one, every = m["one core"]["seconds"], m["all cores"]["seconds"]
+        print(f"{key}: {atoms} atoms, {m['one core']['atom_steps']:,.0f} atom-steps, one core {one:6.1f} s, "
+              f"all {count()} cores {every:6.1f} s: ratio {one / every:4.2f} (aim >= 1.8 on 2 cores; "
+              f"median of {repeat})")
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--scenario", default="rb87-chopped-oven")
-    ap.add_argument("--atoms", type=int, default=20000)
+    ap.add_argument("--atoms", type=int, default=None, help="default 20000 (10⁵ with --cores)")
     ap.add_argument("--repeat", type=int, default=5)
+    ap.add_argument("--kernel", default=None, help="compiled or numpy (default: compiled when numba is installed)")
+    ap.add_argument("--cores", action="store_true", help="all cores against one core, every shipped scenario")
     args = ap.parse_args(argv)
+    if args.cores:
+        return cores(args.atoms or 100_000, args.repeat)
+    args.atoms = args.atoms or 20000
 
     sc = load_scenario(args.scenario)
     program = DetuningProgram(plan(sc).schedule())
     atoms = draw_atoms(sc, args.atoms, np.random.default_rng(0))
     recorder = Recorder(np.random.default_rng(2))
-    flight = propagate(sc, atoms, program, recorder)          # also a warm-up
+    flight = propagate(sc, atoms, program, recorder, kernel="numpy")   # the draws the model asks for
     total, steps = flight.atom_steps, flight.steps
     block = total // steps
     rng_other = np.random.default_rng(1)
     sims, floors, draws = [], [], []
     for _ in range(args.repeat):
         t0 = time.process_time()
-        again = propagate(sc, atoms, program, np.random.default_rng(2))
+        again = propagate(sc, atoms, program, np.random.default_rng(2), kernel=args.kernel)
         sims.append(time.process_time() - t0)
-        assert again.atom_steps == total                       # same seed, same run
+        total = again.atom_steps
         floors.append(floor_time(block, total, rng_other))
         draws.append(replay(recorder.calls, rng_other))
     sim, flo, drw = (total / min(x) for x in (sims, floors, draws))
@@ -105,12 +148,12 @@ def main(argv=None):
         counts[name] = counts.get(name, 0) + int(np.prod(size))
     per = ", ".join(f"{counts.get(k, 0) / total:.3f} {k.replace('standard_', '')}"
                     for k in ("standard_normal", "poisson", "standard_exponential"))
-    print(f"scenario: {sc.title}")
+    print(f"scenario: {sc.title}; step kernel: {again.kernel}")
     print(f"atoms: {args.atoms}, steps: {steps}, atom-steps: {total:,}, mean atoms in flight: {block}")
     print(f"draws per atom-step: {per}")
     print(f"simulation: {sim / 1e6:8.2f} M atom-steps/s  (best of {args.repeat})")
     print(f"floor:      {flo / 1e6:8.2f} M normal draws/s  (one per atom-step, same blocks)")
-    print(f"draws only: {drw / 1e6:8.2f} M atom-steps/s  (the run's own random numbers, nothing else)")
+    print(f"draws only: {drw / 1e6:8.2f} M atom-steps/s  (the NumPy step's own random numbers, nothing else)")
     print(f"ratio:      {sim / flo:8.3f}  (aim >= 0.5; the draws alone would give {drw / flo:.3f})")
 
 
