@@ -17,7 +17,7 @@ from sweepgen import _kernel, physics
 
 #: largest velocity change per step as a fraction of the natural velocity width λΓ/2π (converged at 10⁶
 #: atoms: see sweepgen.simulate, "Time step")
-STEP_FRACTION = 0.05
+STEP_FRACTION = 0.025
 #: largest distance moved per step as a fraction of the target distance (or of z_R)
 POSITION_FRACTION = 1.0 / 200.0
 #: expected counts at or above this are drawn from the normal law of the same mean and variance

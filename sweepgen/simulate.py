@@ -56,8 +56,8 @@ Time step (the rule): the largest velocity change any atom can receive in one
 step, one recoil per photon at the largest scattering rate it can meet during
 the step (the detuning range swept in the step, the peak saturation on the beam
 line, the atom's velocity within the step's own change; the off-resonant level
-counts as a second resonance), is at most ``STEP_FRACTION = 0.05`` of the
-Lorentzian's natural velocity width ``λΓ/2π`` (for 87Rb 0.23 m/s, about 40
+counts as a second resonance), is at most ``STEP_FRACTION = 0.025`` of the
+Lorentzian's natural velocity width ``λΓ/2π`` (for 87Rb 0.12 m/s, about 20
 recoils). Steps also move no atom by more than ``POSITION_FRACTION`` of the
 target distance (or of ten Rayleigh ranges of a focused beam). So steps are
 short while any atom is near resonance and long when every atom is far from it.
@@ -66,8 +66,10 @@ The rule is converged at 10⁶ atoms (``tests/benchmarks/study_convergence.py``,
 figures in README.md, "Performance"): halving the step moves the captured
 fraction, the captured atoms' mean final velocity and its spread, the
 turned-back fraction and the photons per captured atom of every shipped
-scenario by less than about one standard error. At the former 0.1 it did not:
-halving it moved the 87Rb mean final velocity by 2.5 standard errors (9 mm/s).
+scenario by at most 1.5 standard errors (CaF: 0.025 against 0.0125; 87Rb and
+23Na already from 0.05 to 0.025). Coarser steps did not: halving 0.1 moved the
+87Rb mean final velocity by 2.5 standard errors, halving 0.05 the CaF one by 3.6
+(16 mm/s).
 The step is set by the atoms of one part of the run (:func:`chunks`), so it
 does not depend on how many atoms a run has beyond ``CHUNK_ATOMS``.
 

@@ -457,7 +457,7 @@ def test_halving_the_step_moves_no_statistic_of_a_large_run_beyond_its_error():
     # the convergence study (tests/benchmarks/study_convergence.py, 10⁶ atoms, README "Performance") at a
     # fifth of its size: 2·10⁵ atoms of the 87Rb scenario, the plan played, the default step against half of
     # it (two runs of the same seed; errors taken as of independent runs: binomial sqrt(f(1-f)/n),
-    # σ/sqrt(n) for means). The former step (0.1) moved this mean final velocity by 2.5 errors at 10⁶ atoms.
+    # σ/sqrt(n) for means). At 10⁶ atoms halving 0.1 moved this mean final velocity by 2.5 errors.
     sc = load_scenario("rb87-chopped-oven")
     n = 200_000
     runs = [simulate(sc, atoms=n, seed=3, ideal=True, baselines=False, step_fraction=f)
