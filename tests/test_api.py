@@ -143,6 +143,7 @@ def test_each_result_renders_html_with_its_headline_numbers(tmp_path):
         assert type(result).__name__ in repr(result)
 
 
+@pytest.mark.slow
 def test_plot_returns_a_figure_or_writes_the_file(tmp_path):
     from matplotlib.figure import Figure
 
@@ -195,6 +196,7 @@ def test_public_functions_keep_their_names_beside_modules_of_the_same_name():
     assert set(sweepgen.__all__) <= set(dir(sweepgen))
 
 
+@pytest.mark.slow
 def test_scan_document_equals_the_command_line_and_takes_a_dict(tmp_path):
     vary = "chirp.force_fraction=0.5:0.6:2"
     code, doc = cli_json("scan", SHIPPED[0], "--vary", vary, "--atoms", "100", "--workers", "1", "-o", tmp_path / "c")

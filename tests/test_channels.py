@@ -189,6 +189,7 @@ def test_a_fault_on_the_second_output_leaves_the_first_switched_off(played):
     assert text.endswith("every output (1, 2, 3, 4) switched off (confirmed on the same connection)")
 
 
+@pytest.mark.slow
 def test_an_output_the_instrument_does_not_have_is_refused_in_its_words(played):
     gen = load_generator(str(BENCH))
     with instrument_server(dataclasses.replace(gen, channels=1, outputs={})) as server:
@@ -232,6 +233,7 @@ def channel_sets(draw):
     return channels, {"delay": f"{draw(st.floats(0, 0.5)):.4f} ms", "markers": markers}
 
 
+@pytest.mark.slow
 @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(chosen=channel_sets())
 def test_no_combination_of_channels_leaves_a_safe_range(write, chosen):
@@ -288,6 +290,7 @@ def test_check_and_plan_show_every_channel_and_the_timing(write):
     assert "gate: light on (main, repump)" in plan.stdout and Path("plan.png").stat().st_size > 0
 
 
+@pytest.mark.slow
 def test_upload_is_off_until_arm_and_a_refusal_is_exit_1(write, tmp_path):
     path = write()
     gen = load_generator(str(BENCH))

@@ -53,6 +53,7 @@ def test_upload_with_arm_prints_the_caution_and_arms(rendered):
     assert "output: ON" in result.stdout and "verify" in result.stdout
 
 
+@pytest.mark.slow
 def test_the_checkers_warnings_come_before_the_instrument_is_touched(rendered):
     """The scenario's end velocity (10 m/s) lies within 20 % of the target's capture velocity (12 m/s):
     the checker warns, and upload says so on stderr before the caution and the upload, in the JSON,

@@ -62,6 +62,7 @@ def test_upload_over_a_socket_url_commits_the_rendered_table():
     assert all(a[0] <= b[0] for a, b in zip(seen, seen[1:]))
 
 
+@pytest.mark.slow
 def test_arm_only_when_asked():
     table, _ = dds_table(500)
     with virtual_board(GEN) as url:

@@ -406,6 +406,7 @@ def test_the_intact_table_reads_back_and_verifies(exported):
     assert drivers.read_table(exported / "t.bin").verified
 
 
+@pytest.mark.slow
 @settings(max_examples=examples(60), **SETTINGS)
 @given(key=st.sampled_from(list(SIDECAR_BREAKS)), data=st.data())
 def test_a_broken_sidecar_is_refused_by_name(exported, key, data):

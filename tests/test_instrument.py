@@ -230,6 +230,7 @@ def test_a_silent_client_does_not_block_another(rm, small):
     idle.close()
 
 
+@pytest.mark.slow
 def test_sixty_idle_connections_do_not_keep_a_client_out(rm, tmp_path):
     # connections opened and left idle give way at once to a newcomer
     gen = generator_from_dict(SMALL, tmp_path / "small.toml")
@@ -247,6 +248,7 @@ def test_sixty_idle_connections_do_not_keep_a_client_out(rm, tmp_path):
     assert any("closed to make room for a new client: it never sent anything" in line for line in lines)
 
 
+@pytest.mark.slow
 def test_with_every_slot_taken_a_stalled_client_makes_room_after_a_second(rm, tmp_path):
     gen = generator_from_dict(SMALL, tmp_path / "small.toml")
     lines = []

@@ -42,6 +42,7 @@ def _figures(sc, flight):
             "photons": mean(flight.photons), "arrival": mean(flight.arrival_time[slow])}
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("key", ["rb87-chopped-oven", "caf-buffer-gas", "na23-continuous-focused"])
 def test_compiled_and_numpy_steps_agree_within_the_statistical_error(key):
     sc = load_scenario(key)
@@ -100,6 +101,7 @@ def test_clock_run_out_gives_one_plus_poisson_photons():
     assert abs(clock.mean() - 1.0) < 4 / np.sqrt(n) and abs(clock.var() - 1.0) < 8 / np.sqrt(n)
 
 
+@pytest.mark.slow
 def test_without_numba_the_numpy_step_is_used():
     code = (
         "import sys, json\n"

@@ -20,6 +20,7 @@ def test_blocks_of_atoms_give_the_numbers_of_the_whole_sample(key, monkeypatch):
         assert np.array_equal(getattr(blocked, name), getattr(whole, name))
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("key", ["rb87-chopped-oven", "na23-continuous-focused", "caf-buffer-gas"])
 def test_the_sample_agrees_with_one_twenty_times_larger_within_its_stated_error(key):
     # the fraction within three binomial standard errors of the difference (sqrt(f(1-f)/n) of each

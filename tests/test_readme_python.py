@@ -27,6 +27,7 @@ def test_the_section_has_its_examples():
         assert name in joined
 
 
+@pytest.mark.slow
 def test_the_examples_run_as_one_notebook(capsys):
     import matplotlib
 
