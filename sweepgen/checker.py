@@ -797,11 +797,11 @@ def timing_findings(scenario, timing, generator) -> list[Finding]:
     each marker. ``timing`` is a :class:`sweepgen.playback.PlayTiming`."""
     when = timing.moments
     start = when["chirp_start"]
-    delay_ok = timing.delay <= start and timing.delay < timing.period
-    out = [Finding("timing.delay", "pass" if delay_ok else "fail", timing.delay, start, "s", None,
-                   f"the first sample plays {si(timing.delay, 's')} after the trigger; the chirp starts at "
-                   f"{si(start, 's')}", "" if delay_ok else
-                   "lower timing.delay to at most the chirp start: only the rest before the chirp may be skipped")]
+    room, failed = _upper_room(timing.delay, start)
+    out = [_finding("timing.delay", timing.delay, start, "s", room, failed or timing.delay >= timing.period,
+                    f"the first sample plays {si(timing.delay, 's')} after the trigger; the chirp starts at "
+                    f"{si(start, 's')}",
+                    "lower timing.delay to at most the chirp start: only the rest before the chirp may be skipped")]
     out += _trigger_findings(timing, generator)
     for ch in scenario.channels:
         if ch.kind == "gate":

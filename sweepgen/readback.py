@@ -299,7 +299,7 @@ def windowed_rate(d, rate: float, window: int) -> np.ndarray:
     return np.abs(d[window:] - d[:-window]) * rate / window
 
 
-def rate_window(d, step: float) -> int:
+def chirp_rate_window(d, step: float) -> int:
     """Samples per window so that one code step of ``step`` Hz is at most RATE_QUANTISATION of the
     mean change per sample over ``d`` (a chirp)."""
     per_sample = abs(float(d[-1]) - float(d[0])) / (len(d) - 1) if len(d) > 1 else 0.0
@@ -343,7 +343,7 @@ def analyse(table: ReadTable) -> dict:
     a, b = p["chirp"]
     r0, r1 = p["return"]
     chirp = d[a:b + 1]
-    window = rate_window(chirp, step)
+    window = chirp_rate_window(chirp, step)
     out.update({
         "start_detuning": p["start_level"], "end_detuning": p["end_level"],
         "chirp_span": p["end_level"] - p["start_level"],
@@ -352,7 +352,7 @@ def analyse(table: ReadTable) -> dict:
         "chirp_rate_mean": abs(p["end_level"] - p["start_level"]) * rate / max(b - a, 1),
         "return_duration": (r1 - r0) / rate,
         "return_rate_max": float(windowed_rate(d[max(r0 - 1, 0):r1 + 1], rate, window).max()) if r1 > r0 else 0.0,
-        "rate_window": window,
+        "chirp_rate_window": window,
     })
     return out
 
@@ -403,7 +403,7 @@ def table_schedule(detuning, sample_rate: float, period_count: int, step: float 
     idx, values = [], []
     for lo, hi in zip(cuts[:-1], cuts[1:]):
         if hi > lo:
-            w = max(least, rate_window(d[lo:hi], step) if step and hi - lo > 1 else 1)
+            w = max(least, chirp_rate_window(d[lo:hi], step) if step and hi - lo > 1 else 1)
             i, v = _nodes(d, csum, lo, hi, w)
             idx.append(i)
             values.append(v)

@@ -129,6 +129,16 @@ def test_a_delay_past_the_chirp_start_fails(write):
     assert not pb.ok
 
 
+def test_the_delay_has_a_headroom_to_the_chirp_start_like_every_limit(write):
+    # the glossary's headroom: (limit - value) / limit, the chirp start being the limit of the delay
+    pb = prepare(write(channels={}, timing={"delay": "100 us"}))
+    f = pb.report.finding("timing.delay")
+    start = pb.timing.moments["chirp_start"]
+    assert f.limit == start and f.headroom == pytest.approx((start - 100e-6) / start)
+    late = prepare(write(channels={}, timing={"delay": "2 ms"})).report.finding("timing.delay")
+    assert late.headroom < 0
+
+
 def test_two_channels_on_one_output_fail(write):
     channels = {"gate": {"kind": "gate", "on": "chirp_start", "off": "chirp_end", "off_shift": "10 us",
                          "dark": "0 V", "bright": "1 V", "output": 1}}
