@@ -14,6 +14,8 @@ from pathlib import Path
 from sweepgen.errors import InputError, display_path
 
 KINDS = ("species", "lasers", "generators", "scenarios")
+#: one profile of each kind, as a message names it
+SINGULAR = {"species": "species", "lasers": "laser", "generators": "generator", "scenarios": "scenario"}
 
 
 def builtin_dir(kind: str):
@@ -47,7 +49,7 @@ def resolve(kind: str, ref, *, relative_to=None, file=None, key=None) -> Path:
         Where ``ref`` was written, for the error message.
     """
     if not isinstance(ref, str) or not ref.strip():
-        raise InputError(f"expected the name of a built-in {kind} profile or a path to a TOML file, "
+        raise InputError(f"expected the name of a built-in {SINGULAR.get(kind, kind)} profile or a path to a TOML file, "
                          f"got {ref!r}", file=file, key=key)
     candidates = []
     path = Path(ref).expanduser()
@@ -67,7 +69,7 @@ def resolve(kind: str, ref, *, relative_to=None, file=None, key=None) -> Path:
             return Path(str(entry))
     known = ", ".join(builtin_keys(kind))
     looked = f"looked for the file at {display_path(candidates[0])}; " if looks_like_path else ""
-    raise InputError(f"no built-in {kind} profile or file named {ref!r} ({looked}built-in: {known})",
+    raise InputError(f"no built-in {SINGULAR.get(kind, kind)} profile or file named {ref!r} ({looked}built-in: {known})",
                      file=file, key=key)
 
 

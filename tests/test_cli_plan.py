@@ -205,3 +205,14 @@ def test_help_imports_no_heavy_library(command):
             f"print(sorted({{m.split('.')[0] for m in sys.modules}} & set({HEAVY!r})))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip().splitlines()[-1] == "[]"
+
+
+def test_an_unknown_scenario_is_named_as_one_scenario(tmp_path):
+    # "no built-in scenario profile", not the folder's plural
+    from click.testing import CliRunner
+
+    from sweepgen.cli import main
+
+    r = CliRunner().invoke(main, ["plan", "no-such-beam"])
+    assert r.exit_code == 2
+    assert "no built-in scenario profile or file named 'no-such-beam'" in r.output
