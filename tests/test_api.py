@@ -25,6 +25,7 @@ def cli_json(*args):
 
 
 # -- the CLI's --json is the API's to_json() -------------------------------------------------------
+@pytest.mark.slow
 @pytest.mark.parametrize("key", SHIPPED)
 def test_plan_check_and_upload_dry_run_documents_equal_the_command_line(key):
     assert cli_json("plan", key)[1] == sweepgen.plan(key).to_json()
@@ -49,6 +50,7 @@ def test_export_and_inspect_documents_equal_the_command_line(tmp_path, key):
     assert code == 0 and doc == sweepgen.inspect(api.paths[0]).to_json()
 
 
+@pytest.mark.slow
 def test_compare_and_calibrate_documents_equal_the_command_line(tmp_path):
     s = internal_plan(internal_load(SHIPPED[0])).schedule()
     t = np.arange(0, 0.04, 4e-6)

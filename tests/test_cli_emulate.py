@@ -242,6 +242,7 @@ def test_a_host_name_that_does_not_resolve_names_the_host_option(board):
     assert error.startswith("sweepgen: error: option '--host': cannot listen on no-such-host.invalid:0")
 
 
+@pytest.mark.slow
 def test_a_line_per_change_of_state(rm, tmp_path):
     # a user watching `sweepgen emulate` sees what the instrument was told: trace, trigger, outputs
     import shutil

@@ -87,6 +87,7 @@ def test_inspect_reports_and_verifies(exported):
     assert damaged.exit_code == 1 and "NOT VERIFIED" in damaged.stdout
 
 
+@pytest.mark.slow
 def test_check_and_simulate_an_old_table(tmp_path, exported, measurement):
     path, _ = exported
     ok = run("check", SCENARIO, "--table", path, "--json")

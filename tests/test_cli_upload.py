@@ -167,6 +167,7 @@ def test_unknown_backend_is_a_usage_error():
     assert result.exit_code == 2 and "--backend" in result.stderr
 
 
+@pytest.mark.slow
 def test_board_generator_goes_to_the_serial_driver():
     with virtual_board("demo-ramp-board") as url:
         result = run("caf-buffer-gas", "--serial-port", url, "--json")

@@ -53,6 +53,7 @@ def _committed_matches(board, pb):
         assert held.rate == table.info.sample_rate
 
 
+@pytest.mark.slow
 def test_every_channel_is_uploaded_verified_and_the_outputs_stay_off(scenario):
     path, pb = scenario
     lines = []
@@ -72,6 +73,7 @@ def test_every_channel_is_uploaded_verified_and_the_outputs_stay_off(scenario):
     assert len(commits) == 3 and not any(line.startswith("board: arm") for line in lines)
 
 
+@pytest.mark.slow
 def test_with_arm_the_board_plays_every_channel_on_its_trigger(scenario):
     path, pb = scenario
     with virtual_board(pb.generator) as url:

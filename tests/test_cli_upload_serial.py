@@ -22,6 +22,7 @@ def rendered():
     return pb.table(), pb.generator
 
 
+@pytest.mark.slow
 def test_upload_commits_the_rendered_table_and_leaves_the_output_off(rendered):
     table, gen = rendered
     with virtual_board(gen) as url:
@@ -43,6 +44,7 @@ def test_upload_commits_the_rendered_table_and_leaves_the_output_off(rendered):
     assert np.max(np.abs(f - drive)) <= gen.output.clock / 2.0**gen.output.word_bits
 
 
+@pytest.mark.slow
 def test_upload_with_arm_prints_the_caution_and_arms(rendered):
     _, gen = rendered
     with virtual_board(gen) as url:
@@ -75,6 +77,7 @@ def test_the_checkers_warnings_come_before_the_instrument_is_touched(rendered):
     assert dry_json["warnings"] == doc["warnings"]
 
 
+@pytest.mark.slow
 def test_transient_fault_is_retried_through_the_cli(rendered):
     table, gen = rendered
     with virtual_board(gen, faults={"corrupt": 2, "corrupt_memory": 1}) as url:
@@ -85,6 +88,7 @@ def test_transient_fault_is_retried_through_the_cli(rendered):
     assert doc["retries"] >= 2 and doc["restarts"] == 1
 
 
+@pytest.mark.slow
 def test_persistent_fault_exits_1_with_one_clear_line_and_commits_nothing(rendered):
     _, gen = rendered
     with virtual_board(gen, faults={"refuse": "always"}) as url:

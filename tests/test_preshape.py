@@ -133,6 +133,7 @@ def test_export_plays_the_pre_shaped_drive(tmp_path):
     assert sidecar["drive_range"] == pytest.approx(list(pb.main.drive_range))
 
 
+@pytest.mark.slow
 def test_upload_plays_the_pre_shaped_drive(tmp_path):
     import dataclasses
 

@@ -55,6 +55,7 @@ def test_one_worker_runs_in_this_process_in_task_order():
     assert {pid for _, pid in out} == {os.getpid()}
 
 
+@pytest.mark.slow
 def test_two_processes_give_the_same_results_in_task_order():
     tasks = _tasks()
     out = workers.run(_draw, tasks, workers=2)
@@ -64,6 +65,7 @@ def test_two_processes_give_the_same_results_in_task_order():
     assert not multiprocessing.active_children()          # the pool is gone
 
 
+@pytest.mark.slow
 def test_cluster_gives_the_same_results_in_task_order(cluster):
     tasks = _tasks()
     seen = []
