@@ -460,7 +460,7 @@ def test_halving_the_step_moves_no_statistic_of_a_large_run_beyond_its_error():
     # σ/sqrt(n) for means). At 10⁶ atoms halving 0.1 moved this mean final velocity by 2.5 errors.
     sc = load_scenario("rb87-chopped-oven")
     n = 200_000
-    runs = [simulate(sc, atoms=n, seed=3, ideal=True, baselines=False, step_fraction=f)
+    runs = [simulate(sc, atoms=n, seed=3, baselines=False, step_fraction=f)
             for f in (STEP_FRACTION, STEP_FRACTION / 2)]
     figures = []
     for r in runs:

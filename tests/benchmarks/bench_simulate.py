@@ -103,7 +103,7 @@ def cores(atoms: int, repeat: int) -> None:
 
         def timed(workers, sc=sc, p=p):
             t0 = time.perf_counter()
-            r = simulation.simulate(sc, atoms=atoms, seed=1, plan=p, ideal=True, baselines=False, workers=workers)
+            r = simulation.simulate(sc, atoms=atoms, seed=1, plan=p, baselines=False, workers=workers)
             return {"seconds": time.perf_counter() - t0, "atom_steps": r.flight.atom_steps}
 
         m = medians({"one core": lambda: timed(1), "all cores": lambda: timed(None)}, repeat)

@@ -1,6 +1,6 @@
 """Convergence study of the simulation's time step (run by hand; minutes of processor time).
 
-Each shipped scenario is simulated with the plan itself played (``ideal``, so
+Each shipped scenario is simulated with the plan itself played (the default of the core ``simulate``, so
 the figures do not depend on a generator profile) at the time step's yardstick
 ``STEP_FRACTION`` and at half of it, with the same seed, and the statistics the
 user reads are compared: the captured fraction, the captured atoms' mean final
