@@ -124,6 +124,7 @@ def test_sample_rate_takes_floats_text_and_quantities():
 
 
 # -- notebook displays ---------------------------------------------------------------------------
+@pytest.mark.slow
 def test_each_result_renders_html_with_its_headline_numbers(tmp_path):
     p = sweepgen.plan(SHIPPED[0])
     html = p._repr_html_()
@@ -210,6 +211,7 @@ def test_scan_document_equals_the_command_line_and_takes_a_dict(tmp_path):
     assert api.best() in api.rows and "force_fraction = 0.6" in api._repr_html_()
 
 
+@pytest.mark.slow
 def test_a_dict_built_scenario_exports_and_uploads_named_by_its_digest(tmp_path):
     doc = sweepgen.scenario_dict(SHIPPED[0])
     exported = sweepgen.export(doc, "csv", tmp_path / "t")

@@ -329,6 +329,7 @@ def test_a_fault_on_the_second_channel_leaves_every_output_off():
     assert 1 in board.tables and 2 not in board.tables            # channel 1 committed, never played
 
 
+@pytest.mark.slow
 def test_a_fault_on_the_emulators_second_channel_leaves_the_first_off():
     two = __import__("dataclasses").replace(GEN, channels=2)
     tables, words = two_tables()

@@ -284,6 +284,7 @@ def test_export_writes_a_table_and_a_sidecar_per_channel(write, tmp_path):
         assert lo - 1e-9 <= drive.min() and drive.max() <= hi + 1e-9
 
 
+@pytest.mark.slow
 def test_check_and_plan_show_every_channel_and_the_timing(write):
     import json
 

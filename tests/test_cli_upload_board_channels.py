@@ -86,6 +86,7 @@ def test_with_arm_the_board_plays_every_channel_on_its_trigger(scenario):
                                                              "start delay 100000 ns"})]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("board_options, reason", [
     ({"sources": ("free",)}, "cannot start on an external trigger (it offers: free-running)"),
     ({"version": 1}, "it speaks protocol version 1, which has no trigger"),

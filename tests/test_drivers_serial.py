@@ -88,6 +88,7 @@ def test_upload_through_a_pseudo_terminal_device():
     assert report["destination"].startswith("/dev/")
 
 
+@pytest.mark.slow
 def test_the_board_announces_a_smaller_payload_and_the_driver_follows():
     table, words = dds_table(700)
     with virtual_board(GEN, max_payload=100) as url:
@@ -97,6 +98,7 @@ def test_the_board_announces_a_smaller_payload_and_the_driver_follows():
     assert data_step["frame_bytes"] == 96          # 100 - 4 offset bytes, whole 4-byte words
 
 
+@pytest.mark.slow
 def test_voltage_board_with_int16_codes(tmp_path):
     profile = tmp_path / "dac-board.toml"
     profile.write_text("""
@@ -130,6 +132,7 @@ timeout = "0.2 s"
     assert channel["bits"] == 16 and channel["formats"] == ["int16"] and channel["range_v"] == [-5.0, 5.0]
 
 
+@pytest.mark.slow
 def test_48_bit_tuning_words_travel_as_uint64(tmp_path):
     gen = dataclasses.replace(GEN, output=dataclasses.replace(GEN.output, word_bits=48))
     table, words = dds_table(1000, bits=48, dtype="<u8")
@@ -204,6 +207,7 @@ def test_persistent_fault_fails_clearly_commits_nothing_and_leaves_the_board_dis
     assert str(err.value).endswith(note)
 
 
+@pytest.mark.slow
 def test_board_asking_for_an_earlier_offset_gets_the_bytes_again():
     class Forgetful(BoardEmulator):
         forgot = False
@@ -306,6 +310,7 @@ def test_dry_run_checks_and_reports_the_frames_without_connecting():
     assert report["bytes"] == sum(e["bytes"] for e in log)
 
 
+@pytest.mark.slow
 def test_after_a_failure_the_driver_sends_disarm_before_raising():
     table, _ = dds_table(3000)
     with virtual_board(GEN, faults={"refuse": "always", "on": "end", "skip": 0}) as url:
@@ -396,6 +401,7 @@ def test_an_independent_board_written_from_the_document_accepts_an_upload(link):
 PULSED = BoardTiming(source="external", edge="rising", mode="each", delay=25e-6)
 
 
+@pytest.mark.slow
 def test_a_version_1_board_is_spoken_to_in_version_1():
     table, words = dds_table(2000)
     with virtual_board(GEN, version=1) as url:
@@ -408,6 +414,7 @@ def test_a_version_1_board_is_spoken_to_in_version_1():
     assert "trigger" not in [s["step"] for s in report["steps"]]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("board_options, reason", [
     ({"version": 1}, "protocol version 1, which has no trigger"),
     ({"sources": ("free",)}, "cannot start on an external trigger (it offers: free-running); a pulsed scenario "
@@ -426,6 +433,7 @@ def test_a_pulsed_upload_to_a_board_that_cannot_trigger_is_refused_before_anythi
     assert str(info.value).endswith("the board's output was switched off")
 
 
+@pytest.mark.slow
 def test_a_pulsed_upload_sets_the_external_trigger_and_the_start_delay():
     table, _ = dds_table(2000)
     with virtual_board(GEN) as url:
@@ -442,6 +450,7 @@ def test_a_person_cannot_pass_the_timing_as_a_driver_option():
         deliver_to_board(table, "socket://127.0.0.1:9", options={"timing": "external"})
 
 
+@pytest.mark.slow
 def test_the_host_widens_a_table_to_the_only_format_a_channel_announces():
     board = BoardEmulator(GEN)
     caps = board.caps_by_version[2]

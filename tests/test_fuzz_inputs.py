@@ -205,6 +205,7 @@ def _complete_case(kind: str, data: dict) -> dict:
     return files
 
 
+@pytest.mark.slow
 @settings(max_examples=examples(150), **SETTINGS)
 @given(case=broken_case())
 def test_a_broken_value_of_any_key_is_refused_by_every_command(case):

@@ -269,6 +269,7 @@ def test_with_every_slot_taken_a_stalled_client_makes_room_after_a_second(rm, tm
     assert any("closed to make room for a new client: silent for" in line for line in lines)
 
 
+@pytest.mark.slow
 def test_an_idle_connection_is_closed_after_the_idle_timeout(tmp_path):
     gen = generator_from_dict(SMALL, tmp_path / "small.toml")
     lines = []
@@ -279,6 +280,7 @@ def test_an_idle_connection_is_closed_after_the_idle_timeout(tmp_path):
     assert any("silent for 0.3 s" in line for line in lines)
 
 
+@pytest.mark.slow
 def test_blocks_of_all_connections_share_one_bounded_buffer(rm, small):
     from sweepgen.emulators._scpi_reader import Budget
 

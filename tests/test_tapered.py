@@ -99,6 +99,7 @@ def test_design_atom_stays_at_the_plans_lag_all_along_the_field():
     assert seen == pytest.approx(-p.trajectory.lag[0] / lam, abs=1e-6 * p.species.linewidth)
 
 
+@pytest.mark.slow
 def test_a_field_is_flown_by_the_step_that_shifts_each_atom():
     """The compiled step gives every atom the light's one detuning; a field shifts it atom by atom
     (``shift_at``), so a field program is flown by the NumPy step (with the compiled one, the

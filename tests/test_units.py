@@ -69,6 +69,7 @@ def _conversions(ureg, names):
     return out
 
 
+@pytest.mark.slow
 def test_registry_from_its_disk_cache_equals_a_fresh_one(tmp_path):
     folder = tmp_path / "cache"
     fresh = units.build_registry(None)
@@ -83,6 +84,7 @@ def test_registry_from_its_disk_cache_equals_a_fresh_one(tmp_path):
     assert cached.Quantity(10.0, "MSa/s").to("Hz").magnitude == pytest.approx(1e7)
 
 
+@pytest.mark.slow
 def test_a_damaged_or_unwritable_cache_costs_speed_not_correctness(tmp_path):
     folder = tmp_path / "cache"
     units.build_registry(folder)
