@@ -2,6 +2,7 @@
 human table, and refusal of broken scenarios (exit 2, one line, no traceback)."""
 
 import json
+import os
 import subprocess
 import sys
 
@@ -205,6 +206,31 @@ def test_help_imports_no_heavy_library(command):
             f"print(sorted({{m.split('.')[0] for m in sys.modules}} & set({HEAVY!r})))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip().splitlines()[-1] == "[]"
+
+
+#: what planning and checking never need: plotting, instruments, files of other formats, the cluster, the
+#: simulation's compiled step, and the parts of SciPy the actuator response does without
+NOT_FOR_PLAN_OR_CHECK = ("matplotlib", "pyvisa", "serial", "h5py", "dask", "distributed", "numba", "scipy.signal",
+                         "scipy.interpolate", "scipy.stats", "sweepgen._kernel", "sweepgen._flight",
+                         "sweepgen.simulate", "sweepgen.plots", "sweepgen.drivers")
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("command", [["plan", "rb87-chopped-oven", "--json"], ["check", "na23-continuous-focused"]])
+def test_plan_and_check_import_only_what_they_need(command, tmp_path):
+    # DEVELOPERS.md, "Heavy imports are lazy"; bench_startup.py times the same commands. The first run fills
+    # the user cache (pint's definitions, the remembered unit factors); from the second on, every unit of a
+    # built-in scenario is remembered and pint is not imported at all
+    code = ("import sys; from sweepgen.cli import main\n"
+            f"try: main({command!r})\n"
+            "except SystemExit: pass\n"
+            "names = set(sys.modules) | {m.split('.')[0] for m in sys.modules}\n"
+            f"print(sorted(names & set({(*NOT_FOR_PLAN_OR_CHECK, 'pint')!r})))")
+    env = {**os.environ, "XDG_CACHE_HOME": str(tmp_path / "cache")}
+    first = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, env=env)
+    assert first.stdout.strip().splitlines()[-1] == "['pint']"
+    again = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, env=env)
+    assert again.stdout.strip().splitlines()[-1] == "[]"
 
 
 def test_an_unknown_scenario_is_named_as_one_scenario(tmp_path):

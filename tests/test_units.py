@@ -135,3 +135,10 @@ def test_remembered_factors_need_no_registry_and_survive_the_process(tmp_path, m
         units.parse("3 MHz", "m/s")                     # another wanted unit: pint decides
     path.write_text("{not json")                        # a damaged file is ignored
     assert units.Factors(path).get("MHz", "Hz") is None
+
+
+def test_the_cache_folder_names_the_pint_that_is_imported():
+    # read from pint's metadata without importing pint; reference: pint's own __version__
+    pint = units.import_pint()
+    assert units.pint_version() == pint.__version__
+    assert units.cache_folder().name == f"pint-{pint.__version__}"
