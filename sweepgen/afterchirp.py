@@ -121,7 +121,7 @@ def after_chirp(plan, schedule=None) -> AfterChirp:
     z0 = release_position(plan)
 
     def rhs(t, y):
-        rate = physics.scattering_rate(float(schedule.detuning(t)), y[1], float(lt.saturation_at(y[0])), sp.gamma,
+        rate = physics.scattering_rate(float(schedule.detuning(t)), y[1], lt.on_axis(y[0]), sp.gamma,
                                        sp.wavelength, sp.rate_fraction)
         return (y[1], -v_r * rate)
 

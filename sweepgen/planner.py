@@ -198,7 +198,7 @@ def _integrate(scenario: Scenario, z0: float, *, dense: bool):
     eta = ch.force_fraction
 
     def accel(z):
-        return eta * physics.max_deceleration(float(light.saturation_at(z)), sp.gamma, sp.wavelength, sp.mass,
+        return eta * physics.max_deceleration(light.on_axis(z), sp.gamma, sp.wavelength, sp.mass,
                                               sp.rate_fraction)
 
     def rhs(_t, y):

@@ -2,13 +2,14 @@
 
 import math
 
+import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from sweepgen import catalog
 from sweepgen.errors import DeprecatedKey, InputError
-from sweepgen.scenario import load_scenario, scenario_from_dict
+from sweepgen.scenario import Light, load_scenario, scenario_from_dict
 from sweepgen.sources import EffusiveSource, GaussianSource
 
 from conftest import examples, scenario_dict, to_toml
@@ -30,6 +31,18 @@ def test_builtin_scenario_in_si():
     (repump,) = sc.repumps
     assert repump.name == "repump" and repump.kind == "frequency" and repump.offset == 0.0 and repump.follows
     assert len(sc.digest) == 64
+
+
+@settings(max_examples=examples(200))
+@given(z=st.one_of(st.floats(-5.0, 5.0), st.just(math.nan)), start=st.floats(-1.0, 1.0),
+       waist=st.one_of(st.none(), st.floats(1e-4, 0.05)), focus=st.floats(-3.0, 3.0),
+       saturation=st.floats(0.0, 100.0), factor=st.floats(0.1, 10.0))
+def test_on_axis_is_saturation_at_for_one_position(z, start, waist, focus, saturation, factor):
+    # the float path of the integrations against the array path, bit for bit
+    light = Light(saturation=saturation, start=start, waist=waist, focus=focus, wavelength=780e-9,
+                  effective_factor=factor)
+    assert light.on_axis(z) == float(light.saturation_at(z))
+    assert type(light.on_axis(np.float64(z))) is float
 
 
 def test_relative_species_path(tmp_path):
