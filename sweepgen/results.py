@@ -25,7 +25,6 @@ Example
 from __future__ import annotations
 
 import copy
-import html
 from typing import Any
 
 from sweepgen._format import si
@@ -176,10 +175,10 @@ class Result:
         return "\n".join(lines)
 
     def _repr_html_(self) -> str:
-        body = "".join(f"<tr><td style='text-align:left'>{html.escape(label)}</td>"
-                       f"<td style='text-align:right'>{html.escape(value)}</td></tr>" for label, value in self.table_rows())
-        return (f"<table><caption style='text-align:left'><b>{html.escape(type(self).__name__)}</b>: "
-                f"{html.escape(self._title)}</caption>{body}</table>{self._html_more()}")
+        body = "".join(f"<tr><td style='text-align:left'>{_escape(label)}</td>"
+                       f"<td style='text-align:right'>{_escape(value)}</td></tr>" for label, value in self.table_rows())
+        return (f"<table><caption style='text-align:left'><b>{_escape(type(self).__name__)}</b>: "
+                f"{_escape(self._title)}</caption>{body}</table>{self._html_more()}")
 
     def _html_more(self) -> str:
         return ""
@@ -208,12 +207,19 @@ class Result:
         raise NotImplementedError(f"{type(self).__name__} has nothing to draw")
 
 
+def _escape(text: str) -> str:
+    """``text`` escaped for HTML (html is imported for a notebook's display only, never by a command)."""
+    from html import escape
+
+    return escape(text)
+
+
 def _findings_html(findings) -> str:
     rows = "".join(
-        f"<tr><td>{html.escape(_STATUS[f.status])}</td><td>{html.escape(f.rule)}</td>"
-        f"<td>{html.escape(si(f.value, f.unit))}</td><td>{html.escape(si(f.limit, f.unit))}</td>"
+        f"<tr><td>{_escape(_STATUS[f.status])}</td><td>{_escape(f.rule)}</td>"
+        f"<td>{_escape(si(f.value, f.unit))}</td><td>{_escape(si(f.limit, f.unit))}</td>"
         f"<td>{'—' if f.headroom is None else f'{f.headroom * 100:.0f} %'}</td>"
-        f"<td style='text-align:left'>{html.escape(f.message)}</td></tr>" for f in findings)
+        f"<td style='text-align:left'>{_escape(f.message)}</td></tr>" for f in findings)
     head = "".join(f"<th>{h}</th>" for h in ("status", "rule", "value", "limit", "headroom", "detail"))
     return f"<table><tr>{head}</tr>{rows}</table>"
 
@@ -263,7 +269,7 @@ class _Judged(Result):
         return "\n".join(lines)
 
     def _html_more(self) -> str:
-        return f"<p><b>{html.escape(self._verdict())}</b></p>{_findings_html(self.findings)}"
+        return f"<p><b>{_escape(self._verdict())}</b></p>{_findings_html(self.findings)}"
 
 
 class PlanResult(_Judged):
