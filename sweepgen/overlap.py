@@ -89,30 +89,31 @@ def _radii(sc, plan, sample: int, seed: int) -> np.ndarray:
     sigma = v_r * np.sqrt(photons / 3.0)
     dt = np.diff(tr.time)
     r = np.empty((sample, t.size))
+    # one block's arrays, filled again by every block (fresh memory costs a page fault per 4 KiB)
+    rows = min(BLOCK, sample)
+    kicks, steps, x = np.empty((rows, dt.size)), np.empty((rows, dt.size)), np.empty((rows, t.size))
     for axis, (x_start, v_start) in enumerate(((x0, vx0), (y0, vy0))):
         for a in range(0, sample, BLOCK):        # the same normals, in the same order, a block at a time
-            x = _positions(rng.standard_normal((min(BLOCK, sample - a), dt.size)), sigma, dt,
-                           x_start[a:a + BLOCK], v_start[a:a + BLOCK], t[0])
-            if axis == 0:
-                r[a:a + BLOCK] = x
-            else:
-                np.hypot(r[a:a + BLOCK], x, out=r[a:a + BLOCK])
+            n = min(BLOCK, sample - a)
+            out = r[a:a + n] if axis == 0 else x[:n]
+            _positions(rng.standard_normal(out=kicks[:n]), sigma, dt, x_start[a:a + n], v_start[a:a + n], t[0],
+                       steps[:n], out)
+            if axis == 1:
+                np.hypot(r[a:a + n], out, out=r[a:a + n])
     return r
 
 
-def _positions(kicks, sigma, dt, x_start, v_start, t0) -> np.ndarray:
-    """Positions along one transverse axis at each node, shape (atoms, nodes), from the atoms'
-    standard-normal ``kicks`` on each interval (overwritten)."""
+def _positions(kicks, sigma, dt, x_start, v_start, t0, steps, out) -> np.ndarray:
+    """Positions along one transverse axis at each node into ``out``, shape (atoms, nodes), from the
+    atoms' standard-normal ``kicks`` on each interval (overwritten, as ``steps``, shape (atoms, intervals))."""
     # velocity on each interval: the start velocity, kicked at the end of every interval before
     kicks *= sigma[None, :]
     np.cumsum(kicks, axis=1, out=kicks)
-    steps = np.empty_like(kicks)
     steps[:, 0] = v_start
     np.add(v_start[:, None], kicks[:, :-1], out=steps[:, 1:])
     steps *= dt[None, :]
     # x(t_i) = x0 + vx0 t_0 + Σ_j v_j dt_j (velocity constant over each interval, kicked at its end)
-    x = np.empty((kicks.shape[0], kicks.shape[1] + 1))
-    x[:, 0] = 0.0
-    np.cumsum(steps, axis=1, out=x[:, 1:])
-    x += (x_start + v_start * t0)[:, None]
-    return x
+    out[:, 0] = 0.0
+    np.cumsum(steps, axis=1, out=out[:, 1:])
+    out += (x_start + v_start * t0)[:, None]
+    return out
