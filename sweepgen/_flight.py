@@ -275,11 +275,7 @@ class _Propagation:
         if self.light:
             dt = min(dt_try, 1.5 * self.dt_prev)
             d_lo, d_hi = self.program.extremes(t, t + dt)
-            gap = self._gap(d_lo, d_hi)
-            if self.rates.off is not None:
-                split = self.rates.off.splitting
-                gap = min(gap, self._gap(d_lo - split, d_hi - split))
-            gap = max(gap - self.dv_max, 0.0)
+            gap = max(self._gaps(d_lo, d_hi) - self.dv_max, 0.0)
             r_bound = physics.scattering_rate(0.0, gap, self.s_peak, self.gamma, self.wavelength,
                                               self.rates.fraction)
             if self.recoil * r_bound * dt > self.dv_max:
@@ -293,6 +289,15 @@ class _Propagation:
         self.steps += 1
         self.atom_steps += self.in_flight
         return dt, detuning
+
+    def _gaps(self, d_lo: float, d_hi: float) -> float:
+        """Velocity distance of the nearest bright atom to a resonance of the detunings ``[d_lo, d_hi]``
+        (the off-resonant level, when followed, counts as a second resonance)."""
+        gap = self._gap(d_lo, d_hi)
+        if self.rates.off is not None:
+            split = self.rates.off.splitting
+            gap = min(gap, self._gap(d_lo - split, d_hi - split))
+        return gap
 
     def _gap(self, d_lo: float, d_hi: float) -> float:
         """Velocity distance of the nearest bright atom to the resonant velocities ``[-λ d_hi, -λ d_lo]``."""
@@ -553,10 +558,14 @@ class _Compiled(_Propagation):
         self.finished = np.empty(0, dtype=np.intp)
         self.no_budget = np.empty(0)
 
-    def _gap(self, d_lo: float, d_hi: float) -> float:
-        w = self.w
-        centre = -0.5 * self.wavelength * (d_lo + d_hi)
-        return _kernel.nearest(w.v, w.dark, w.alive, centre) - 0.5 * self.wavelength * (d_hi - d_lo)
+    def _gaps(self, d_lo: float, d_hi: float) -> float:
+        w, lam = self.w, self.wavelength
+        centre = -0.5 * lam * (d_lo + d_hi)
+        split = self.rates.off.splitting if self.rates.off is not None else 0.0
+        near, near_off = _kernel.nearest_two(w.v, w.dark, w.alive, centre, centre + lam * split)
+        if self.rates.off is not None:
+            near = min(near, near_off)
+        return near - 0.5 * lam * (d_hi - d_lo)
 
     def advance(self, t: float, dt: float, detuning: float) -> None:
         w = self.w
@@ -569,7 +578,7 @@ class _Compiled(_Propagation):
             self.rng, self.k, self.repump_s, repump_d, t, dt, detuning, large, w.v, w.z, w.x, w.y, w.vx, w.vy,
             w.clock, w.pump, w.photons, w.alive, w.dark, w.depumped, w.budget if w.has_budget else self.no_budget,
             w.idx, self.out.fate, self.out.final_velocity, self.out.arrival_time, self.out.radius,
-            self.out.transverse_velocity, self.finished, w.buf)
+            self.out.transverse_velocity, self.finished)
         if done:
             rows = self.finished[:done].copy()
             self._record(rows)

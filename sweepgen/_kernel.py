@@ -65,22 +65,38 @@ def constants(*, recoil, distance, light_start, peak, focused, focus, rayleigh, 
                      bool(pumping), bool(loss), bool(light), float(large))
 
 
+#: the floating-point liberties the compiled step takes: reassociation, reciprocals, fused multiply-add
+#: and fast library maths, but not the assumption that no value is infinite or NaN (parked atoms wait at
+#: infinite clocks)
+_FAST = {"reassoc", "arcp", "contract", "afn", "nsz"}
+#: a bright atom whose bounded expected photons and depumping events in a step are both below this is
+#: tried against the bounds first (:func:`_bound`, :func:`_thinned`); nearer resonance the rates are exact
+THIN = 0.5
+
+
 def _compiled(func):
-    return numba.njit(cache=True, nogil=True)(func) if AVAILABLE else func
+    return numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=_FAST)(func) if AVAILABLE else func
 
 
 def _inlined(func):
     """A helper of the step, compiled into it (no call, no reference counting of its arrays per atom)."""
-    return numba.njit(cache=True, nogil=True, inline="always")(func) if AVAILABLE else func
+    return numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=_FAST, inline="always")(func) if AVAILABLE else func
 
 
 @_inlined
-def _saturation(k, peak, z, x, y):
-    """``peak`` (unbounded light) or ``peak/q · exp(−2r²/(w0² q))`` at ``(z, x, y)`` (a Gaussian beam)."""
+def _along(k, z):
+    """``q = 1 + ((z − z_f)/z_R)²`` of a Gaussian beam at ``z`` (1 for unbounded light)."""
+    if not k.focused:
+        return 1.0
+    u = (z - k.focus) * k.inv_rayleigh
+    return 1.0 + u * u
+
+
+@_inlined
+def _saturation(k, peak, q, x, y):
+    """``peak`` (unbounded light) or ``peak/q · exp(−2r²/(w0² q))`` at ``(x, y)`` where the beam has ``q``."""
     if not k.focused:
         return peak
-    u = (z - k.focus) * k.inv_rayleigh
-    q = 1.0 + u * u
     return peak / q * math.exp(-(x * x + y * y) * k.inv_waist2 / q)
 
 
@@ -98,61 +114,142 @@ def _off(k, xd_off, v, s, dt):
     return k.branching * _rate(k, xd_off, v, k.strength * s) * dt
 
 
-@_compiled
-def _pump_pass(rng, k, rep_s, rep_xd, xd, xd_off, dt, w_v, w_z, w_x, w_y, w_vx, w_vy, w_pump, w_alive, w_dark,
-               w_depumped, bright):
-    """Depumping and repumping of every atom in flight over the step, into ``bright`` the part of the step
-    each spends in the bright level (a pass of its own before the photons', at the same place, saturation
-    and mid-point velocity).
+@_inlined
+def _bound(scale, peak, q, x_start, x_reach):
+    """An upper bound of the expected events ``scale·s/(1 + s + x²)`` of a step, without the exponential.
 
-    Bright atoms go dark at ``b·R_off``, dark ones return at ``(1 − b)·R_rep``, each
-    atom with one unit-rate clock (as :meth:`sweepgen._flight._Propagation._pump`);
-    an atom whose clock runs out is followed switch by switch through the rest
-    of the step, a fresh ``Exp(1)`` clock after each switch. (The random draws and
-    the arrays stay in this loop's own body: numba counts references to the
-    generator and to every array on each call of a function they are passed to,
-    which costs more than the step itself.)
+    ``s ≤ peak/q`` (on the beam's axis the transverse factor is 1), and the
+    mid-point ``x`` lies in ``[x_start − x_reach, x_start]`` (the mid-point velocity
+    is at most ``x_reach`` of ``x`` below the start velocity), where ``x²`` is
+    smallest at zero or at the end nearer it. ``scale·p/(q(1 + x²) + p)`` is that
+    rate with ``p = peak``, rearranged to one division."""
+    lo = x_start - x_reach
+    if lo <= 0.0 <= x_start:
+        x2 = 0.0
+    elif x_start < 0.0:
+        x2 = x_start * x_start
+    else:
+        x2 = lo * lo
+    return scale * peak / (q * (1.0 + x2) + peak)
+
+
+@_inlined
+def _follow(rng, dark, rest, part, lam_dark, lam_back):
+    """Depumping and repumping through the last ``rest`` of a step from the level ``dark``, with a fresh
+    ``Exp(1)`` clock: ``(dark, clock left, bright part, switched)``.
+
+    Bright atoms go dark at ``b·R_off``, dark ones return at ``(1 − b)·R_rep``
+    (``lam_dark``, ``lam_back``: expected events in the whole step); the atom is
+    followed switch by switch, a fresh clock after each; ``part`` (the bright part
+    of the step so far) grows by the bright time.
     """
-    for i in range(w_v.size):
-        if not w_alive[i]:
-            continue
-        v, z0 = w_v[i], w_z[i]
-        z_mid = z0 + 0.5 * v * dt
-        x, y = w_x[i] + w_vx[i] * dt, w_y[i] + w_vy[i] * dt
-        s = _saturation(k, k.peak, z_mid, x, y) if z0 >= k.light_start else 0.0
-        v_mid = v - 0.5 * k.recoil * _rate(k, xd, v, s) * dt
-        was_dark = w_dark[i]
-        lam_dark = _off(k, xd_off, v_mid, s, dt)
-        lam_back = 0.0
-        if (was_dark or w_pump[i] <= lam_dark) and z_mid >= k.light_start:
-            # the repump lights: (1 − b)·Σ R_rep·dt (sweepgen._flight.repump_counts)
-            for j in range(rep_s.size):
-                lam_back += _rate(k, rep_xd[j], v, _saturation(k, rep_s[j], z_mid, x, y))
-            lam_back *= (1.0 - k.branching) * dt
-        hazard = lam_back if was_dark else lam_dark
-        w_pump[i] -= hazard
-        if w_pump[i] > 0.0:
-            bright[i] = 0.0 if was_dark else 1.0
-            continue
-        elapsed = (w_pump[i] + hazard) / hazard           # part of the step before the switch
-        dark, rest, part = not was_dark, 1.0 - elapsed, 0.0 if was_dark else elapsed
+    switched = False
+    clock = rng.standard_exponential()
+    need = (lam_back if dark else lam_dark) * rest
+    while clock < need:
+        stay = clock / (lam_back if dark else lam_dark)
+        if not dark:
+            part += stay
+        rest -= stay
+        dark = not dark
+        switched = True
         clock = rng.standard_exponential()
         need = (lam_back if dark else lam_dark) * rest
-        while clock < need:
-            stay = clock / (lam_back if dark else lam_dark)
-            if not dark:
-                part += stay
-            rest -= stay
-            dark = not dark
-            clock = rng.standard_exponential()
-            need = (lam_back if dark else lam_dark) * rest
-        if not dark:
-            part += rest
-        w_dark[i] = dark
-        w_pump[i] = clock - need
-        bright[i] = part
-        if not was_dark:
-            w_depumped[i] = True
+    if not dark:
+        part += rest
+    return dark, clock - need, part, switched
+
+
+@_inlined
+def _switches(rng, pump, was_dark, lam_dark, lam_back):
+    """Depumping and repumping over one step with the atom's clock ``pump`` (as
+    :meth:`sweepgen._flight._Propagation._pump`): ``(dark, clock, bright part)`` at its end."""
+    hazard = lam_back if was_dark else lam_dark
+    pump -= hazard
+    if pump > 0.0:
+        return was_dark, pump, 0.0 if was_dark else 1.0
+    elapsed = (pump + hazard) / hazard           # part of the step before the switch
+    dark, clock, part, _ = _follow(rng, not was_dark, 1.0 - elapsed, 0.0 if was_dark else elapsed, lam_dark,
+                                   lam_back)
+    return dark, clock, part
+
+
+@_inlined
+def _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt):
+    """Expected returns to the bright level in the step, ``(1 − b)·Σ R_rep·dt``
+    (:func:`sweepgen._flight.repump_counts`); none before the light starts."""
+    if z_mid < k.light_start:
+        return 0.0
+    total = 0.0
+    for j in range(rep_s.size):
+        total += _rate(k, rep_xd[j], v, _saturation(k, rep_s[j], q, x, y))
+    return total * (1.0 - k.branching) * dt
+
+
+@_inlined
+def _arrivals(rng, rest):
+    """Unit-rate exponential arrivals within ``rest``: ``(count, clock left)`` (the arrival that overshoots
+    leaves the fresh clock; memorylessness). The count is Poisson(``rest``)."""
+    n = 0.0
+    e = rng.standard_exponential()
+    while e <= rest:
+        rest -= e
+        n += 1.0
+        e = rng.standard_exponential()
+    return n, e - rest
+
+
+@_inlined
+def _photons(rng, k, lam, large, clock):
+    """Photons of one atom in the step (expected ``lam``) and its clock afterwards.
+
+    A large mean (``large`` and ``lam ≥ k.large``) draws the normal law of the same
+    mean and variance and leaves the clock waiting (memoryless). Otherwise the
+    clock runs down by ``lam``; when it runs out with ``left`` of the step to go,
+    one photon and then the arrivals within ``left`` (``1 + Poisson(left)``).
+    """
+    if lam <= 0.0:
+        return 0.0, clock
+    if large and lam >= k.large:
+        return max(lam + math.sqrt(lam) * rng.standard_normal(), 0.0), clock
+    clock -= lam
+    if clock > 0.0:
+        return 0.0, clock
+    n, clock = _arrivals(rng, -clock)
+    return n + 1.0, clock
+
+
+@_inlined
+def _thinned(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt, lam_b, dark_b, clock0, pump0, clock, pump):
+    """A bright atom whose photon or pump clock ran out against the bounds ``lam_b``, ``dark_b`` of its
+    expected events (clocks ``clock0``, ``pump0`` before the step, ``clock``, ``pump`` after it):
+    ``(photons, clock, pump, dark, went dark)``.
+
+    Thinning (P. A. W. Lewis and G. S. Shedler, Naval Res. Logist. Q. 26, 403
+    (1979)): the clock that ran out marks a candidate event at the part
+    ``clock0/lam_b`` of the step, kept with probability exact/bound; from there on
+    the exact process runs with a fresh clock (memorylessness). So the photons
+    are Poisson(``λ·part``) and the switches those of :func:`_switches`, in law.
+    """
+    s = _saturation(k, k.peak, q, x, y)
+    v_mid = v - 0.5 * dt * k.recoil * _rate(k, xd, v, s)
+    lam = _rate(k, xd, v_mid, s) * dt
+    dark, went, part = False, False, 1.0
+    if pump <= 0.0:
+        lam_dark = _off(k, xd_off, v_mid, s, dt)
+        lam_back = _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt)
+        e = pump0 / dark_b
+        went = rng.random() * dark_b < lam_dark
+        dark, pump, part, switched = _follow(rng, went, 1.0 - e, e, lam_dark, lam_back)
+        went = went or switched
+    lam *= part
+    n = 0.0
+    if clock <= 0.0:
+        e = clock0 / lam_b
+        n = 1.0 if rng.random() * lam_b < lam else 0.0
+        more, clock = _arrivals(rng, lam * (1.0 - e))
+        n += more
+    return n, clock, pump, dark, went
 
 
 @_compiled
@@ -172,80 +269,110 @@ def _arrive(k, i, t, dt, z0, v0, w_v, w_z, w_x, w_y, w_vx, w_vy, w_idx, o_veloci
 
 
 @_compiled
-def nearest(v, dark, alive, centre):
-    """Smallest ``|v − centre|`` over the bright atoms in flight."""
-    best = math.inf
+def nearest_two(v, dark, alive, centre, other):
+    """Smallest ``|v − centre|`` and ``|v − other|`` over the bright atoms in flight, in one pass."""
+    best = best_other = math.inf
     for i in range(v.size):
         if alive[i] and not dark[i]:
-            d = abs(v[i] - centre)
-            if d < best:
-                best = d
-    return best
+            best = min(best, abs(v[i] - centre))
+            best_other = min(best_other, abs(v[i] - other))
+    return best, best_other
+
+
+@_compiled
+def nearest_two(v, dark, alive, centre, other):
+    """Smallest ``|v − centre|`` and ``|v − other|`` over the bright atoms in flight, in one pass."""
+    best = best_other = math.inf
+    for i in range(v.size):
+        if alive[i] and not dark[i]:
+            best = min(best, abs(v[i] - centre))
+            best_other = min(best_other, abs(v[i] - other))
+    return best, best_other
 
 
 @_compiled
 def step(rng, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx, w_vy, w_clock, w_pump,
          w_photons, w_alive, w_dark, w_depumped, w_budget, w_idx, o_fate, o_velocity, o_time, o_radius,
-         o_transverse, finished, bright):
-    """One step of every atom in flight; the working-set rows of the atoms done go to ``finished``.
+         o_transverse, finished):
+    """One step of every atom in flight, in one pass; the working-set rows of the atoms done go to ``finished``.
 
-    ``rep_s``, ``rep_d``: the repump lights' saturations and detunings (Hz) in this step; ``bright``
-    receives the part of the step each atom spends in the bright level (when pumping is followed).
-    Returns how many are done, and how many atoms in flight are in the dark level."""
+    Per atom: drift; the saturation at its place (the step's mid-point along the
+    beam, the step's end across it); the expected photons at the mid-point
+    velocity; depumping and repumping (when followed), which leave the part of
+    the step spent bright; the photons and kicks; the fate. A bright atom far from
+    resonance is first tried against bounds of its rates (:func:`_bound`, no
+    exponential): the photon and pump clocks run down by the bounds, and only when
+    one runs out are the exact rates computed and the event kept with probability
+    exact/bound (thinning of a Poisson process). ``rep_s``, ``rep_d``: the repump
+    lights' saturations and detunings (Hz) in this step. Returns how many are done,
+    and how many atoms in flight are in the dark level."""
     done = 0
     n_dark = 0
     recoil = k.recoil
     xd, xd_off = k.k_d * detuning, k.k_d * (detuning - k.split)
     rep_xd = k.k_d * rep_d
-    if k.light and k.pumping:
-        _pump_pass(rng, k, rep_s, rep_xd, xd, xd_off, dt, w_v, w_z, w_x, w_y, w_vx, w_vy, w_pump, w_alive, w_dark,
-                   w_depumped, bright)
+    half = 0.5 * dt
+    scale = k.f_gamma * dt
+    # how far below the start velocity's x the mid-point's can be: half a step at the largest rate
+    x_reach = k.k_v * half * recoil * k.f_gamma * k.peak / (1.0 + k.peak)
     for i in range(w_v.size):
         if not w_alive[i]:
             continue
         v, z0 = w_v[i], w_z[i]
         z = z0 + v * dt
-        w_x[i] += w_vx[i] * dt
-        w_y[i] += w_vy[i] * dt
+        x = w_x[i] + w_vx[i] * dt
+        y = w_y[i] + w_vy[i] * dt
         kick = 0.0
-        if k.light:
-            z_mid = 0.5 * (z0 + z)
-            s = _saturation(k, k.peak, z_mid, w_x[i], w_y[i]) if z0 >= k.light_start else 0.0
-            v_mid = v - 0.5 * recoil * _rate(k, xd, v, s) * dt
-            lam = _rate(k, xd, v_mid, s) * dt
-            if k.pumping:
-                lam *= bright[i]
+        lit = z0 >= k.light_start
+        if k.light and (lit or w_dark[i]):
+            z_mid = z0 + v * half
+            q = _along(k, z_mid)
+            was_dark = w_dark[i]
             n = 0.0
-            if lam <= 0.0:
-                pass
-            elif large and lam >= k.large:
-                # a large mean: the normal law of the same mean and variance λ
-                n = max(lam + math.sqrt(lam) * rng.standard_normal(), 0.0)
-            else:
-                # the atom's clock; when it runs out with ``left`` of the step to go, one photon and then
-                # the unit-rate exponential arrivals within ``left`` (1 + Poisson(left)); the arrival that
-                # overshoots leaves the fresh clock (memorylessness)
-                w_clock[i] -= lam
-                if w_clock[i] <= 0.0:
-                    left = -w_clock[i]
-                    n = 1.0
-                    e = rng.standard_exponential()
-                    while e <= left:
-                        left -= e
-                        n += 1.0
-                        e = rng.standard_exponential()
-                    w_clock[i] = e - left
+            exact = True
+            if not was_dark:
+                x_start = xd + k.k_v * v
+                lam_b = _bound(scale, k.peak, q, x_start, x_reach)
+                dark_b = k.branching * _bound(scale, k.strength * k.peak, q, x_start + xd_off - xd, x_reach) \
+                    if k.pumping else 0.0
+                if lam_b < THIN and dark_b < THIN:
+                    exact = False
+                    clock, pump = w_clock[i] - lam_b, w_pump[i] - dark_b
+                    if clock <= 0.0 or pump <= 0.0:
+                        n, clock, pump, w_dark[i], went = _thinned(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q,
+                                                                   x, y, dt, lam_b, dark_b, w_clock[i], w_pump[i],
+                                                                   clock, pump)
+                        if went:
+                            w_depumped[i] = True
+                    w_clock[i], w_pump[i] = clock, pump
+            if exact:
+                s = _saturation(k, k.peak, q, x, y) if lit else 0.0
+                v_mid = v - half * recoil * _rate(k, xd, v, s)
+                lam = _rate(k, xd, v_mid, s) * dt
+                if k.pumping:
+                    lam_dark = _off(k, xd_off, v_mid, s, dt)
+                    goes_dark = not was_dark and w_pump[i] <= lam_dark      # the clock runs out in the step
+                    lam_back = 0.0
+                    if was_dark or goes_dark:
+                        lam_back = _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt)
+                    w_dark[i], w_pump[i], part = _switches(rng, w_pump[i], was_dark, lam_dark, lam_back)
+                    if goes_dark:
+                        w_depumped[i] = True
+                    lam *= part
+                n, w_clock[i] = _photons(rng, k, lam, large, w_clock[i])
             if n > 0.0:
                 spread = recoil * math.sqrt(n / 3.0)
                 kick = spread * rng.standard_normal() - recoil * n
-                z += 0.5 * dt * kick
+                z += half * kick
                 w_photons[i] += n
                 side = spread * rng.standard_normal()
                 w_vx[i] += side
-                w_x[i] += 0.5 * dt * side
+                x += half * side
                 side = spread * rng.standard_normal()
                 w_vy[i] += side
-                w_y[i] += 0.5 * dt * side
+                y += half * side
+        w_x[i] = x
+        w_y[i] = y
         w_v[i] = v + kick
         w_z[i] = z
         fate = 0

@@ -88,7 +88,7 @@ def test_clock_run_out_gives_one_plus_poisson_photons():
     photons = np.zeros(n)
     args = [v, np.zeros(n), np.zeros(n), np.zeros(n), np.zeros(n), np.zeros(n), clock, np.ones(n), photons,
             np.ones(n, bool), np.zeros(n, bool), np.zeros(n, bool), np.empty(0), np.arange(n), np.zeros(n, np.int8),
-            np.zeros(n), np.zeros(n), np.zeros(n), np.zeros((n, 2)), np.empty(n, np.intp), np.empty(n)]
+            np.zeros(n), np.zeros(n), np.zeros(n), np.zeros((n, 2)), np.empty(n, np.intp)]
     _kernel.step(rng, k, np.empty(0), np.empty(0), 0.0, 2 * lam, 0.0, False, *args)
     # photons in one step: Poisson(λ) for a unit-rate clock started afresh (the first photon when the clock
     # runs out, then 1 + Poisson(overshoot) = Poisson(λ) in all)
