@@ -24,6 +24,9 @@ POSITION_FRACTION = 1.0 / 200.0
 LARGE_COUNT = 10.0
 #: atoms not arrived HORIZON_FACTOR * distance / capture_velocity after the last emission are "not arrived"
 HORIZON_FACTOR = 5.0
+#: the working set is compacted and sorted by velocity at least every SORT_EVERY steps (atoms near
+#: resonance then sit together, which keeps the compiled step's branches predictable)
+SORT_EVERY = 64
 
 ARRIVED, TURNED_BACK, DARK, NOT_ARRIVED = _kernel.ARRIVED, _kernel.TURNED_BACK, _kernel.DARK, 0
 #: how a step is computed when propagate is not told: compiled when numba is installed
@@ -222,6 +225,7 @@ class _Propagation:
         self.unchecked = False      # atoms taken in whose speed has not been checked yet
         self.n_dark = 0             # atoms of the working set in the dark ground level
         self.steps = 0
+        self.sorted_at = 0          # the step at which the working set was last sorted
         self.atom_steps = 0
         self.smallest = math.inf
         self.dv_seen = 0.0
@@ -245,11 +249,13 @@ class _Propagation:
         return float(self.emission_sorted[self.taken])
 
     def take_in(self, t: float) -> None:
-        """Drop parked atoms, and take in the atoms emitted before ``t + 2 lead``."""
+        """Drop parked atoms and sort the others (:meth:`_Working.compact`) when they are many or at least
+        every :data:`SORT_EVERY` steps, and take in the atoms emitted before ``t + 2 lead``."""
         w, rng, a = self.w, self.rng, self.atoms
         grow = not self.all_emitted and self.emission_sorted[self.taken] <= t + self.lead
-        if w.parked and (grow or 16 * w.parked >= w.size):
+        if (w.parked and (grow or 16 * w.parked >= w.size)) or self.steps >= self.sorted_at + SORT_EVERY:
             w.compact()
+            self.sorted_at = self.steps
             self.unlit = True
         if not grow:
             return
@@ -734,7 +740,9 @@ class _Working:
         self.lit_bool = np.zeros(n, dtype=bool)
 
     def compact(self):
-        keep = self.alive
+        """Drop the parked atoms and sort the others by velocity."""
+        keep = np.flatnonzero(self.alive)
+        keep = keep[np.argsort(self.v[keep], kind="stable")]
         for name in self._names():
             setattr(self, name, getattr(self, name)[keep])
         self.parked = 0
