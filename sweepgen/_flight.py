@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from sweepgen import _kernel, physics
+from sweepgen import _kernel, _stepping, physics
 
 #: largest velocity change per step as a fraction of the natural velocity width λΓ/2π (converged at 10⁶
 #: atoms: see sweepgen.simulate, "Time step")
@@ -150,9 +150,7 @@ def propagate(scenario, atoms: Atoms, program, rng: np.random.Generator, *,
             continue
         if t >= run.t_end:
             break
-        dt, detuning = run.choose_step(t)
-        run.advance(t, dt, detuning)
-        t = t + dt
+        t = run.steps_until(t)
     out = run.finish()
     out.kernel = kernel
     return out
@@ -229,6 +227,12 @@ class _Propagation:
         self.atom_steps = 0
         self.smallest = math.inf
         self.dv_seen = 0.0
+
+    def steps_until(self, t: float) -> float:
+        """Steps from ``t`` until the working set needs :meth:`take_in` (here one step); the time reached."""
+        dt, detuning = self.choose_step(t)
+        self.advance(t, dt, detuning)
+        return t + dt
 
     def advance(self, t: float, dt: float, detuning: float) -> None:
         """One step of every atom in flight: drift, scatter, settle."""
@@ -560,9 +564,38 @@ class _Compiled(_Propagation):
             split=off.splitting if off is not None else 0.0, strength=off.strength if off is not None else 0.0,
             branching=off.branching if off is not None else 0.0, pumping=self.pumping, loss=self.p_loss > 0,
             light=light, large=LARGE_COUNT)
-        self.repump_s = np.array([ch.saturation for ch in self.rates.repumps], dtype=float)
+        repumps = self.rates.repumps
+        self.repump_s = np.array([ch.saturation for ch in repumps], dtype=float)
+        self.repump_follows = np.array([bool(ch.follows) for ch in repumps], dtype=bool)
+        self.repump_offset = np.array([ch.offset if ch.follows else 0.0 for ch in repumps], dtype=float)
+        self.repump_fixed = np.array([0.0 if ch.follows else ch.detuning for ch in repumps], dtype=float)
         self.finished = np.empty(0, dtype=np.intp)
         self.no_budget = np.empty(0)
+        tables = getattr(program, "tables", None)
+        self.tables = tables() if tables is not None else None
+
+    def steps_until(self, t: float) -> float:
+        """Steps from ``t`` in one compiled call (:func:`sweepgen._stepping.run_steps`) until the working
+        set needs :meth:`take_in`, none is left in flight or the run ends; the time reached."""
+        if self.tables is None:
+            return super().steps_until(t)
+        w, out, off = self.w, self.out, self.rates.off
+        if self.finished.size < w.size:
+            self.finished = np.empty(w.size, dtype=np.intp)
+        rule = (float(self.max_move), float(self.t_end), math.inf if self.all_emitted else self.next_emission,
+                self.all_emitted, float(self.lead), float(self.dv_max), float(self.s_peak), float(self.gamma),
+                float(self.wavelength), float(self.rates.fraction), float(off.splitting) if off else 0.0, off is not None)
+        state = np.array([self.dt_prev, self.smallest, self.dv_seen, self.steps, self.atom_steps, w.parked,
+                          self.n_dark, self.sorted_at + SORT_EVERY], dtype=float)
+        t = _stepping.run_steps(
+            self.rng, self.k, self.tables, rule, self.repump_s, self.repump_follows, self.repump_offset,
+            self.repump_fixed, state, float(t), float(self.r_peak), float(self.PARK), w.v, w.z, w.x, w.y, w.vx, w.vy,
+            w.clock, w.pump, w.photons, w.alive, w.dark, w.depumped, w.budget if w.has_budget else self.no_budget,
+            w.lit, w.idx, out.fate, out.final_velocity, out.arrival_time, out.radius, out.transverse_velocity,
+            out.photons, out.dark, out.depumped, self.finished)
+        self.dt_prev, self.smallest, self.dv_seen = (float(x) for x in state[:3])
+        self.steps, self.atom_steps, w.parked, self.n_dark = (int(x) for x in state[3:7])
+        return t
 
     def _gaps(self, d_lo: float, d_hi: float) -> float:
         w, lam = self.w, self.wavelength

@@ -1,5 +1,7 @@
 """The flight's step compiled (numba): one pass over the atoms in flight per step.
 
+:mod:`sweepgen._stepping` runs these steps one after another in compiled code.
+
 The same model as the NumPy step of :mod:`sweepgen._flight` (written out in
 :mod:`sweepgen.simulate`), atom by atom instead of array by array: drift, the
 saturation at the atom's place, the expected photons at the step's mid-point
@@ -12,7 +14,11 @@ results, not the same numbers. Two draws differ in method, not in law:
   ``1 + Poisson(u)`` photons; here the Poisson count is a run of unit-rate
   exponential arrivals within ``u`` and the fresh clock the one that overshoots
   it (the same law: arrivals of a unit-rate Poisson process, memorylessness);
-* atoms that are done are skipped rather than parked far behind the source.
+* atoms that are done are skipped rather than parked far behind the source;
+* a bright atom far from resonance first runs its photon and pump clocks down by
+  bounds of its expected events, which need no exponential (:func:`_bound`), and
+  only when one of them runs out are its exact rates computed and the event kept
+  with probability exact/bound (:func:`_thinned`; thinning, the same law).
 
 Used when numba is installed (``pip install 'sweepgen[fast]'``); otherwise
 :mod:`sweepgen._flight` flies the atoms with NumPy (``AVAILABLE``).
@@ -134,6 +140,16 @@ def _bound(scale, peak, q, x_start, x_reach):
 
 
 @_inlined
+def _bounds(k, scale, q, x_start, x_shift, x_reach):
+    """Bounds (:func:`_bound`) of a bright atom's expected photons and depumping events in the step;
+    ``x_shift`` takes ``x`` from the cycling level to the off-resonant one."""
+    lam_b = _bound(scale, k.peak, q, x_start, x_reach)
+    if not k.pumping:
+        return lam_b, 0.0
+    return lam_b, k.branching * _bound(scale, k.strength * k.peak, q, x_start + x_shift, x_reach)
+
+
+@_inlined
 def _follow(rng, dark, rest, part, lam_dark, lam_back):
     """Depumping and repumping through the last ``rest`` of a step from the level ``dark``, with a fresh
     ``Exp(1)`` clock: ``(dark, clock left, bright part, switched)``.
@@ -252,6 +268,39 @@ def _thinned(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt, lam_b, da
     return n, clock, pump, dark, went
 
 
+@_inlined
+def _exact(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt, lit, was_dark, large, clock, pump):
+    """An atom's step at its exact rates: ``(photons, clock, pump, dark, went dark)``.
+
+    The saturation at its place (none before the light starts), the expected
+    photons at the mid-point velocity, depumping and repumping when followed
+    (:func:`_switches`: the bright part of the step scales the photons), then the
+    photons (:func:`_photons`)."""
+    s = _saturation(k, k.peak, q, x, y) if lit else 0.0
+    v_mid = v - 0.5 * dt * k.recoil * _rate(k, xd, v, s)
+    lam = _rate(k, xd, v_mid, s) * dt
+    dark, went = was_dark, False
+    if k.pumping:
+        lam_dark = _off(k, xd_off, v_mid, s, dt)
+        went = not was_dark and pump <= lam_dark      # the clock runs out in the step
+        lam_back = 0.0
+        if was_dark or went:
+            lam_back = _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt)
+        dark, pump, part = _switches(rng, pump, was_dark, lam_dark, lam_back)
+        lam *= part
+    n, clock = _photons(rng, k, lam, large, clock)
+    return n, clock, pump, dark, went
+
+
+@_inlined
+def _kicks(rng, recoil, n):
+    """The velocity kicks of ``n`` photons: ``(along z, x, y)``. One recoil against the motion per photon,
+    plus the sum of ``n`` isotropic emissions (mean 0, variance ``n/3`` recoils² per axis, uncorrelated)."""
+    spread = recoil * math.sqrt(n / 3.0)
+    kick = spread * rng.standard_normal() - recoil * n
+    return kick, spread * rng.standard_normal(), spread * rng.standard_normal()
+
+
 @_compiled
 def _arrive(k, i, t, dt, z0, v0, w_v, w_z, w_x, w_y, w_vx, w_vy, w_idx, o_velocity, o_time, o_radius, o_transverse):
     """Record atom ``i`` crossing the target plane in the step (linear in the step; ``z0``, ``v0``: its place
@@ -328,49 +377,28 @@ def step(rng, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx,
             z_mid = z0 + v * half
             q = _along(k, z_mid)
             was_dark = w_dark[i]
-            n = 0.0
-            exact = True
+            lam_b = dark_b = math.inf
             if not was_dark:
-                x_start = xd + k.k_v * v
-                lam_b = _bound(scale, k.peak, q, x_start, x_reach)
-                dark_b = k.branching * _bound(scale, k.strength * k.peak, q, x_start + xd_off - xd, x_reach) \
-                    if k.pumping else 0.0
-                if lam_b < THIN and dark_b < THIN:
-                    exact = False
-                    clock, pump = w_clock[i] - lam_b, w_pump[i] - dark_b
-                    if clock <= 0.0 or pump <= 0.0:
-                        n, clock, pump, w_dark[i], went = _thinned(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q,
-                                                                   x, y, dt, lam_b, dark_b, w_clock[i], w_pump[i],
-                                                                   clock, pump)
-                        if went:
-                            w_depumped[i] = True
-                    w_clock[i], w_pump[i] = clock, pump
-            if exact:
-                s = _saturation(k, k.peak, q, x, y) if lit else 0.0
-                v_mid = v - half * recoil * _rate(k, xd, v, s)
-                lam = _rate(k, xd, v_mid, s) * dt
-                if k.pumping:
-                    lam_dark = _off(k, xd_off, v_mid, s, dt)
-                    goes_dark = not was_dark and w_pump[i] <= lam_dark      # the clock runs out in the step
-                    lam_back = 0.0
-                    if was_dark or goes_dark:
-                        lam_back = _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt)
-                    w_dark[i], w_pump[i], part = _switches(rng, w_pump[i], was_dark, lam_dark, lam_back)
-                    if goes_dark:
-                        w_depumped[i] = True
-                    lam *= part
-                n, w_clock[i] = _photons(rng, k, lam, large, w_clock[i])
+                lam_b, dark_b = _bounds(k, scale, q, xd + k.k_v * v, xd_off - xd, x_reach)
+            if lam_b < THIN and dark_b < THIN:
+                n, clock, pump, dark, went = 0.0, w_clock[i] - lam_b, w_pump[i] - dark_b, False, False
+                if clock <= 0.0 or pump <= 0.0:
+                    n, clock, pump, dark, went = _thinned(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt,
+                                                          lam_b, dark_b, w_clock[i], w_pump[i], clock, pump)
+            else:
+                n, clock, pump, dark, went = _exact(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt, lit,
+                                                    was_dark, large, w_clock[i], w_pump[i])
+            w_clock[i], w_pump[i], w_dark[i] = clock, pump, dark
+            if went:
+                w_depumped[i] = True
             if n > 0.0:
-                spread = recoil * math.sqrt(n / 3.0)
-                kick = spread * rng.standard_normal() - recoil * n
+                kick, side_x, side_y = _kicks(rng, recoil, n)
                 z += half * kick
                 w_photons[i] += n
-                side = spread * rng.standard_normal()
-                w_vx[i] += side
-                x += half * side
-                side = spread * rng.standard_normal()
-                w_vy[i] += side
-                y += half * side
+                w_vx[i] += side_x
+                x += half * side_x
+                w_vy[i] += side_y
+                y += half * side_y
         w_x[i] = x
         w_y[i] = y
         w_v[i] = v + kick

@@ -19,6 +19,10 @@ import math
 
 import numpy as np
 
+#: the kinds of program tables (:meth:`DetuningProgram.tables`, :meth:`SampledProgram.tables`)
+CONSTANT, SCHEDULE, SAMPLED = 0, 1, 2
+_NONE, _NONE2 = np.empty(0), np.empty((0, 0))
+
 
 class DetuningProgram:
     """The detuning seen by the atoms: a schedule, or one constant detuning.
@@ -49,6 +53,15 @@ class DetuningProgram:
             self._x = [float(b) for b in schedule.breakpoints]
             coeffs = np.asarray(schedule.coefficients, dtype=float)
             self._c = [tuple(float(c) for c in coeffs[:, i]) for i in range(coeffs.shape[1])]
+
+    def tables(self) -> tuple:
+        """The program as plain numbers and arrays, for the compiled flight (:mod:`sweepgen._stepping`):
+        ``(kind, period, constant, breakpoints, coefficients, boundaries twice, samples, block minima,
+        block maxima, block)`` (the ones a kind does not use are empty)."""
+        if self.schedule is None:
+            return (CONSTANT, 1.0, float(self.constant), _NONE, _NONE2, _NONE, _NONE, _NONE, _NONE, 1)
+        return (SCHEDULE, self.period, 0.0, np.array(self._x), np.array(self._c, dtype=float),
+                np.array(self._bounds2), _NONE, _NONE, _NONE, 1)
 
     @classmethod
     def fixed(cls, detuning: float) -> "DetuningProgram":
@@ -122,6 +135,10 @@ class SampledProgram:
         blocks = padded.reshape(-1, self.BLOCK)
         self._bmin, self._bmax = blocks.min(axis=1), blocks.max(axis=1)
         self._list = self.values.tolist()
+
+    def tables(self) -> tuple:
+        """The program as plain numbers and arrays (:meth:`DetuningProgram.tables`)."""
+        return (SAMPLED, self.period, 0.0, _NONE, _NONE2, _NONE, self.values, self._bmin, self._bmax, self.BLOCK)
 
     def at(self, t: float) -> float:
         """Detuning (Hz) at time ``t`` (s, any real value)."""

@@ -91,15 +91,19 @@ and the light held at the schedule's start detuning.
 Speed (``tests/benchmarks/bench_simulate.py``): the atoms are flown in parts on
 every core (:func:`chunks`, :mod:`sweepgen.workers`). With numba installed
 (``sweepgen[fast]``) each step is one compiled pass over the atoms in flight
-(:mod:`sweepgen._kernel`; a second pass first when depumping is followed);
-without it, the NumPy step below, which gives statistically identical results
-(tests/test_kernel.py). In the NumPy step, per step the working set of
+(:mod:`sweepgen._kernel`), and the steps between two take-ins of new atoms run
+in one compiled call (:mod:`sweepgen._stepping`); an atom far from resonance
+runs its clocks down by bounds of its rates and its exact rates are computed
+only when a clock runs out (thinning, exact in law). Without numba, the NumPy
+step below, which gives statistically identical results (tests/test_kernel.py).
+In the NumPy step, per step the working set of
 atoms in flight costs a few in-place array passes (the step rule's nearest
 velocity, the saturation at each atom, the expected counts at the start and
 mid-point velocities, the transverse drift, the tests that pick the atoms that
 scatter), and only the atoms that scatter get random numbers and kicks. Atoms
 that are done are parked and dropped once they make up a sixteenth of the
-working set.
+working set, and at least every ``SORT_EVERY`` steps the working set is sorted
+by velocity (the atoms near resonance then sit together).
 """
 
 from __future__ import annotations

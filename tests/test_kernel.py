@@ -101,6 +101,117 @@ def test_clock_run_out_gives_one_plus_poisson_photons():
     assert abs(clock.mean() - 1.0) < 4 / np.sqrt(n) and abs(clock.var() - 1.0) < 8 / np.sqrt(n)
 
 
+def _one_step(k, n, dt, detuning, rng, x0=0.0):
+    """Every atom of ``n`` (at rest, z = 0, x = ``x0``) through one compiled step; photons, depumped, clocks."""
+    from sweepgen import _kernel
+
+    clock, pump, photons = rng.standard_exponential(n), rng.standard_exponential(n), np.zeros(n)
+    depumped = np.zeros(n, bool)
+    args = [np.full(n, 1e-300), np.zeros(n), np.full(n, x0), np.zeros(n), np.zeros(n), np.zeros(n), clock, pump,
+            photons, np.ones(n, bool), np.zeros(n, bool), depumped, np.empty(0), np.arange(n), np.zeros(n, np.int8),
+            np.zeros(n), np.zeros(n), np.zeros(n), np.zeros((n, 2)), np.empty(n, np.intp)]
+    _kernel.step(rng, k, np.empty(0), np.empty(0), 0.0, dt, detuning, False, *args)
+    return photons, depumped, clock
+
+
+def test_thinned_atoms_far_from_resonance_scatter_poisson_photons_at_the_exact_rate():
+    # an atom off the beam's axis sees s = 1/2 where the bound assumes the axis' s = 1; detuned so that
+    # x = 2·2πΔ/Γ = 3: exact λ = f Γ dt s/(1 + s + x²) = dt/21, the bound dt/11. With λ = 0.2 the bound
+    # (0.38) is below the thinning threshold, so each candidate photon is kept with probability 0.52:
+    # the counts must be Poisson(0.2) (reference: scipy.stats.poisson), not Poisson(0.38)
+    from scipy import stats
+
+    from sweepgen import _kernel
+
+    n, lam, waist = 200_000, 0.2, 1.0
+    x0 = waist * math.sqrt(math.log(2.0) / 2.0)          # exp(-2 x0²/w0²) = 1/2
+    k = _kernel.constants(recoil=1e-12, distance=1e9, light_start=-1e9, peak=1.0, focused=True, focus=0.0,
+                          rayleigh=1e12, waist=waist, gamma=1.0, wavelength=1.0, fraction=1.0, split=0.0,
+                          strength=0.0, branching=0.0, pumping=False, loss=False, light=True, large=1e9)
+    dt = 21 * lam
+    assert dt / 11 < _kernel.THIN
+    photons, _, clock = _one_step(k, n, dt, 3.0 / (4 * math.pi), np.random.default_rng(4), x0)
+    counts = np.bincount(photons.astype(int), minlength=4)[:4] / n
+    expected = stats.poisson.pmf(np.arange(4), lam)
+    assert np.all(np.abs(counts - expected) < 4 * np.sqrt(expected / n)), (counts, expected)
+    assert abs(clock.mean() - 1.0) < 4 / np.sqrt(n)           # the clocks left are Exp(1) again
+
+
+def test_thinned_depumping_happens_at_the_exact_rate():
+    # a bright atom far from both resonances goes dark in a step with probability 1 − exp(−b R_off dt)
+    # (no repump: it stays dark); the off-resonant level at x_off = −5 with strength κ = 1/2, the atom off
+    # the axis where s = 1/2 (the bound takes s = 1): b R_off dt = b f Γ dt κs/(1 + κs + 25); the main level
+    # far (x = 20)
+    from sweepgen import _kernel
+
+    n, b, kappa = 200_000, 0.5, 0.5
+    k = _kernel.constants(recoil=1e-12, distance=1e9, light_start=-1e9, peak=1.0, focused=True, focus=0.0,
+                          rayleigh=1e12, waist=1.0, gamma=1.0, wavelength=1.0, fraction=1.0, split=25.0 / (4 * math.pi),
+                          strength=kappa, branching=b, pumping=True, loss=False, light=True, large=1e9)
+    dt = 5.0
+    lam_dark = b * dt * kappa * 0.5 / (1 + kappa * 0.5 + 25.0)
+    x0 = math.sqrt(math.log(2.0) / 2.0)                  # exp(-2 x0²/w0²) = 1/2
+    _, depumped, _ = _one_step(k, n, dt, 20.0 / (4 * math.pi), np.random.default_rng(6), x0)
+    p = 1 - math.exp(-lam_dark)
+    assert abs(depumped.mean() - p) < 4 * math.sqrt(p * (1 - p) / n), (depumped.mean(), p)
+
+
+def _programs():
+    """The shipped scenarios' planned sweeps, a constant detuning and a sampled detuning with a jump."""
+    from sweepgen.programs import SampledProgram
+
+    out = [DetuningProgram(plan(load_scenario(key)).schedule())
+           for key in ("rb87-chopped-oven", "na23-continuous-focused", "caf-buffer-gas")]
+    out.append(DetuningProgram.fixed(-123e6))
+    samples = np.concatenate([np.linspace(-400e6, -50e6, 700), np.linspace(-50e6, -390e6, 301)])
+    out.append(SampledProgram(samples + np.random.default_rng(0).normal(0, 1e5, samples.size), 2e-3))
+    return out
+
+
+@pytest.mark.parametrize("index", range(5))
+def test_compiled_detuning_equals_the_programs_own(index):
+    # the compiled run's detuning (sweepgen._stepping, from the program's tables) against the program's
+    # Python methods, at times over several periods (before zero too) and over intervals shorter and longer
+    # than a period: equal to rounding (the compiled code may reassociate)
+    from sweepgen import _stepping
+
+    program = _programs()[index]
+    p = program.tables()
+    period = getattr(program, "period", 1.0)
+    rng = np.random.default_rng(index)
+    scale = 1e-12 * 1e9
+    for t0 in rng.uniform(-2 * period, 5 * period, 300):
+        assert abs(_stepping.at(p, t0) - program.at(t0)) <= scale
+        for width in (1e-4 * period, 0.05 * period, 0.7 * period, 1.3 * period):
+            lo, hi = _stepping.extremes(p, t0, t0 + width)
+            want_lo, want_hi = program.extremes(t0, t0 + width)
+            assert abs(lo - want_lo) <= scale and abs(hi - want_hi) <= scale, (t0, width)
+
+
+def test_compiled_run_of_steps_flies_as_the_step_by_step_run():
+    # the compiled run of steps (one call per take-in) against the same compiled step called once per
+    # step from Python: the same step rule and detuning, so the same steps and, from the same seed, the
+    # same atoms
+    sc = load_scenario("rb87-chopped-oven")
+    program = DetuningProgram(plan(sc).schedule())
+    atoms = draw_atoms(sc, 1500, np.random.default_rng(1))
+    run = propagate(sc, atoms, program, np.random.default_rng(9))
+
+    class Stepwise(_flight._Compiled):
+        def steps_until(self, t):
+            return _flight._Propagation.steps_until(self, t)
+
+    saved = _flight._Compiled
+    _flight._Compiled = Stepwise
+    try:
+        step_by_step = propagate(sc, atoms, program, np.random.default_rng(9))
+    finally:
+        _flight._Compiled = saved
+    assert run.steps == step_by_step.steps and run.atom_steps == step_by_step.atom_steps
+    np.testing.assert_allclose(run.final_velocity, step_by_step.final_velocity, rtol=1e-9)
+    np.testing.assert_array_equal(run.fate, step_by_step.fate)
+
+
 @pytest.mark.slow
 def test_without_numba_the_numpy_step_is_used():
     code = (
