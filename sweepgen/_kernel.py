@@ -227,7 +227,8 @@ def _photons(rng, k, lam, large, clock):
     if lam <= 0.0:
         return 0.0, clock
     if large and lam >= k.large:
-        return max(lam + math.sqrt(lam) * rng.standard_normal(), 0.0), clock
+        n = lam + math.sqrt(lam) * rng.standard_normal()
+        return (n if n > 0.0 else 0.0), clock
     clock -= lam
     if clock > 0.0:
         return 0.0, clock
@@ -269,30 +270,6 @@ def _thinned(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt, lam_b, da
 
 
 @_inlined
-def _exact(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt, lit, was_dark, large, clock, pump):
-    """An atom's step at its exact rates: ``(photons, clock, pump, dark, went dark)``.
-
-    The saturation at its place (none before the light starts), the expected
-    photons at the mid-point velocity, depumping and repumping when followed
-    (:func:`_switches`: the bright part of the step scales the photons), then the
-    photons (:func:`_photons`)."""
-    s = _saturation(k, k.peak, q, x, y) if lit else 0.0
-    v_mid = v - 0.5 * dt * k.recoil * _rate(k, xd, v, s)
-    lam = _rate(k, xd, v_mid, s) * dt
-    dark, went = was_dark, False
-    if k.pumping:
-        lam_dark = _off(k, xd_off, v_mid, s, dt)
-        went = not was_dark and pump <= lam_dark      # the clock runs out in the step
-        lam_back = 0.0
-        if was_dark or went:
-            lam_back = _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt)
-        dark, pump, part = _switches(rng, pump, was_dark, lam_dark, lam_back)
-        lam *= part
-    n, clock = _photons(rng, k, lam, large, clock)
-    return n, clock, pump, dark, went
-
-
-@_inlined
 def _kicks(rng, recoil, n):
     """The velocity kicks of ``n`` photons: ``(along z, x, y)``. One recoil against the motion per photon,
     plus the sum of ``n`` isotropic emissions (mean 0, variance ``n/3`` recoils² per axis, uncorrelated)."""
@@ -323,8 +300,11 @@ def nearest_two(v, dark, alive, centre, other):
     best = best_other = math.inf
     for i in range(v.size):
         if alive[i] and not dark[i]:
-            best = min(best, abs(v[i] - centre))
-            best_other = min(best_other, abs(v[i] - other))
+            d, d_other = abs(v[i] - centre), abs(v[i] - other)
+            if d < best:
+                best = d
+            if d_other < best_other:
+                best_other = d_other
     return best, best_other
 
 
@@ -334,8 +314,11 @@ def nearest_two(v, dark, alive, centre, other):
     best = best_other = math.inf
     for i in range(v.size):
         if alive[i] and not dark[i]:
-            best = min(best, abs(v[i] - centre))
-            best_other = min(best_other, abs(v[i] - other))
+            d, d_other = abs(v[i] - centre), abs(v[i] - other)
+            if d < best:
+                best = d
+            if d_other < best_other:
+                best_other = d_other
     return best, best_other
 
 
@@ -343,18 +326,11 @@ def nearest_two(v, dark, alive, centre, other):
 def step(rng, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx, w_vy, w_clock, w_pump,
          w_photons, w_alive, w_dark, w_depumped, w_budget, w_idx, o_fate, o_velocity, o_time, o_radius,
          o_transverse, finished):
-    """One step of every atom in flight, in one pass; the working-set rows of the atoms done go to ``finished``.
-
-    Per atom: drift; the saturation at its place (the step's mid-point along the
-    beam, the step's end across it); the expected photons at the mid-point
-    velocity; depumping and repumping (when followed), which leave the part of
-    the step spent bright; the photons and kicks; the fate. A bright atom far from
-    resonance is first tried against bounds of its rates (:func:`_bound`, no
-    exponential): the photon and pump clocks run down by the bounds, and only when
-    one runs out are the exact rates computed and the event kept with probability
-    exact/bound (thinning of a Poisson process). ``rep_s``, ``rep_d``: the repump
-    lights' saturations and detunings (Hz) in this step. Returns how many are done,
-    and how many atoms in flight are in the dark level."""
+    """One step of every atom in flight, in one pass (drift, rates, depumping and repumping, photons and kicks,
+    fates); the working-set rows of the atoms done go to ``finished``. A bright atom far from resonance is
+    first tried against bounds of its rates (:func:`_bounds`, :func:`_thinned`). ``rep_s``, ``rep_d``: the
+    repump lights' saturations and detunings (Hz) in this step. Returns how many are done, and how many
+    atoms in flight are in the dark level."""
     done = 0
     n_dark = 0
     recoil = k.recoil
@@ -377,20 +353,35 @@ def step(rng, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx,
             z_mid = z0 + v * half
             q = _along(k, z_mid)
             was_dark = w_dark[i]
-            lam_b = dark_b = math.inf
+            n = 0.0
+            exact = True
             if not was_dark:
                 lam_b, dark_b = _bounds(k, scale, q, xd + k.k_v * v, xd_off - xd, x_reach)
-            if lam_b < THIN and dark_b < THIN:
-                n, clock, pump, dark, went = 0.0, w_clock[i] - lam_b, w_pump[i] - dark_b, False, False
-                if clock <= 0.0 or pump <= 0.0:
-                    n, clock, pump, dark, went = _thinned(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt,
-                                                          lam_b, dark_b, w_clock[i], w_pump[i], clock, pump)
-            else:
-                n, clock, pump, dark, went = _exact(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt, lit,
-                                                    was_dark, large, w_clock[i], w_pump[i])
-            w_clock[i], w_pump[i], w_dark[i] = clock, pump, dark
-            if went:
-                w_depumped[i] = True
+                if lam_b < THIN and dark_b < THIN:
+                    exact = False
+                    clock, pump = w_clock[i] - lam_b, w_pump[i] - dark_b
+                    if clock <= 0.0 or pump <= 0.0:
+                        n, clock, pump, w_dark[i], went = _thinned(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q,
+                                                                   x, y, dt, lam_b, dark_b, w_clock[i], w_pump[i],
+                                                                   clock, pump)
+                        if went:
+                            w_depumped[i] = True
+                    w_clock[i], w_pump[i] = clock, pump
+            if exact:
+                s = _saturation(k, k.peak, q, x, y) if lit else 0.0
+                v_mid = v - half * recoil * _rate(k, xd, v, s)
+                lam = _rate(k, xd, v_mid, s) * dt
+                if k.pumping:
+                    lam_dark = _off(k, xd_off, v_mid, s, dt)
+                    goes_dark = not was_dark and w_pump[i] <= lam_dark      # the clock runs out in the step
+                    lam_back = 0.0
+                    if was_dark or goes_dark:
+                        lam_back = _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt)
+                    w_dark[i], w_pump[i], part = _switches(rng, w_pump[i], was_dark, lam_dark, lam_back)
+                    if goes_dark:
+                        w_depumped[i] = True
+                    lam *= part
+                n, w_clock[i] = _photons(rng, k, lam, large, w_clock[i])
             if n > 0.0:
                 kick, side_x, side_y = _kicks(rng, recoil, n)
                 z += half * kick
@@ -399,19 +390,12 @@ def step(rng, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx,
                 x += half * side_x
                 w_vy[i] += side_y
                 y += half * side_y
-        w_x[i] = x
-        w_y[i] = y
-        w_v[i] = v + kick
-        w_z[i] = z
-        fate = 0
-        if z >= k.distance:
-            fate = ARRIVED
+        w_x[i], w_y[i], w_v[i], w_z[i] = x, y, v + kick, z
+        fate = ARRIVED if z >= k.distance else TURNED_BACK if v + kick <= 0.0 else \
+            DARK if k.loss and w_photons[i] > w_budget[i] else 0
+        if fate == ARRIVED:
             _arrive(k, i, t, dt, z0, v, w_v, w_z, w_x, w_y, w_vx, w_vy, w_idx, o_velocity, o_time, o_radius,
                     o_transverse)
-        elif v + kick <= 0.0:
-            fate = TURNED_BACK
-        elif k.loss and w_photons[i] > w_budget[i]:
-            fate = DARK
         if fate:
             o_fate[w_idx[i]] = fate
             finished[done] = i

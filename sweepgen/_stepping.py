@@ -161,9 +161,7 @@ def run_steps(rng, k, p, rule, rep_s, rep_follows, rep_offset, rep_fixed, state,
     rep_d = np.empty(rep_s.size)
     size = w_v.size
     while True:
-        vmax = -math.inf
-        for i in range(size):
-            vmax = max(vmax, w_v[i])
+        vmax = w_v.max()            # the parked atoms' 1 m/s included, as in the step-by-step rule
         dt, detuning = _choose(k, p, rule, state, t, vmax, w_v, w_dark, w_alive)
         state[DT_PREV] = dt
         state[SMALLEST] = min(state[SMALLEST], dt)
