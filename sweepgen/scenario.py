@@ -71,12 +71,13 @@ class Light:
         """:meth:`saturation_at` on the axis at one position ``z``, as a float: the same products and
         quotients on Python floats (off the axis factor, ``exp(0) = 1``, which changes nothing), for the
         integrations that ask for one position at a time thousands of times."""
+        z = float(z)                        # a NumPy scalar's arithmetic costs several times a float's
         if not z >= self.start:             # also NaN, as saturation_at
             return 0.0
         if not self.focused:
             return float(self.peak)
         u = (z - self.focus) / self.rayleigh_range
-        return float(self.peak / (1.0 + u * u))
+        return self.peak / (1.0 + u * u)
 
     def saturation_slope(self, z):
         """d s_eff/dz on axis (zero for unbounded light and before the light start)."""
