@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from sweepgen import _kernel, _stepping, physics
+from sweepgen import _kernel, physics
 
 #: largest velocity change per step as a fraction of the natural velocity width λΓ/2π (converged at 10⁶
 #: atoms: see sweepgen.simulate, "Time step")
@@ -575,7 +575,7 @@ class _Compiled(_Propagation):
         self.tables = tables() if tables is not None else None
 
     def steps_until(self, t: float) -> float:
-        """Steps from ``t`` in one compiled call (:func:`sweepgen._stepping.run_steps`) until the working
+        """Steps from ``t`` in one compiled call (:func:`sweepgen._kernel.run_steps`) until the working
         set needs :meth:`take_in`, none is left in flight or the run ends; the time reached."""
         if self.tables is None:
             return super().steps_until(t)
@@ -587,7 +587,7 @@ class _Compiled(_Propagation):
                 float(self.wavelength), float(self.rates.fraction), float(off.splitting) if off else 0.0, off is not None)
         state = np.array([self.dt_prev, self.smallest, self.dv_seen, self.steps, self.atom_steps, w.parked,
                           self.n_dark, self.sorted_at + SORT_EVERY], dtype=float)
-        t = _stepping.run_steps(
+        t = _kernel.run_steps(
             self.rng, self.k, self.tables, rule, self.repump_s, self.repump_follows, self.repump_offset,
             self.repump_fixed, state, float(t), float(self.r_peak), float(self.PARK), w.v, w.z, w.x, w.y, w.vx, w.vy,
             w.clock, w.pump, w.photons, w.alive, w.dark, w.depumped, w.budget if w.has_budget else self.no_budget,

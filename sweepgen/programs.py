@@ -55,7 +55,7 @@ class DetuningProgram:
             self._c = [tuple(float(c) for c in coeffs[:, i]) for i in range(coeffs.shape[1])]
 
     def tables(self) -> tuple:
-        """The program as plain numbers and arrays, for the compiled flight (:mod:`sweepgen._stepping`):
+        """The program as plain numbers and arrays, for the compiled flight (:func:`sweepgen._kernel.run_steps`):
         ``(kind, period, constant, breakpoints, coefficients, boundaries twice, samples, block minima,
         block maxima, block)`` (the ones a kind does not use are empty)."""
         if self.schedule is None:

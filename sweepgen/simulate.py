@@ -92,7 +92,7 @@ Speed (``tests/benchmarks/bench_simulate.py``): the atoms are flown in parts on
 every core (:func:`chunks`, :mod:`sweepgen.workers`). With numba installed
 (``sweepgen[fast]``) each step is one compiled pass over the atoms in flight
 (:mod:`sweepgen._kernel`), and the steps between two take-ins of new atoms run
-in one compiled call (:mod:`sweepgen._stepping`); an atom far from resonance
+in one compiled call (:func:`sweepgen._kernel.run_steps`); an atom far from resonance
 runs its clocks down by bounds of its rates and its exact rates are computed
 only when a clock runs out (thinning, exact in law). Without numba, the NumPy
 step below, which gives statistically identical results (tests/test_kernel.py).

@@ -211,7 +211,7 @@ def test_help_imports_no_heavy_library(command):
 #: what planning and checking never need: plotting, instruments, files of other formats, the cluster, the
 #: simulation's compiled step, and the parts of SciPy the actuator response does without
 NOT_FOR_PLAN_OR_CHECK = ("matplotlib", "pyvisa", "serial", "h5py", "dask", "distributed", "numba", "scipy.signal",
-                         "scipy.interpolate", "scipy.stats", "sweepgen._kernel", "sweepgen._stepping",
+                         "scipy.interpolate", "scipy.stats", "sweepgen._kernel",
                          "sweepgen._flight", "sweepgen.simulate", "sweepgen.plots", "sweepgen.drivers")
 
 

@@ -170,10 +170,10 @@ def _programs():
 
 @pytest.mark.parametrize("index", range(5))
 def test_compiled_detuning_equals_the_programs_own(index):
-    # the compiled run's detuning (sweepgen._stepping, from the program's tables) against the program's
+    # the compiled run's detuning (sweepgen._kernel.run_steps, from the program's tables) against the program's
     # Python methods, at times over several periods (before zero too) and over intervals shorter and longer
     # than a period: equal to rounding (the compiled code may reassociate)
-    from sweepgen import _stepping
+    from sweepgen import _kernel
 
     program = _programs()[index]
     p = program.tables()
@@ -181,9 +181,9 @@ def test_compiled_detuning_equals_the_programs_own(index):
     rng = np.random.default_rng(index)
     scale = 1e-12 * 1e9
     for t0 in rng.uniform(-2 * period, 5 * period, 300):
-        assert abs(_stepping.at(p, t0) - program.at(t0)) <= scale
+        assert abs(_kernel.at(p, t0) - program.at(t0)) <= scale
         for width in (1e-4 * period, 0.05 * period, 0.7 * period, 1.3 * period):
-            lo, hi = _stepping.extremes(p, t0, t0 + width)
+            lo, hi = _kernel.extremes(p, t0, t0 + width)
             want_lo, want_hi = program.extremes(t0, t0 + width)
             assert abs(lo - want_lo) <= scale and abs(hi - want_hi) <= scale, (t0, width)
 
