@@ -34,34 +34,34 @@ __version__ = "0.1.0"
 #: public name -> module it lives in (imported on first use)
 _PUBLIC = {
     **{name: "sweepgen.api" for name in ("load_scenario", "scenario_dict", "plan", "check", "simulate", "render",
-                                         "export", "upload", "calibrate", "inspect", "compare", "scan")},
+                                         "export", "upload", "calibrate", "inspect", "compare", "scan",
+                                         "optimise")},
     **{name: "sweepgen.results" for name in ("Result", "PlanResult", "CheckResult", "SimulationResult",
                                              "ExportResult", "UploadResult", "CalibrationResult", "InspectResult",
-                                             "CompareResult", "ScanResult")},
+                                             "CompareResult", "ScanResult", "OptimiseResult")},
     **{name: "sweepgen.errors" for name in ("SweepgenError", "InputError", "PlanError", "CheckFailed",
                                             "InstrumentError", "DriverError", "DeprecatedKey")},
     "Scenario": "sweepgen.scenario",
     "testing": "sweepgen.testing",
 }
-# optimise joins here when it lands: its function in sweepgen/api.py, its result in sweepgen/results.py
 
 __all__ = ["__version__", *_PUBLIC]
 
 if TYPE_CHECKING:  # pragma: no cover - for type checkers and editors only
     from sweepgen import testing
-    from sweepgen.api import (calibrate, check, compare, export, inspect, load_scenario, plan, render,
-                              scan, scenario_dict, simulate, upload)
+    from sweepgen.api import (calibrate, check, compare, export, inspect, load_scenario, optimise, plan,
+                              render, scan, scenario_dict, simulate, upload)
     from sweepgen.errors import (CheckFailed, DeprecatedKey, DriverError, InputError, InstrumentError, PlanError,
                                  SweepgenError)
     from sweepgen.results import (CalibrationResult, CheckResult, CompareResult, ExportResult, InspectResult,
-                                  PlanResult, Result, ScanResult, SimulationResult, UploadResult)
+                                  OptimiseResult, PlanResult, Result, ScanResult, SimulationResult, UploadResult)
     from sweepgen.scenario import Scenario
 
 
 class _Package(types.ModuleType):
-    """The package's module type: three public functions share their name with an internal module
-    (``simulate``, ``render``, ``compare``, ``scan``); importing that module must not hide the function, so
-    ``sweepgen.simulate`` stays the function (internal code imports from the module:
+    """The package's module type: five public functions share their name with an internal module
+    (``simulate``, ``render``, ``compare``, ``scan``, ``optimise``); importing that module must not hide
+    the function, so ``sweepgen.simulate`` stays the function (internal code imports from the module:
     ``from sweepgen.simulate import ...`` or ``importlib.import_module("sweepgen.scan")``)."""
 
     def __setattr__(self, name, value):

@@ -28,7 +28,7 @@ from typing import Any, Callable, Union
 from sweepgen.costs import DEFAULT_ATOMS
 from sweepgen.errors import CheckFailed, InputError
 from sweepgen.results import (CalibrationResult, CheckResult, CompareResult, ExportResult, InspectResult,
-                              PlanResult, ScanResult, SimulationResult, UploadResult)
+                              OptimiseResult, PlanResult, ScanResult, SimulationResult, UploadResult)
 
 #: what names a scenario: a built-in key, a path, a dict with the TOML's keys and unit strings, or a loaded one
 ScenarioSource = Union[str, "os.PathLike[str]", Mapping, Any]
@@ -673,4 +673,82 @@ def scan(scenario: ScenarioSource, vary: str | Sequence[str] | Mapping[str, str]
             paths["plot"] = str(plot_scan(result, Path(output) / f"{result.stem}-scan.png"))
         doc["files"] = paths
     return ScanResult(doc, title=result.title, inner=result)
+
+
+#: designs an optimisation may try (as ``sweepgen optimise``)
+OPTIMISE_EVALUATIONS = 60
+
+
+def optimise(scenario: ScenarioSource, free: str | Sequence[str] | Mapping[str, str | None], *,
+             objective: str = "captured_fraction", minimise: bool = False, atoms: int = SCAN_ATOMS,
+             confirm_atoms: int | None = None, evaluations: int = OPTIMISE_EVALUATIONS, seed: int = 0,
+             workers: int | None = None, cluster: str | None = None, output: str | os.PathLike | None = None,
+             progress: Callable | None = None) -> OptimiseResult:
+    """Search free keys of a scenario for the design with the best objective among those that pass
+    check (``sweepgen optimise``): SciPy's differential evolution, every design on the same atoms
+    (one seed), the winner confirmed beside the starting design with a fresh seed and more atoms.
+
+    Parameters
+    ----------
+    scenario : str, path-like or dict
+        A built-in key, a path or a dict with the TOML's keys (see :func:`load_scenario`).
+    free : str, list of str, or dict
+        ``"KEY=LOW:HIGH"`` (bounds with their unit) or ``"KEY"`` (half to one and a half times its
+        value), several of them, or ``{KEY: "LOW:HIGH" or None}``.
+    objective : str
+        The number of the simulation's JSON to make as large as possible (``captured_fraction``).
+    minimise : bool
+        Make it as small as possible instead.
+    atoms : int
+        Atoms per design during the search.
+    confirm_atoms : int, optional
+        Atoms of the confirmation (default: 10 × ``atoms``).
+    evaluations : int
+        About how many designs the search may try.
+    seed : int
+        The seed every design of the search uses; the confirmation uses a fresh one derived from it.
+    workers, cluster
+        Local processes (default: one per core; 1 runs in this process), or the address of a Dask
+        scheduler to run the designs on instead.
+    output : str or path-like, optional
+        Folder for ``NAME-best.toml``, ``NAME-optimise.md``, ``.json`` and ``.png`` (numbered, never
+        replaced; default: nothing written).
+    progress : callable, optional
+        ``progress(done, total)`` after each design.
+
+    Returns
+    -------
+    OptimiseResult
+        ``best`` (the winner's ``values``, ``objective``), ``confirmation``, ``improvement`` (with its
+        error), ``binding`` (the rules or bounds that stop the search), ``history``, ``finished``
+        (False when Ctrl-C stopped it: nothing is confirmed then); :meth:`OptimiseResult.best_scenario`.
+
+    Example
+    -------
+    >>> r = optimise("rb87-chopped-oven", "chirp.force_fraction=0.4:0.9", atoms=300)  # doctest: +SKIP
+    >>> r.best["values"], r.improvement["difference"]                                 # doctest: +SKIP
+    """
+    service = importlib.import_module("sweepgen.optimise")
+    if isinstance(free, str):
+        free = [free]
+    elif isinstance(free, Mapping):
+        free = [key if bounds is None else f"{key}={bounds}" for key, bounds in free.items()]
+    goal = service.Goal(objective, minimise).check()
+    start = scenario
+    if isinstance(scenario, Mapping):
+        scan_service = importlib.import_module("sweepgen.scan")
+        data = copy.deepcopy(dict(scenario))
+        start = scan_service.Base(DICT_NAME, data, load_scenario(data).title)
+    result = service.optimise(start, [str(f) for f in free], goal=goal, atoms=atoms, seed=seed, budget=evaluations,
+                              confirm_atoms=confirm_atoms, workers=workers, cluster=cluster, progress=progress)
+    files = None
+    if output is not None:
+        from sweepgen import optimise_report
+
+        Path(output).mkdir(exist_ok=True)           # the last level only, as export does
+        files = optimise_report.write(result, output, result.search.start.stem)
+    doc = result.to_json()                          # after writing: it says whether the file's layout was kept
+    if files is not None:
+        doc["files"] = files
+    return OptimiseResult(doc, title=result.search.start.title, inner=result)
 

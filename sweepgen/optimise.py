@@ -343,14 +343,15 @@ def _where(s: Search) -> dict:
 
 def optimise(ref, frees_text, *, goal: Goal = Goal(), atoms: int, seed: int = 0, budget: int = 60,
              confirm_atoms: int | None = None, workers=None, cluster=None, progress=None) -> Optimisation:
-    """Search the free keys of scenario ``ref`` (``--free`` texts) for the design with the best
+    """Search the free keys of scenario ``ref`` (a built-in key, a path or a :class:`sweepgen.scan.Base`;
+    ``--free`` texts) for the design with the best
     ``goal`` that passes check; confirm it with a fresh seed and ``confirm_atoms`` (default 10 ×
     ``atoms``) beside the starting design. Ctrl-C ends the search: the result holds what finished
     (``finished`` False) and nothing is confirmed."""
     from sweepgen import workers as runner
-    from sweepgen.scan import base
+    from sweepgen.scan import Base, base
 
-    start = base(ref)
+    start = ref if isinstance(ref, Base) else base(ref)
     frees = [parse_free(t, start) for t in frees_text]
     keys = [f.key for f in frees]
     if len(set(keys)) != len(keys):

@@ -61,9 +61,13 @@ def scenario_text(result, folder) -> tuple[str, bool]:
     best = result.best_row or result.best
     values = {**best["values"], **moved_profiles(s.start, folder)}
     wanted = set_keys(s.start.data, values)
-    text, kept = _toml_edit.with_values(Path(s.start.path).read_text(encoding="utf-8-sig"), values, wanted)
+    source = Path(s.start.path)
+    if source.is_file():
+        text, kept = _toml_edit.with_values(source.read_text(encoding="utf-8-sig"), values, wanted)
+    else:                           # a scenario given as a dict (the Python API): its table, written whole
+        text, kept = _toml_edit.dump(wanted), False
     shown = ", ".join(f"{k} = {v}" for k, v in best["values"].items())
-    head = (f"# The best design sweepgen optimise found from {Path(s.start.path).name}: {shown}\n"
+    head = (f"# The best design sweepgen optimise found from {source.name}: {shown}\n"
             f"# (see the report beside this file)\n")
     return head + text, kept
 

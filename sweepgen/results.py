@@ -593,3 +593,41 @@ class ScanResult(Result):
 
         return scan_figure(self._inner)
 
+
+class OptimiseResult(Result):
+    """The search for the best design (what ``sweepgen optimise`` prints): ``best`` (the winner's
+    ``values`` and ``objective``), ``confirmation`` (the start and the winner again with a fresh seed
+    and more atoms), ``improvement`` (``difference`` with its ``error``, ``significant``), ``binding``,
+    ``history`` and ``finished``; :meth:`best_scenario` is the winner as a scenario dict."""
+
+    PLOT = "the objective of every design tried, the best so far, and where each free key was"
+
+    def best_scenario(self) -> dict | None:
+        """The winning design as a dict of the TOML's keys (for :func:`sweepgen.load_scenario`), or None
+        when no design passed check."""
+        from sweepgen.scan import set_keys
+
+        best = self._doc.get("best")
+        return None if best is None else set_keys(self._inner.search.start.data, best["values"])
+
+    def table_rows(self):
+        out = []
+        conf = self._doc["confirmation"]
+        for name in ("start", "best"):
+            row = conf.get(name)
+            if row is None:
+                continue
+            values = ", ".join(f"{k} = {v}" for k, v in row["values"].items()) or "(as in the file)"
+            p = row.get("captured_fraction")
+            captured = "—" if p is None else f"{100 * p:.2f} ± {100 * row['captured_error']:.2f} % captured"
+            out.append((f"{name}: {values}", f"{captured}, {'ok' if row['verdict'] == 'pass' else 'FAIL'}"))
+        imp = self._doc.get("improvement")
+        if imp is not None:
+            out.append(("improvement (confirmed)", f"{100 * imp['difference']:+.2f} ± {100 * imp['error']:.2f} points"))
+        return out
+
+    def _figure(self):
+        from sweepgen.search_plots import history_figure
+
+        return history_figure(self._inner)
+

@@ -196,7 +196,40 @@ def test_public_functions_keep_their_names_beside_modules_of_the_same_name():
 
     assert callable(sweepgen.simulate) and sweepgen.simulate.__module__ == "sweepgen.api"
     assert sweepgen.render.__module__ == "sweepgen.api" and sweepgen.compare.__module__ == "sweepgen.api"
+    import sweepgen.optimise  # noqa: F401
+
+    assert sweepgen.optimise.__module__ == "sweepgen.api"
     assert set(sweepgen.__all__) <= set(dir(sweepgen))
+
+
+@pytest.mark.slow
+def test_optimise_document_equals_the_command_line_and_takes_a_dict(tmp_path):
+    # the same search through the command and the function (same seed, one process): the same JSON but
+    # for the files' paths; from a dict the winner is written whole and loads with the winning value
+    from conftest import to_toml
+    from test_scan import FAST, largest_start_velocity
+
+    from sweepgen.scenario import load_scenario
+
+    path = tmp_path / "fast.toml"
+    path.write_text(to_toml(FAST))
+    free = "chirp.start_velocity=150 m/s:300 m/s"
+    args = ("--atoms", "60", "--evaluations", "8", "--confirm-atoms", "200", "--workers", "1")
+    code, doc = cli_json("optimise", path, "--free", free, *args, "-o", tmp_path / "cli")
+    api = sweepgen.optimise(path, free, atoms=60, evaluations=8, confirm_atoms=200, workers=1, output=tmp_path / "py")
+    got = api.to_json()
+    assert code == 0 and {k: v for k, v in doc.items() if k != "files"} == {k: v for k, v in got.items()
+                                                                          if k != "files"}
+    assert set(got["files"]) == {"scenario", "plot", "report", "json"}
+    best = float(api.best["values"]["chirp.start_velocity"].split()[0])
+    assert 150 <= best <= largest_start_velocity(load_scenario(path)) + 1e-6
+    from_dict = sweepgen.optimise(FAST, {"chirp.start_velocity": "150 m/s:300 m/s"}, atoms=60, evaluations=8,
+                                  confirm_atoms=200, workers=1, output=tmp_path / "dict")
+    assert from_dict.best == api.best                  # the same search from the same table
+    written = load_scenario(from_dict.files["scenario"])
+    assert written.chirp.start_velocity == pytest.approx(best)
+    assert sweepgen.load_scenario(from_dict.best_scenario()).chirp.start_velocity == pytest.approx(best)
+    assert "improvement (confirmed)" in repr(api) and api.plot(tmp_path / "h.png").is_file()
 
 
 @pytest.mark.slow

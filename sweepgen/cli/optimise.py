@@ -53,10 +53,12 @@ def command(scenario, free, objective, minimise, atoms, confirm_atoms, evaluatio
       sweepgen optimise my.toml --free "chirp.start_velocity=200 m/s:300 m/s" \\
                                 --free chirp.force_fraction -o best/
     """
+    import importlib
     from pathlib import Path
 
-    from sweepgen import optimise as service
     from sweepgen import optimise_report
+
+    service = importlib.import_module("sweepgen.optimise")      # the package's `optimise` is the API function
 
     goal = service.Goal(objective, minimise).check()
     with progress_bar(evaluations, "designs", show=not as_json and sys.stderr.isatty()) as progress:
