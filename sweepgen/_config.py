@@ -49,6 +49,19 @@ def load_toml_bytes(path) -> tuple[dict, bytes]:
     return parse_toml(text, path), raw
 
 
+def require_file(path) -> Path:
+    """``path`` as a Path when it names a regular file; otherwise an :class:`InputError` saying what it is
+    (missing, a folder, or a device or pipe, which never end or never hold a measurement)."""
+    path = Path(path)
+    if path.is_file():
+        return path
+    if not path.exists():
+        raise InputError("file not found", file=str(path))
+    if path.is_dir():
+        raise InputError("is a folder, not a file", file=str(path))
+    raise InputError("not a regular file (a device or a pipe); give a file", file=str(path))
+
+
 def read_bounded(path: Path, limit: int, what: str) -> bytes:
     """The bytes of ``path``, refused when there are more than ``limit`` of them."""
     try:

@@ -144,9 +144,9 @@ def _kind(name: str) -> str | None:
 
 def read(path) -> Measurement:
     """Read a measurement file (see the module doc); bad files are an :class:`InputError`."""
-    path = Path(path)
-    if not path.is_file():
-        raise InputError("file not found", file=str(path))
+    from sweepgen._config import require_file
+
+    path = require_file(path)
     if path.suffix.lower() in HDF5_SUFFIXES:
         return _read_nexus(path)
     return _read_text(path)

@@ -109,10 +109,10 @@ def locate(source) -> tuple[Path, Path | None]:
         doc = load_sidecar(path)
         data = path.parent / str(doc.get("data_file", ""))
         return data, path
+    from sweepgen._config import require_file
+
     side = path.with_name(path.name + ".json")
-    if not path.is_file():
-        raise InputError("file not found", file=str(path))
-    return path, side if side.is_file() else None
+    return require_file(path), side if side.is_file() else None
 
 
 #: largest JSON sidecar read (bytes); sweepgen writes a few kilobytes (a lookup scaling: some hundred)

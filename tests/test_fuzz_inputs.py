@@ -359,6 +359,16 @@ def test_the_issue_inputs_in_real_processes(tmp_path):
     assert not (tmp_path / "no").exists()
 
 
+@pytest.mark.skipif(not os.path.exists(os.devnull) or os.name != "posix", reason="a POSIX device file")
+@pytest.mark.parametrize("args", [("calibrate", os.devnull, "--laser", "demo-ecdl-piezo", "--stage", "1"),
+                                  ("inspect", os.devnull)])
+def test_a_device_given_as_a_file_is_named_as_such(args, tmp_path):
+    # a device exists but is no file: the refusal says so rather than "file not found"
+    result = run_cli(*args, "-o", tmp_path / "new.toml") if args[0] == "calibrate" else run_cli(*args)
+    assert result.exit_code == 2 and "not a regular file" in result.output and "not found" not in result.output
+    assert not (tmp_path / "new.toml").exists()
+
+
 # ---------------------------------------------------------------------------------------------
 # Tables read back (JSON sidecars) and measurement files
 # ---------------------------------------------------------------------------------------------
