@@ -567,6 +567,12 @@ class CompareResult(Result):
         return compare_figure(cmp, scenario=scenario)
 
 
+def _captured(row: dict) -> str:
+    """A design's captured share with its error, as the scan and search results show it."""
+    p = row.get("captured_fraction")
+    return "—" if p is None else f"{100 * p:.2f} ± {100 * row['captured_error']:.2f} % captured"
+
+
 class ScanResult(Result):
     """The designs of a scan, each checked and simulated with the same seed (what ``sweepgen scan``
     prints): ``rows`` (each design's ``values``, ``verdict``, ``failing_rules``,
@@ -581,8 +587,7 @@ class ScanResult(Result):
         out = []
         for row in self._doc["rows"]:
             values = ", ".join(f"{k} = {v}" for k, v in row["values"].items())
-            p = row.get("captured_fraction")
-            captured = "—" if p is None else f"{100 * p:.2f} ± {100 * row['captured_error']:.2f} % captured"
+            captured = _captured(row)
             verdict = {"pass": "ok", "fail": "FAIL " + ",".join(row["failing_rules"]),
                        "invalid": "cannot exist"}.get(row["verdict"], row["verdict"])
             out.append((values, f"{captured}, {verdict}"))
@@ -618,8 +623,7 @@ class OptimiseResult(Result):
             if row is None:
                 continue
             values = ", ".join(f"{k} = {v}" for k, v in row["values"].items()) or "(as in the file)"
-            p = row.get("captured_fraction")
-            captured = "—" if p is None else f"{100 * p:.2f} ± {100 * row['captured_error']:.2f} % captured"
+            captured = _captured(row)
             out.append((f"{name}: {values}", f"{captured}, {'ok' if row['verdict'] == 'pass' else 'FAIL'}"))
         imp = self._doc.get("improvement")
         if imp is not None:
