@@ -609,11 +609,18 @@ class OptimiseResult(Result):
 
     def best_scenario(self) -> dict | None:
         """The winning design as a dict of the TOML's keys (for :func:`sweepgen.load_scenario`), or None
-        when no design passed check."""
+        when no design passed check. Profiles the scenario file names by a relative path are named
+        relative to the current folder, where a dict's paths are read from."""
+        from pathlib import Path
+
+        from sweepgen.optimise_report import moved_profiles
         from sweepgen.scan import set_keys
 
         best = self._doc.get("best")
-        return None if best is None else set_keys(self._inner.search.start.data, best["values"])
+        if best is None:
+            return None
+        start = self._inner.search.start
+        return set_keys(start.data, {**best["values"], **moved_profiles(start, Path.cwd())})
 
     def table_rows(self):
         out = []

@@ -203,16 +203,19 @@ def test_public_functions_keep_their_names_beside_modules_of_the_same_name():
 
 
 @pytest.mark.slow
-def test_optimise_document_equals_the_command_line_and_takes_a_dict(tmp_path):
+def test_optimise_document_equals_the_command_line_and_takes_a_dict(tmp_path, monkeypatch):
     # the same search through the command and the function (same seed, one process): the same JSON but
-    # for the files' paths; from a dict the winner is written whole and loads with the winning value
+    # for the files' paths; from a dict the winner is written whole and loads with the winning value; the
+    # winner of a file naming its species by a relative path loads as a dict from another folder
     from conftest import to_toml
     from test_scan import FAST, largest_start_velocity
 
     from sweepgen.scenario import load_scenario
 
+    (tmp_path / "profiles").mkdir()
+    (tmp_path / "profiles" / "atom.toml").write_text(open(FAST["species"], encoding="utf-8").read())
     path = tmp_path / "fast.toml"
-    path.write_text(to_toml(FAST))
+    path.write_text(to_toml({**FAST, "species": "profiles/atom.toml"}))
     free = "chirp.start_velocity=150 m/s:300 m/s"
     args = ("--atoms", "60", "--evaluations", "8", "--confirm-atoms", "200", "--workers", "1")
     code, doc = cli_json("optimise", path, "--free", free, *args, "-o", tmp_path / "cli")
@@ -229,6 +232,9 @@ def test_optimise_document_equals_the_command_line_and_takes_a_dict(tmp_path):
     written = load_scenario(from_dict.files["scenario"])
     assert written.chirp.start_velocity == pytest.approx(best)
     assert sweepgen.load_scenario(from_dict.best_scenario()).chirp.start_velocity == pytest.approx(best)
+    (tmp_path / "elsewhere").mkdir()
+    monkeypatch.chdir(tmp_path / "elsewhere")
+    assert sweepgen.load_scenario(api.best_scenario()).chirp.start_velocity == pytest.approx(best)
     assert "improvement (confirmed)" in repr(api) and api.plot(tmp_path / "h.png").is_file()
 
 
