@@ -573,6 +573,7 @@ class _Compiled(_Propagation):
         self.no_budget = np.empty(0)
         tables = getattr(program, "tables", None)
         self.tables = tables() if tables is not None else None
+        self.words = _kernel.stream(rng)
 
     def steps_until(self, t: float) -> float:
         """Steps from ``t`` in one compiled call (:func:`sweepgen._kernel.run_steps`) until the working
@@ -588,7 +589,7 @@ class _Compiled(_Propagation):
         state = np.array([self.dt_prev, self.smallest, self.dv_seen, self.steps, self.atom_steps, w.parked,
                           self.n_dark, self.sorted_at + SORT_EVERY], dtype=float)
         t = _kernel.run_steps(
-            self.rng, self.k, self.tables, rule, self.repump_s, self.repump_follows, self.repump_offset,
+            self.words, self.k, self.tables, rule, self.repump_s, self.repump_follows, self.repump_offset,
             self.repump_fixed, state, float(t), float(self.r_peak), float(self.PARK), w.v, w.z, w.x, w.y, w.vx, w.vy,
             w.clock, w.pump, w.photons, w.alive, w.dark, w.depumped, w.budget if w.has_budget else self.no_budget,
             w.lit, w.idx, out.fate, out.final_velocity, out.arrival_time, out.radius, out.transverse_velocity,
@@ -614,7 +615,7 @@ class _Compiled(_Propagation):
         repump_d = np.array([ch.detuning_with(detuning) for ch in self.rates.repumps], dtype=float)
         large = bool(dt * self.r_peak >= LARGE_COUNT)
         done, self.n_dark = _kernel.step(
-            self.rng, self.k, self.repump_s, repump_d, t, dt, detuning, large, w.v, w.z, w.x, w.y, w.vx, w.vy,
+            self.words, self.k, self.repump_s, repump_d, t, dt, detuning, large, w.v, w.z, w.x, w.y, w.vx, w.vy,
             w.clock, w.pump, w.photons, w.alive, w.dark, w.depumped, w.budget if w.has_budget else self.no_budget,
             w.idx, self.out.fate, self.out.final_velocity, self.out.arrival_time, self.out.radius,
             self.out.transverse_velocity, self.finished)

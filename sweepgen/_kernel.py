@@ -13,10 +13,13 @@ function it calls changes in another.)
 The same model as the NumPy step of :mod:`sweepgen._flight` (written out in
 :mod:`sweepgen.simulate`), atom by atom instead of array by array: drift, the
 saturation at the atom's place, the expected photons at the step's mid-point
-velocity, depumping and repumping, the photons and kicks, and the fates. It
-draws its random numbers from the run's own :class:`numpy.random.Generator`, in
-another order than the NumPy step, so the two give statistically identical
-results, not the same numbers. Two draws differ in method, not in law:
+velocity, depumping and repumping, the photons and kicks, and the fates. Its
+random numbers come from a generator compiled into the step (:func:`stream`:
+NumPy's SFC64 seeded from the run's :class:`numpy.random.Generator`, with the
+ziggurat's normal and exponential draws; a draw costs a quarter of a call into
+the run's generator), in another order than the NumPy step, so the two give
+statistically identical results, not the same numbers. Two draws differ in
+method, not in law:
 
 * an atom whose photon clock runs out with ``u`` left of the step scatters
   ``1 + Poisson(u)`` photons; here the Poisson count is a run of unit-rate
@@ -92,6 +95,49 @@ _FAST = {"reassoc", "arcp", "contract", "afn", "nsz"}
 THIN = 0.5
 
 
+# -- the step's random numbers: a small generator compiled into the step -------------------------
+# The generator's state travels through the step's helpers as a tuple of four 64-bit words, so that
+# a draw costs a couple of nanoseconds (no call into another library, no array per draw). The
+# generator is NumPy's SFC64 (:class:`numpy.random.SFC64`; the same words, tests/test_kernel.py), and
+# the normal and exponential laws are drawn by the ziggurat of G. Marsaglia and W. W. Tsang,
+# J. Stat. Softw. 5(8) (2000), the way :class:`numpy.random.Generator` lays it out: one 64-bit word per
+# draw (its low 8 or 11 bits choose the layer), the rare draws outside a layer's box finished by
+# :func:`_normal_rare` and :func:`_exponential_rare`.
+_U = np.uint64
+_NORMAL_R = 3.6541528853610088      # the ziggurat's right edge for 256 layers (Marsaglia & Tsang 2000)
+_EXPONENTIAL_R = 7.69711747013104972
+
+
+def _ziggurat(right, density, inverse, tail, bits):
+    """Tables of a 256-layer ziggurat of the decreasing ``density`` (unnormalised; ``inverse`` its inverse)
+    with right edge ``right`` and the area ``tail`` beyond it: ``(k, w, f)``, integers compared with a draw of ``bits`` bits, the
+    layers' widths per unit of that draw and the density at their edges (Marsaglia & Tsang 2000, sec. 2:
+    every layer, and the base strip with the tail, has the area ``v = right·f(right) + tail``)."""
+    v = right * density(right) + tail
+    x = np.empty(256)
+    x[255] = right
+    for i in range(255, 1, -1):
+        x[i - 1] = inverse(v / x[i] + density(x[i]))
+    m = 2.0 ** bits
+    k, w, f = np.zeros(256, dtype=np.uint64), x / m, np.array([density(xi) for xi in x])
+    base = v / density(right)                  # the base strip's width, tail included
+    k[0], w[0], f[0] = int(right / base * m), base / m, 1.0
+    k[2:] = (x[1:255] / x[2:] * m).astype(np.uint64)
+    return k, w, f
+
+
+_KI, _WI, _FI = _ziggurat(_NORMAL_R, lambda x: math.exp(-0.5 * x * x), lambda y: math.sqrt(-2.0 * math.log(y)),
+                          math.sqrt(math.pi / 2.0) * math.erfc(_NORMAL_R / math.sqrt(2.0)), 52)
+_KE, _WE, _FE = _ziggurat(_EXPONENTIAL_R, lambda x: math.exp(-x), lambda y: -math.log(y), math.exp(-_EXPONENTIAL_R), 53)
+
+
+def stream(rng: np.random.Generator) -> np.ndarray:
+    """The compiled step's generator state (four 64-bit words), seeded from ``rng`` through
+    :class:`numpy.random.SeedSequence`: the run's seed fixes it, and it is independent of ``rng``'s own draws."""
+    seed = np.random.SeedSequence(rng.integers(0, 2**63, size=4).tolist())
+    return np.random.SFC64(seed).state["state"]["state"].astype(np.uint64)
+
+
 def _compiled(func):
     return numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=_FAST)(func) if AVAILABLE else func
 
@@ -99,6 +145,132 @@ def _compiled(func):
 def _inlined(func):
     """A helper of the step, compiled into it (no call, no reference counting of its arrays per atom)."""
     return numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=_FAST, inline="always")(func) if AVAILABLE else func
+
+
+def _exact(func):
+    """A rare branch of a draw, compiled on its own with exact floating point (so that it decides as NumPy's)."""
+    return numba.njit(cache=True, nogil=True, error_model="numpy")(func) if AVAILABLE else func
+
+
+@_inlined
+def _word(s):
+    """The next 64-bit word of the generator ``s`` (SFC64, as :class:`numpy.random.SFC64`) and its next state."""
+    a, b, c, w = s
+    word = a + b + w
+    return word, (b ^ (b >> _U(11)), c + (c << _U(3)), ((c << _U(24)) | (c >> _U(40))) + word, w + _U(1))
+
+
+@_inlined
+def _uniform(s):
+    """A uniform draw in [0, 1) (53 bits) and the next state."""
+    word, s = _word(s)
+    return np.float64(word >> _U(11)) * (1.0 / 9007199254740992.0), s
+
+
+@_inlined
+def _normal_try(s):
+    """One try of the normal ziggurat: ``(x, layer, bits, inside its layer's box, next state)``; the low 8
+    bits of the word choose the layer, the next its sign, 52 more ``x``."""
+    word, s = _word(s)
+    layer, word = word & _U(0xff), word >> _U(8)
+    bits = (word >> _U(1)) & _U(0x000fffffffffffff)
+    x = np.float64(bits) * _WI[layer] * (1.0 - 2.0 * np.float64(word & _U(1)))
+    return x, layer, bits, bits < _KI[layer], s
+
+
+@_exact
+def _normal_rare(s, layer, bits, x):
+    """A normal draw that fell outside its layer's box (``x`` from ``bits`` in ``layer``): the wedge's test,
+    or a draw from the tail beyond the right edge (layer 0), else a fresh draw."""
+    while True:
+        if layer == 0:
+            while True:
+                u, s = _uniform(s)
+                e, s = _uniform(s)
+                tail = -math.log1p(-u) / _NORMAL_R
+                if -2.0 * math.log1p(-e) > tail * tail:
+                    return (-(_NORMAL_R + tail) if (bits >> _U(8)) & _U(1) else _NORMAL_R + tail), s
+        else:
+            u, s = _uniform(s)
+            if (_FI[layer - 1] - _FI[layer]) * u + _FI[layer] < math.exp(-0.5 * x * x):
+                return x, s
+        x, layer, bits, inside, s = _normal_try(s)
+        if inside:
+            return x, s
+
+
+@_inlined
+def _normal(s):
+    """A standard normal draw and the next state (the ziggurat; 99 % of draws end in the box)."""
+    x, layer, bits, inside, s = _normal_try(s)
+    if inside:
+        return x, s
+    return _normal_rare(s, layer, bits, x)
+
+
+@_inlined
+def _exponential_try(s):
+    """One try of the exponential ziggurat: ``(x, layer, inside its layer's box, next state)``; bits 3 to 10
+    of the word choose the layer, the 53 above them ``x``."""
+    word, s = _word(s)
+    word >>= _U(3)
+    layer, word = word & _U(0xff), word >> _U(8)
+    return np.float64(word) * _WE[layer], layer, word < _KE[layer], s
+
+
+@_exact
+def _exponential_rare(s, layer, x):
+    """An exponential draw that fell outside its layer's box: the tail beyond the right edge (layer 0), the
+    wedge's test, else a fresh draw."""
+    while True:
+        u, s = _uniform(s)
+        if layer == 0:
+            return _EXPONENTIAL_R - math.log1p(-u), s
+        if (_FE[layer - 1] - _FE[layer]) * u + _FE[layer] < math.exp(-x):
+            return x, s
+        x, layer, inside, s = _exponential_try(s)
+        if inside:
+            return x, s
+
+
+@_inlined
+def _exponential(s):
+    """A unit-rate exponential draw and the next state (the ziggurat; 99 % of draws end in the box)."""
+    x, layer, inside, s = _exponential_try(s)
+    if inside:
+        return x, s
+    return _exponential_rare(s, layer, x)
+
+
+NORMAL, EXPONENTIAL, UNIFORM = range(3)
+
+
+@_compiled
+def draws(state, n, law):
+    """``n`` draws of ``law`` (:data:`NORMAL`, :data:`EXPONENTIAL` or :data:`UNIFORM`) from the generator
+    ``state`` (:func:`stream`; advanced in place): the step's own draws, for tests against NumPy's."""
+    s = (state[0], state[1], state[2], state[3])
+    out = np.empty(n)
+    for i in range(n):
+        if law == NORMAL:
+            out[i], s = _normal(s)
+        elif law == EXPONENTIAL:
+            out[i], s = _exponential(s)
+        else:
+            out[i], s = _uniform(s)
+    state[0], state[1], state[2], state[3] = s
+    return out
+
+
+@_compiled
+def words(state, n):
+    """The generator's next ``n`` 64-bit words (``state`` advanced in place)."""
+    s = (state[0], state[1], state[2], state[3])
+    out = np.empty(n, dtype=np.uint64)
+    for i in range(n):
+        out[i], s = _word(s)
+    state[0], state[1], state[2], state[3] = s
+    return out
 
 
 @_inlined
@@ -162,9 +334,9 @@ def _bounds(k, scale, q, x_start, x_shift, x_reach):
 
 
 @_inlined
-def _follow(rng, dark, rest, part, lam_dark, lam_back):
+def _follow(s, dark, rest, part, lam_dark, lam_back):
     """Depumping and repumping through the last ``rest`` of a step from the level ``dark``, with a fresh
-    ``Exp(1)`` clock: ``(dark, clock left, bright part, switched)``.
+    ``Exp(1)`` clock: ``(dark, clock left, bright part, switched, generator)``.
 
     Bright atoms go dark at ``b·R_off``, dark ones return at ``(1 − b)·R_rep``
     (``lam_dark``, ``lam_back``: expected events in the whole step); the atom is
@@ -172,7 +344,7 @@ def _follow(rng, dark, rest, part, lam_dark, lam_back):
     of the step so far) grows by the bright time.
     """
     switched = False
-    clock = rng.standard_exponential()
+    clock, s = _exponential(s)
     need = (lam_back if dark else lam_dark) * rest
     while clock < need:
         stay = clock / (lam_back if dark else lam_dark)
@@ -181,25 +353,25 @@ def _follow(rng, dark, rest, part, lam_dark, lam_back):
         rest -= stay
         dark = not dark
         switched = True
-        clock = rng.standard_exponential()
+        clock, s = _exponential(s)
         need = (lam_back if dark else lam_dark) * rest
     if not dark:
         part += rest
-    return dark, clock - need, part, switched
+    return dark, clock - need, part, switched, s
 
 
 @_inlined
-def _switches(rng, pump, was_dark, lam_dark, lam_back):
+def _switches(s, pump, was_dark, lam_dark, lam_back):
     """Depumping and repumping over one step with the atom's clock ``pump`` (as
-    :meth:`sweepgen._flight._Propagation._pump`): ``(dark, clock, bright part)`` at its end."""
+    :meth:`sweepgen._flight._Propagation._pump`): ``(dark, clock, bright part, generator)`` at its end."""
     hazard = lam_back if was_dark else lam_dark
     pump -= hazard
     if pump > 0.0:
-        return was_dark, pump, 0.0 if was_dark else 1.0
+        return was_dark, pump, 0.0 if was_dark else 1.0, s
     elapsed = (pump + hazard) / hazard           # part of the step before the switch
-    dark, clock, part, _ = _follow(rng, not was_dark, 1.0 - elapsed, 0.0 if was_dark else elapsed, lam_dark,
-                                   lam_back)
-    return dark, clock, part
+    dark, clock, part, _, s = _follow(s, not was_dark, 1.0 - elapsed, 0.0 if was_dark else elapsed, lam_dark,
+                                      lam_back)
+    return dark, clock, part, s
 
 
 @_inlined
@@ -215,21 +387,21 @@ def _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt):
 
 
 @_inlined
-def _arrivals(rng, rest):
-    """Unit-rate exponential arrivals within ``rest``: ``(count, clock left)`` (the arrival that overshoots
-    leaves the fresh clock; memorylessness). The count is Poisson(``rest``)."""
+def _arrivals(s, rest):
+    """Unit-rate exponential arrivals within ``rest``: ``(count, clock left, generator)`` (the arrival that
+    overshoots leaves the fresh clock; memorylessness). The count is Poisson(``rest``)."""
     n = 0.0
-    e = rng.standard_exponential()
+    e, s = _exponential(s)
     while e <= rest:
         rest -= e
         n += 1.0
-        e = rng.standard_exponential()
-    return n, e - rest
+        e, s = _exponential(s)
+    return n, e - rest, s
 
 
 @_inlined
-def _photons(rng, k, lam, large, clock):
-    """Photons of one atom in the step (expected ``lam``) and its clock afterwards.
+def _photons(s, k, lam, large, clock):
+    """Photons of one atom in the step (expected ``lam``), its clock afterwards and the generator.
 
     A large mean (``large`` and ``lam ≥ k.large``) draws the normal law of the same
     mean and variance and leaves the clock waiting (memoryless). Otherwise the
@@ -237,22 +409,23 @@ def _photons(rng, k, lam, large, clock):
     one photon and then the arrivals within ``left`` (``1 + Poisson(left)``).
     """
     if lam <= 0.0:
-        return 0.0, clock
+        return 0.0, clock, s
     if large and lam >= k.large:
-        n = lam + math.sqrt(lam) * rng.standard_normal()
-        return (n if n > 0.0 else 0.0), clock
+        xi, s = _normal(s)
+        n = lam + math.sqrt(lam) * xi
+        return (n if n > 0.0 else 0.0), clock, s
     clock -= lam
     if clock > 0.0:
-        return 0.0, clock
-    n, clock = _arrivals(rng, -clock)
-    return n + 1.0, clock
+        return 0.0, clock, s
+    n, clock, s = _arrivals(s, -clock)
+    return n + 1.0, clock, s
 
 
 @_inlined
-def _thinned(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt, lam_b, dark_b, clock0, pump0, clock, pump):
+def _thinned(s, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt, lam_b, dark_b, clock0, pump0, clock, pump):
     """A bright atom whose photon or pump clock ran out against the bounds ``lam_b``, ``dark_b`` of its
     expected events (clocks ``clock0``, ``pump0`` before the step, ``clock``, ``pump`` after it):
-    ``(photons, clock, pump, dark, went dark)``.
+    ``(photons, clock, pump, dark, went dark, generator)``.
 
     Thinning (P. A. W. Lewis and G. S. Shedler, Naval Res. Logist. Q. 26, 403
     (1979)): the clock that ran out marks a candidate event at the part
@@ -260,34 +433,38 @@ def _thinned(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt, lam_b, da
     the exact process runs with a fresh clock (memorylessness). So the photons
     are Poisson(``λ·part``) and the switches those of :func:`_switches`, in law.
     """
-    s = _saturation(k, k.peak, q, x, y)
-    v_mid = v - 0.5 * dt * k.recoil * _rate(k, xd, v, s)
-    lam = _rate(k, xd, v_mid, s) * dt
+    sat = _saturation(k, k.peak, q, x, y)
+    v_mid = v - 0.5 * dt * k.recoil * _rate(k, xd, v, sat)
+    lam = _rate(k, xd, v_mid, sat) * dt
     dark, went, part = False, False, 1.0
     if pump <= 0.0:
-        lam_dark = _off(k, xd_off, v_mid, s, dt)
+        lam_dark = _off(k, xd_off, v_mid, sat, dt)
         lam_back = _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt)
         e = pump0 / dark_b
-        went = rng.random() * dark_b < lam_dark
-        dark, pump, part, switched = _follow(rng, went, 1.0 - e, e, lam_dark, lam_back)
+        u, s = _uniform(s)
+        went = u * dark_b < lam_dark
+        dark, pump, part, switched, s = _follow(s, went, 1.0 - e, e, lam_dark, lam_back)
         went = went or switched
     lam *= part
     n = 0.0
     if clock <= 0.0:
         e = clock0 / lam_b
-        n = 1.0 if rng.random() * lam_b < lam else 0.0
-        more, clock = _arrivals(rng, lam * (1.0 - e))
+        u, s = _uniform(s)
+        n = 1.0 if u * lam_b < lam else 0.0
+        more, clock, s = _arrivals(s, lam * (1.0 - e))
         n += more
-    return n, clock, pump, dark, went
+    return n, clock, pump, dark, went, s
 
 
 @_inlined
-def _kicks(rng, recoil, n):
-    """The velocity kicks of ``n`` photons: ``(along z, x, y)``. One recoil against the motion per photon,
+def _kicks(s, recoil, n):
+    """The velocity kicks of ``n`` photons: ``(along z, x, y, generator)``. One recoil against the motion per photon,
     plus the sum of ``n`` isotropic emissions (mean 0, variance ``n/3`` recoils² per axis, uncorrelated)."""
     spread = recoil * math.sqrt(n / 3.0)
-    kick = spread * rng.standard_normal() - recoil * n
-    return kick, spread * rng.standard_normal(), spread * rng.standard_normal()
+    along, s = _normal(s)
+    side_x, s = _normal(s)
+    side_y, s = _normal(s)
+    return spread * along - recoil * n, spread * side_x, spread * side_y, s
 
 
 @_compiled
@@ -321,16 +498,16 @@ def nearest_two(v, dark, alive, centre, other):
 
 
 @_compiled
-def step(rng, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx, w_vy, w_clock, w_pump,
+def step(words, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx, w_vy, w_clock, w_pump,
          w_photons, w_alive, w_dark, w_depumped, w_budget, w_idx, o_fate, o_velocity, o_time, o_radius,
          o_transverse, finished):
     """One step of every atom in flight, in one pass (drift, rates, depumping and repumping, photons and kicks,
-    fates); the working-set rows of the atoms done go to ``finished``. A bright atom far from resonance is
-    first tried against bounds of its rates (:func:`_bounds`, :func:`_thinned`). ``rep_s``, ``rep_d``: the
-    repump lights' saturations and detunings (Hz) in this step. Returns how many are done, and how many
-    atoms in flight are in the dark level."""
-    done = 0
-    n_dark = 0
+    fates), drawing from the generator ``words`` (:func:`stream`); the working-set rows of the atoms done go
+    to ``finished``. A bright atom far from resonance is first tried against bounds of its rates
+    (:func:`_bounds`, :func:`_thinned`). ``rep_s``, ``rep_d``: the repump lights' saturations and detunings
+    (Hz) in this step. Returns how many are done, and how many atoms in flight are in the dark level."""
+    s = (words[0], words[1], words[2], words[3])
+    done = n_dark = 0
     recoil = k.recoil
     xd, xd_off = k.k_d * detuning, k.k_d * (detuning - k.split)
     rep_xd = k.k_d * rep_d
@@ -345,8 +522,7 @@ def step(rng, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx,
         z = z0 + v * dt
         x = w_x[i] + w_vx[i] * dt
         y = w_y[i] + w_vy[i] * dt
-        kick = 0.0
-        lit = z0 >= k.light_start
+        kick, lit = 0.0, z0 >= k.light_start
         if k.light and (lit or w_dark[i]):
             z_mid = z0 + v * half
             q = _along(k, z_mid)
@@ -359,29 +535,29 @@ def step(rng, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx,
                     exact = False
                     clock, pump = w_clock[i] - lam_b, w_pump[i] - dark_b
                     if clock <= 0.0 or pump <= 0.0:
-                        n, clock, pump, w_dark[i], went = _thinned(rng, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q,
-                                                                   x, y, dt, lam_b, dark_b, w_clock[i], w_pump[i],
-                                                                   clock, pump)
+                        n, clock, pump, w_dark[i], went, s = _thinned(s, k, rep_s, rep_xd, xd, xd_off, v, z_mid,
+                                                                      q, x, y, dt, lam_b, dark_b, w_clock[i],
+                                                                      w_pump[i], clock, pump)
                         if went:
                             w_depumped[i] = True
                     w_clock[i], w_pump[i] = clock, pump
             if exact:
-                s = _saturation(k, k.peak, q, x, y) if lit else 0.0
-                v_mid = v - half * recoil * _rate(k, xd, v, s)
-                lam = _rate(k, xd, v_mid, s) * dt
+                sat = _saturation(k, k.peak, q, x, y) if lit else 0.0
+                v_mid = v - half * recoil * _rate(k, xd, v, sat)
+                lam = _rate(k, xd, v_mid, sat) * dt
                 if k.pumping:
-                    lam_dark = _off(k, xd_off, v_mid, s, dt)
+                    lam_dark = _off(k, xd_off, v_mid, sat, dt)
                     goes_dark = not was_dark and w_pump[i] <= lam_dark      # the clock runs out in the step
                     lam_back = 0.0
                     if was_dark or goes_dark:
                         lam_back = _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt)
-                    w_dark[i], w_pump[i], part = _switches(rng, w_pump[i], was_dark, lam_dark, lam_back)
+                    w_dark[i], w_pump[i], part, s = _switches(s, w_pump[i], was_dark, lam_dark, lam_back)
                     if goes_dark:
                         w_depumped[i] = True
                     lam *= part
-                n, w_clock[i] = _photons(rng, k, lam, large, w_clock[i])
+                n, w_clock[i], s = _photons(s, k, lam, large, w_clock[i])
             if n > 0.0:
-                kick, side_x, side_y = _kicks(rng, recoil, n)
+                kick, side_x, side_y, s = _kicks(s, recoil, n)
                 z += half * kick
                 w_photons[i] += n
                 w_vx[i] += side_x
@@ -400,6 +576,7 @@ def step(rng, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx,
             done += 1
         elif w_dark[i]:
             n_dark += 1
+    words[0], words[1], words[2], words[3] = s
     return done, n_dark
 
 
@@ -528,7 +705,7 @@ def _choose(k, p, rule, state, t, vmax, w_v, w_dark, w_alive):
 
 
 @_compiled
-def run_steps(rng, k, p, rule, rep_s, rep_follows, rep_offset, rep_fixed, state, t, r_peak, park_z, w_v, w_z, w_x,
+def run_steps(words, k, p, rule, rep_s, rep_follows, rep_offset, rep_fixed, state, t, r_peak, park_z, w_v, w_z, w_x,
               w_y, w_vx, w_vy, w_clock, w_pump, w_photons, w_alive, w_dark, w_depumped, w_budget, w_lit, w_idx, o_fate,
               o_velocity, o_time, o_radius, o_transverse, o_photons, o_dark, o_depumped, finished):
     """Steps of the compiled flight from ``t`` until Python must act; returns the time reached.
@@ -553,7 +730,7 @@ def run_steps(rng, k, p, rule, rep_s, rep_follows, rep_offset, rep_fixed, state,
         state[ATOM_STEPS] += size - state[PARKED]
         for j in range(rep_s.size):
             rep_d[j] = detuning + rep_offset[j] if rep_follows[j] else rep_fixed[j]
-        done, n_dark = step(rng, k, rep_s, rep_d, t, dt, detuning, dt * r_peak >= k.large, w_v, w_z, w_x, w_y,
+        done, n_dark = step(words, k, rep_s, rep_d, t, dt, detuning, dt * r_peak >= k.large, w_v, w_z, w_x, w_y,
                             w_vx, w_vy, w_clock, w_pump, w_photons, w_alive, w_dark, w_depumped, w_budget, w_idx,
                             o_fate, o_velocity, o_time, o_radius, o_transverse, finished)
         state[N_DARK] = n_dark
