@@ -16,8 +16,8 @@ saturation at the atom's place, the expected photons at the step's mid-point
 velocity, depumping and repumping, the photons and kicks, and the fates. Its
 random numbers come from a generator compiled into the step (:func:`stream`:
 NumPy's SFC64 seeded from the run's :class:`numpy.random.Generator`, with the
-ziggurat's normal and exponential draws; a draw costs a quarter of a call into
-the run's generator), in another order than the NumPy step, so the two give
+ziggurat's normal and exponential draws; a draw costs a quarter to a half of a
+draw from the run's generator), in another order than the NumPy step, so the two give
 statistically identical results, not the same numbers. Two draws differ in
 method, not in law:
 
@@ -101,18 +101,21 @@ THIN = 0.5
 # generator is NumPy's SFC64 (:class:`numpy.random.SFC64`; the same words, tests/test_kernel.py), and
 # the normal and exponential laws are drawn by the ziggurat of G. Marsaglia and W. W. Tsang,
 # J. Stat. Softw. 5(8) (2000), the way :class:`numpy.random.Generator` lays it out: one 64-bit word per
-# draw (its low 8 or 11 bits choose the layer), the rare draws outside a layer's box finished by
+# draw (8 of its bits choose the layer), the rare draws outside a layer's box finished by
 # :func:`_normal_rare` and :func:`_exponential_rare`.
 _U = np.uint64
-_NORMAL_R = 3.6541528853610088      # the ziggurat's right edge for 256 layers (Marsaglia & Tsang 2000)
+# the right edges for 256 layers (Marsaglia & Tsang 2000; recalled, and the tables built from them agree
+# with NumPy's to 1e-13, tests/test_kernel.py)
+_NORMAL_R = 3.6541528853610088
 _EXPONENTIAL_R = 7.69711747013104972
 
 
 def _ziggurat(right, density, inverse, tail, bits):
     """Tables of a 256-layer ziggurat of the decreasing ``density`` (unnormalised; ``inverse`` its inverse)
-    with right edge ``right`` and the area ``tail`` beyond it: ``(k, w, f)``, integers compared with a draw of ``bits`` bits, the
-    layers' widths per unit of that draw and the density at their edges (Marsaglia & Tsang 2000, sec. 2:
-    every layer, and the base strip with the tail, has the area ``v = right·f(right) + tail``)."""
+    with right edge ``right`` and the area ``tail`` beyond it: ``(k, w, f)``, the integers a draw of
+    ``bits`` bits is compared with, the layers' widths per unit of that draw and the density at their
+    edges. Every layer, and the base strip with the tail, has the area ``v = right·f(right) + tail``
+    (Marsaglia & Tsang 2000)."""
     v = right * density(right) + tail
     x = np.empty(256)
     x[255] = right
