@@ -140,13 +140,17 @@ def _quantity(value: QuantityLike | None, unit: str, key: str, option: str | Non
 # ---------------------------------------------------------------------------------------------
 # Plan, check, simulate
 # ---------------------------------------------------------------------------------------------
-def plan(scenario: ScenarioSource) -> PlanResult:
+def plan(scenario: ScenarioSource, *, compare_field: bool = False) -> PlanResult:
     """Plan the detuning sweep of a scenario and judge it by the design rules (``sweepgen plan``).
 
     Parameters
     ----------
     scenario : str, path-like, dict or Scenario
         See :func:`load_scenario`.
+    compare_field : bool
+        Also work out the tapered-field slower with the same deceleration and
+        light (``sweepgen plan --compare-field``): its numbers are the key
+        ``tapered_field``, the slower itself :meth:`PlanResult.field_slower`.
 
     Returns
     -------
@@ -159,6 +163,8 @@ def plan(scenario: ScenarioSource) -> PlanResult:
     ------
     sweepgen.errors.PlanError
         The sweep cannot exist (the design atom cannot follow it).
+    sweepgen.errors.InputError
+        ``compare_field`` and the species file gives no ``[zeeman]`` table.
 
     Example
     -------
@@ -175,7 +181,13 @@ def plan(scenario: ScenarioSource) -> PlanResult:
     timing = plan_timing(report.scenario, report.plan)
     if timing is not None:
         doc["timing"] = timing                 # the [timing] and gates on the trigger's axis
-    return PlanResult(doc, title=report.scenario.title, inner=report)
+    field = None
+    if compare_field:
+        from sweepgen.tapered import tapered_field
+
+        field = tapered_field(report.plan)
+        doc["tapered_field"] = field.to_json()
+    return PlanResult(doc, title=report.scenario.title, inner=report, field=field)
 
 
 def check(scenario: ScenarioSource, *, sample_rate: QuantityLike | None = None, laser=None, generator=None,

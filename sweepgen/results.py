@@ -282,10 +282,24 @@ class PlanResult(_Judged):
 
     ROWS = PLAN_ROWS
 
+    def __init__(self, doc: dict, *, title: str = "", inner: Any = None, field: Any = None):
+        super().__init__(doc, title=title, inner=inner)
+        self._field = field
+
     @property
     def scenario(self):
         """The scenario planned (:class:`sweepgen.Scenario`)."""
         return self.report.scenario
+
+    def field_slower(self):
+        """The tapered-field slower with the same deceleration and light (``plan(..., compare_field=True)``
+        gives it; its numbers are the key ``tapered_field``). Raises :class:`sweepgen.errors.InputError`
+        when the species file gives no ``[zeeman]`` table."""
+        if self._field is None:
+            from sweepgen.tapered import tapered_field
+
+            self._field = tapered_field(self.report.plan)
+        return self._field
 
     def detuning(self, t):
         """The planned optical detuning (Hz) at times ``t`` (s, one period from the table's first sample)."""

@@ -34,6 +34,19 @@ def test_plan_check_and_upload_dry_run_documents_equal_the_command_line(key):
     assert code == 0 and doc == sweepgen.upload(key, dry_run=True).to_json()
 
 
+def test_plan_compare_field_equals_the_command_line_and_refuses_without_zeeman_data():
+    # plan(..., compare_field=True) is 'plan --compare-field': the same tapered_field numbers; without it no key
+    result = sweepgen.plan("na23-continuous-focused", compare_field=True)
+    code, doc = cli_json("plan", "na23-continuous-focused", "--compare-field")
+    assert code == 0 and doc == result.to_json() and "tapered_field" in doc
+    assert result.field_slower().to_json() == doc["tapered_field"]
+    plain = sweepgen.plan("na23-continuous-focused")
+    assert "tapered_field" not in plain.to_json()
+    assert plain.field_slower().to_json() == doc["tapered_field"]       # worked out when asked for
+    with pytest.raises(sweepgen.errors.InputError, match="zeeman"):
+        sweepgen.plan("caf-buffer-gas", compare_field=True)
+
+
 @pytest.mark.parametrize("key", [pytest.param(k, marks=pytest.mark.slow) if k != SHIPPED[0] else k for k in SHIPPED])
 def test_simulate_document_equals_the_command_line(key):
     code, doc = cli_json("simulate", key, "--atoms", "300", "--seed", "4")

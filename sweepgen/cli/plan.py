@@ -35,14 +35,13 @@ def command(scenario, as_json, plot_file, compare_field, field_plot):
     """
     import sweepgen
 
-    result = sweepgen.plan(scenario)
-    field = _field(result.report.plan, field_plot) if (compare_field or field_plot) else None
+    result = sweepgen.plan(scenario, compare_field=compare_field or field_plot is not None)
+    field = result.field_slower() if (compare_field or field_plot) else None
+    if field_plot:
+        _field_plot(result, field_plot)
     drawn = _plot(result, plot_file) if plot_file else ""
-    doc = result.to_json()
-    if field is not None:
-        doc["tapered_field"] = field.to_json()
     if as_json:
-        emit_json(doc)
+        emit_json(result.to_json())
     else:
         _print(result, drawn)
         if field is not None:
@@ -64,17 +63,12 @@ FIELD_ROWS = [
 ]
 
 
-def _field(plan, field_plot):
-    """The tapered-field slower of ``plan`` (drawn into ``field_plot`` when given)."""
-    from sweepgen.tapered import tapered_field
+def _field_plot(result, field_plot):
+    """Draw the tapered-field slower of ``result`` beside the chirp into ``field_plot``."""
+    from sweepgen.plots import plot_field
 
-    field = tapered_field(plan)
-    if field_plot:
-        from sweepgen.plots import plot_field
-
-        plot_field(plan, field, field_plot)
-        click.echo(f"field plot: {field_plot}", err=True)
-    return field
+    plot_field(result.report.plan, result.field_slower(), field_plot)
+    click.echo(f"field plot: {field_plot}", err=True)
 
 
 def _print_field(field):
