@@ -237,7 +237,8 @@ def check(scenario: ScenarioSource, *, sample_rate: QuantityLike | None = None, 
 
 def simulate(scenario: ScenarioSource, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, ideal: bool = False,
              table: str | os.PathLike | None = None, laser=None, workers: int | None = None,
-             progress: Callable | None = None, before_run: Callable | None = None) -> SimulationResult:
+             progress: Callable | None = None, before_run: Callable | None = None,
+             compare_field: bool = False) -> SimulationResult:
     """Fly atoms from the source through the slowing light (``sweepgen simulate``).
 
     The atoms see the detuning the hardware plays (the sweep through the laser's
@@ -267,6 +268,9 @@ def simulate(scenario: ScenarioSource, *, atoms: int = DEFAULT_ATOMS, seed: int 
         Called as ``before_run(scenario, atoms, seed, how)`` after the checks and
         before any atom flies (the command line asks for confirmation there);
         ``how`` are the keywords of the internal simulation (to time a pilot run).
+    compare_field : bool
+        Also fly the same atoms through the tapered-field slower (``simulate --compare-field``): the key
+        ``tapered_field``; refused before any atom flies when the species has no ``[zeeman]`` table.
 
     Returns
     -------
@@ -290,26 +294,37 @@ def simulate(scenario: ScenarioSource, *, atoms: int = DEFAULT_ATOMS, seed: int 
     from sweepgen.playback import played_detuning, played_table
     from sweepgen.simulate import simulate as run
 
-    if ideal and table is not None:
-        raise InputError("ideal plays the planned sweep and table an old table: give one of them", key="ideal")
-    _check_count(atoms, "atoms", "--atoms")
-    _check_count(seed, "seed", "--seed", least=0)
-    if workers is not None:
-        _check_count(workers, "workers", "--workers")
+    _check_run(ideal, table, atoms, seed, workers)
     sc = load_scenario(scenario)
     design = require_playable(check_plan(sc), "nothing was simulated")
     sweep = _table_sweep(sc, table, laser) if table is not None else None
     played = played_table(sc, sweep) if sweep is not None else played_detuning(sc, design.plan, ideal=ideal)
     how = {"plan": design.plan, "played": played}
     _check_memory(atoms)
+    if compare_field:
+        from sweepgen import tapered
+        tapered.tapered_field(design.plan)      # no [zeeman] table: refused before any atom flies
     if before_run is not None:
         before_run(sc, atoms, seed, how)
     result = run(sc, atoms=atoms, seed=seed, workers=workers, progress=progress, **how)
     doc = result.to_json()
+    if compare_field:
+        doc["tapered_field"] = tapered.compare(sc, atoms=atoms, seed=seed, plan=design.plan, chirp=result,
+                                               workers=workers).to_json()
     if sweep is not None:
         doc["table"] = {"file": str(sweep.table.path), "table_sha256": sweep.table.table_sha256(),
                         "laser": sweep.laser.key, "representation_error": sweep.error}
     return SimulationResult(doc, title=sc.title, inner=result)
+
+
+def _check_run(ideal: bool, table, atoms, seed, workers) -> None:
+    """The run's own arguments of :func:`simulate`, refused with the key to change."""
+    if ideal and table is not None:
+        raise InputError("ideal plays the planned sweep and table an old table: give one of them", key="ideal")
+    _check_count(atoms, "atoms", "--atoms")
+    _check_count(seed, "seed", "--seed", least=0)
+    if workers is not None:
+        _check_count(workers, "workers", "--workers")
 
 
 def _check_count(value, key: str, option: str, least: int = 1) -> None:

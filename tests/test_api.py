@@ -47,6 +47,17 @@ def test_plan_compare_field_equals_the_command_line_and_refuses_without_zeeman_d
         sweepgen.plan("caf-buffer-gas", compare_field=True)
 
 
+@pytest.mark.slow
+def test_simulate_compare_field_equals_the_command_line_and_refuses_before_any_atom_flies():
+    code, doc = cli_json("simulate", "na23-continuous-focused", "--atoms", "300", "--seed", "4", "--compare-field")
+    result = sweepgen.simulate("na23-continuous-focused", atoms=300, seed=4, compare_field=True)
+    assert code == 0 and doc == result.to_json() and doc["tapered_field"]["atoms"] == 300
+    started = []
+    with pytest.raises(sweepgen.errors.InputError, match="zeeman"):
+        sweepgen.simulate("caf-buffer-gas", atoms=300, compare_field=True, before_run=lambda *a: started.append(a))
+    assert started == []
+
+
 @pytest.mark.parametrize("key", [pytest.param(k, marks=pytest.mark.slow) if k != SHIPPED[0] else k for k in SHIPPED])
 def test_simulate_document_equals_the_command_line(key):
     code, doc = cli_json("simulate", key, "--atoms", "300", "--seed", "4")

@@ -121,12 +121,8 @@ def command(scenario, atoms, seed, workers, yes, as_json, plot_file, table_file,
             late_progress() as progress:
         result = sweepgen.simulate(scenario, atoms=atoms, seed=seed, ideal=ideal, table=table_file,
                                    laser=profile_option("laser", laser_ref), workers=workers, progress=progress,
-                                   before_run=_before_run(yes, progress, as_json))
+                                   before_run=_before_run(yes, progress, as_json), compare_field=compare_field)
     sc, doc = result.scenario, result.to_json()
-    if compare_field:
-        from sweepgen.tapered import compare
-
-        doc["tapered_field"] = compare(sc, atoms=atoms, seed=seed, chirp=result.run, workers=workers).to_json()
     if plot_file:
         result.plot(plot_file)
     if as_json:
