@@ -79,7 +79,7 @@ def dotted(data: dict, key: str):
     return here
 
 
-def parse_free(text: str, start: Base, option: str = "--free") -> Free:
+def parse_free(text: str, start: Base, option: str = "free") -> Free:
     """``KEY`` or ``KEY=LOW:HIGH`` → a :class:`Free`; without bounds the key moves between
     :data:`DEFAULT_SPAN` times its starting value (in the file's unit)."""
     from sweepgen.scan import endpoints
@@ -134,7 +134,7 @@ class Goal:
 
     def check(self) -> "Goal":
         if self.key not in objective_keys():
-            raise InputError(f"expected one of {', '.join(objective_keys())}, got {self.key!r}", key="--objective")
+            raise InputError(f"expected one of {', '.join(objective_keys())}, got {self.key!r}", key="objective")
         return self
 
     def value(self, row: dict):
@@ -355,7 +355,7 @@ def optimise(ref, frees_text, *, goal: Goal = Goal(), atoms: int, seed: int = 0,
     frees = [parse_free(t, start) for t in frees_text]
     keys = [f.key for f in frees]
     if len(set(keys)) != len(keys):
-        raise InputError("a key is given twice", key="--free")
+        raise InputError("a key is given twice", key="free")
     s = Search(start, frees, goal.check(), atoms, seed, workers, cluster, progress, budget)
     done = search(s)
     result = Optimisation(s, done, confirm_atoms=confirm_atoms or 10 * atoms, confirm_seed=fresh_seed(seed))

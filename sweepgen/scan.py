@@ -101,7 +101,7 @@ def written(number: float, unit: str, digits: int = 12):
     return int(value) if value.is_integer() and "e" not in text and "." not in text else value
 
 
-def parse_vary(text: str, option: str = "--vary") -> Axis:
+def parse_vary(text: str, option: str = "vary") -> Axis:
     """``KEY=START:STOP:N`` → an :class:`Axis` of N values from START to STOP (evenly spaced)."""
     key, rest = split_option(text, option)
     parts = rest.split(":") if rest is not None else []
@@ -123,7 +123,7 @@ def parse_vary(text: str, option: str = "--vary") -> Axis:
     return Axis(key, tuple(written(x, unit) for x in numbers), numbers, unit)
 
 
-def set_keys(data: dict, values: dict, *, option: str = "--vary") -> dict:
+def set_keys(data: dict, values: dict, *, option: str = "vary") -> dict:
     """A copy of the scenario table ``data`` with each dotted key of ``values`` set (tables made as
     needed); a key running through a value that is not a table is refused."""
     out = copy.deepcopy(data)
@@ -150,7 +150,7 @@ class Base:
     title: str
     stem: str = "scenario"      # the file name the outputs start with
 
-    def load(self, values: dict | None = None, *, option: str = "--vary"):
+    def load(self, values: dict | None = None, *, option: str = "vary"):
         """The scenario with ``values`` set (:class:`sweepgen.scenario.Scenario`); a value the file
         could not hold is refused naming the option and the key."""
         from sweepgen.scenario import scenario_from_dict
@@ -179,7 +179,7 @@ def base(ref) -> Base:
     return Base(str(path), data, sc.title, default_file_name(sc))
 
 
-def check_axes(start: Base, axes, option: str = "--vary") -> None:
+def check_axes(start: Base, axes, option: str = "vary") -> None:
     """Refuse axes that name one key twice, or whose first or last value the file could not hold."""
     keys = [a.key for a in axes]
     for k in keys:
@@ -345,7 +345,7 @@ def scan(ref, axes, *, atoms: int, seed: int = 0, workers: int | None = None, cl
 
     designs = math.prod(len(a.values) for a in axes)     # counted before the grid is built (10⁸ took 8 GB)
     if designs > MAX_DESIGNS:
-        raise InputError(f"{designs} designs; at most {MAX_DESIGNS} in one scan (use fewer values)", key="--vary")
+        raise InputError(f"{designs} designs; at most {MAX_DESIGNS} in one scan (use fewer values)", key="vary")
     start = ref if isinstance(ref, Base) else base(ref)
     check_axes(start, axes)
     combos = grid(axes)

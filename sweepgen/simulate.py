@@ -341,9 +341,9 @@ def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None,
     from sweepgen.planner import plan as make_plan
 
     if isinstance(atoms, bool) or int(atoms) != atoms or atoms < 1:
-        raise InputError(f"expected a positive whole number of atoms, got {atoms!r}", key="--atoms")
+        raise InputError(f"expected a positive whole number of atoms, got {atoms!r}", key="atoms")
     if isinstance(seed, bool) or int(seed) != seed or seed < 0:
-        raise InputError(f"expected a seed of zero or more, got {seed!r}", key="--seed")
+        raise InputError(f"expected a seed of zero or more, got {seed!r}", key="seed")
     atoms, seed = int(atoms), int(seed)
     p = make_plan(scenario) if plan is None else plan
     schedule = p.schedule()

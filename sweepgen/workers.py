@@ -74,7 +74,7 @@ def run(fn, tasks, *, workers: int | None = None, cluster: str | None = None, pr
     """
     tasks = list(tasks)
     if workers is not None and (isinstance(workers, bool) or int(workers) != workers or workers < 1):
-        raise InputError(f"expected a positive whole number of worker processes, got {workers!r}", key="--workers")
+        raise InputError(f"expected a positive whole number of worker processes, got {workers!r}", key="workers")
     if cluster is not None and workers is not None:
         raise InputError("--workers sets local processes and --cluster a cluster's scheduler: give one of them",
                          key="--workers")
@@ -147,14 +147,14 @@ def _client(address: str):
         from distributed import Client
     except ImportError:
         raise InputError("--cluster needs Dask's distributed scheduler: pip install 'sweepgen[cluster]'",
-                         key="--cluster") from None
+                         key="cluster") from None
     port = address.rpartition(":")[2] if "://" in address and address.count(":") >= 2 else None
     if port is not None and port.isdigit() and not 1 <= int(port) <= 65535:
-        raise InputError(f"port {port} in {address!r} is not a TCP port (1 to 65535)", key="--cluster")
+        raise InputError(f"port {port} in {address!r} is not a TCP port (1 to 65535)", key="cluster")
     try:
         return Client(address, timeout="10s")
     except (OSError, TimeoutError, ValueError) as exc:
-        raise InputError(f"could not reach a Dask scheduler at {address!r} ({exc})", key="--cluster") from None
+        raise InputError(f"could not reach a Dask scheduler at {address!r} ({exc})", key="cluster") from None
 
 
 def _on_cluster(fn, tasks, address: str, progress) -> list:

@@ -281,3 +281,25 @@ def test_a_dict_built_scenario_exports_and_uploads_named_by_its_digest(tmp_path)
     assert exported.to_json()["paths"][0].endswith("dict.csv")
     dry = sweepgen.upload(doc, dry_run=True).to_json()
     assert dry["provenance"]["scenario"] is None and dry["provenance"]["scenario_digest"]
+
+
+def test_errors_about_a_parameter_name_the_parameter_from_python_and_the_option_from_the_command_line():
+    # the API speaks of its own parameters (vary, free, objective, workers); the commands of their options
+    cases = [
+        (lambda: sweepgen.scan(SHIPPED[0], "chirp.force_fraction=0.4:0.8"), "vary",
+         ["scan", SHIPPED[0], "--vary", "chirp.force_fraction=0.4:0.8"], "option '--vary'"),
+        (lambda: sweepgen.optimise(SHIPPED[0], ["chirp.force_fraction", "chirp.force_fraction"]), "free",
+         ["optimise", SHIPPED[0], "--free", "chirp.force_fraction", "--free", "chirp.force_fraction"],
+         "option '--free'"),
+        (lambda: sweepgen.optimise(SHIPPED[0], "chirp.force_fraction", objective="atoms"), "objective",
+         ["optimise", SHIPPED[0], "--free", "chirp.force_fraction", "--objective", "atoms"], "option '--objective'"),
+        (lambda: sweepgen.scan(SHIPPED[0], "chirp.force_fraction=0.4:0.8:2", atoms=10, workers=0), "workers",
+         None, None),
+    ]
+    for call, key, argv, words in cases:
+        with pytest.raises(sweepgen.errors.InputError) as info:
+            call()
+        assert info.value.key == key and "--" not in str(info.value)
+        if argv is not None:
+            result = CliRunner().invoke(main, argv)
+            assert result.exit_code == 2 and words in result.stderr, result.stderr

@@ -6,7 +6,8 @@ import sys
 
 import click
 
-from sweepgen.cli._common import OutputFolder, bounded, emit_json, handles_errors, json_option, progress_bar, table
+from sweepgen.cli._common import (OutputFolder, bounded, emit_json, handles_errors, json_option, options_named,
+                                  progress_bar, table)
 from sweepgen.cli.scan import SCAN_ATOMS, cluster_option, where_text, workers_option
 
 
@@ -60,8 +61,10 @@ def command(scenario, free, objective, minimise, atoms, confirm_atoms, evaluatio
 
     service = importlib.import_module("sweepgen.optimise")      # the package's `optimise` is the API function
 
-    goal = service.Goal(objective, minimise).check()
-    with progress_bar(evaluations, "designs", show=not as_json and sys.stderr.isatty()) as progress:
+    with options_named(free="--free", objective="--objective", atoms="--atoms", seed="--seed", workers="--workers",
+                       cluster="--cluster"), \
+            progress_bar(evaluations, "designs", show=not as_json and sys.stderr.isatty()) as progress:
+        goal = service.Goal(objective, minimise).check()
         result = service.optimise(scenario, free, goal=goal, atoms=atoms, seed=seed, budget=evaluations,
                                   confirm_atoms=confirm_atoms, workers=workers, cluster=cluster, progress=progress)
     Path(output).mkdir(exist_ok=True)           # only now: bad input leaves no folder behind
