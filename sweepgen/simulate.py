@@ -92,8 +92,8 @@ Speed (``tests/benchmarks/bench_simulate.py``): the atoms are flown in parts on
 every core (:func:`chunks`, :mod:`sweepgen.workers`). With numba installed
 (``sweepgen[fast]``) each step is one compiled pass over the atoms in flight
 (:mod:`sweepgen._kernel`) that draws from a generator compiled into it
-(NumPy's SFC64 and the ziggurat, :func:`sweepgen._kernel.stream`), and the steps between two take-ins of new atoms run
-in one compiled call (:func:`sweepgen._kernel.run_steps`); an atom far from resonance
+(NumPy's SFC64 and the ziggurat, :func:`sweepgen._kernel.stream`), and the
+steps between two take-ins of new atoms run in one compiled call (:func:`sweepgen._kernel.run_steps`); an atom far from resonance
 runs its clocks down by bounds of its rates and its exact rates are computed
 only when a clock runs out (thinning, exact in law). Without numba, the NumPy
 step below, which gives statistically identical results (tests/test_kernel.py).
