@@ -18,18 +18,19 @@ random numbers come from a generator compiled into the step (:func:`stream`:
 NumPy's SFC64 seeded from the run's :class:`numpy.random.Generator`, with the
 ziggurat's normal and exponential draws; a draw costs a quarter to a half of a
 draw from the run's generator), in another order than the NumPy step, so the two give
-statistically identical results, not the same numbers. Two draws differ in
-method, not in law:
+statistically identical results, not the same numbers.
+
+A step makes two passes over the working set. The first (:func:`expected`) works
+out every atom's expected photons and depumping events with no branch and no call
+(the Gaussian beam's exponential is :func:`_exp`), so that the compiler does four
+atoms at once with vector instructions; the second draws, atom by atom. Two draws
+differ in method from the NumPy step, not in law:
 
 * an atom whose photon clock runs out with ``u`` left of the step scatters
   ``1 + Poisson(u)`` photons; here the Poisson count is a run of unit-rate
   exponential arrivals within ``u`` and the fresh clock the one that overshoots
   it (the same law: arrivals of a unit-rate Poisson process, memorylessness);
-* atoms that are done are skipped rather than parked far behind the source;
-* a bright atom far from resonance first runs its photon and pump clocks down by
-  bounds of its expected events, which need no exponential (:func:`_bound`), and
-  only when one of them runs out are its exact rates computed and the event kept
-  with probability exact/bound (:func:`_thinned`; thinning, the same law).
+* atoms that are done are skipped rather than parked far behind the source.
 
 Used when numba is installed (``pip install 'sweepgen[fast]'``); otherwise
 :mod:`sweepgen._flight` flies the atoms with NumPy (``AVAILABLE``).
@@ -46,6 +47,8 @@ from sweepgen.programs import CONSTANT, SAMPLED, SCHEDULE
 
 try:
     import numba
+    from llvmlite import ir as _ir
+    from numba.extending import intrinsic as _intrinsic
 except ImportError:          # the NumPy step is used instead
     numba = None
 
@@ -90,9 +93,9 @@ def constants(*, recoil, distance, light_start, peak, focused, focus, rayleigh, 
 #: and fast library maths, but not the assumption that no value is infinite or NaN (parked atoms wait at
 #: infinite clocks)
 _FAST = {"reassoc", "arcp", "contract", "afn", "nsz"}
-#: a bright atom whose bounded expected photons and depumping events in a step are both below this is
-#: tried against the bounds first (:func:`_bound`, :func:`_thinned`); nearer resonance the rates are exact
-THIN = 0.5
+#: the same without reassociation, for the step's first pass and its exponential (which splits ln2 in two
+#: parts that reassociation would merge, costing it accuracy)
+_VECTOR = _FAST - {"reassoc"}
 
 
 # -- the step's random numbers: a small generator compiled into the step -------------------------
@@ -141,13 +144,24 @@ def stream(rng: np.random.Generator) -> np.ndarray:
     return np.random.SFC64(seed).state["state"]["state"].astype(np.uint64)
 
 
-def _compiled(func):
-    return numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=_FAST)(func) if AVAILABLE else func
+def _compiled(func, fastmath=_FAST):
+    return numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=fastmath)(func) if AVAILABLE else func
 
 
-def _inlined(func):
+def _inlined_vector(func):
+    """A helper of a vectorised pass (:func:`_vector`), compiled into it."""
+    return _inlined(func, _VECTOR)
+
+
+def _vector(func):
+    """A pass over the atoms with no branch and no call, compiled so that it is vectorised (:data:`_VECTOR`)."""
+    return _compiled(func, _VECTOR)
+
+
+def _inlined(func, fastmath=_FAST):
     """A helper of the step, compiled into it (no call, no reference counting of its arrays per atom)."""
-    return numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=_FAST, inline="always")(func) if AVAILABLE else func
+    return numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=fastmath, inline="always")(func) \
+        if AVAILABLE else func
 
 
 def _exact(func):
@@ -276,6 +290,56 @@ def words(state, n):
     return out
 
 
+if AVAILABLE:
+    @_intrinsic
+    def _as_float(typingctx, bits):
+        """The float64 whose bits are the int64 ``bits`` (a reinterpretation, no conversion)."""
+        def codegen(context, builder, signature, args):
+            return builder.bitcast(args[0], _ir.DoubleType())
+        return numba.types.float64(numba.types.int64), codegen
+
+    @_intrinsic
+    def _as_int(typingctx, value):
+        """The int64 whose bits are those of the float64 ``value`` (a reinterpretation, no conversion)."""
+        def codegen(context, builder, signature, args):
+            return builder.bitcast(args[0], _ir.IntType(64))
+        return numba.types.int64(numba.types.float64), codegen
+
+# ln2 split as in fdlibm's e_exp.c (recalled; their sum is ln2 to 1e-26): the leading part ends in zero bits,
+# so its product with an exponent |n| < 2¹¹ is exact
+_LN2_HI, _LN2_LO = 6.93147180369123816490e-01, 1.90821492927058770002e-10
+_SHIFT = 6755399441055744.0                 # 1.5·2⁵²: an integer |n| < 2⁵¹ added to it sits in its last bits
+_SHIFT_BITS = int(np.float64(_SHIFT).view(np.int64))
+_E = tuple(1.0 / math.factorial(i) for i in range(14))
+
+
+@_inlined_vector
+def _exp(x):
+    """``e^x`` for ``x ≤ 0`` in a few arithmetic operations, inlined, with no branch the compiler cannot
+    turn into a selection (``math.exp`` is a call into the C library, which keeps a loop from being
+    vectorised).
+
+    ``x = n ln2 + r`` with ``n`` the nearest integer to ``x/ln2`` and ``|r| ≤ ln2/2``, ``ln2`` split into
+    a leading part exact in a product with ``n`` and the rest (W. J. Cody and W. Waite, *Software Manual
+    for the Elementary Functions*, Prentice-Hall 1980; recalled); ``e^r`` by its Taylor series to
+    ``r¹³`` (the remainder below ``(ln2/2)¹⁴/14! ≈ 4·10⁻¹⁸``), evaluated in pairs (Estrin), times
+    ``2ⁿ`` built from its bits. Within a few units in the last place of ``numpy.exp`` over the range
+    (tests/test_kernel.py). Below −708 (``e^x < 3.4·10⁻³⁰⁸``, where the light is nil) it gives 0.
+    """
+    if x < -708.0:
+        return 0.0
+    n = np.floor(x * 1.4426950408889634 + 0.5)
+    r = (x - n * _LN2_HI) - n * _LN2_LO
+    r2 = r * r
+    r4 = r2 * r2
+    e = _E
+    q0 = (e[0] + r * e[1]) + r2 * (e[2] + r * e[3])
+    q1 = (e[4] + r * e[5]) + r2 * (e[6] + r * e[7])
+    q2 = (e[8] + r * e[9]) + r2 * (e[10] + r * e[11])
+    p = q0 + r4 * (q1 + r4 * (q2 + r4 * (e[12] + r * e[13])))
+    return p * _as_float((_as_int(n + _SHIFT) - _SHIFT_BITS + 1023) << 52)
+
+
 @_inlined
 def _along(k, z):
     """``q = 1 + ((z − z_f)/z_R)²`` of a Gaussian beam at ``z`` (1 for unbounded light)."""
@@ -290,7 +354,7 @@ def _saturation(k, peak, q, x, y):
     """``peak`` (unbounded light) or ``peak/q · exp(−2r²/(w0² q))`` at ``(x, y)`` where the beam has ``q``."""
     if not k.focused:
         return peak
-    return peak / q * math.exp(-(x * x + y * y) * k.inv_waist2 / q)
+    return peak / q * _exp(-(x * x + y * y) * k.inv_waist2 / q)
 
 
 @_inlined
@@ -305,35 +369,6 @@ def _rate(k, xd, v, s):
 def _off(k, xd_off, v, s, dt):
     """Expected depumping events in the step, ``b·R_off·dt`` (:func:`sweepgen._flight.off_resonant_counts`)."""
     return k.branching * _rate(k, xd_off, v, k.strength * s) * dt
-
-
-@_inlined
-def _bound(scale, peak, q, x_start, x_reach):
-    """An upper bound of the expected events ``scale·s/(1 + s + x²)`` of a step, without the exponential.
-
-    ``s ≤ peak/q`` (on the beam's axis the transverse factor is 1), and the
-    mid-point ``x`` lies in ``[x_start − x_reach, x_start]`` (the mid-point velocity
-    is at most ``x_reach`` of ``x`` below the start velocity), where ``x²`` is
-    smallest at zero or at the end nearer it. ``scale·p/(q(1 + x²) + p)`` is that
-    rate with ``p = peak``, rearranged to one division."""
-    lo = x_start - x_reach
-    if lo <= 0.0 <= x_start:
-        x2 = 0.0
-    elif x_start < 0.0:
-        x2 = x_start * x_start
-    else:
-        x2 = lo * lo
-    return scale * peak / (q * (1.0 + x2) + peak)
-
-
-@_inlined
-def _bounds(k, scale, q, x_start, x_shift, x_reach):
-    """Bounds (:func:`_bound`) of a bright atom's expected photons and depumping events in the step;
-    ``x_shift`` takes ``x`` from the cycling level to the off-resonant one."""
-    lam_b = _bound(scale, k.peak, q, x_start, x_reach)
-    if not k.pumping:
-        return lam_b, 0.0
-    return lam_b, k.branching * _bound(scale, k.strength * k.peak, q, x_start + x_shift, x_reach)
 
 
 @_inlined
@@ -378,14 +413,15 @@ def _switches(s, pump, was_dark, lam_dark, lam_back):
 
 
 @_inlined
-def _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt):
+def _repump(k, rep_s, rep_xd, v, z_mid, beam, dt):
     """Expected returns to the bright level in the step, ``(1 − b)·Σ R_rep·dt``
-    (:func:`sweepgen._flight.repump_counts`); none before the light starts."""
+    (:func:`sweepgen._flight.repump_counts`), the lights' saturations ``rep_s`` times the beam's factor
+    ``beam`` at the atom; none before the light starts."""
     if z_mid < k.light_start:
         return 0.0
     total = 0.0
     for j in range(rep_s.size):
-        total += _rate(k, rep_xd[j], v, _saturation(k, rep_s[j], q, x, y))
+        total += _rate(k, rep_xd[j], v, rep_s[j] * beam)
     return total * (1.0 - k.branching) * dt
 
 
@@ -422,41 +458,6 @@ def _photons(s, k, lam, large, clock):
         return 0.0, clock, s
     n, clock, s = _arrivals(s, -clock)
     return n + 1.0, clock, s
-
-
-@_inlined
-def _thinned(s, k, rep_s, rep_xd, xd, xd_off, v, z_mid, q, x, y, dt, lam_b, dark_b, clock0, pump0, clock, pump):
-    """A bright atom whose photon or pump clock ran out against the bounds ``lam_b``, ``dark_b`` of its
-    expected events (clocks ``clock0``, ``pump0`` before the step, ``clock``, ``pump`` after it):
-    ``(photons, clock, pump, dark, went dark, generator)``.
-
-    Thinning (P. A. W. Lewis and G. S. Shedler, Naval Res. Logist. Q. 26, 403
-    (1979)): the clock that ran out marks a candidate event at the part
-    ``clock0/lam_b`` of the step, kept with probability exact/bound; from there on
-    the exact process runs with a fresh clock (memorylessness). So the photons
-    are Poisson(``λ·part``) and the switches those of :func:`_switches`, in law.
-    """
-    sat = _saturation(k, k.peak, q, x, y)
-    v_mid = v - 0.5 * dt * k.recoil * _rate(k, xd, v, sat)
-    lam = _rate(k, xd, v_mid, sat) * dt
-    dark, went, part = False, False, 1.0
-    if pump <= 0.0:
-        lam_dark = _off(k, xd_off, v_mid, sat, dt)
-        lam_back = _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt)
-        e = pump0 / dark_b
-        u, s = _uniform(s)
-        went = u * dark_b < lam_dark
-        dark, pump, part, switched, s = _follow(s, went, 1.0 - e, e, lam_dark, lam_back)
-        went = went or switched
-    lam *= part
-    n = 0.0
-    if clock <= 0.0:
-        e = clock0 / lam_b
-        u, s = _uniform(s)
-        n = 1.0 if u * lam_b < lam else 0.0
-        more, clock, s = _arrivals(s, lam * (1.0 - e))
-        n += more
-    return n, clock, pump, dark, went, s
 
 
 @_inlined
@@ -500,65 +501,67 @@ def nearest_two(v, dark, alive, centre, other):
     return best, best_other
 
 
+@_vector
+def expected(k, dt, xd, xd_off, w_v, w_z, w_x, w_y, w_vx, w_vy, lam, lam_dark, beam):
+    """The step's first pass, over every atom of the working set (those done too: no branch, so that the
+    pass is vectorised): the expected photons ``lam`` of a bright atom, its expected depumping events
+    ``lam_dark`` (at the mid-point velocity) and the beam's transverse factor over ``q`` at its place
+    (``beam``, for the repump lights), where the drifted atom is (as :func:`step`)."""
+    half = 0.5 * dt
+    for i in range(w_v.size):
+        v, z0 = w_v[i], w_z[i]
+        x = w_x[i] + w_vx[i] * dt
+        y = w_y[i] + w_vy[i] * dt
+        q = _along(k, z0 + v * half)
+        g = _saturation(k, 1.0, q, x, y)
+        sat = k.peak * g if z0 >= k.light_start else 0.0
+        v_mid = v - half * k.recoil * _rate(k, xd, v, sat)
+        lam[i] = _rate(k, xd, v_mid, sat) * dt
+        lam_dark[i] = _off(k, xd_off, v_mid, sat, dt)
+        beam[i] = g
+
+
 @_compiled
 def step(words, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx, w_vy, w_clock, w_pump,
          w_photons, w_alive, w_dark, w_depumped, w_budget, w_idx, o_fate, o_velocity, o_time, o_radius,
          o_transverse, finished):
-    """One step of every atom in flight, in one pass (drift, rates, depumping and repumping, photons and kicks,
-    fates), drawing from the generator ``words`` (:func:`stream`); the working-set rows of the atoms done go
-    to ``finished``. A bright atom far from resonance is first tried against bounds of its rates
-    (:func:`_bounds`, :func:`_thinned`). ``rep_s``, ``rep_d``: the repump lights' saturations and detunings
-    (Hz) in this step. Returns how many are done, and how many atoms in flight are in the dark level."""
+    """One step of every atom in flight (drift, rates, depumping and repumping, photons and kicks, fates),
+    drawing from the generator ``words`` (:func:`stream`); the working-set rows of the atoms done go to
+    ``finished``. The expected events come first for all atoms at once (:func:`expected`), then the
+    draws atom by atom. ``rep_s``, ``rep_d``: the repump lights' saturations and detunings (Hz) in this
+    step. Returns how many are done, and how many atoms in flight are in the dark level."""
     s = (words[0], words[1], words[2], words[3])
     done = n_dark = 0
     recoil = k.recoil
-    xd, xd_off = k.k_d * detuning, k.k_d * (detuning - k.split)
     rep_xd = k.k_d * rep_d
     half = 0.5 * dt
-    scale = k.f_gamma * dt
-    # how far below the start velocity's x the mid-point's can be: half a step at the largest rate
-    x_reach = k.k_v * half * recoil * k.f_gamma * k.peak / (1.0 + k.peak)
-    for i in range(w_v.size):
+    size = w_v.size
+    lams, darks, beams = np.empty(size), np.empty(size), np.empty(size)
+    if k.light:
+        expected(k, dt, k.k_d * detuning, k.k_d * (detuning - k.split), w_v, w_z, w_x, w_y, w_vx, w_vy, lams,
+                 darks, beams)
+    for i in range(size):
         if not w_alive[i]:
             continue
         v, z0 = w_v[i], w_z[i]
         z = z0 + v * dt
         x = w_x[i] + w_vx[i] * dt
         y = w_y[i] + w_vy[i] * dt
-        kick, lit = 0.0, z0 >= k.light_start
-        if k.light and (lit or w_dark[i]):
-            z_mid = z0 + v * half
-            q = _along(k, z_mid)
+        kick = 0.0
+        if k.light and (z0 >= k.light_start or w_dark[i]):
             was_dark = w_dark[i]
-            n = 0.0
-            exact = True
-            if not was_dark:
-                lam_b, dark_b = _bounds(k, scale, q, xd + k.k_v * v, xd_off - xd, x_reach)
-                if lam_b < THIN and dark_b < THIN:
-                    exact = False
-                    clock, pump = w_clock[i] - lam_b, w_pump[i] - dark_b
-                    if clock <= 0.0 or pump <= 0.0:
-                        n, clock, pump, w_dark[i], went, s = _thinned(s, k, rep_s, rep_xd, xd, xd_off, v, z_mid,
-                                                                      q, x, y, dt, lam_b, dark_b, w_clock[i],
-                                                                      w_pump[i], clock, pump)
-                        if went:
-                            w_depumped[i] = True
-                    w_clock[i], w_pump[i] = clock, pump
-            if exact:
-                sat = _saturation(k, k.peak, q, x, y) if lit else 0.0
-                v_mid = v - half * recoil * _rate(k, xd, v, sat)
-                lam = _rate(k, xd, v_mid, sat) * dt
-                if k.pumping:
-                    lam_dark = _off(k, xd_off, v_mid, sat, dt)
-                    goes_dark = not was_dark and w_pump[i] <= lam_dark      # the clock runs out in the step
-                    lam_back = 0.0
-                    if was_dark or goes_dark:
-                        lam_back = _repump(k, rep_s, rep_xd, v, z_mid, q, x, y, dt)
-                    w_dark[i], w_pump[i], part, s = _switches(s, w_pump[i], was_dark, lam_dark, lam_back)
-                    if goes_dark:
-                        w_depumped[i] = True
-                    lam *= part
-                n, w_clock[i], s = _photons(s, k, lam, large, w_clock[i])
+            lam = lams[i]
+            if k.pumping:
+                lam_dark = darks[i]
+                goes_dark = not was_dark and w_pump[i] <= lam_dark      # the clock runs out in the step
+                lam_back = 0.0
+                if was_dark or goes_dark:
+                    lam_back = _repump(k, rep_s, rep_xd, v, z0 + v * half, beams[i], dt)
+                w_dark[i], w_pump[i], part, s = _switches(s, w_pump[i], was_dark, lam_dark, lam_back)
+                if goes_dark:
+                    w_depumped[i] = True
+                lam *= part
+            n, w_clock[i], s = _photons(s, k, lam, large, w_clock[i])
             if n > 0.0:
                 kick, side_x, side_y, s = _kicks(s, recoil, n)
                 z += half * kick

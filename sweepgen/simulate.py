@@ -93,9 +93,10 @@ every core (:func:`chunks`, :mod:`sweepgen.workers`). With numba installed
 (``sweepgen[fast]``) each step is one compiled pass over the atoms in flight
 (:mod:`sweepgen._kernel`) that draws from a generator compiled into it
 (NumPy's SFC64 and the ziggurat, :func:`sweepgen._kernel.stream`), and the
-steps between two take-ins of new atoms run in one compiled call (:func:`sweepgen._kernel.run_steps`); an atom far from resonance
-runs its clocks down by bounds of its rates and its exact rates are computed
-only when a clock runs out (thinning, exact in law). Without numba, the NumPy
+steps between two take-ins of new atoms run in one compiled call (:func:`sweepgen._kernel.run_steps`). A
+compiled step first works out every atom's expected events in one pass with
+vector instructions (:func:`sweepgen._kernel.expected`), then draws atom by
+atom. Without numba, the NumPy
 step below, which gives statistically identical results (tests/test_kernel.py).
 In the NumPy step, per step the working set of
 atoms in flight costs a few in-place array passes (the step rule's nearest

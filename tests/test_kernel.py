@@ -114,11 +114,10 @@ def _one_step(k, n, dt, detuning, rng, x0=0.0):
     return photons, depumped, clock
 
 
-def test_thinned_atoms_far_from_resonance_scatter_poisson_photons_at_the_exact_rate():
-    # an atom off the beam's axis sees s = 1/2 where the bound assumes the axis' s = 1; detuned so that
-    # x = 2·2πΔ/Γ = 3: exact λ = f Γ dt s/(1 + s + x²) = dt/21, the bound dt/11. With λ = 0.2 the bound
-    # (0.38) is below the thinning threshold, so each candidate photon is kept with probability 0.52:
-    # the counts must be Poisson(0.2) (reference: scipy.stats.poisson), not Poisson(0.38)
+def test_atoms_far_from_resonance_scatter_poisson_photons_at_the_exact_rate():
+    # an atom off the beam's axis sees s = 1/2 (the Gaussian factor exp(-2 x0²/w0²) = 1/2 from the step's own
+    # exponential), detuned so that x = 2·2πΔ/Γ = 3: λ = f Γ dt s/(1 + s + x²) = dt/21 = 0.2 per step;
+    # the counts of one step must be Poisson(0.2) (reference: scipy.stats.poisson), and the clocks left Exp(1)
     from scipy import stats
 
     from sweepgen import _kernel
@@ -129,7 +128,6 @@ def test_thinned_atoms_far_from_resonance_scatter_poisson_photons_at_the_exact_r
                           rayleigh=1e12, waist=waist, gamma=1.0, wavelength=1.0, fraction=1.0, split=0.0,
                           strength=0.0, branching=0.0, pumping=False, loss=False, light=True, large=1e9)
     dt = 21 * lam
-    assert dt / 11 < _kernel.THIN
     photons, _, clock = _one_step(k, n, dt, 3.0 / (4 * math.pi), np.random.default_rng(4), x0)
     counts = np.bincount(photons.astype(int), minlength=4)[:4] / n
     expected = stats.poisson.pmf(np.arange(4), lam)
@@ -137,11 +135,10 @@ def test_thinned_atoms_far_from_resonance_scatter_poisson_photons_at_the_exact_r
     assert abs(clock.mean() - 1.0) < 4 / np.sqrt(n)           # the clocks left are Exp(1) again
 
 
-def test_thinned_depumping_happens_at_the_exact_rate():
+def test_depumping_happens_at_the_exact_rate():
     # a bright atom far from both resonances goes dark in a step with probability 1 − exp(−b R_off dt)
     # (no repump: it stays dark); the off-resonant level at x_off = −5 with strength κ = 1/2, the atom off
-    # the axis where s = 1/2 (the bound takes s = 1): b R_off dt = b f Γ dt κs/(1 + κs + 25); the main level
-    # far (x = 20)
+    # the axis where s = 1/2: b R_off dt = b f Γ dt κs/(1 + κs + 25); the main level far (x = 20)
     from sweepgen import _kernel
 
     n, b, kappa = 200_000, 0.5, 0.5
@@ -154,6 +151,55 @@ def test_thinned_depumping_happens_at_the_exact_rate():
     _, depumped, _ = _one_step(k, n, dt, 20.0 / (4 * math.pi), np.random.default_rng(6), x0)
     p = 1 - math.exp(-lam_dark)
     assert abs(depumped.mean() - p) < 4 * math.sqrt(p * (1 - p) / n), (depumped.mean(), p)
+
+
+def test_step_exponential_agrees_with_numpys():
+    # the step's inlined exponential (sweepgen._kernel._exp, for the Gaussian beam) against numpy.exp over
+    # its whole range, x <= 0: within 4 units in the last place (relative 8.9e-16); 0 below -708, where
+    # numpy.exp gives less than 3.4e-308
+    from sweepgen import _kernel
+
+    rng = np.random.default_rng(3)
+    xs = np.concatenate([-rng.random(20_000) * 708.0, -rng.random(5_000) * 1.0, -rng.random(5_000) * 1e-6,
+                         [0.0, -0.0, -1e-300, -math.log(2.0) / 2, -math.log(2.0) * 1.5, -707.99999, -708.0]])
+    got = np.array([_kernel._exp(x) for x in xs])
+    want = np.exp(xs)
+    assert np.max(np.abs(got / want - 1.0)) <= 4 * np.finfo(float).eps
+    assert _kernel._exp(0.0) == 1.0
+    assert _kernel._exp(-708.5) == 0.0 and _kernel._exp(-1e300) == 0.0
+
+
+def test_step_expectations_equal_the_numpy_steps():
+    # the compiled step's first pass (sweepgen._kernel.expected: every atom's expected photons, depumping
+    # events and beam factor at once) against the NumPy step's functions for the same drifted atoms:
+    # the Rb demo (a Gaussian beam, an off-resonant level), atoms before and after the light's start,
+    # on and off the axis; equal to rounding (the compiled pass may reassociate)
+    from sweepgen import _kernel
+
+    sc = load_scenario("rb87-chopped-oven")
+    program = DetuningProgram(plan(sc).schedule())
+    run = _flight._Compiled(sc, draw_atoms(sc, 10, np.random.default_rng(0)), program,
+                            np.random.default_rng(1), True, _flight.STEP_FRACTION)
+    rng = np.random.default_rng(2)
+    n, dt, detuning = 5000, 2e-6, -350e6
+    v, z = rng.uniform(1.0, 320.0, n), rng.uniform(0.0, 1.0, n)
+    x, y, vx, vy = rng.normal(0, 4e-3, n), rng.normal(0, 4e-3, n), rng.normal(0, 2.0, n), rng.normal(0, 2.0, n)
+    lam, lam_dark, beam = np.empty(n), np.empty(n), np.empty(n)
+    k = run.k
+    _kernel.expected(k, dt, k.k_d * detuning, k.k_d * (detuning - k.split), v, z, x, y, vx, vy, lam, lam_dark,
+                     beam)
+    z_mid, x_end, y_end = z + 0.5 * v * dt, x + vx * dt, y + vy * dt
+    lit = (z >= sc.light.start).astype(float)
+    rates, lt = run.rates, sc.light
+    s = _flight.saturation_seen(z_mid, x_end, y_end, lit, lt, lt.peak, np.empty(n), np.empty(n))
+    v_mid = np.empty(n)
+    want = _flight.midpoint_counts(v, s, detuning, dt, rates, run.recoil, np.empty(n), v_mid, np.empty(n))
+    want_dark = _flight.off_resonant_counts(v_mid, s, detuning, dt, rates, np.empty(n), np.empty(n))
+    want_beam = _flight.saturation_seen(z_mid, x_end, y_end, np.ones(n), lt, 1.0, np.empty(n), np.empty(n))
+    assert 0.1 < lit.mean() < 1.0 and want.max() > 1.0 and want_dark.max() > 0.0
+    np.testing.assert_allclose(lam, want, rtol=1e-12, atol=1e-300)
+    np.testing.assert_allclose(lam_dark, want_dark, rtol=1e-12, atol=1e-300)
+    np.testing.assert_allclose(beam, want_beam, rtol=1e-12, atol=1e-300)
 
 
 def _programs():
