@@ -259,13 +259,14 @@ def _exponential(s):
     return _exponential_rare(s, layer, x)
 
 
-NORMAL, EXPONENTIAL, UNIFORM = range(3)
+NORMAL, EXPONENTIAL, UNIFORM, POISSON = range(4)
 
 
 @_compiled
-def draws(state, n, law):
-    """``n`` draws of ``law`` (:data:`NORMAL`, :data:`EXPONENTIAL` or :data:`UNIFORM`) from the generator
-    ``state`` (:func:`stream`; advanced in place): the step's own draws, for tests against NumPy's."""
+def draws(state, n, law, mean=0.0):
+    """``n`` draws of ``law`` (:data:`NORMAL`, :data:`EXPONENTIAL`, :data:`UNIFORM`, or :data:`POISSON` of
+    ``mean``) from the generator ``state`` (:func:`stream`; advanced in place): the step's own draws, for
+    tests against NumPy's and SciPy's."""
     s = (state[0], state[1], state[2], state[3])
     out = np.empty(n)
     for i in range(n):
@@ -273,6 +274,8 @@ def draws(state, n, law):
             out[i], s = _normal(s)
         elif law == EXPONENTIAL:
             out[i], s = _exponential(s)
+        elif law == POISSON:
+            out[i], s = _poisson(s, mean)
         else:
             out[i], s = _uniform(s)
     state[0], state[1], state[2], state[3] = s
@@ -439,13 +442,48 @@ def _arrivals(s, rest):
 
 
 @_inlined
+def _poisson(s, mu):
+    """A Poisson(``mu``) count and the generator, by inversion of one uniform ``u``: the count is the
+    number of partial sums ``S_j = Σ_{i≤j} mu^i/i!`` at or below ``u·e^mu`` (the cumulative probabilities
+    times ``e^mu``; L. Devroye, *Non-Uniform Random Variate Generation*, Springer 1986, §X.3, recalled).
+    The first eight are compared without a branch (no mispredicted loop exit for the usual counts of a
+    few photons); a count beyond them goes on term by term. Above ``mu = 30`` (never in a step whose
+    large means take the normal law) the unit-rate arrivals within ``mu`` are counted instead."""
+    if mu > 30.0:
+        n, _, s = _arrivals(s, mu)
+        return n, s
+    u, s = _uniform(s)
+    w = u * _exp(mu)
+    m2 = mu * mu
+    m3, m4 = m2 * mu, m2 * m2
+    s1 = 1.0 + mu
+    s3 = s1 + m2 * 0.5 + m3 * (1.0 / 6.0)
+    s5 = s3 + m4 * (1.0 / 24.0) + m4 * mu * (1.0 / 120.0)
+    s7 = s5 + m4 * m2 * (1.0 / 720.0) + m4 * m3 * (1.0 / 5040.0)
+    s2 = s1 + m2 * 0.5
+    s4 = s3 + m4 * (1.0 / 24.0)
+    s6 = s5 + m4 * m2 * (1.0 / 720.0)
+    n = float((1.0 <= w) + (s1 <= w) + (s2 <= w) + (s3 <= w) + (s4 <= w) + (s5 <= w) + (s6 <= w) + (s7 <= w))
+    if n == 8.0:
+        term, total = m4 * m3 * (1.0 / 5040.0), s7
+        while True:
+            term *= mu / n
+            total += term
+            if total > w:
+                break
+            n += 1.0
+    return n, s
+
+
+@_inlined
 def _photons(s, k, lam, large, clock):
     """Photons of one atom in the step (expected ``lam``), its clock afterwards and the generator.
 
     A large mean (``large`` and ``lam ≥ k.large``) draws the normal law of the same
     mean and variance and leaves the clock waiting (memoryless). Otherwise the
     clock runs down by ``lam``; when it runs out with ``left`` of the step to go,
-    one photon and then the arrivals within ``left`` (``1 + Poisson(left)``).
+    one photon and then the arrivals within ``left``: ``1 + Poisson(left)``
+    (:func:`_poisson`), and a fresh ``Exp(1)`` clock (memorylessness).
     """
     if lam <= 0.0:
         return 0.0, clock, s
@@ -456,7 +494,8 @@ def _photons(s, k, lam, large, clock):
     clock -= lam
     if clock > 0.0:
         return 0.0, clock, s
-    n, clock, s = _arrivals(s, -clock)
+    n, s = _poisson(s, -clock)
+    clock, s = _exponential(s)
     return n + 1.0, clock, s
 
 

@@ -338,6 +338,31 @@ def test_step_draws_have_the_normal_and_exponential_laws_tails_included():
         assert abs(beyond - n * p) < 5 * math.sqrt(n * p), (beyond, n * p)
 
 
+@pytest.mark.parametrize("mean", [0.05, 0.9, 2.7, 6.5, 12.0, 29.0, 45.0])
+def test_step_poisson_counts_follow_the_poisson_law(mean):
+    # the step's photon count after a clock runs out (sweepgen._kernel._poisson: inversion, the first eight
+    # cumulative sums compared at once, then term by term; arrival counting above 30) against
+    # scipy.stats.poisson: every count whose expected number is at least 20 within 5 standard deviations,
+    # the rest pooled, and the mean and variance; the means cover the branch-free part, the term-by-term
+    # part (6.5 and up) and the arrivals (45)
+    from scipy import stats
+
+    from sweepgen import _kernel
+
+    n = 200_000
+    counts = _kernel.draws(_state(int(mean * 100)), n, _kernel.POISSON, mean)
+    assert np.array_equal(counts, np.round(counts)) and counts.min() >= 0
+    observed = np.bincount(counts.astype(int))
+    expected = n * stats.poisson.pmf(np.arange(observed.size), mean)
+    big = expected >= 20
+    observed_big = observed[big]
+    assert np.all(np.abs(observed_big - expected[big]) < 5 * np.sqrt(expected[big])), (mean, observed_big)
+    rest, rest_expected = n - observed_big.sum(), n - expected[big].sum()
+    assert abs(rest - rest_expected) < 5 * math.sqrt(rest_expected) + 5, (rest, rest_expected)
+    assert abs(counts.mean() - mean) < 5 * math.sqrt(mean / n)
+    assert abs(counts.var() - mean) < 5 * mean * math.sqrt(2.0 / n) + 5 * math.sqrt(mean / n)
+
+
 def test_step_generator_is_seeded_from_the_runs_generator():
     # the same run seed gives the same stream; another seed another one
     from sweepgen import _kernel
