@@ -154,14 +154,15 @@ def test_depumping_happens_at_the_exact_rate():
 
 
 def test_step_exponential_agrees_with_numpys():
-    # the step's inlined exponential (sweepgen._kernel._exp, for the Gaussian beam) against numpy.exp over
-    # its whole range, x <= 0: within 4 units in the last place (relative 8.9e-16); 0 below -708, where
-    # numpy.exp gives less than 3.4e-308
+    # the step's inlined exponential (sweepgen._kernel._exp: the Gaussian beam, the Poisson count's e^mu)
+    # against numpy.exp over its whole range, -708 <= x <= 709: within 4 units in the last place (relative
+    # 8.9e-16); 0 below -708, where numpy.exp gives less than 3.4e-308
     from sweepgen import _kernel
 
     rng = np.random.default_rng(3)
     xs = np.concatenate([-rng.random(20_000) * 708.0, -rng.random(5_000) * 1.0, -rng.random(5_000) * 1e-6,
-                         [0.0, -0.0, -1e-300, -math.log(2.0) / 2, -math.log(2.0) * 1.5, -707.99999, -708.0]])
+                         rng.random(5_000) * 30.0, rng.random(2_000) * 709.0,
+                         [0.0, -0.0, -1e-300, -math.log(2.0) / 2, -math.log(2.0) * 1.5, -707.99999, -708.0, 709.0]])
     got = np.array([_kernel._exp(x) for x in xs])
     want = np.exp(xs)
     assert np.max(np.abs(got / want - 1.0)) <= 4 * np.finfo(float).eps
