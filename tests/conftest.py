@@ -14,6 +14,7 @@ import json
 import os
 import socket
 import struct
+import time
 import tty
 import zlib
 from pathlib import Path
@@ -613,6 +614,17 @@ class DocBoard:
 
 
 # -- links: loopback ports, pseudo-terminals, VISA sessions ----------------------------------------
+def eventually(condition, timeout: float = 10.0, what: str = "the condition") -> None:
+    """Wait until ``condition()`` is true, polling every 10 ms; fail after ``timeout`` seconds. For what a
+    server does in its own time (notices a close, gives bytes back): no fixed sleep that a loaded
+    machine could outlast."""
+    deadline = time.monotonic() + timeout
+    while not condition():
+        if time.monotonic() > deadline:
+            pytest.fail(f"{what} did not happen within {timeout} s")
+        time.sleep(0.01)
+
+
 @contextlib.contextmanager
 def refused_port():
     """A loopback TCP port that is bound but not listening: connecting to it is refused."""

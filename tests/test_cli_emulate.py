@@ -6,6 +6,7 @@ import signal
 import socket
 import subprocess
 import sys
+import threading
 import time
 import zlib
 
@@ -17,30 +18,44 @@ from sweepgen.emulators import board
 from sweepgen.errors import InstrumentError
 from sweepgen.wire import frames as fr
 
-from conftest import dds_table, deliver_to_board, open_visa, run_cli, socket_address
+from conftest import dds_table, deliver_to_board, eventually, open_visa, run_cli, socket_address
 
 
 class Emulator:
-    """``sweepgen emulate ARGS`` in a child process; the first stdout line is its address."""
+    """``sweepgen emulate ARGS`` in a child process; the first stdout line is its address, and its log
+    (stderr) is read line by line as it comes (``lines``)."""
 
     def __init__(self, *args):
         self.args = ["--port", "0", *args]
+        self.lines = []
 
     def __enter__(self):
         self.proc = subprocess.Popen([sys.executable, "-m", "sweepgen", "emulate", *self.args],
                                      stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         self.address = self.proc.stdout.readline().strip()
+        self.reader = threading.Thread(target=self._read, daemon=True)
+        self.reader.start()
+        threading.Thread(target=self.proc.stdout.read, daemon=True).start()     # the rest of stdout, unread
         return self
+
+    def _read(self):
+        for line in self.proc.stderr:
+            self.lines.append(line.rstrip("\n"))
+
+    def logged(self, text):
+        """Whether a line of the log so far contains ``text``."""
+        return any(text in line for line in list(self.lines))
 
     def stop(self):
         if self.proc.poll() is None:
             self.proc.send_signal(signal.SIGINT)
         try:
-            out, err = self.proc.communicate(timeout=10)
+            self.proc.wait(timeout=10)
         except subprocess.TimeoutExpired:
             self.proc.kill()
-            out, err = self.proc.communicate()
-        return self.proc.returncode, err
+            self.proc.wait()
+        self.reader.join(timeout=10)
+        return self.proc.returncode, "\n".join(self.lines) + "\n"
 
     def __exit__(self, *exc):
         self.stop()
@@ -65,7 +80,7 @@ def test_a_line_per_connection(rm):
         inst = open_visa(rm, emulator.address)
         assert inst.query("*OPC?") == "1"
         inst.close()
-        time.sleep(0.3)                             # the server notices the close
+        eventually(lambda: emulator.logged("closed (closed by the client"), what="the server noticing the close")
         code, err = emulator.stop()
     assert code == 0
     opened = [line for line in err.splitlines() if line.startswith("connection 1 from 127.0.0.1:")]
@@ -258,7 +273,7 @@ def test_a_line_per_change_of_state(rm, tmp_path):
         inst.write("OUTP2:STAT OFF")
         assert inst.query("SYST:ERR?").startswith("0,")
         inst.close()
-        time.sleep(0.3)
+        eventually(lambda: emulator.logged("closed (closed by the client"), what="the server noticing the close")
         code, err = emulator.stop()
     assert code == 0
     lines = err.splitlines()

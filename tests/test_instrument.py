@@ -16,7 +16,7 @@ from sweepgen.emulators.instrument import Faults
 from sweepgen.generator import generator_from_dict, load_generator
 from sweepgen.testing import instrument_server
 
-from conftest import examples, open_visa, sine_codes
+from conftest import eventually, examples, open_visa, sine_codes
 
 SMALL = {   # a small instrument: its limits are easy to cross (demo data)
     "title": "small test generator", "kind": "awg", "channels": 2,
@@ -256,7 +256,8 @@ def test_with_every_slot_taken_a_stalled_client_makes_room_after_a_second(rm, tm
         stalled = [socket.create_connection((server.host, server.port), timeout=2) for _ in range(2)]
         for sock in stalled:
             sock.sendall(b"*ID")                    # half a command, then nothing
-        time.sleep(0.3)
+        eventually(lambda: [conn.received for conn, _ in list(server._live.values())] == [3, 3],
+                   what="the server hearing both stalled clients")
         with socket.create_connection((server.host, server.port), timeout=2) as early:
             assert early.recv(10) == b""            # both have spoken within the second: turned away
         time.sleep(1.0)                             # now silent longer than EVICT_AFTER (1 s)
@@ -287,14 +288,14 @@ def test_blocks_of_all_connections_share_one_bounded_buffer(rm, small):
     small.instrument.buffers = Budget(1000)          # a tiny instrument: 1000 bytes for every block in flight
     holder = socket.create_connection((small.host, small.port), timeout=2)
     holder.sendall(b"FORM:DATA INT,16;:TRAC:DATA T,#3800" + bytes(100))     # 800 announced, 100 sent
-    time.sleep(0.2)
+    eventually(lambda: small.instrument.buffers.held == 800, what="the holder's block taking its 800 bytes")
     inst = open_visa(rm, small.resource)
     inst.write("FORM:DATA INT,16;:FORM:BORD SWAP")
     inst.write_binary_values("TRAC:DATA U,", sine_codes(256, bits=12).tolist(), datatype="h")   # 512 bytes: no room
     assert "-223," in errors(inst)[0]
     assert "U" not in small.instrument.traces
     holder.close()
-    time.sleep(0.2)                                  # the holder's bytes are given back when it goes
+    eventually(lambda: small.instrument.buffers.held == 0, what="the holder's bytes being given back")
     inst.write_binary_values("TRAC:DATA U,", sine_codes(256, bits=12).tolist(), datatype="h")
     assert errors(inst) == [] and "U" in small.instrument.traces
     inst.close()
