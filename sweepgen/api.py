@@ -541,12 +541,14 @@ def calibrate(measurements: str | os.PathLike, laser: str | os.PathLike, stage: 
     >>> r = calibrate("wavemeter.csv", "demo-ecdl-piezo", "piezo", output="my-laser.toml")  # doctest: +SKIP
     """
     from sweepgen import recalibration
-    from sweepgen.plots import plot_calibration
+    from sweepgen.plots import plot_calibration, plot_path
 
     if beat_sign not in (1, -1):
         raise InputError(f"expected +1 or -1, got {beat_sign!r}", key="beat_sign")
     if outlier_sigma is not None:
         _quantity(outlier_sigma, "", "outlier_sigma", "--outlier-sigma")
+    if plot is not None:
+        plot_path(plot, key="plot")         # refused before the profile is written
     req = recalibration.Request(
         os.fspath(measurements), os.fspath(laser), str(stage), output=None if output is None else os.fspath(output),
         degree=degree, outlier_sigma=outlier_sigma, drive_range=drive_range,

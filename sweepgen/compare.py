@@ -30,7 +30,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from sweepgen._format import si
-from sweepgen.errors import InputError
+from sweepgen.errors import InputError, display_path
 
 #: grid points per period for the cross-correlation
 BINS = 1 << 14
@@ -86,13 +86,13 @@ def read_trace(path, *, transition: float | None = None, reference: float | None
     values = m.values(col, "Hz", f"{col.kind} of the light at each time")
     if col.kind == "frequency":
         if transition is None:
-            raise InputError(f"{col.label} holds absolute optical frequencies and no transition frequency is known",
-                             file=str(path), key="--transition")
+            raise InputError(f"{display_path(str(path))}: {col.label} holds absolute optical frequencies and no "
+                             "transition frequency is known", key="transition")
         values = values - transition
     elif col.kind == "beat":
         if reference is None:
-            raise InputError(f"{col.label} holds beat notes: give the reference laser's detuning with --reference",
-                             file=str(path), key="--reference")
+            raise InputError(f"{display_path(str(path))}: {col.label} holds beat notes; the reference laser's "
+                             "detuning is needed", key="reference")
         values = reference + beat_sign * values
     order = np.argsort(t, kind="stable")
     t, values = t[order], values[order]
@@ -106,26 +106,27 @@ def read_trace(path, *, transition: float | None = None, reference: float | None
 def event_time(schedule, event: str) -> float:
     """Time of a named event of the schedule (s after the trigger)."""
     if event not in EVENTS:
-        raise InputError(f"expected one of {', '.join(EVENTS)}, got {event!r}", key="--marker")
+        raise InputError(f"expected one of {', '.join(EVENTS)}, got {event!r}", key="marker")
     if event == "trigger":
         return 0.0
     kind, edge = event.rsplit("_", 1)
     seg = schedule.segment(kind)
     if seg is None:
-        raise InputError(f"the sweep has no {kind} segment", key="--marker")
+        raise InputError(f"the sweep has no {kind} segment", key="marker")
     return seg.start if edge == "start" else seg.end
 
 
 def rising_edge(trace: Trace) -> float:
     """Time of the first rising edge of the trace's marker column (midway between its levels)."""
     if trace.marker is None:
-        raise InputError("no marker column in the trace: give the time, --marker EVENT=TIME", file=trace.path,
-                         key="--marker")
+        raise InputError("no marker column in the trace: give the event's time on the trace's axis as well",
+                         file=trace.path)
     mk = trace.marker
     mid = 0.5 * (mk.min() + mk.max())
     up = np.flatnonzero((mk[1:] > mid) & (mk[:-1] <= mid))
     if mk.max() == mk.min() or up.size == 0:
-        raise InputError("the marker column never rises", file=trace.path, key="--marker")
+        raise InputError("the marker column never rises: give the event's time on the trace's axis as well",
+                         file=trace.path)
     i = int(up[0])
     f = (mid - mk[i]) / (mk[i + 1] - mk[i])
     return float(trace.time[i] + f * (trace.time[i + 1] - trace.time[i]))
@@ -170,8 +171,9 @@ def compare(plan, trace: Trace, *, marker: str | None = None, marker_time: float
 
     sched = plan.schedule() if schedule is None else schedule
     if marker is not None:
+        event = event_time(sched, marker)          # a wrong event name is reported before the trace's marker
         at = rising_edge(trace) if marker_time is None else marker_time
-        lag = event_time(sched, marker) - at
+        lag = event - at
         alignment = {"method": "marker", "event": marker, "trace_time": at, "lag": lag,
                      "from": "marker column" if marker_time is None else "given time"}
     else:
@@ -202,7 +204,7 @@ def _refuse_misfit(plan, cmp: Comparison) -> None:
         raise InputError(f"the trace does not fit the planned sweep: at the best alignment ({cmp.alignment['method']}) "
                          f"it is {si(rms, 'Hz')} RMS from the chirp, {rms / span:.0%} of the chirp's span "
                          f"{si(span, 'Hz')}; is it a measurement of this scenario (its period and detunings), "
-                         f"with the right marker, --reference, --beat-sign or --transition? (a laser that did not "
+                         f"with the right marker, reference, beat sign or transition? (a laser that did not "
                          f"sweep at all looks like this too)",
                          file=cmp.trace.path, key=cmp.trace.measured)
 

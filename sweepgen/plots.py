@@ -26,14 +26,27 @@ def _pyplot():
     return plt
 
 
-def save(fig, file) -> Path:
-    """Save a figure atomically by extension (.png or .svg); returns the path."""
+def plot_path(file, key: str = "path") -> Path:
+    """``file`` as a plot to write, checked before anything is computed or written: a .png or .svg
+    file (not a folder) in a folder that exists (no folder is created). ``key`` names the parameter
+    in the error (the command line's ``--plot``, the API's ``path`` or ``plot``)."""
+    path = Path(file)
+    if path.suffix.lower() not in (".png", ".svg"):
+        raise InputError(f"a plot file must end in .png or .svg, got {str(file)!r}", key=key)
+    if path.is_dir():
+        raise InputError(f"{str(file)!r} is a folder; name the plot file", key=key)
+    if not path.parent.is_dir():
+        raise InputError(f"the folder {str(path.parent)!r} does not exist; sweepgen creates no folders for "
+                         "plots (create it first)", key=key)
+    return path
+
+
+def save(fig, file, key: str = "path") -> Path:
+    """Save a figure atomically by extension (.png or .svg; :func:`plot_path`); returns the path."""
     from sweepgen._atomic import atomic_path
 
-    path = Path(file)
+    path = plot_path(file, key)
     fmt = path.suffix.lower().lstrip(".")
-    if fmt not in ("png", "svg"):
-        raise InputError(f"plot file must end in .png or .svg, got {path.name!r}", key="--plot")
     with atomic_path(path) as tmp:
         fig.savefig(tmp, format=fmt, dpi=130, bbox_inches="tight")
     _pyplot().close(fig)

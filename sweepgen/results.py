@@ -196,12 +196,12 @@ class Result:
         -------
         matplotlib.figure.Figure or pathlib.Path
         """
-        fig = self._figure()
         if path is None:
-            return fig
-        from sweepgen.plots import save
+            return self._figure()
+        from sweepgen.plots import plot_path, save
 
-        return save(fig, path)
+        plot_path(path)                     # refused before the figure is drawn
+        return save(self._figure(), path)
 
     def _figure(self):
         raise NotImplementedError(f"{type(self).__name__} has nothing to draw")

@@ -96,6 +96,43 @@ def test_compare_and_calibrate_documents_equal_the_command_line(tmp_path):
     assert api.profile == str(tmp_path / "b.toml") and (tmp_path / "b.png").stat().st_size > 0
 
 
+def test_a_bad_plot_file_is_refused_before_anything_is_written(tmp_path):
+    # the plot's file is checked first: a calibration with a .pdf plot writes no profile (nothing
+    # half-written), and the error names the API's parameter (plot, path), not the command's option
+    u = np.linspace(-5, 5, 300)
+    points = tmp_path / "piezo.csv"
+    points.write_text("drive (V),detuning (MHz)\n" + "".join(f"{a:.6f},{-180 + 41 * a:.6f}\n" for a in u))
+    with pytest.raises(sweepgen.InputError) as exc:
+        sweepgen.calibrate(points, "demo-ecdl-piezo", "analog", output=tmp_path / "c.toml", plot=tmp_path / "fit.pdf")
+    assert exc.value.key == "plot" and ".png or .svg" in str(exc.value)
+    assert not (tmp_path / "c.toml").exists() and list(tmp_path.iterdir()) == [points]
+    result = sweepgen.plan(SHIPPED[0])
+    folder = tmp_path / "figures.png"
+    folder.mkdir()
+    for bad, words in ((tmp_path / "sweep.gif", ".png or .svg"), (tmp_path / "none" / "sweep.png", "does not exist"),
+                       (folder, "is a folder")):
+        with pytest.raises(sweepgen.InputError) as exc:
+            result.plot(bad)
+        assert exc.value.key == "path" and words in str(exc.value)
+    assert sorted(tmp_path.iterdir()) == sorted([points, folder]) and not any(folder.iterdir())
+
+
+def test_compare_errors_name_the_api_parameter_and_the_command_option(tmp_path):
+    # a beat-note trace without the reference laser's detuning, an unknown marker event: from Python the
+    # error names the parameter (reference, marker), from the command line the option
+    t = np.arange(0, 0.02, 1e-5)
+    beat = tmp_path / "beat.csv"
+    beat.write_text("time (s),beat (MHz)\n" + "".join(f"{a:.6f},{100 + a * 1e3:.6f}\n" for a in t))
+    for kwargs, key in (({}, "reference"), ({"reference": "-1.2 GHz", "marker": "lunch"}, "marker")):
+        with pytest.raises(sweepgen.InputError) as exc:
+            sweepgen.compare(SHIPPED[0], beat, **kwargs)
+        assert exc.value.key == key and "--" not in str(exc.value)
+    for args, option in (([], "--reference"), (["--reference", "-1.2 GHz", "--marker", "lunch"], "--marker")):
+        result = CliRunner().invoke(main, ["compare", SHIPPED[0], str(beat), *args])
+        assert result.exit_code == 2 and f"option '{option}'" in result.stderr, result.stderr
+        assert result.stderr.count("\n") == 1
+
+
 # -- scenarios from dicts ----------------------------------------------------------------------
 @pytest.mark.parametrize("key", SHIPPED)
 def test_a_dict_built_scenario_equals_the_same_scenario_read_from_toml(key):

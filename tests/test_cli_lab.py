@@ -69,6 +69,22 @@ def test_calibrate_refuses_with_exit_2(tmp_path):
     assert not (tmp_path / "x.toml").exists()
 
 
+def test_a_bad_plot_file_is_refused_before_any_work(tmp_path, measurement, exported):
+    # calibrate, inspect and compare check --plot when they parse it (as plan, check and simulate do): a
+    # calibration refused for its plot's extension writes no profile
+    out = tmp_path / "laser-new.toml"
+    result = run("calibrate", measurement, "--laser", "demo-ecdl-piezo", "--stage", "analog", "-o", out,
+                 "--plot", tmp_path / "fit.pdf")
+    assert result.exit_code == 2 and "'--plot'" in result.stderr and ".png or .svg" in result.stderr
+    assert not out.exists() and not (tmp_path / "fit.pdf").exists()
+    path, _ = exported
+    result = run("inspect", path, "--plot", tmp_path / "no" / "drive.png")
+    assert result.exit_code == 2 and "'--plot'" in result.stderr and "does not exist" in result.stderr
+    result = run("compare", SCENARIO, measurement, "--plot", tmp_path / "c.jpg")
+    assert result.exit_code == 2 and "'--plot'" in result.stderr and ".png or .svg" in result.stderr
+    assert "Traceback" not in result.output
+
+
 def test_inspect_reports_and_verifies(exported):
     path, written = exported
     result = run("inspect", path, "--json")

@@ -220,16 +220,13 @@ class PlotFile(click.ParamType):
     name = "FILE"
 
     def convert(self, value, param, ctx):
-        from pathlib import Path
+        from sweepgen.errors import InputError
+        from sweepgen.plots import plot_path
 
-        path = Path(value)
-        if path.suffix.lower() not in (".png", ".svg"):
-            self.fail(f"a plot file must end in .png or .svg, got {value!r}", param, ctx)
-        if path.is_dir():
-            self.fail(f"{value!r} is a folder; name the plot file", param, ctx)
-        if not path.parent.is_dir():
-            self.fail(f"the folder {str(path.parent)!r} does not exist; sweepgen creates no folders for "
-                      f"plots (create it first)", param, ctx)
+        try:
+            plot_path(value)
+        except InputError as exc:
+            self.fail(exc.detail, param, ctx)
         return str(value)
 
 

@@ -5,7 +5,8 @@ from __future__ import annotations
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import bounded, emit_json, handles_errors, json_option, option_quantity, options_named, table
+from sweepgen.cli._common import (PlotFile, bounded, emit_json, handles_errors, json_option, option_quantity,
+                                  options_named, table)
 
 
 def _quantity(text, unit, key, example):
@@ -59,7 +60,7 @@ def _transition(frequency, species):
 @click.option("--reference", default=None, metavar="DETUNING", help="Detuning of the reference laser of a 'beat' column.")
 @click.option("--beat-sign", type=click.Choice(["1", "-1"]), default="1", show_default=True,
               help="+1 when the laser is above the reference, -1 below.")
-@click.option("--plot", "plot_file", default=None, type=click.Path(dir_okay=False),
+@click.option("--plot", "plot_file", default=None, type=PlotFile(), metavar="FILE",
               help="The plot of data, fit and residuals (default: beside the new profile, .png).")
 @json_option
 @handles_errors

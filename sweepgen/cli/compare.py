@@ -5,7 +5,8 @@ from __future__ import annotations
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import option_quantity, emit_json, handles_errors, json_option, table
+from sweepgen.cli._common import (PlotFile, emit_json, handles_errors, json_option, option_quantity, options_named,
+                                  table)
 
 
 def _marker(text):
@@ -27,7 +28,7 @@ def _marker(text):
 @click.option("--reference", default=None, metavar="DETUNING", help="Detuning of the reference laser of a 'beat' column.")
 @click.option("--beat-sign", type=click.Choice(["1", "-1"]), default="1", show_default=True,
               help="+1 when the laser is above the reference, -1 below.")
-@click.option("--plot", "plot_file", default=None, type=click.Path(dir_okay=False),
+@click.option("--plot", "plot_file", default=None, type=PlotFile(), metavar="FILE",
               help="Also draw both traces and the error with the tolerance (PNG or SVG by extension).")
 @json_option
 @handles_errors
@@ -49,10 +50,11 @@ def command(scenario, measured, marker, transition, reference, beat_sign, plot_f
     import sweepgen
 
     event, when = _marker(marker)
-    result = sweepgen.compare(scenario, measured, marker=event, marker_time=when,
-                              transition=option_quantity(transition, "Hz", "--transition", "384.2304844685 THz"),
-                              reference=option_quantity(reference, "Hz", "--reference", "-1.2 GHz"),
-                              beat_sign=int(beat_sign))
+    with options_named(marker="--marker", transition="--transition", reference="--reference"):
+        result = sweepgen.compare(scenario, measured, marker=event, marker_time=when,
+                                  transition=option_quantity(transition, "Hz", "--transition", "384.2304844685 THz"),
+                                  reference=option_quantity(reference, "Hz", "--reference", "-1.2 GHz"),
+                                  beat_sign=int(beat_sign))
     if plot_file:
         result.plot(plot_file)
     doc = result.to_json()

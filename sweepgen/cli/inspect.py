@@ -5,7 +5,7 @@ from __future__ import annotations
 import click
 
 from sweepgen._format import si
-from sweepgen.cli._common import emit_json, handles_errors, json_option, table
+from sweepgen.cli._common import PlotFile, emit_json, handles_errors, json_option, table
 
 ROWS = [
     ("start_detuning", "start detuning", "Hz"),
@@ -25,7 +25,7 @@ ROWS = [
 @click.command(short_help="Read a table back, verify it and print its numbers.")
 @click.argument("table_file", metavar="TABLE", type=click.Path(dir_okay=False))
 @json_option
-@click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
+@click.option("--plot", "plot_file", type=PlotFile(), default=None, metavar="FILE",
               help="Also draw detuning and drive versus time (PNG or SVG by extension).")
 @handles_errors
 def command(table_file, as_json, plot_file):
