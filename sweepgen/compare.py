@@ -119,14 +119,14 @@ def event_time(schedule, event: str) -> float:
 def rising_edge(trace: Trace) -> float:
     """Time of the first rising edge of the trace's marker column (midway between its levels)."""
     if trace.marker is None:
-        raise InputError("no marker column in the trace: give the event's time on the trace's axis as well",
-                         file=trace.path)
+        raise InputError(f"{display_path(trace.path)} has no marker column: give the event's time on the trace's "
+                         "axis as well", key="marker_time")
     mk = trace.marker
     mid = 0.5 * (mk.min() + mk.max())
     up = np.flatnonzero((mk[1:] > mid) & (mk[:-1] <= mid))
     if mk.max() == mk.min() or up.size == 0:
-        raise InputError("the marker column never rises: give the event's time on the trace's axis as well",
-                         file=trace.path)
+        raise InputError(f"the marker column of {display_path(trace.path)} never rises: give the event's time on "
+                         "the trace's axis as well", key="marker_time")
     i = int(up[0])
     f = (mid - mk[i]) / (mk[i + 1] - mk[i])
     return float(trace.time[i] + f * (trace.time[i + 1] - trace.time[i]))

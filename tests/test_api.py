@@ -118,16 +118,19 @@ def test_a_bad_plot_file_is_refused_before_anything_is_written(tmp_path):
 
 
 def test_compare_errors_name_the_api_parameter_and_the_command_option(tmp_path):
-    # a beat-note trace without the reference laser's detuning, an unknown marker event: from Python the
-    # error names the parameter (reference, marker), from the command line the option
+    # a beat-note trace without the reference laser's detuning, an unknown marker event, a marker event
+    # without a time on a trace with no marker column: from Python the error names the parameter
+    # (reference, marker, marker_time), from the command line the option
     t = np.arange(0, 0.02, 1e-5)
     beat = tmp_path / "beat.csv"
     beat.write_text("time (s),beat (MHz)\n" + "".join(f"{a:.6f},{100 + a * 1e3:.6f}\n" for a in t))
-    for kwargs, key in (({}, "reference"), ({"reference": "-1.2 GHz", "marker": "lunch"}, "marker")):
+    for kwargs, key in (({}, "reference"), ({"reference": "-1.2 GHz", "marker": "lunch"}, "marker"),
+                        ({"reference": "-1.2 GHz", "marker": "trigger"}, "marker_time")):
         with pytest.raises(sweepgen.InputError) as exc:
             sweepgen.compare(SHIPPED[0], beat, **kwargs)
         assert exc.value.key == key and "--" not in str(exc.value)
-    for args, option in (([], "--reference"), (["--reference", "-1.2 GHz", "--marker", "lunch"], "--marker")):
+    for args, option in (([], "--reference"), (["--reference", "-1.2 GHz", "--marker", "lunch"], "--marker"),
+                         (["--reference", "-1.2 GHz", "--marker", "trigger"], "--marker")):
         result = CliRunner().invoke(main, ["compare", SHIPPED[0], str(beat), *args])
         assert result.exit_code == 2 and f"option '{option}'" in result.stderr, result.stderr
         assert result.stderr.count("\n") == 1

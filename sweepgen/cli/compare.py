@@ -50,7 +50,7 @@ def command(scenario, measured, marker, transition, reference, beat_sign, plot_f
     import sweepgen
 
     event, when = _marker(marker)
-    with options_named(marker="--marker", transition="--transition", reference="--reference"):
+    with options_named(marker="--marker", marker_time="--marker", transition="--transition", reference="--reference"):
         result = sweepgen.compare(scenario, measured, marker=event, marker_time=when,
                                   transition=option_quantity(transition, "Hz", "--transition", "384.2304844685 THz"),
                                   reference=option_quantity(reference, "Hz", "--reference", "-1.2 GHz"),
