@@ -356,11 +356,12 @@ def _along(k, z):
 
 
 @_inlined
-def _saturation(k, peak, q, x, y):
-    """``peak`` (unbounded light) or ``peak/q · exp(−2r²/(w0² q))`` at ``(x, y)`` where the beam has ``q``."""
+def _beam(k, q, x, y):
+    """The beam's factor at ``(x, y)`` where it has ``q``: ``1/q · exp(−2r²/(w0² q))``, the saturation
+    there per unit of the peak's (1 for unbounded light)."""
     if not k.focused:
-        return peak
-    return peak / q * _exp(-(x * x + y * y) * k.inv_waist2 / q)
+        return 1.0
+    return _exp(-(x * x + y * y) * k.inv_waist2 / q) / q
 
 
 @_inlined
@@ -555,7 +556,7 @@ def expected(k, dt, xd, xd_off, w_v, w_z, w_x, w_y, w_vx, w_vy, lam, lam_dark, b
         x = w_x[i] + w_vx[i] * dt
         y = w_y[i] + w_vy[i] * dt
         q = _along(k, z0 + v * half)
-        g = _saturation(k, 1.0, q, x, y)
+        g = _beam(k, q, x, y)
         sat = k.peak * g if z0 >= k.light_start else 0.0
         v_mid = v - half * k.recoil * _rate(k, xd, v, sat)
         lam[i] = _rate(k, xd, v_mid, sat) * dt

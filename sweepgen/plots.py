@@ -41,11 +41,11 @@ def plot_path(file, key: str = "path") -> Path:
     return path
 
 
-def save(fig, file, key: str = "path") -> Path:
+def save(fig, file) -> Path:
     """Save a figure atomically by extension (.png or .svg; :func:`plot_path`); returns the path."""
     from sweepgen._atomic import atomic_path
 
-    path = plot_path(file, key)
+    path = plot_path(file)
     fmt = path.suffix.lower().lstrip(".")
     with atomic_path(path) as tmp:
         fig.savefig(tmp, format=fmt, dpi=130, bbox_inches="tight")
