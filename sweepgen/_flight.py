@@ -14,6 +14,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from sweepgen import _kernel, physics
+from sweepgen.channels import MAIN_LIGHT
+from sweepgen.lighting import LightLevels
 
 #: largest velocity change per step as a fraction of the natural velocity width λΓ/2π (converged at 10⁶
 #: atoms: see sweepgen.simulate, "Time step")
@@ -113,11 +115,15 @@ def peak_saturation(light, z_max: float) -> float:
     return float(light.saturation_at(np.array([zc]))[0])
 
 
-def propagate(scenario, atoms: Atoms, program, rng: np.random.Generator, *,
-              light: bool = True, step_fraction: float = STEP_FRACTION, kernel: str | None = None) -> Flight:
+def propagate(scenario, atoms: Atoms, program, rng: np.random.Generator, *, light: bool = True,
+              levels: LightLevels | None = None, step_fraction: float = STEP_FRACTION,
+              kernel: str | None = None) -> Flight:
     """Fly the atoms from the source to the target plane (see :mod:`sweepgen.simulate`).
 
-    ``program`` is the main light's detuning (:mod:`sweepgen.programs`). Each step
+    ``program`` is the main light's detuning (:mod:`sweepgen.programs`); ``levels``
+    the lights' levels that the gates set in time (:func:`sweepgen.lighting.light_levels`;
+    default: every light at full intensity all the time), each light's saturation
+    scaled by its level, and no step crossing a change of level. Each step
     has four parts, each a method of :class:`_Propagation`: take in the atoms
     emitted soon (and drop the parked ones), choose the step, scatter (rates at the
     step's mid-point, the photons and kicks of the atoms that scatter, depumping
@@ -137,7 +143,10 @@ def propagate(scenario, atoms: Atoms, program, rng: np.random.Generator, *,
         raise ValueError(f"kernel {kernel!r} is not available (have: {', '.join(KERNELS)})")
     if getattr(program, "shift_at", None) is not None:
         kernel = "numpy"            # the compiled step knows one detuning for all atoms, not a field's shift
-    run = (_Compiled if kernel == "compiled" else _Propagation)(scenario, atoms, program, rng, light, step_fraction)
+    if levels is None:
+        levels = LightLevels.full((MAIN_LIGHT,) + tuple(ch.name for ch in scenario.repumps), scenario.chirp.period)
+    run = (_Compiled if kernel == "compiled" else _Propagation)(scenario, atoms, program, rng, light, levels,
+                                                                  step_fraction)
     if atoms.velocity.size == 0:
         return run.out
     t = run.t_first
@@ -184,9 +193,11 @@ class _Propagation:
 
     PARK = -1e100                # m, where atoms that are done wait (no light there)
 
-    def __init__(self, scenario, atoms: Atoms, program, rng, light: bool, step_fraction: float):
+    def __init__(self, scenario, atoms: Atoms, program, rng, light: bool, levels: LightLevels,
+                 step_fraction: float):
         sp, lt, tg = scenario.species, scenario.light, scenario.target
-        self.atoms, self.program, self.rng, self.light = atoms, program, rng, light
+        self.atoms, self.program, self.rng, self.light, self.levels = atoms, program, rng, light, levels
+        self.level = levels.at(0.0)             # the lights' levels in the current step
         self.rates = _Rates(scenario)
         self.beam = lt
         self.wavelength = sp.wavelength
@@ -283,10 +294,11 @@ class _Propagation:
             dt_try = min(dt_try, max(self.next_emission - self.lead - t, self.lead))
         detuning = math.nan
         if self.light:
-            dt = min(dt_try, 1.5 * self.dt_prev)
+            dt = min(dt_try, 1.5 * self.dt_prev, self.levels.next_edge(t) - t)
+            self.level = self.levels.at(t)
             d_lo, d_hi = self.program.extremes(t, t + dt)
             gap = max(self._gaps(d_lo, d_hi) - self.dv_max, 0.0)
-            r_bound = physics.scattering_rate(0.0, gap, self.s_peak, self.gamma, self.wavelength,
+            r_bound = physics.scattering_rate(0.0, gap, self.s_peak * self.level[0], self.gamma, self.wavelength,
                                               self.rates.fraction)
             if self.recoil * r_bound * dt > self.dv_max:
                 dt = self.dv_max / (self.recoil * r_bound)
@@ -344,7 +356,7 @@ class _Propagation:
         np.add(w.z, z_new, out=z_mid)
         z_mid *= 0.5
         # the transverse positions are at the step's end already; the beam changes little across a step
-        s = saturation_seen(z_mid, w.x, w.y, w.lit, self.beam, self.beam.peak, w.s, w.buf)
+        s = saturation_seen(z_mid, w.x, w.y, w.lit, self.beam, self.beam.peak * self.level[0], w.s, w.buf)
         detuning = self._seen(detuning, z_mid)
         expected = midpoint_counts(w.v, s, detuning, dt, self.rates, self.recoil, w.buf, w.buf2, w.expected)
         if self.pumping:
@@ -402,7 +414,7 @@ class _Propagation:
         if not self.rates.repumps:
             return np.zeros(rows.size)
         return repump_counts(w.v[rows], z_mid[rows], w.x[rows], w.y[rows], _rows(detuning, rows), dt,
-                             self.rates)
+                             self.rates, self.level[1:])
 
     def _switches(self, dark, rest, bright_part, lam_dark, lam_back):
         """Follow the atoms that just switched (now ``dark`` or not) through the ``rest`` of the step.
@@ -553,8 +565,8 @@ class _Propagation:
 class _Compiled(_Propagation):
     """A run whose step is one compiled pass over the atoms (:func:`sweepgen._kernel.step`)."""
 
-    def __init__(self, scenario, atoms, program, rng, light, step_fraction):
-        super().__init__(scenario, atoms, program, rng, light, step_fraction)
+    def __init__(self, scenario, atoms, program, rng, light, levels, step_fraction):
+        super().__init__(scenario, atoms, program, rng, light, levels, step_fraction)
         lt, off = scenario.light, self.rates.off
         self.k = _kernel.constants(
             recoil=self.recoil, distance=self.distance, light_start=self.light_start, peak=lt.peak,
@@ -588,12 +600,14 @@ class _Compiled(_Propagation):
                 float(self.wavelength), float(self.rates.fraction), float(off.splitting) if off else 0.0, off is not None)
         state = np.array([self.dt_prev, self.smallest, self.dv_seen, self.steps, self.atom_steps, w.parked,
                           self.n_dark, self.sorted_at + SORT_EVERY], dtype=float)
+        lv = self.levels
         t = _kernel.run_steps(
-            self.words, self.k, self.tables, rule, self.repump_s, self.repump_follows, self.repump_offset,
-            self.repump_fixed, state, float(t), float(self.r_peak), float(self.PARK), w.v, w.z, w.x, w.y, w.vx, w.vy,
-            w.clock, w.pump, w.photons, w.alive, w.dark, w.depumped, w.budget if w.has_budget else self.no_budget,
-            w.lit, w.idx, out.fate, out.final_velocity, out.arrival_time, out.radius, out.transverse_velocity,
-            out.photons, out.dark, out.depumped, self.finished)
+            self.words, self.k, self.tables, rule, lv.edges, lv.levels, lv.period, self.repump_s,
+            self.repump_follows, self.repump_offset, self.repump_fixed, state, float(t), float(self.r_peak),
+            float(self.PARK), w.v, w.z, w.x, w.y, w.vx, w.vy, w.clock, w.pump, w.photons, w.alive, w.dark,
+            w.depumped, w.budget if w.has_budget else self.no_budget, w.lit, w.idx, out.fate, out.final_velocity,
+            out.arrival_time, out.radius, out.transverse_velocity, out.photons, out.dark, out.depumped,
+            self.finished)
         self.dt_prev, self.smallest, self.dv_seen = (float(x) for x in state[:3])
         self.steps, self.atom_steps, w.parked, self.n_dark = (int(x) for x in state[3:7])
         return t
@@ -615,10 +629,11 @@ class _Compiled(_Propagation):
         repump_d = np.array([ch.detuning_with(detuning) for ch in self.rates.repumps], dtype=float)
         large = bool(dt * self.r_peak >= LARGE_COUNT)
         done, self.n_dark = _kernel.step(
-            self.words, self.k, self.repump_s, repump_d, t, dt, detuning, large, w.v, w.z, w.x, w.y, w.vx, w.vy,
-            w.clock, w.pump, w.photons, w.alive, w.dark, w.depumped, w.budget if w.has_budget else self.no_budget,
-            w.idx, self.out.fate, self.out.final_velocity, self.out.arrival_time, self.out.radius,
-            self.out.transverse_velocity, self.finished)
+            self.words, self.k, self.k.peak * self.level[0], self.repump_s * self.level[1:1 + self.repump_s.size],
+            repump_d, t, dt, detuning, large, w.v, w.z, w.x, w.y, w.vx, w.vy, w.clock, w.pump, w.photons, w.alive,
+            w.dark, w.depumped, w.budget if w.has_budget else self.no_budget, w.idx, self.out.fate,
+            self.out.final_velocity, self.out.arrival_time, self.out.radius, self.out.transverse_velocity,
+            self.finished)
         if done:
             rows = self.finished[:done].copy()
             self._record(rows)
@@ -713,19 +728,21 @@ def _rows(detuning, rows):
     return detuning[rows] if isinstance(detuning, np.ndarray) else detuning
 
 
-def repump_counts(v, z, x, y, detuning, dt, rates):
+def repump_counts(v, z, x, y, detuning, dt, rates, levels=None):
     """Expected returns to the bright level of the dark atoms given, ``(1 − b)·Σ R_rep·dt``.
 
     Each repump light drives the dark ground level to the off-resonant excited
     level with the rate of :func:`sweepgen.physics.scattering_rate` at its own
-    saturation (the slowing light's beam geometry) and detuning; a fraction
+    saturation (the slowing light's beam geometry) times its level in the step
+    (``levels``, one per repump light; default full) and detuning; a fraction
     ``1 − b`` of those decays ends in the bright level.
     """
     lt = rates.light
     lit = (z >= lt.start).astype(float)
     total = np.zeros(v.size)
-    for ch in rates.repumps:
-        s = saturation_seen(z, x, y, lit, lt, ch.saturation, np.empty(v.size), np.empty(v.size))
+    levels = np.ones(len(rates.repumps)) if levels is None else levels
+    for ch, level in zip(rates.repumps, levels):
+        s = saturation_seen(z, x, y, lit, lt, ch.saturation * level, np.empty(v.size), np.empty(v.size))
         total += physics.scattering_rate(ch.detuning_with(detuning), v, s, rates.gamma, rates.wavelength,
                                          rates.fraction)
     return total * ((1.0 - rates.off.branching) * dt)

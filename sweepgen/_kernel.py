@@ -545,11 +545,12 @@ def nearest_two(v, dark, alive, centre, other):
 
 
 @_vector
-def expected(k, dt, xd, xd_off, w_v, w_z, w_x, w_y, w_vx, w_vy, lam, lam_dark, beam):
+def expected(k, dt, xd, xd_off, peak, w_v, w_z, w_x, w_y, w_vx, w_vy, lam, lam_dark, beam):
     """The step's first pass, over every atom of the working set (those done too: no branch, so that the
     pass is vectorised): the expected photons ``lam`` of a bright atom, its expected depumping events
     ``lam_dark`` (at the mid-point velocity) and the beam's transverse factor over ``q`` at its place
-    (``beam``, for the repump lights), where the drifted atom is (as :func:`step`)."""
+    (``beam``, for the repump lights), where the drifted atom is (as :func:`step`); ``peak`` is the
+    saturation on the axis in this step (the beam's times the light's level)."""
     half = 0.5 * dt
     for i in range(w_v.size):
         v, z0 = w_v[i], w_z[i]
@@ -557,7 +558,7 @@ def expected(k, dt, xd, xd_off, w_v, w_z, w_x, w_y, w_vx, w_vy, lam, lam_dark, b
         y = w_y[i] + w_vy[i] * dt
         q = _along(k, z0 + v * half)
         g = _beam(k, q, x, y)
-        sat = k.peak * g if z0 >= k.light_start else 0.0
+        sat = peak * g if z0 >= k.light_start else 0.0
         v_mid = v - half * k.recoil * _rate(k, xd, v, sat)
         lam[i] = _rate(k, xd, v_mid, sat) * dt
         lam_dark[i] = _off(k, xd_off, v_mid, sat, dt)
@@ -565,14 +566,15 @@ def expected(k, dt, xd, xd_off, w_v, w_z, w_x, w_y, w_vx, w_vy, lam, lam_dark, b
 
 
 @_compiled
-def step(words, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx, w_vy, w_clock, w_pump,
+def step(words, k, peak, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_vx, w_vy, w_clock, w_pump,
          w_photons, w_alive, w_dark, w_depumped, w_budget, w_idx, o_fate, o_velocity, o_time, o_radius,
          o_transverse, finished):
     """One step of every atom in flight (drift, rates, depumping and repumping, photons and kicks, fates),
     drawing from the generator ``words`` (:func:`stream`); the working-set rows of the atoms done go to
     ``finished``. The expected events come first for all atoms at once (:func:`expected`), then the
     draws atom by atom. ``rep_s``, ``rep_d``: the repump lights' saturations and detunings (Hz) in this
-    step. Returns how many are done, and how many atoms in flight are in the dark level."""
+    step, ``peak`` the slowing light's saturation on the axis (both times their levels in the step).
+    Returns how many are done, and how many atoms in flight are in the dark level."""
     s = (words[0], words[1], words[2], words[3])
     done = n_dark = 0
     recoil = k.recoil
@@ -581,7 +583,7 @@ def step(words, k, rep_s, rep_d, t, dt, detuning, large, w_v, w_z, w_x, w_y, w_v
     size = w_v.size
     lams, darks, beams = np.empty(size), np.empty(size), np.empty(size)
     if k.light:
-        expected(k, dt, k.k_d * detuning, k.k_d * (detuning - k.split), w_v, w_z, w_x, w_y, w_vx, w_vy, lams,
+        expected(k, dt, k.k_d * detuning, k.k_d * (detuning - k.split), peak, w_v, w_z, w_x, w_y, w_vx, w_vy, lams,
                  darks, beams)
     for i in range(size):
         if not w_alive[i]:
@@ -729,16 +731,50 @@ def extremes(p, t0, t1):
     return min(lo, mn), max(hi, mx)
 
 
+#: s: a time this close before an edge of the lights' levels counts as past it (:data:`sweepgen.lighting.EDGE_EPS`)
+EDGE_EPS = 1e-12
+
+
 @_compiled
-def _choose(k, p, rule, state, t, vmax, w_v, w_dark, w_alive):
-    """The step and the detuning at its mid-point: :meth:`sweepgen._flight._Propagation.choose_step`."""
+def segment(edges, period, t):
+    """The stretch of the lights' levels holding the instant just after ``t``
+    (:meth:`sweepgen.lighting.LightLevels.segment`; the edges are few, so a scan)."""
+    n = edges.size
+    if n == 0:
+        return 0
+    tw = (t + EDGE_EPS) % period
+    for j in range(n):
+        if edges[j] > tw:
+            return j - 1 if j > 0 else n - 1
+    return n - 1
+
+
+@_compiled
+def next_edge(edges, period, t):
+    """The first time after ``t`` at which a light's level changes (:meth:`sweepgen.lighting.LightLevels.next_edge`)."""
+    n = edges.size
+    if n == 0:
+        return math.inf
+    u = t + EDGE_EPS
+    tw = u % period
+    for j in range(n):
+        if edges[j] > tw:
+            return u - tw + edges[j]
+    return u - tw + period + edges[0]
+
+
+@_compiled
+def _choose(k, p, rule, state, t, vmax, w_v, w_dark, w_alive, edge, level):
+    """The step and the detuning at its mid-point: :meth:`sweepgen._flight._Propagation.choose_step`
+    (``edge``: the next change of the lights' levels; ``level``: the slowing light's until then)."""
     max_move, t_end, next_emission, all_emitted, lead, dv_max, s_peak, gamma, wavelength, fraction, split, off = rule
     dt_try = min(max_move / max(vmax, 1e-9), t_end - t)
     if not all_emitted:
         dt_try = min(dt_try, max(next_emission - lead - t, lead))
     if not k.light:
         return dt_try, 0.0
-    dt = min(dt_try, 1.5 * state[DT_PREV])
+    dt = min(dt_try, 1.5 * state[DT_PREV], edge - t)
+    s_peak *= level
     d_lo, d_hi = extremes(p, t, t + dt)
     centre = -0.5 * wavelength * (d_lo + d_hi)
     near, near_off = nearest_two(w_v, w_dark, w_alive, centre, centre + wavelength * split)
@@ -754,9 +790,10 @@ def _choose(k, p, rule, state, t, vmax, w_v, w_dark, w_alive):
 
 
 @_compiled
-def run_steps(words, k, p, rule, rep_s, rep_follows, rep_offset, rep_fixed, state, t, r_peak, park_z, w_v, w_z, w_x,
-              w_y, w_vx, w_vy, w_clock, w_pump, w_photons, w_alive, w_dark, w_depumped, w_budget, w_lit, w_idx, o_fate,
-              o_velocity, o_time, o_radius, o_transverse, o_photons, o_dark, o_depumped, finished):
+def run_steps(words, k, p, rule, edges, levels, period, rep_s, rep_follows, rep_offset, rep_fixed, state, t, r_peak,
+              park_z, w_v, w_z, w_x, w_y, w_vx, w_vy, w_clock, w_pump, w_photons, w_alive, w_dark, w_depumped,
+              w_budget, w_lit, w_idx, o_fate, o_velocity, o_time, o_radius, o_transverse, o_photons, o_dark,
+              o_depumped, finished):
     """Steps of the compiled flight from ``t`` until Python must act; returns the time reached.
 
     It stops after the step at which no atom is left in flight, the run's end is
@@ -766,22 +803,27 @@ def run_steps(words, k, p, rule, rep_s, rep_follows, rep_offset, rep_fixed, stat
     and :func:`sweepgen._flight.propagate` act on. The atoms done are recorded in
     the ``o_`` arrays and parked, as :meth:`sweepgen._flight._Propagation._record`
     and :meth:`sweepgen._flight._Working.park` do; ``state`` carries the step record.
+    ``edges``, ``levels``, ``period``: the lights' levels (:class:`sweepgen.lighting.LightLevels`).
     """
     t_end, next_emission, all_emitted, lead = rule[1], rule[2], rule[3], rule[4]
-    rep_d = np.empty(rep_s.size)
+    rep_d, rep_now = np.empty(rep_s.size), np.empty(rep_s.size)
     size = w_v.size
     while True:
         vmax = w_v.max()            # the parked atoms' 1 m/s included, as in the step-by-step rule
-        dt, detuning = _choose(k, p, rule, state, t, vmax, w_v, w_dark, w_alive)
+        seg = segment(edges, period, t)
+        dt, detuning = _choose(k, p, rule, state, t, vmax, w_v, w_dark, w_alive, next_edge(edges, period, t),
+                               levels[0, seg])
         state[DT_PREV] = dt
         state[SMALLEST] = min(state[SMALLEST], dt)
         state[STEPS] += 1.0
         state[ATOM_STEPS] += size - state[PARKED]
-        for j in range(rep_s.size):
-            rep_d[j] = detuning + rep_offset[j] if rep_follows[j] else rep_fixed[j]
-        done, n_dark = step(words, k, rep_s, rep_d, t, dt, detuning, dt * r_peak >= k.large, w_v, w_z, w_x, w_y,
-                            w_vx, w_vy, w_clock, w_pump, w_photons, w_alive, w_dark, w_depumped, w_budget, w_idx,
-                            o_fate, o_velocity, o_time, o_radius, o_transverse, finished)
+        for r in range(rep_s.size):
+            rep_d[r] = detuning + rep_offset[r] if rep_follows[r] else rep_fixed[r]
+            rep_now[r] = rep_s[r] * levels[1 + r, seg]
+        done, n_dark = step(words, k, k.peak * levels[0, seg], rep_now, rep_d, t, dt, detuning,
+                            dt * r_peak >= k.large, w_v, w_z, w_x, w_y, w_vx, w_vy, w_clock, w_pump, w_photons,
+                            w_alive, w_dark, w_depumped, w_budget, w_idx, o_fate, o_velocity, o_time, o_radius,
+                            o_transverse, finished)
         state[N_DARK] = n_dark
         for m in range(done):
             i = finished[m]

@@ -1,6 +1,8 @@
 """After the chirp: what the hold, the return and the rest do to the atoms the chirp has slowed.
 
-The slowing light stays on after the chirp. During the hold it sits at the end
+The slowing light stays on after the chirp unless a gate switches it off or down
+(:mod:`sweepgen.lighting`: its force then scales with the level the gates set,
+and nothing at all acts while it is dark). During the hold it sits at the end
 detuning, still resonant a lag above the end velocity; the smooth return leaves
 the end detuning with zero slope, so for a while it is a second, slower chirp;
 at rest, at the start detuning, it still brakes slow atoms a little. Atoms that
@@ -23,7 +25,8 @@ on the beam's axis (the strongest light): the mean radiation-pressure force
 ``dv/dt = −v_r R(Δ(t), v, s(z))``, ``dz/dt = v``
 (:func:`sweepgen.physics.scattering_rate`, the species' effective force) is
 integrated with :func:`scipy.integrate.solve_ivp` through the hold, the
-return and the rest until it reaches the target, stops, or the next chirp starts.
+return and the rest until it reaches the target, stops, or the next chirp starts,
+piece by piece between the changes of the light's level (the force jumps there).
 """
 
 from __future__ import annotations
@@ -34,6 +37,7 @@ import numpy as np
 from scipy.integrate import solve_ivp
 
 from sweepgen import physics
+from sweepgen.lighting import light_levels
 
 #: nodes over the band's velocities and over the emission times for the release position
 BAND_NODES = 101
@@ -94,6 +98,22 @@ def release_position(plan) -> float:
     return float(r[order][np.searchsorted(cum, RELEASE_QUANTILE * cum[-1])])
 
 
+def _through(rhs, events, state, start, stop, levels, max_step):
+    """Integrate ``rhs`` from ``start`` to ``stop`` in the pieces between the changes of the slowing
+    light's level (``levels``); the state at the end and the outcome (``("stopped" | "arrived", t)``,
+    None when neither event happened)."""
+    while start < stop:
+        piece = min(levels.next_edge(start), stop)
+        sol = solve_ivp(rhs, (start, piece), state, method="DOP853", rtol=1e-9, atol=[1e-9, 1e-9],
+                        events=events, max_step=max_step, args=(float(levels.at(start)[0]),))
+        if sol.status == 1:
+            which = 0 if sol.t_events[0].size else 1
+            return ([float(x) for x in sol.y_events[which][0]],
+                    ("stopped" if which == 0 else "arrived", float(sol.t_events[which][0])))
+        state, start = [float(sol.y[0, -1]), float(sol.y[1, -1])], piece
+    return state, None
+
+
 def _emission_nodes(sc, plan):
     """Emission times and weights: over the pulse, or over the period before the chirp (continuous)."""
     em = sc.emission
@@ -119,17 +139,18 @@ def after_chirp(plan, schedule=None) -> AfterChirp:
     v_r = physics.recoil_velocity(sp.mass, sp.wavelength)
     t_end = plan.chirp_start + plan.chirp_duration
     z0 = release_position(plan)
+    levels = light_levels(sc, plan)
 
-    def rhs(t, y):
+    def rhs(t, y, level):
         z, v = y.tolist()                   # floats: NumPy scalars' arithmetic costs several times more
-        rate = physics.scattering_rate(float(schedule.detuning(t)), v, lt.on_axis(z), sp.gamma, sp.wavelength,
-                                       sp.rate_fraction)
+        rate = physics.scattering_rate(float(schedule.detuning(t)), v, level * lt.on_axis(z), sp.gamma,
+                                       sp.wavelength, sp.rate_fraction)
         return (v, -v_r * rate)
 
-    def stopped(_t, y):
+    def stopped(_t, y, *_):
         return y[1]
 
-    def arrived(_t, y):
+    def arrived(_t, y, *_):
         return y[0] - sc.target.distance
 
     stopped.terminal = arrived.terminal = True
@@ -140,14 +161,7 @@ def after_chirp(plan, schedule=None) -> AfterChirp:
         if length <= 0 or outcome is not None:
             losses.append(0.0)
             continue
-        sol = solve_ivp(rhs, (start, start + length), state, method="DOP853", rtol=1e-9, atol=[1e-9, 1e-9],
-                        events=(stopped, arrived), max_step=length / 64.0)
-        if sol.status == 1:
-            which = 0 if sol.t_events[0].size else 1
-            outcome = ("stopped" if which == 0 else "arrived", float(sol.t_events[which][0]))
-            end = [float(x) for x in sol.y_events[which][0]]
-        else:
-            end = [float(sol.y[0, -1]), float(sol.y[1, -1])]
+        end, outcome = _through(rhs, (stopped, arrived), state, start, start + length, levels, length / 64.0)
         losses.append(state[1] - end[1])
         state, start = end, start + length
     stop = outcome is not None and outcome[0] == "stopped"

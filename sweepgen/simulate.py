@@ -4,8 +4,12 @@ Atoms leave the source (:class:`sweepgen.sources.Emission`: a pulsed source
 emits over its pulse, a continuous beam uniformly over one period; from a disc of
 the source's radius, in directions set by its divergence or by a collimating
 aperture) with velocities drawn from the source model, and fly along +z through
-the slowing light, which travels along -z and is on all the time with the
-detuning its caller gives (the hardware's, from the playback service, or the plan itself).
+the slowing light, which travels along -z with the detuning its caller gives
+(the hardware's, from the playback service, or the plan itself). The light is on
+all the time unless a gate channel switches it: then each light (the slowing
+light and each repump) shines at the level its gates set at that time of the
+period, its saturation parameter scaled by that level, and no step crosses a
+change of level (:mod:`sweepgen.lighting`).
 The model, per atom and time step ``dt`` (README.md, "Physics background"):
 
 * scattering rate ``R = f Γ s / (1 + s + (2·2π(Δ + v/λ)/Γ)²)``
@@ -122,6 +126,7 @@ from sweepgen._flight import (ARRIVED, DARK, HORIZON_FACTOR, LARGE_COUNT, NOT_AR
                               propagate, velocity_width)
 from sweepgen.costs import DEFAULT_ATOMS
 from sweepgen.errors import InputError
+from sweepgen.lighting import LightLevels, light_levels
 from sweepgen.programs import DetuningProgram, Played
 from sweepgen.workers import run as run_tasks
 
@@ -352,7 +357,8 @@ def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None,
         played = Played(DetuningProgram(schedule), False, "the plan itself")
     programs = (played.program, DetuningProgram.fixed(schedule.start_detuning),
                 DetuningProgram(schedule) if played.hardware else None)
-    tasks = chunks(scenario, atoms, seed, programs, baselines=baselines, step_fraction=step_fraction)
+    tasks = chunks(scenario, atoms, seed, programs, baselines=baselines, step_fraction=step_fraction,
+                   levels=light_levels(scenario, p))
     parts = run_tasks(fly_chunk, tasks, workers=workers, cluster=cluster, progress=progress)
     initial = Atoms.join([c.atoms for c in parts])
     flight = Flight.join([c.flight for c in parts])
@@ -383,6 +389,7 @@ class Chunk:
     programs: tuple          # the played program, the fixed-frequency baseline's, the plan's (or None)
     baselines: bool
     step_fraction: float
+    levels: LightLevels | None = None   # the lights' levels that the gates set (None: always full)
 
 
 @dataclass
@@ -395,7 +402,7 @@ class ChunkResult:
 
 
 def chunks(scenario, atoms: int, seed: int, programs: tuple, *, baselines: bool = True,
-           step_fraction: float = STEP_FRACTION) -> list[Chunk]:
+           step_fraction: float = STEP_FRACTION, levels: LightLevels | None = None) -> list[Chunk]:
     """The simulation's parts: ``ceil(atoms / CHUNK_ATOMS)`` of them, sizes differing by at most one.
 
     Their number depends on the atom count alone, and each draws from its own
@@ -406,7 +413,7 @@ def chunks(scenario, atoms: int, seed: int, programs: tuple, *, baselines: bool 
     n = -(-atoms // CHUNK_ATOMS)
     seeds = [np.random.SeedSequence(seed)] if n == 1 else np.random.SeedSequence(seed).spawn(n)
     sizes = [atoms // n + (i < atoms % n) for i in range(n)]
-    return [Chunk(scenario, size, s, programs, baselines, step_fraction) for size, s in zip(sizes, seeds)]
+    return [Chunk(scenario, size, s, programs, baselines, step_fraction, levels) for size, s in zip(sizes, seeds)]
 
 
 def fly_chunk(chunk: Chunk) -> ChunkResult:
@@ -419,7 +426,7 @@ def fly_chunk(chunk: Chunk) -> ChunkResult:
 
     def fly(program, stream, light=True):
         return propagate(sc, initial, program, np.random.default_rng(streams[stream]), light=light,
-                         step_fraction=chunk.step_fraction)
+                         levels=chunk.levels, step_fraction=chunk.step_fraction)
 
     dark = fly(played, 2, light=False) if chunk.baselines else None
     fixed_flight = fly(fixed, 3) if chunk.baselines else None

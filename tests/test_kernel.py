@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 
 from sweepgen import _flight
+from sweepgen.lighting import LightLevels
 from sweepgen.planner import plan
 from sweepgen.scenario import load_scenario
 from sweepgen.simulate import ARRIVED, DARK, DetuningProgram, draw_atoms, propagate
@@ -89,7 +90,7 @@ def test_clock_run_out_gives_one_plus_poisson_photons():
     args = [v, np.zeros(n), np.zeros(n), np.zeros(n), np.zeros(n), np.zeros(n), clock, np.ones(n), photons,
             np.ones(n, bool), np.zeros(n, bool), np.zeros(n, bool), np.empty(0), np.arange(n), np.zeros(n, np.int8),
             np.zeros(n), np.zeros(n), np.zeros(n), np.zeros((n, 2)), np.empty(n, np.intp)]
-    _kernel.step(_kernel.stream(rng), k, np.empty(0), np.empty(0), 0.0, 2 * lam, 0.0, False, *args)
+    _kernel.step(_kernel.stream(rng), k, k.peak, np.empty(0), np.empty(0), 0.0, 2 * lam, 0.0, False, *args)
     # photons in one step: Poisson(λ) for a unit-rate clock started afresh (the first photon when the clock
     # runs out, then 1 + Poisson(overshoot) = Poisson(λ) in all)
     counts = np.bincount(photons.astype(int), minlength=4)[:4] / n
@@ -110,7 +111,7 @@ def _one_step(k, n, dt, detuning, rng, x0=0.0):
     args = [np.full(n, 1e-300), np.zeros(n), np.full(n, x0), np.zeros(n), np.zeros(n), np.zeros(n), clock, pump,
             photons, np.ones(n, bool), np.zeros(n, bool), depumped, np.empty(0), np.arange(n), np.zeros(n, np.int8),
             np.zeros(n), np.zeros(n), np.zeros(n), np.zeros((n, 2)), np.empty(n, np.intp)]
-    _kernel.step(_kernel.stream(rng), k, np.empty(0), np.empty(0), 0.0, dt, detuning, False, *args)
+    _kernel.step(_kernel.stream(rng), k, k.peak, np.empty(0), np.empty(0), 0.0, dt, detuning, False, *args)
     return photons, depumped, clock
 
 
@@ -180,15 +181,16 @@ def test_step_expectations_equal_the_numpy_steps():
     sc = load_scenario("rb87-chopped-oven")
     program = DetuningProgram(plan(sc).schedule())
     run = _flight._Compiled(sc, draw_atoms(sc, 10, np.random.default_rng(0)), program,
-                            np.random.default_rng(1), True, _flight.STEP_FRACTION)
+                            np.random.default_rng(1), True, LightLevels.full(("main", "repump"), program.period),
+                            _flight.STEP_FRACTION)
     rng = np.random.default_rng(2)
     n, dt, detuning = 5000, 2e-6, -350e6
     v, z = rng.uniform(1.0, 320.0, n), rng.uniform(0.0, 1.0, n)
     x, y, vx, vy = rng.normal(0, 4e-3, n), rng.normal(0, 4e-3, n), rng.normal(0, 2.0, n), rng.normal(0, 2.0, n)
     lam, lam_dark, beam = np.empty(n), np.empty(n), np.empty(n)
     k = run.k
-    _kernel.expected(k, dt, k.k_d * detuning, k.k_d * (detuning - k.split), v, z, x, y, vx, vy, lam, lam_dark,
-                     beam)
+    _kernel.expected(k, dt, k.k_d * detuning, k.k_d * (detuning - k.split), k.peak, v, z, x, y, vx, vy, lam,
+                     lam_dark, beam)
     z_mid, x_end, y_end = z + 0.5 * v * dt, x + vx * dt, y + vy * dt
     lit = (z >= sc.light.start).astype(float)
     rates, lt = run.rates, sc.light

@@ -1,0 +1,174 @@
+"""The lights' levels that gate channels set in time (sweepgen.lighting), and what the simulation and the
+follow-up after the chirp make of them.
+
+Physics checked: the saturation parameter is the intensity over the saturation intensity, s = I/I_sat
+(e.g. C. J. Foot, Atomic Physics, Oxford 2005, §7.6, recalled section), so a light let through at a
+fraction L of its intensity acts as the same light with saturation L·s; a light that is dark exerts no
+force, so an atom flies on at constant velocity (Newton's first law: the follow-up after the chirp must
+give back exactly the velocity it started with).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+
+import numpy as np
+import pytest
+
+from sweepgen import _kernel
+from sweepgen.channels import Channel, Gate
+from sweepgen.lighting import EDGE_EPS, LightLevels, light_levels
+from sweepgen.planner import plan
+from sweepgen.scenario import load_scenario
+from sweepgen.simulate import DetuningProgram, draw_atoms, propagate
+from sweepgen.timing import moments
+
+
+def gated(sc, *gates):
+    """``sc`` with further gate channels: ``(name, on, off, level, lights, on_shift, off_shift)`` each."""
+    extra = tuple(Channel(name=name, kind="gate", output=3 + i,
+                          gate=Gate(on, off, on_shift, off_shift, level, lights=tuple(lights)))
+                  for i, (name, on, off, level, lights, on_shift, off_shift) in enumerate(gates))
+    return dataclasses.replace(sc, channels=sc.channels + extra)
+
+
+@pytest.fixture(scope="module")
+def rb():
+    sc = load_scenario("rb87-chopped-oven")             # has a repump channel following the sweep
+    return sc, plan(sc)
+
+
+def test_a_gate_sets_its_lights_level_inside_its_window_and_dark_outside(rb):
+    sc, p = rb
+    when = moments(p)
+    sc = gated(sc, ("gate", "chirp_start", "chirp_end", 0.8, ["main"], -20e-6, 50e-6))
+    lv = light_levels(sc, p)
+    a, b = when["chirp_start"] - 20e-6, when["chirp_end"] + 50e-6
+    assert lv.names == ("main", "repump") and lv.gated
+    np.testing.assert_allclose(lv.edges, [a, b])
+    for t, main in ((0.5 * a, 0.0), (0.5 * (a + b), 0.8), (0.5 * (b + lv.period), 0.0)):
+        assert tuple(lv.at(t)) == (main, 1.0)                    # the repump is not behind this gate
+    assert lv.next_edge(0.0) == pytest.approx(a) and lv.next_edge(a) == pytest.approx(b)
+    assert lv.next_edge(b) == pytest.approx(lv.period + a)          # the next period's opening
+    assert lv.at(a - 0.1 * EDGE_EPS)[0] == 0.8                      # landing on an edge to rounding is past it
+    assert lv.at(a + lv.period)[0] == 0.8 and lv.at(b - 3 * lv.period)[0] == 0.0      # every period alike
+
+
+def test_gates_in_series_multiply_and_a_window_is_clipped_to_the_period(rb):
+    sc, p = rb
+    sc = gated(sc, ("wide", "trigger", "chirp_end", 0.5, ["main", "repump"], -1.0, 0.0),   # opens before 0
+               ("narrow", "chirp_start", "chirp_end", 0.4, ["main"], 0.0, 0.0))
+    lv = light_levels(sc, p)
+    when = moments(p)
+    inside = 0.5 * (when["chirp_start"] + when["chirp_end"])
+    assert lv.at(inside) == pytest.approx([0.2, 0.5])
+    assert lv.at(0.5 * when["chirp_start"]) == pytest.approx([0.0, 0.5])     # open from 0: clipped, as played
+    assert lv.at(when["chirp_end"] + 1e-6) == pytest.approx([0.0, 0.0])
+
+
+def test_a_gate_that_never_opens_keeps_its_lights_dark_and_no_gate_means_full_light(rb):
+    sc, p = rb
+    never = light_levels(gated(sc, ("gate", "trigger", "trigger", 1.0, ["main"], 0.0, 0.0)), p)
+    assert never.edges.size == 0 and tuple(never.at(0.3)) == (0.0, 1.0)
+    full = light_levels(sc, p)
+    assert not full.gated and full.next_edge(0.1) == math.inf and tuple(full.at(0.1)) == (1.0, 1.0)
+
+
+def test_the_compiled_lookups_agree_with_the_levels(rb):
+    sc, p = rb
+    lv = light_levels(gated(sc, ("gate", "chirp_start", "return_end", 0.7, ["main"], -20e-6, 0.0)), p)
+    times = np.random.default_rng(1).uniform(-2 * lv.period, 3 * lv.period, 2000)
+    times = np.concatenate([times, lv.edges, lv.edges - 0.5 * EDGE_EPS, lv.edges + lv.period])
+    for t in times:
+        assert _kernel.segment(lv.edges, lv.period, t) == lv.segment(t)
+        assert _kernel.next_edge(lv.edges, lv.period, t) == pytest.approx(lv.next_edge(t), abs=1e-15)
+
+
+@pytest.mark.parametrize("kernel", ["compiled", "numpy"])
+def test_a_dark_light_scatters_nothing(rb, kernel):
+    # the gate never opens: not one photon, and every atom that arrives keeps its velocity
+    sc, p = rb
+    sc = gated(sc, ("gate", "trigger", "trigger", 1.0, ["main"], 0.0, 0.0))
+    atoms = draw_atoms(sc, 1000, np.random.default_rng(2))
+    flight = propagate(sc, atoms, DetuningProgram(p.schedule()), np.random.default_rng(3),
+                       levels=light_levels(sc, p), kernel=kernel)
+    arrived = np.isfinite(flight.arrival_time)
+    assert flight.photons.sum() == 0 and arrived.sum() > 500
+    np.testing.assert_array_equal(flight.final_velocity[arrived], atoms.velocity[arrived])
+
+
+def test_simulate_flies_the_atoms_through_the_scenarios_gates(rb):
+    from sweepgen.simulate import simulate
+
+    sc, _ = rb
+    result = simulate(gated(sc, ("gate", "trigger", "trigger", 1.0, ["main"], 0.0, 0.0)), atoms=400, seed=1,
+                      workers=1, baselines=False)
+    assert result.flight.photons.sum() == 0
+    assert simulate(sc, atoms=400, seed=1, workers=1, baselines=False).flight.photons.sum() > 0
+
+
+def _mean_photons(sc, p, levels, kernel, seed):
+    atoms = draw_atoms(sc, 3000, np.random.default_rng(4))
+    flight = propagate(sc, atoms, DetuningProgram(p.schedule()), np.random.default_rng(seed), levels=levels,
+                       kernel=kernel)
+    x = flight.photons
+    return float(x.mean()), float(x.std(ddof=1)) / math.sqrt(x.size)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("kernel", ["compiled", "numpy"])
+def test_a_light_at_a_fraction_of_its_intensity_acts_as_that_fraction_of_its_saturation(rb, kernel):
+    # a gate open the whole period at level 0.4 (main and repump) against the ungated scenario whose
+    # lights have 0.4 times the saturation (s = I/I_sat): photons per atom agree within 4 standard errors;
+    # and they differ clearly from the light at full intensity (the check can fail)
+    sc, p = rb
+    dim = gated(sc, ("gate", "trigger", "trigger", 0.4, ["main", "repump"], -1.0, 1.0))
+    weaker = dataclasses.replace(sc, light=dataclasses.replace(sc.light, saturation=0.4 * sc.light.saturation),
+                                 channels=tuple(dataclasses.replace(c, saturation=0.4 * c.saturation)
+                                                for c in sc.channels))
+    (x, sx), (y, sy) = (_mean_photons(dim, p, light_levels(dim, p), kernel, 5),
+                        _mean_photons(weaker, p, None, kernel, 6))
+    (z, sz) = _mean_photons(sc, p, None, kernel, 7)
+    assert abs(x - y) < 4 * math.hypot(sx, sy), (x, y)
+    assert abs(x - z) > 10 * math.hypot(sx, sz), (x, z)
+
+
+@pytest.mark.slow
+def test_compiled_and_numpy_steps_agree_with_a_gate(rb):
+    # the repump and the slowing light behind one gate at 0.8 that closes 50 us after the chirp: the two
+    # steps (independent implementations of the same model) agree within four standard errors
+    from test_kernel import _figures
+
+    sc, p = rb
+    sc = gated(sc, ("gate", "chirp_start", "chirp_end", 0.8, ["main", "repump"], -20e-6, 50e-6))
+    atoms = draw_atoms(sc, 4000, np.random.default_rng(3))
+    runs = {k: propagate(sc, atoms, DetuningProgram(p.schedule()), np.random.default_rng(seed),
+                         levels=light_levels(sc, p), kernel=k) for k, seed in (("compiled", 10), ("numpy", 20))}
+    a, b = (_figures(sc, runs[k]) for k in ("compiled", "numpy"))
+    for name in a:
+        (x, sx), (y, sy) = a[name], b[name]
+        if sx == sy == 0.0 or math.isnan(x):
+            continue
+        assert abs(x - y) < 4 * math.hypot(sx, sy), (name, x, y)
+
+
+def test_after_the_chirp_a_light_switched_off_takes_nothing():
+    # the Na scenario's light takes ~10 m/s from the released atom during the hold; with a gate that closes
+    # at the chirp's end the atom drifts on and arrives with the end velocity itself
+    sc = load_scenario("na23-continuous-focused")
+    p = plan(sc)
+    assert p.after_chirp.hold_velocity_loss > 1.0
+    off = gated(sc, ("gate", "chirp_start", "chirp_end", 1.0, ["main"], -20e-6, 0.0))
+    after = plan(off).after_chirp
+    assert after.hold_velocity_loss == 0.0 and after.return_velocity_loss == 0.0 and not after.stopped
+    assert after.arrival_velocity == sc.chirp.end_velocity
+    # closing halfway through the hold: part of the loss, from the same force while it was open
+    half = plan(gated(sc, ("gate", "chirp_start", "chirp_end", 1.0, ["main"], -20e-6, 0.5 * sc.chirp.hold)))
+    assert 0.0 < half.after_chirp.hold_velocity_loss < p.after_chirp.hold_velocity_loss
+
+
+def test_full_levels_are_the_default(rb):
+    sc, _ = rb
+    lv = LightLevels.full(("main", "repump"), 0.02)
+    assert not lv.gated and lv.segment(0.7) == 0 and lv.at(0.7).tolist() == [1.0, 1.0]
