@@ -67,6 +67,27 @@ class LightLevels:
         """Every light's level just after ``t`` (s, trigger axis), in the order of ``names``."""
         return self.levels[:, self.segment(t)]
 
+    def stretches(self) -> dict:
+        """Each light's levels over one period: ``{name: [(start, end, level), ...]}`` (s, trigger axis),
+        neighbouring stretches of the same level joined (``simulate --json``'s ``light_levels``)."""
+        if self.edges.size == 0:
+            return {name: [(0.0, self.period, float(self.levels[i, 0]))] for i, name in enumerate(self.names)}
+        starts = [0.0] + list(self.edges)
+        ends = list(self.edges) + [self.period]
+        out = {}
+        for i, name in enumerate(self.names):
+            runs = []
+            for a, b in zip(starts, ends):
+                level = float(self.at(a)[i]) if b > a else None
+                if level is None:
+                    continue
+                if runs and runs[-1][2] == level:
+                    runs[-1] = (runs[-1][0], b, level)
+                else:
+                    runs.append((a, b, level))
+            out[name] = runs
+        return out
+
     def next_edge(self, t: float) -> float:
         """The first time after ``t`` at which a level changes (``inf`` when none ever does)."""
         if self.edges.size == 0:

@@ -827,10 +827,12 @@ def played_from(pb, schedule=None, fallback: str = "the plan itself") -> Played:
                "; ".join(f.message for f in pb.report.failures()[:1]))
         return Played(DetuningProgram(schedule), False, f"the generator cannot play the sweep ({why}), so "
                                                         f"{fallback} is played")
-    in_chirp = schedule.kinds(tracking.time) == "chirp"
+    delay = pb.timing.delay if pb.timing is not None else 0.0      # the table's first sample plays then
+    in_chirp = schedule.kinds((tracking.time + delay) % schedule.period) == "chirp"
     error = float(np.max(np.abs(tracking.error[in_chirp]))) if np.any(in_chirp) else 0.0
     quantised = "quantised to its codes, " if pb.report.quantisation is not None else ""
     shaped = "a pre-shaped drive " if pb.main is not None and pb.main.preshaped is not None else ""
     reason = (f"laser '{pb.laser.key}' driven by generator '{pb.generator.key}' at {si(pb.report.rate_choice.sample_rate, 'Sa/s')}, "
               f"{shaped}{quantised}through the actuator response ({pb.laser.response.model})")
-    return Played(SampledProgram(tracking.actual, schedule.period), True, reason, error, pb.report.rate_choice.sample_rate)
+    program = SampledProgram(tracking.actual, schedule.period).later(delay)      # on the trigger's axis
+    return Played(program, True, reason, error, pb.report.rate_choice.sample_rate)

@@ -136,6 +136,20 @@ class SampledProgram:
         self._bmin, self._bmax = blocks.min(axis=1), blocks.max(axis=1)
         self._list = self.values.tolist()
 
+    def later(self, delay: float) -> "SampledProgram":
+        """The same detuning played ``delay`` later (s; periodic): sample ``i`` of the result is this
+        program at ``i·period/n − delay``, joined linearly as before. A delay of whole samples moves the
+        samples exactly; otherwise the result's samples lie on this program's lines, so the two differ only
+        within a sample of a kink, by less than one sample's step."""
+        if delay % self.period == 0.0:
+            return self
+        whole = round(delay / self.dt)
+        if abs(delay / self.dt - whole) < 1e-9:
+            return SampledProgram(np.roll(self.values, whole % self.n), self.period)
+        t = (np.arange(self.n) * self.dt - delay) % self.period
+        nodes = np.arange(self.n + 1) * self.dt
+        return SampledProgram(np.interp(t, nodes, np.append(self.values, self.values[0])), self.period)
+
     def tables(self) -> tuple:
         """The program as plain numbers and arrays (:meth:`DetuningProgram.tables`)."""
         return (SAMPLED, self.period, 0.0, _NONE, _NONE2, _NONE, self.values, self._bmin, self._bmax, self.BLOCK)

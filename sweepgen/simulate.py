@@ -357,8 +357,9 @@ def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None,
         played = Played(DetuningProgram(schedule), False, "the plan itself")
     programs = (played.program, DetuningProgram.fixed(schedule.start_detuning),
                 DetuningProgram(schedule) if played.hardware else None)
+    levels = light_levels(scenario, p)
     tasks = chunks(scenario, atoms, seed, programs, baselines=baselines, step_fraction=step_fraction,
-                   levels=light_levels(scenario, p))
+                   levels=levels)
     parts = run_tasks(fly_chunk, tasks, workers=workers, cluster=cluster, progress=progress)
     initial = Atoms.join([c.atoms for c in parts])
     flight = Flight.join([c.flight for c in parts])
@@ -368,6 +369,7 @@ def simulate(scenario, *, atoms: int = DEFAULT_ATOMS, seed: int = 0, plan=None,
                               fixed_frequency=fixed, start_detuning=schedule.start_detuning,
                               chirp_start=p.chirp_start, arrival_design=p.arrival_time)
     result.extra["played"] = played.to_json()
+    result.extra["light_levels"] = {name: [list(x) for x in runs] for name, runs in levels.stretches().items()}
     if played.hardware:
         ideal_flight = Flight.join([c.ideal for c in parts])
         ideal_result = SimulationResult(scenario, seed, initial, ideal_flight, dark, fixed, 0.0, 0.0, None)

@@ -5,6 +5,7 @@ instrument on a real loopback socket (an invented four-output generator describe
 from __future__ import annotations
 
 import dataclasses
+import json
 import shutil
 from pathlib import Path
 
@@ -16,7 +17,7 @@ from sweepgen.generator import load_generator
 from sweepgen.playback import MAIN, prepare
 from sweepgen.testing import instrument_server
 
-from conftest import to_toml
+from conftest import run_cli, to_toml
 
 BENCH = Path(__file__).parent / "data" / "four-output-bench.toml"
 BASE = "rb87-chopped-oven"
@@ -214,8 +215,6 @@ def test_an_output_the_instrument_does_not_have_is_refused_in_its_words(played):
 # -- no combination of channels writes a table outside any actuator's safe range -------------------
 from hypothesis import HealthCheck, given, settings, strategies as st  # noqa: E402
 
-from conftest import run_cli  # noqa: E402
-
 
 @st.composite
 def channel_sets(draw):
@@ -379,3 +378,51 @@ def test_separate_limits_refuse_an_amplitude_beyond_them():
         sampling.quantisation(-6.0, 6.0, gen, chain)                   # 12 Vpp of a 10 Vpp output
     with pytest.raises(CheckFailed, match="amplitude_max"):
         sampling.quantisation(-3.0, 3.0, gen.for_output(3), chain)     # output 3: 5 Vpp
+
+
+def test_the_detuning_played_after_a_trigger_delay_is_flown_on_the_triggers_axis(played):
+    # the table's first sample plays 0.1 ms after the trigger; the atoms and the plan live on the trigger's
+    # axis, so the detuning the simulation flies must follow the plan there to within the actuator's lag
+    # (the tracking error), not lead it by the delay (5 MHz at this chirp rate)
+    from sweepgen.playback import played_from
+
+    pb = played
+    flown = played_from(pb)
+    s = pb.plan.schedule()
+    t0, t1 = pb.plan.chirp_start, pb.plan.chirp_start + pb.plan.chirp_duration
+    t = np.linspace(t0, t1, 4001)
+    err = np.max(np.abs(np.array([flown.program.at(x) for x in t]) - s.detuning(t)))
+    moved = abs(s.detuning(t0 + 0.5 * (t1 - t0) + pb.timing.delay) - s.detuning(t0 + 0.5 * (t1 - t0)))
+    assert pb.timing.delay == pytest.approx(1e-4) and flown.hardware
+    assert err <= 1.01 * flown.tracking_error and err < 0.2 * moved, (err, flown.tracking_error, moved)
+
+
+def test_a_sampled_program_played_later():
+    from sweepgen.programs import SampledProgram
+
+    values = np.sin(np.linspace(0.0, 2 * np.pi, 1000, endpoint=False))
+    sp = SampledProgram(values, 1.0)
+    np.testing.assert_array_equal(sp.later(0.007).values, np.roll(values, 7))      # whole samples: moved exactly
+    assert sp.later(2.0) is sp
+    shifted = sp.later(0.0123)
+    t = np.random.default_rng(0).uniform(-2.0, 2.0, 500)
+    step = np.max(np.abs(np.diff(values)))
+    assert max(abs(shifted.at(x) - sp.at(x - 0.0123)) for x in t) < step           # within one sample's step
+
+
+def test_simulate_says_when_the_gate_lets_the_light_through(write):
+    from sweepgen.planner import plan
+    from sweepgen.scenario import load_scenario
+    from sweepgen.timing import moments
+
+    path = write()
+    out = run_cli("simulate", path, "--atoms", 200, "--seed", 1)
+    assert out.exit_code == 0, out.output
+    when = moments(plan(load_scenario(path)))
+    opens, closes = (when["chirp_start"] - 20e-6) * 1e3, (when["chirp_end"] + 50e-6) * 1e3
+    for light in ("main", "repump"):
+        assert f"light '{light}' as its gates set it: 1 from {opens:.4g} to {closes:.4g} ms, dark otherwise" \
+            in out.stdout, out.stdout
+    doc = json.loads(run_cli("simulate", path, "--atoms", 200, "--seed", 1, "--json").stdout)
+    assert doc["light_levels"]["main"][1] == pytest.approx([opens * 1e-3, closes * 1e-3, 1.0])
+    assert doc["light_levels"]["main"][0][2] == 0.0 == doc["light_levels"]["main"][2][2]

@@ -130,6 +130,8 @@ def command(scenario, atoms, seed, workers, yes, as_json, plot_file, table_file,
         return
     lost = doc["lost_by_reason"]
     click.echo(f"detuning played: {doc['played']['reason']}")
+    for line in _gated(doc.get("light_levels", {})):
+        click.echo(line)
     click.echo(f"{sc.title}  [{sc.species.key}, {'pulsed' if sc.pulsed else 'continuous'} source, "
                f"{doc['atoms']} atoms, seed {doc['seed']}]")
     rows = [("captured at the target", _pct(doc["captured_fraction"]))]
@@ -179,3 +181,15 @@ def _print_field(cmp):
                       ("final velocity, chirp", si(cmp["chirp_final_velocity_mean"], "m/s")),
                       ("final velocity, tapered field", si(cmp["field_final_velocity_mean"], "m/s"))]))
 
+
+def _gated(levels: dict) -> list[str]:
+    """A line for each light a gate switches: its level and when (ms, trigger axis), dark otherwise."""
+    lines = []
+    for name, runs in levels.items():
+        lit = [(a, b, level) for a, b, level in runs if level > 0.0]
+        if len(runs) == 1 and runs[0][2] == 1.0:
+            continue
+        when = ", ".join(f"{level:g} from {a * 1e3:.4g} to {b * 1e3:.4g} ms" for a, b, level in lit) or "never on"
+        dark = lit and any(level == 0.0 for _, _, level in runs)
+        lines.append(f"light '{name}' as its gates set it: {when}" + (", dark otherwise" if dark else ""))
+    return lines
