@@ -311,11 +311,14 @@ def _deceleration(plan) -> Finding:
     where = (f"on the axis (unbounded light: every atom sees the on-axis force)" if not plan.scenario.light.focused
              else f"{si(ov.median_radius[i], 'm')} from the axis, where half the atoms are closer (beam radius "
                   f"{si(ov.beam_radius[i], 'm')})")
+    dimmed = (f" (the gates let {ov.level:.3g} of its intensity through during the chirp)" if ov.level < 1.0
+              else "")
     return upper("deceleration", worst, 1.0, "",
                  f"the design deceleration {si(tr.deceleration[i], 'm/s²')} is {worst:.3g} of the largest force the "
-                 f"light gives at z = {tr.position[i]:.3g} m {where}; common practice keeps it to 0.5-0.75",
-                 "widen the slowing beam (light.waist) or collimate the atomic beam more, raise light.saturation, "
-                 "or lower chirp.force_fraction (η) for more reserve")
+                 f"light gives at z = {tr.position[i]:.3g} m {where}{dimmed}; common practice keeps it to 0.5-0.75",
+                 "widen the slowing beam (light.waist) or collimate the atomic beam more, raise light.saturation"
+                 + (" or the gate's level" if ov.level < 1.0 else "")
+                 + ", or lower chirp.force_fraction (η) for more reserve")
 
 
 def _beam_overlap(plan) -> Finding:

@@ -67,6 +67,15 @@ class LightLevels:
         """Every light's level just after ``t`` (s, trigger axis), in the order of ``names``."""
         return self.levels[:, self.segment(t)]
 
+    def lowest(self, t0: float, t1: float, light: int = 0) -> float:
+        """The lowest level of light ``names[light]`` over ``[t0, t1]``."""
+        low, t = float(self.at(t0)[light]), t0
+        while True:
+            t = self.next_edge(t)
+            if t >= t1:
+                return low
+            low = min(low, float(self.at(t)[light]))
+
     def stretches(self) -> dict:
         """Each light's levels over one period: ``{name: [(start, end, level), ...]}`` (s, trigger axis),
         neighbouring stretches of the same level joined (``simulate --json``'s ``light_levels``)."""
@@ -96,6 +105,13 @@ class LightLevels:
         tw = u % self.period
         k = int(np.searchsorted(self.edges, tw, side="right"))
         return u - tw + (self.edges[k] if k < self.edges.size else self.period + self.edges[0])
+
+
+def chirp_level(plan) -> float:
+    """The slowing light's lowest level during ``plan``'s chirp (1 without a gate): the fraction of its
+    intensity the design's force can count on."""
+    lv = light_levels(plan.scenario, plan)
+    return lv.lowest(plan.chirp_start, plan.chirp_start + plan.chirp_duration) if lv.gated else 1.0
 
 
 def light_levels(scenario, plan) -> LightLevels:

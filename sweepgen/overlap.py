@@ -13,7 +13,9 @@ atom's path and timing:
   (C. J. Foot, *Atomic Physics*, OUP 2005, ch. 9, recalled: transverse heating
   during slowing);
 * its distance from the axis at each node of the design trajectory gives the
-  force available to it, ``a_max(s(z, r))`` (species' effective force).
+  force available to it, ``a_max(L·s(z, r))`` (species' effective force; ``L``
+  the lowest level of the light that the gates let through during the chirp,
+  :func:`sweepgen.lighting.chirp_level`, 1 without a gate).
 
 Results: the fraction of the atoms that find at least the design force at every
 point of the path, and, at each point, the median distance of the atoms from the
@@ -30,6 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from sweepgen import physics
+from sweepgen.lighting import chirp_level
 
 #: atoms in the sample: the fraction to within its binomial error sqrt(f(1-f)/SAMPLE), at most 1.6 %, and
 #: the median distance from the axis to within its standard error, about 2.3 % (0.72/sqrt(SAMPLE) for
@@ -50,6 +53,7 @@ class Overlap:
     median_radius: np.ndarray     # m, at each node of the design trajectory
     available: np.ndarray         # m/s², a_max at the median radius, at each node
     beam_radius: np.ndarray       # m, 1/e² radius of the slowing beam at each node (inf: unbounded)
+    level: float = 1.0            # the light's lowest level during the chirp that the gates let through
 
 
 def beam_overlap(plan, *, sample: int = SAMPLE, seed: int = SEED) -> Overlap:
@@ -57,22 +61,24 @@ def beam_overlap(plan, *, sample: int = SAMPLE, seed: int = SEED) -> Overlap:
     sc = plan.scenario
     sp, lt = sc.species, sc.light
     tr = plan.trajectory
+    level = chirp_level(plan)            # the gates may let only part of the light through during the chirp
     r = _radii(sc, plan, sample, seed)
     need = tr.deceleration[None, :] * (1.0 - 1e-12)
     enough = np.empty(sample, dtype=bool)
     for a in range(0, sample, BLOCK):
-        s = lt.saturation_at(tr.position[None, :], r[a:a + BLOCK])
+        s = level * lt.saturation_at(tr.position[None, :], r[a:a + BLOCK])
         a_max = physics.max_deceleration(s, sp.gamma, sp.wavelength, sp.mass, sp.rate_fraction)
         enough[a:a + BLOCK] = np.all(a_max >= need, axis=1)
     median = np.median(r, axis=0, overwrite_input=True)          # r is not needed after this
-    available = physics.max_deceleration(lt.saturation_at(tr.position, median), sp.gamma, sp.wavelength, sp.mass,
-                                         sp.rate_fraction)
+    available = physics.max_deceleration(level * lt.saturation_at(tr.position, median), sp.gamma, sp.wavelength,
+                                         sp.mass, sp.rate_fraction)
     if lt.focused:
         u = (tr.position - lt.focus) / lt.rayleigh_range
         width = lt.waist * np.sqrt(1.0 + u * u)
     else:
         width = np.full(tr.position.shape, math.inf)
-    return Overlap(fraction=float(np.mean(enough)), median_radius=median, available=available, beam_radius=width)
+    return Overlap(fraction=float(np.mean(enough)), median_radius=median, available=available, beam_radius=width,
+                   level=level)
 
 
 def _radii(sc, plan, sample: int, seed: int) -> np.ndarray:

@@ -172,3 +172,38 @@ def test_full_levels_are_the_default(rb):
     sc, _ = rb
     lv = LightLevels.full(("main", "repump"), 0.02)
     assert not lv.gated and lv.segment(0.7) == 0 and lv.at(0.7).tolist() == [1.0, 1.0]
+
+
+def test_a_light_dimmed_during_the_chirp_is_judged_by_the_force_it_gives(rb):
+    # the largest force at the atoms is a_max(L·s) = A·L s/(1 + L s) (A = ħkΓf/m, Foot 2005 §9.3.1, recalled)
+    # for a light let through at level L; the deceleration rule compares the design with that force
+    from scipy import constants as C
+
+    from sweepgen.checker import _deceleration
+
+    sc, p = rb
+    sp = sc.species
+    dim = plan(gated(sc, ("gate", "chirp_start", "chirp_end", 0.4, ["main"], -20e-6, 50e-6)))
+    A = C.hbar * 2 * math.pi / sp.wavelength * sp.gamma * sp.rate_fraction / sp.mass
+    a_full = p.overlap.available
+    s = a_full / (A - a_full)                                  # the saturation at the median radius
+    assert dim.overlap.level == 0.4
+    np.testing.assert_allclose(dim.overlap.available, A * 0.4 * s / (1 + 0.4 * s), rtol=1e-9)
+    full, dimmed = _deceleration(p), _deceleration(dim)
+    assert full.status == "pass" and dimmed.status == "fail", (full.value, dimmed.value)
+    assert "the gates let 0.4 of its intensity through during the chirp" in dimmed.message
+    # a gate that opens late (mid-chirp) leaves the design no light at all for part of it
+    late = plan(gated(sc, ("gate", "chirp_start", "chirp_end", 1.0, ["main"], 1e-3, 50e-6)))
+    assert late.overlap.level == 0.0 and _deceleration(late).status == "fail"
+
+
+@pytest.mark.slow
+def test_the_monte_carlo_bears_out_the_verdict_on_a_dimmed_light(rb):
+    # the checker fails the design at level 0.4 (above): the atoms it would slow fall out of the chirp
+    from sweepgen.simulate import simulate
+
+    sc, _ = rb
+    full = simulate(sc, atoms=3000, seed=2, workers=1, baselines=False).captured().mean()
+    dim = gated(sc, ("gate", "chirp_start", "chirp_end", 0.4, ["main"], -20e-6, 50e-6))
+    dimmed = simulate(dim, atoms=3000, seed=2, workers=1, baselines=False).captured().mean()
+    assert full > 0.1 and dimmed < 0.4 * full, (full, dimmed)
