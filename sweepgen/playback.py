@@ -25,6 +25,7 @@ numbers are SI (Hz, Sa/s, s, drive units V or Hz); result objects have
 from __future__ import annotations
 
 import dataclasses
+import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -250,6 +251,38 @@ def delayed(schedule, delay: float):
     segments = [Segment(s.kind, max(s.start - delay, 0.0), s.end - delay) for s in schedule.segments
                 if s.end > delay] + [Segment(schedule.segments[0].kind, period - delay, period)]
     return Schedule(segments, (edges, coeffs), period, first, schedule.end_detuning)
+
+
+def undelayed(schedule, delay: float):
+    """``schedule`` given on the table's axis, on the trigger's (:func:`delayed` undone): what plays at
+    ``t`` of the table plays at ``t + delay`` after the trigger, and the last ``delay`` of the period
+    comes first (the period before it is still playing). A piece that the period's end cuts in two is
+    split, the second part's polynomial written about its own start (the same curve)."""
+    from sweepgen.schedule import Schedule, Segment
+
+    if delay <= 0:
+        return schedule
+    x, c, period = schedule.breakpoints, schedule.coefficients, schedule.period
+    cut = period - delay
+    k = int(np.searchsorted(x, cut, side="right")) - 1
+    if x[k] < cut:
+        x = np.insert(x, k + 1, cut)
+        c = np.insert(c, k + 1, _about(c[:, k], cut - x[k]), axis=1)
+    tail = x[:-1] >= cut
+    edges = np.concatenate([x[:-1][tail] - cut, x[:-1][~tail] + delay, [period]])
+    coeffs = np.concatenate([c[:, tail], c[:, ~tail]], axis=1)
+    segments = ([Segment(g.kind, max(g.start - cut, 0.0), g.end - cut) for g in schedule.segments if g.end > cut]
+                + [Segment(g.kind, g.start + delay, min(g.end, cut) + delay) for g in schedule.segments
+                   if g.start < cut])
+    return Schedule(segments, (edges, coeffs), period, schedule.start_detuning, schedule.end_detuning)
+
+
+def _about(c, u0: float) -> np.ndarray:
+    """The coefficients (highest power first) of the polynomial ``c`` written in powers of ``u − u0``:
+    its ``k``-th derivative at ``u0`` over ``k!`` (Taylor)."""
+    order = c.size
+    return np.array([np.polyval(np.polyder(c, k), u0) / math.factorial(k) if k else np.polyval(c, u0)
+                     for k in range(order - 1, -1, -1)])
 
 
 def gate_laser(name: str, gate):
@@ -807,18 +840,22 @@ def played_table(scenario, sweep) -> Played:
     laser's chain, at the table's own sample rate and codes, filtered by the actuator response
     (:func:`prepare_table`); without a generator profile, the table's detuning
     as it is, without the actuator response."""
+    delay = scenario.timing.delay             # the table's first sample plays then (the trigger's axis)
     if scenario.generator_ref is None:
-        return Played(DetuningProgram(sweep.schedule), False,
+        return Played(DetuningProgram(undelayed(sweep.schedule, delay)), False,
                       f"the table {sweep.table.path.name} through laser '{sweep.laser.key}', without the actuator "
                       f"response (the scenario names no generator)")
     pb = prepare_table(scenario, sweep.table, laser=sweep.laser)
-    return played_from(pb, sweep.schedule, f"the table's detuning through laser '{sweep.laser.key}'")
+    return played_from(pb, undelayed(sweep.schedule, delay), f"the table's detuning through laser "
+                                                                f"'{sweep.laser.key}'", delay=delay)
 
 
-def played_from(pb, schedule=None, fallback: str = "the plan itself") -> Played:
+def played_from(pb, schedule=None, fallback: str = "the plan itself", delay: float | None = None) -> Played:
     """The detuning a checked playback (:class:`Playback`) plays, from its
-    tracking (computed once, by the checker's ``tracking`` rule); ``schedule`` (default: the
-    plan's, with ``fallback`` naming it) when the generator cannot play it."""
+    tracking (computed once, by the checker's ``tracking`` rule), on the trigger's axis (the table's
+    first sample plays ``delay`` after the trigger; default the playback's timing); ``schedule``
+    (on the trigger's axis; default: the plan's, with ``fallback`` naming it) when the generator
+    cannot play it."""
     schedule = pb.plan.schedule() if schedule is None else schedule
     tracking = pb.report.tracking
     if tracking is None:
@@ -827,7 +864,8 @@ def played_from(pb, schedule=None, fallback: str = "the plan itself") -> Played:
                "; ".join(f.message for f in pb.report.failures()[:1]))
         return Played(DetuningProgram(schedule), False, f"the generator cannot play the sweep ({why}), so "
                                                         f"{fallback} is played")
-    delay = pb.timing.delay if pb.timing is not None else 0.0      # the table's first sample plays then
+    if delay is None:
+        delay = pb.timing.delay if pb.timing is not None else 0.0  # the table's first sample plays then
     in_chirp = schedule.kinds((tracking.time + delay) % schedule.period) == "chirp"
     error = float(np.max(np.abs(tracking.error[in_chirp]))) if np.any(in_chirp) else 0.0
     quantised = "quantised to its codes, " if pb.report.quantisation is not None else ""

@@ -426,3 +426,44 @@ def test_simulate_says_when_the_gate_lets_the_light_through(write):
     doc = json.loads(run_cli("simulate", path, "--atoms", 200, "--seed", 1, "--json").stdout)
     assert doc["light_levels"]["main"][1] == pytest.approx([opens * 1e-3, closes * 1e-3, 1.0])
     assert doc["light_levels"]["main"][0][2] == 0.0 == doc["light_levels"]["main"][2][2]
+
+
+@pytest.mark.parametrize("delay", [1e-4, 13.1e-3, 16e-3])
+def test_a_schedule_on_the_tables_axis_is_moved_onto_the_triggers(delay):
+    # what plays at t of the table plays at t + delay after the trigger: the moved schedule at t must be the
+    # table's at t - delay (periodic), pieces cut by the period's end included (13.1 ms cuts the return's cubic
+    # at 6.9 ms of the demo's 20 ms period, 16 ms a piece of the chirp at 4 ms); undelayed undoes delayed
+    from sweepgen.planner import plan
+    from sweepgen.playback import delayed, undelayed
+    from sweepgen.scenario import load_scenario
+
+    s = plan(load_scenario(BASE)).schedule()
+    moved = undelayed(s, delay)
+    t = np.random.default_rng(3).uniform(0.0, 2 * s.period, 5000)
+    np.testing.assert_allclose(moved.detuning(t), s.detuning(t - delay), rtol=0, atol=1e-3)   # Hz
+    assert list(moved.kinds(t)) == list(s.kinds((t - delay) % s.period))
+    if delay < 2e-4:                                                # only the rest before the chirp may be skipped
+        np.testing.assert_allclose(undelayed(delayed(s, delay), delay).detuning(t), s.detuning(t), rtol=0, atol=1e-3)
+
+
+def test_a_table_read_back_is_flown_on_the_triggers_axis(write, tmp_path):
+    # the exported main table (first sample 0.1 ms after the trigger), read back and played through the laser
+    # and actuator: the detuning the simulation flies follows the plan on the trigger's axis to within the
+    # tracking error (not one delay early: 5 MHz at this chirp rate)
+    from sweepgen import drivers
+    from sweepgen.playback import played_table, table_sweep
+    from sweepgen.planner import plan
+    from sweepgen.scenario import load_scenario
+
+    path = write()
+    doc = json.loads(run_cli("export", path, "-f", "raw", "-o", tmp_path / "out", "--json").stdout)
+    main = next(c for c in doc["channels"] if c["name"] == MAIN)
+    sc = load_scenario(path)
+    p = plan(sc)
+    from sweepgen.playback import scenario_profiles
+
+    flown = played_table(sc, table_sweep(drivers.read_table(main["paths"][0]), scenario_profiles(sc)[0]))
+    s = p.schedule()
+    t = np.linspace(p.chirp_start, p.chirp_start + p.chirp_duration, 4001)
+    err = np.max(np.abs(np.array([flown.program.at(x) for x in t]) - s.detuning(t)))
+    assert flown.hardware and err <= 1.05 * flown.tracking_error and err < 1e6, (err, flown.tracking_error)
