@@ -14,7 +14,9 @@ The saturation parameter is the intensity over the saturation intensity
 (``s = I/I_sat``), so a light at level ``L`` has the saturation ``L·s``: the
 simulation (:mod:`sweepgen._flight`) and the follow-up after the chirp
 (:mod:`sweepgen.afterchirp`) scale each light by its level, and end their steps
-at the edges where a level changes.
+at the edges where a level changes; the beam overlap and the checker's
+``deceleration`` rule count on the slowing light's lowest level during the chirp
+(:func:`chirp_level`).
 """
 
 from __future__ import annotations
@@ -87,9 +89,9 @@ class LightLevels:
         for i, name in enumerate(self.names):
             runs = []
             for a, b in zip(starts, ends):
-                level = float(self.at(a)[i]) if b > a else None
-                if level is None:
+                if b <= a:
                     continue
+                level = float(self.at(a)[i])
                 if runs and runs[-1][2] == level:
                     runs[-1] = (runs[-1][0], b, level)
                 else:

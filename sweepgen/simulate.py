@@ -90,7 +90,7 @@ longitudinal ``m·var(v_z)/k_B`` and transverse ``m·(var(v_x) + var(v_y))/(2k_B
 beside the Doppler limit ``ħΓ/2k_B``.
 
 Baselines use the same initial atoms (common random numbers): no light at all,
-and the light held at the schedule's start detuning.
+and the light held at the schedule's start detuning (through the same gates).
 
 Speed (``tests/benchmarks/bench_simulate.py``): the atoms are flown in parts on
 every core (:func:`chunks`, :mod:`sweepgen.workers`). With numba installed
