@@ -186,7 +186,12 @@ class CheckReport:
     generator: Generator | None = None
     rate_choice: SampleRateChoice | None = None     # the sample rate judged (None: no rate plays the sweep)
     quantisation: Quantisation | None = None        # the codes judged (None: no safe code window)
-    tracking: Tracking | None = None            # the simulated actuator over one period
+    tracking: Tracking | None = None            # the simulated actuator over one period (the table's axis)
+    delay: float = 0.0                          # s: the table's first sample plays this long after the trigger
+
+    def played_times(self) -> np.ndarray:
+        """The times of :attr:`tracking`'s samples on the trigger's axis (s, within the period)."""
+        return (self.tracking.time + self.delay) % self.plan.schedule().period
 
     @property
     def ok(self) -> bool:
@@ -363,7 +368,8 @@ def _survival(plan) -> Finding | None:
                    f"level with probability {off.branching:.3g} ({100 * sv.design:.3g} % of those slowed from the "
                    f"start velocity survive; {100 * sv.crossed:.3g} % of the band is swept over by that level's "
                    f"resonance before the chirp catches it)" + ("; with the repump light" if sv.repumped else
-                                                               "; no repump light"))
+                                                               "; no repump light" if not sc.repumps else
+                                                               "; the repump light's gates keep it dark"))
         advice = ("add or strengthen a repump light: [channels.repump] kind = \"frequency\", role = \"repump\", "
                   "saturation = 1, offset = \"0 MHz\"")
     return Finding(rule, "warn" if low else "pass", sv.fraction, limit, "", (sv.fraction - limit) / limit, message,
@@ -427,13 +433,16 @@ class SweepSamples:
         return cls(t, det, schedule.chirp_rate(t), chain.to_drive(det), chain.gain(det))
 
 
-def check_hardware(report: CheckReport, playing) -> None:
+def check_hardware(report: CheckReport, playing, delay: float = 0.0) -> None:
     """Add the laser, generator, sample-rate, quantisation and tracking rules for ``playing``.
 
     ``playing`` (a :class:`sweepgen.playback.ChannelPlayback`) holds the drive
     range, sample-rate choice and quantisation computed once by the playback
-    service; the rules judge them and never compute them again.
+    service; the rules judge them and never compute them again. Its table's
+    first sample plays ``delay`` after the trigger (the rules speak of times on
+    the trigger's axis).
     """
+    report.delay = float(delay)
     sweep = SweepSamples.of(playing.schedule, playing.laser.chain)
     add = report.findings.extend
     add(laser_findings(playing, sweep))
@@ -721,11 +730,11 @@ def _tracking_rules(report: CheckReport, schedule, tr, note: str = "") -> None:
                             f"Q {laser.response.q})"}[model]
     if np.any(in_chirp):
         worst = float(np.max(err[in_chirp]))
-        at = float(tr.time[in_chirp][np.argmax(err[in_chirp])])
+        at = (float(tr.time[in_chirp][np.argmax(err[in_chirp])]) + report.delay) % schedule.period
         add(upper("tracking", worst, tol, "Hz",
                   f"through {desc} the laser is off the planned detuning by up to {si(worst, 'Hz')} during "
-                  f"the chirp (at {at * 1e3:.4g} ms){note}; tolerance {sc.drive.tracking_fraction:g} × the lag detuning "
-                  f"{si(tol / sc.drive.tracking_fraction, 'Hz')}",
+                  f"the chirp (at {at * 1e3:.4g} ms after the trigger){note}; tolerance "
+                  f"{sc.drive.tracking_fraction:g} × the lag detuning {si(tol / sc.drive.tracking_fraction, 'Hz')}",
                   "pre-shape the drive (drive.preshape = true), lower the chirp rate (chirp.force_fraction), use a "
                   "faster actuator, or raise drive.tracking_fraction"))
     ret = schedule.segment("return")

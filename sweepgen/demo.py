@@ -57,6 +57,8 @@ def run(directory, *, scenario: str = DEMO_SCENARIO, atoms: int = DEMO_ATOMS, se
 
 def _check(sc, out: Path, files: dict, echo):
     """1. Plan and check through the playback service; the plots of the sweep, the drive and the headroom."""
+    import numpy as np
+
     from sweepgen import playback, plots
 
     pb = playback.prepare(sc)
@@ -72,7 +74,9 @@ def _check(sc, out: Path, files: dict, echo):
          f"{len(report.findings) - n_fail - n_warn} passed)")
     pb.require_playable()
     tracking = report.tracking            # the actuator as the checker simulated it, at the rate and codes played
-    files["sweep plot"] = plots.plot_plan(pb.plan, out / "sweep.png", response=(tracking.time, tracking.actual))
+    when = report.played_times()          # on the trigger's axis, as the plan
+    order = np.argsort(when, kind="stable")
+    files["sweep plot"] = plots.plot_plan(pb.plan, out / "sweep.png", response=(when[order], tracking.actual[order]))
     files["drive plot"] = plots.plot_drive(report, out / "drive.png")
     files["headroom plot"] = plots.plot_check(report, out / "headroom.png")
     return pb

@@ -16,7 +16,8 @@ simulation (:mod:`sweepgen._flight`) and the follow-up after the chirp
 (:mod:`sweepgen.afterchirp`) scale each light by its level, and end their steps
 at the edges where a level changes; the beam overlap and the checker's
 ``deceleration`` rule count on the slowing light's lowest level during the chirp
-(:func:`chirp_level`).
+(:func:`chirp_level`); the survival estimate (:mod:`sweepgen.survival`) takes
+each light at its level along the design path.
 """
 
 from __future__ import annotations
@@ -68,6 +69,15 @@ class LightLevels:
     def at(self, t: float) -> np.ndarray:
         """Every light's level just after ``t`` (s, trigger axis), in the order of ``names``."""
         return self.levels[:, self.segment(t)]
+
+    def along(self, times, light: int = 0) -> np.ndarray:
+        """Light ``names[light]``'s level just after each of ``times`` (an array)."""
+        times = np.asarray(times, dtype=float)
+        if self.edges.size == 0:
+            return np.full(times.shape, float(self.levels[light, 0]))
+        tw = (times + EDGE_EPS) % self.period
+        j = (np.searchsorted(self.edges, tw, side="right") - 1) % self.edges.size
+        return self.levels[light, j]
 
     def lowest(self, t0: float, t1: float, light: int = 0) -> float:
         """The lowest level of light ``names[light]`` over ``[t0, t1]``."""

@@ -425,7 +425,7 @@ def prepare(scenario, *, laser=None, generator=None, sample_rate: float | None =
         main = preshaped_playback(channel_playback(delayed(plan.schedule(), timing.delay), laser, generator,
                                                    sc.drive, linewidth=sc.species.linewidth,
                                                    sample_rate=sample_rate), sc.drive)
-        checker.check_hardware(report, main)
+        checker.check_hardware(report, main, timing.delay)
         channels[MAIN] = main
         if main.rate_choice is not None:
             channels.update(further_channels(sc, plan, main, timing))
@@ -496,7 +496,7 @@ def prepare_table(scenario, table, *, laser=None, generator=None) -> "Playback":
         main = dataclasses.replace(main, rate_choice=dataclasses.replace(
             main.rate_choice, limited_by=f"fixed by {where}",
             reason=main.rate_choice.reason.replace("--rate", where)))
-    checker.check_hardware(report, main)
+    checker.check_hardware(report, main, sc.timing.delay)
     return Playback(sc, laser, generator, report, {MAIN: main})
 
 

@@ -319,7 +319,9 @@ def drive_figure(report):
     ax.plot(t * 1e3, drive * scale, color=COLORS["sweep"], lw=2, label=f"planned drive ({chain.describe()})")
     tracking = getattr(report, "tracking", None)
     if tracking is not None:
-        ax.plot(tracking.time * 1e3, tracking.drive * scale, color=COLORS["response"], lw=0.8,
+        when = report.played_times()                  # the trigger's axis, as the planned drive
+        order = np.argsort(when, kind="stable")
+        ax.plot(when[order] * 1e3, tracking.drive[order] * scale, color=COLORS["response"], lw=0.8,
                 drawstyle="steps-post", label="as played (quantised samples)")
     lim = laser.limits
     ax.axhline(lim.input_max * scale, color=COLORS["limit"], lw=1.4, ls="--",
@@ -395,7 +397,7 @@ def table_figure(table, numbers):
     fig, (ax, axd) = plt.subplots(2, 1, figsize=(8, 6), sharex=True)
     ax.plot(t[::step] * 1e3, table.detuning()[::step] / 1e6, color=COLORS["sweep"], lw=1.2)
     if numbers.get("chirp_start") is not None:
-        a = numbers["chirp_start"]
+        a = numbers["chirp_start"] - numbers.get("delay", 0.0)     # this figure's axis: from the first sample
         ax.axvspan(a * 1e3, (a + numbers["chirp_duration"]) * 1e3, color=COLORS["sweep"], alpha=0.06)
     ax.set_ylabel("detuning (MHz)")
     ax.set_title(f"{table.path.name} ({table.driver}, {table.count} samples)", fontsize=10)

@@ -322,8 +322,11 @@ def period_samples(table: ReadTable) -> int:
 
 
 def analyse(table: ReadTable) -> dict:
-    """The numbers of the sweep a table plays (SI units, Hz for detunings), like ``plan``'s."""
+    """The numbers of the sweep a table plays (SI units, Hz for detunings), like ``plan``'s; ``chirp_start``
+    on the trigger's axis (the table's first sample plays ``delay`` after the trigger, as its sidecar's
+    ``timing`` says; 0 without)."""
     doc = table.sidecar
+    delay = float((doc.get("timing") or {}).get("delay") or 0.0)
     d = table.detuning()[: period_samples(table)]
     rate = table.sample_rate
     det = doc["scaling"]["detuning"] or {}
@@ -335,7 +338,7 @@ def analyse(table: ReadTable) -> dict:
            "detuning_min": float(d.min()), "detuning_max": float(d.max()),
            "drive_min": float(drive.min()), "drive_max": float(drive.max()), "drive_unit": table.drive_unit,
            "code_min": int(table.codes().min()), "code_max": int(table.codes().max()),
-           "detuning_step": step}
+           "detuning_step": step, "delay": delay}
     if p["chirp"] is None:
         out.update({"start_detuning": float(d[0]), "end_detuning": None, "chirp_span": 0.0, "chirp_rate_max": 0.0,
                     "chirp_duration": 0.0, "chirp_start": None, "return_duration": None, "return_rate_max": None})
@@ -347,7 +350,7 @@ def analyse(table: ReadTable) -> dict:
     out.update({
         "start_detuning": p["start_level"], "end_detuning": p["end_level"],
         "chirp_span": p["end_level"] - p["start_level"],
-        "chirp_start": a / rate, "chirp_duration": (b - a) / rate, "hold": (p["hold"][1] - b) / rate,
+        "chirp_start": delay + a / rate, "chirp_duration": (b - a) / rate, "hold": (p["hold"][1] - b) / rate,
         "chirp_rate_max": float(windowed_rate(chirp, rate, window).max()),
         "chirp_rate_mean": abs(p["end_level"] - p["start_level"]) * rate / max(b - a, 1),
         "return_duration": (r1 - r0) / rate,

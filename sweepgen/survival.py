@@ -27,6 +27,13 @@ plan's design trajectory (on the beam's axis):
     ``1 − exp(−(1 − b)R_rep t_gap)``, ``t_gap`` the time between crossing and
     capture.
 
+Every light is taken at the level its gates set along the design path
+(:mod:`sweepgen.lighting`): a repump's rate, and the slowing light's off-resonant
+excitation, scale with its level ``L`` (saturation ``L·s``; the design atom still
+scatters at the design rate, a little nearer resonance, so that far from the
+off-resonant level its depumping rate falls as ``L``). A repump whose gate keeps
+it dark does not count as repumping.
+
 The numbers are an estimate for the checker's warning; the simulation follows
 every atom.
 """
@@ -40,6 +47,7 @@ import numpy as np
 from scipy.integrate import cumulative_trapezoid
 
 from sweepgen import physics
+from sweepgen.lighting import light_levels
 
 #: velocity nodes over the band for the band average
 BAND_NODES = 401
@@ -71,16 +79,20 @@ def expected_survival(plan) -> Survival:
         each = np.exp(log_keep * (v_band - sc.chirp.end_velocity))
         design = math.exp(log_keep * (sc.chirp.start_velocity - sc.chirp.end_velocity))
         return Survival(_mean(each, weight), design, 0.0, "dark states", False)
-    back = _repump_rate(sc, tr)
-    hazard = _slowing_hazard(sc, tr, back)
+    lv = light_levels(sc, plan)
+    when = plan.chirp_start + tr.time                 # the design path on the trigger's axis
+    seen = tr.saturation * lv.along(when, 0)          # the slowing light as its gates let it through
+    repumps = [lv.along(when, 1 + j) for j in range(len(sc.repumps))]
+    back = _repump_rate(sc, tr, repumps)
+    hazard = _slowing_hazard(sc, tr, back, seen)
     cum = cumulative_trapezoid(hazard, tr.time, initial=0.0)
     # an atom captured at v joins the design trajectory where v_s = v (v_s falls with time)
     t_capture = np.interp(v_band, tr.velocity[::-1], tr.time[::-1])
     keep_slowing = np.exp(-(cum[-1] - np.interp(t_capture, tr.time, cum)))
-    keep_crossing, crossed = _crossing(sc, tr, back, v_band, t_capture)
+    keep_crossing, crossed = _crossing(sc, tr, back, v_band, t_capture, seen)
     each = keep_slowing * keep_crossing
     return Survival(_mean(each, weight), float(math.exp(-cum[-1])), _mean(crossed, weight),
-                    "hyperfine depumping", bool(sc.repumps))
+                    "hyperfine depumping", any(bool(np.any(level > 0.0)) for level in repumps))
 
 
 def _band(sc):
@@ -106,26 +118,29 @@ def _off_rate(sc, seen, s):
                                                    sp.wavelength, sp.rate_fraction)
 
 
-def _repump_rate(sc, tr):
-    """``(1 − b)·Σ R_rep`` for an atom on the design trajectory (0 without repump)."""
+def _repump_rate(sc, tr, levels):
+    """``(1 − b)·Σ R_rep`` for an atom on the design trajectory (0 without repump), each repump light at
+    its ``levels`` along it."""
     sp = sc.species
     total = np.zeros_like(tr.time)
-    for ch in sc.repumps:
-        s = ch.saturation * sc.light.saturation_at(tr.position) / max(sc.light.peak, 1e-300)
+    for ch, level in zip(sc.repumps, levels):
+        s = level * ch.saturation * sc.light.saturation_at(tr.position) / max(sc.light.peak, 1e-300)
         detuning = np.array([ch.detuning_with(d) for d in tr.detuning])
         total += physics.scattering_rate(detuning, tr.velocity, s, sp.gamma, sp.wavelength, sp.rate_fraction)
     return (1.0 - sp.off_resonant.branching) * total
 
 
-def _slowing_hazard(sc, tr, back):
-    """Rate of losing the design atom to the dark level while it is slowed (per second)."""
+def _slowing_hazard(sc, tr, back, s):
+    """Rate of losing the design atom to the dark level while it is slowed (per second); ``s`` the slowing
+    light's saturation along the path."""
     seen = -tr.lag / sc.species.wavelength
     lose_after = 2.0 * tr.lag / tr.deceleration
-    return _off_rate(sc, seen, tr.saturation) * np.exp(-back * lose_after)
+    return _off_rate(sc, seen, s) * np.exp(-back * lose_after)
 
 
-def _crossing(sc, tr, back, v_band, t_capture):
-    """Survival of the crossing of the off-resonant resonance before capture, and which atoms cross."""
+def _crossing(sc, tr, back, v_band, t_capture, saturation):
+    """Survival of the crossing of the off-resonant resonance before capture, and which atoms cross
+    (``saturation``: the slowing light's along the path)."""
     sp = sc.species
     off = sp.off_resonant
     ones = np.ones_like(v_band)
@@ -136,7 +151,7 @@ def _crossing(sc, tr, back, v_band, t_capture):
     crossed = (v_band <= v_off[0]) & (v_band >= v_off[-1])
     t_cross = np.interp(v_band, v_off[::-1], tr.time[::-1])
     beta = np.interp(t_cross, tr.time, np.abs(tr.chirp_rate))
-    s = np.interp(t_cross, tr.time, tr.saturation) * off.strength
+    s = np.interp(t_cross, tr.time, saturation) * off.strength
     events = off.branching * sp.rate_fraction * sp.gamma ** 2 * s / (4.0 * np.maximum(beta, 1e-300)
                                                                       * np.sqrt(1.0 + s))
     r_back = np.interp(t_cross, tr.time, back)

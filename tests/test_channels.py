@@ -467,3 +467,30 @@ def test_a_table_read_back_is_flown_on_the_triggers_axis(write, tmp_path):
     t = np.linspace(p.chirp_start, p.chirp_start + p.chirp_duration, 4001)
     err = np.max(np.abs(np.array([flown.program.at(x) for x in t]) - s.detuning(t)))
     assert flown.hardware and err <= 1.05 * flown.tracking_error and err < 1e6, (err, flown.tracking_error)
+
+
+def test_the_reports_speak_of_the_triggers_axis_after_a_delay(played, write, tmp_path):
+    # with the table's first sample 0.1 ms after the trigger: the tracking rule's worst time lies within the
+    # chirp on the trigger's axis (it was given from the first sample, 0.1 ms early: before the chirp even
+    # started); the drive plot's "as played" curve lies on the planned drive; inspect's chirp start is the
+    # plan's to within the 2 us to which the table's parts are found
+    import re
+
+    import sweepgen
+    from sweepgen.plots import drive_figure
+
+    pb = played
+    p = pb.plan
+    t0, t1 = p.chirp_start, p.chirp_start + p.chirp_duration
+    at = float(re.search(r"at ([0-9.e+-]+) ms after the trigger", pb.report.finding("tracking").message)[1]) * 1e-3
+    assert t0 <= at <= t1, (t0, at, t1)
+    planned, as_played = drive_figure(pb.report).axes[0].lines[:2]
+    x, y = (np.asarray(v, dtype=float) for v in as_played.get_data())
+    inside = (x > t0 * 1e3) & (x < t1 * 1e3)
+    gap = np.abs(y[inside] - np.interp(x[inside], *(np.asarray(v, dtype=float) for v in planned.get_data())))
+    assert gap.max() < 0.02, gap.max()           # V; one delay early it is 0.13 V at this chirp rate
+    doc = json.loads(run_cli("export", write(), "-f", "raw", "-o", tmp_path / "out", "--json").stdout)
+    main = next(c for c in doc["channels"] if c["name"] == MAIN)
+    numbers = sweepgen.inspect(main["paths"][0]).to_json()
+    # (the table's chirp is found where it leaves the start level by a code step: 0.6 us late, as without a delay)
+    assert numbers["delay"] == pytest.approx(1e-4) and abs(numbers["chirp_start"] - t0) < 2e-6

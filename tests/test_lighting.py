@@ -207,3 +207,29 @@ def test_the_monte_carlo_bears_out_the_verdict_on_a_dimmed_light(rb):
     dim = gated(sc, ("gate", "chirp_start", "chirp_end", 0.4, ["main"], -20e-6, 50e-6))
     dimmed = simulate(dim, atoms=3000, seed=2, workers=1, baselines=False).captured().mean()
     assert full > 0.1 and dimmed < 0.4 * full, (full, dimmed)
+
+
+def test_the_survival_estimate_takes_each_light_at_its_level(rb):
+    # the depumping estimate (sweepgen.survival) along the design path: a repump kept dark by its gate is no
+    # repump at all; a repump of saturation 0.02 let through at 0.1 is the repump of 0.002 (s = I/I_sat); and
+    # far from the off-resonant level (|2δ/Γ| ≈ 88 for 87Rb) its excitation rate is proportional to the
+    # slowing light's intensity, so a slowing light at level L depumps the design atom L times as much
+    # (the Lorentzian's far wing, Foot 2005 §7.6, recalled)
+    from sweepgen.checker import _survival
+
+    sc, _ = rb
+    norepump = dataclasses.replace(sc, channels=())
+    dark = gated(sc, ("gate", "chirp_start", "chirp_end", 0.0, ["repump"], -20e-6, 50e-6))
+    sv_dark, sv_none = plan(dark).survival, plan(norepump).survival
+    assert sv_dark.fraction == sv_none.fraction < 0.5 and not sv_dark.repumped and plan(sc).survival.repumped
+    finding = _survival(plan(dark))
+    assert finding.status == "warn" and "the repump light's gates keep it dark" in finding.message
+
+    def weak(s):
+        return dataclasses.replace(sc, channels=tuple(dataclasses.replace(c, saturation=s) for c in sc.channels))
+
+    dimmed = plan(gated(weak(0.02), ("gate", "chirp_start", "chirp_end", 0.1, ["repump"], -20e-6, 50e-6)))
+    assert dimmed.survival.fraction == pytest.approx(plan(weak(0.002)).survival.fraction, rel=1e-12)
+    full = plan(norepump).survival.design
+    half = plan(gated(norepump, ("gate", "chirp_start", "chirp_end", 0.5, ["main"], -20e-6, 50e-6))).survival.design
+    assert math.log(half) / math.log(full) == pytest.approx(0.5, rel=2e-3)
