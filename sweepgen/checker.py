@@ -772,7 +772,8 @@ def table_findings(plan, table, sweep, delay: float = 0.0) -> list[Finding]:
     ``table_integrity``: the file matches its sidecar (size, SHA-256, count, codes).
     ``table_match``: the detuning the table plays through TODAY's laser (``sweep``, a
     :class:`sweepgen.playback.TableSweep`) against the plan during the plan's chirp, within the
-    tracking tolerance.
+    tracking tolerance. ``table_delay``: the trigger delay the table was written for (its sidecar's
+    ``timing``) is the scenario's ``delay`` that judges it (a warning when not).
     """
     from sweepgen._format import si
 
@@ -784,6 +785,7 @@ def table_findings(plan, table, sweep, delay: float = 0.0) -> list[Finding]:
                    "export the table again" if bad else "")]
     if plan is None:
         return out
+    out.append(_table_delay(table, delay))
     planned = plan.schedule()
     seg = planned.segment("chirp")
     t = np.linspace(seg.start, np.nextafter(seg.end, seg.start), GRID)
@@ -796,6 +798,19 @@ def table_findings(plan, table, sweep, delay: float = 0.0) -> list[Finding]:
                      f"represented within {si(sweep.error, 'Hz')})",
                      "export a new table from the scenario, or recalibrate the laser (sweepgen calibrate)"))
     return out
+
+
+def _table_delay(table, delay: float) -> Finding:
+    """``table_delay``: the delay in the table's sidecar against the scenario's ``[timing] delay``."""
+    from sweepgen._format import si
+
+    written = float((table.sidecar.get("timing") or {}).get("delay") or 0.0)
+    same = abs(written - delay) <= 1e-9 * max(abs(written), abs(delay), 1e-9)
+    text = (f"{table.path.name} was written to play its first sample {si(written, 's')} after the trigger"
+            + ("" if same else f"; the scenario's [timing] delay is {si(delay, 's')}, and the table is judged and "
+                               f"flown as the scenario says"))
+    return Finding("table_delay", "pass" if same else "warn", written, delay, "s", None, text,
+                   "" if same else "set [timing] delay to the table's, or export a new table from the scenario")
 
 
 # ----------------------------------------------------------------------------------

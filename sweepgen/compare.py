@@ -31,6 +31,7 @@ import numpy as np
 
 from sweepgen._format import si
 from sweepgen.errors import InputError, display_path
+from sweepgen.timing import moments as timing_moments
 
 #: grid points per period for the cross-correlation
 BINS = 1 << 14
@@ -103,10 +104,27 @@ def read_trace(path, *, transition: float | None = None, reference: float | None
     return Trace(str(path), t, values, None if marker is None else marker.values[order], col.kind)
 
 
-def event_time(schedule, event: str) -> float:
-    """Time of a named event of the schedule (s after the trigger)."""
+def event_time(schedule, event: str, plan=None) -> float:
+    """Time of a named event (s after the trigger): the schedule's ``trigger``, ``chirp_start``,
+    ``chirp_end``, ``return_start``, ``return_end``; with ``plan``, also the period's ``pulse`` and
+    ``arrival`` (:func:`sweepgen.timing.moments`) and the rising edge of each of the scenario's own
+    ``[timing.markers.NAME]`` (its moment plus its ``shift``), so that a trace that recorded a marker
+    output is aligned by its name."""
+    markers = {m.name: m for m in plan.scenario.timing.markers} if plan is not None else {}
+    moments = timing_moments(plan) if plan is not None else {}
+    if event in markers:
+        m = markers[event]
+        at = moments.get(m.at)
+        if at is None:
+            raise InputError(f"marker {event} is at '{m.at}', which this period does not have", key="marker")
+        return at + m.shift
+    if event in ("pulse", "arrival") and event in moments:
+        if moments[event] is None:
+            raise InputError(f"this period has no {event} (a continuous beam has none)", key="marker")
+        return moments[event]
     if event not in EVENTS:
-        raise InputError(f"expected one of {', '.join(EVENTS)}, got {event!r}", key="marker")
+        known = list(EVENTS) + (["pulse", "arrival"] + sorted(markers) if plan is not None else [])
+        raise InputError(f"expected one of {', '.join(known)}, got {event!r}", key="marker")
     if event == "trigger":
         return 0.0
     kind, edge = event.rsplit("_", 1)
@@ -171,7 +189,7 @@ def compare(plan, trace: Trace, *, marker: str | None = None, marker_time: float
 
     sched = plan.schedule() if schedule is None else schedule
     if marker is not None:
-        event = event_time(sched, marker)          # a wrong event name is reported before the trace's marker
+        event = event_time(sched, marker, plan)    # a wrong event name is reported before the trace's marker
         at = rising_edge(trace) if marker_time is None else marker_time
         lag = event - at
         alignment = {"method": "marker", "event": marker, "trace_time": at, "lag": lag,

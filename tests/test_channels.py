@@ -322,8 +322,18 @@ def test_a_table_exported_with_a_trigger_delay_still_matches_its_plan(write, tmp
     assert run_cli("export", path, "-f", "raw", "-o", tmp_path / "out").exit_code == 0
     result = run_cli("check", path, "--table", tmp_path / "out" / "scenario.bin", "--json")
     assert result.exit_code == 0, result.output
-    match = next(f for f in json.loads(result.stdout)["findings"] if f["rule"] == "table_match")
+    found = {f["rule"]: f for f in json.loads(result.stdout)["findings"]}
+    match = found["table_match"]
     assert match["status"] == "pass" and match["value"] < 0.1 * match["limit"]
+    assert found["table_delay"]["status"] == "pass"
+    # the same table judged by a scenario that now asks for another delay: warned, and the match suffers
+    other = write(timing={"delay": "0.2 ms", "edge": "rising",
+                          "markers": {"arrival": {"at": "arrival", "width": "20 us", "output": 4, "high": "3.3 V"}}})
+    again = run_cli("check", other, "--table", tmp_path / "out" / "scenario.bin", "--json")
+    found = {f["rule"]: f for f in json.loads(again.stdout)["findings"]}
+    delay = found["table_delay"]
+    assert delay["status"] == "warn" and (delay["value"], delay["limit"]) == pytest.approx((1e-4, 2e-4))
+    assert "the scenario's [timing] delay is 200 µs" in delay["message"], delay["message"]
 
 
 def test_a_connection_lost_during_the_second_table_leaves_every_output_off(played):

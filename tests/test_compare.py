@@ -94,3 +94,25 @@ def test_a_trace_that_spans_a_day_is_folded_in_bounded_memory(planned):
     assert peak < 200 << 20
     off = (cmp.lag - 0.004 + s.period / 2) % s.period - s.period / 2
     assert off == pytest.approx(0.0, abs=1e-7) and cmp.ok
+
+
+def test_a_scenarios_own_marker_and_the_periods_moments_align_a_trace(planned):
+    # a trace whose marker column recorded the scenario's marker output: it rises at the marker's moment
+    # plus its shift (here 10 us before the arrival), and the trace is aligned by that marker's name
+    import dataclasses
+
+    from sweepgen.timing import Marker, moments
+
+    p, s = planned
+    mark = Marker("bunch", "arrival", -10e-6, 20e-6, 4, 3.3)
+    sc = dataclasses.replace(p.scenario, timing=dataclasses.replace(p.scenario.timing, markers=(mark,)))
+    pm = plan(sc)
+    rises = moments(pm)["arrival"] - 10e-6                     # on the trigger's axis
+    lag = 0.004
+    trace = synthetic(s, lag=lag)[0]
+    at = rises - lag                                           # on the trace's axis (trace time = trigger time - lag)
+    assert compare(pm, trace, marker="bunch", marker_time=at).lag == pytest.approx(lag, abs=1e-12)
+    assert compare(pm, trace, marker="arrival", marker_time=at + 10e-6).lag == pytest.approx(lag, abs=1e-12)
+    assert compare(pm, trace, marker="pulse", marker_time=sc.pulse_time - lag).lag == pytest.approx(lag, abs=1e-12)
+    with pytest.raises(InputError, match="bunch"):
+        compare(pm, trace, marker="bunches", marker_time=at)   # the error lists the scenario's marker names

@@ -21,8 +21,9 @@ def _marker(text):
 @click.argument("scenario")
 @click.argument("measured", type=click.Path(dir_okay=False))
 @click.option("--marker", default=None, metavar="EVENT[=TIME]",
-              help="Align by a named event (trigger, chirp_start, chirp_end, return_start, return_end) at TIME "
-                   "on the trace's axis, or at the first rise of its 'marker' column; default: cross-correlation.")
+              help="Align by a named event (trigger, pulse, chirp_start, chirp_end, return_start, return_end, "
+                   "arrival, or the name of one of the scenario's [timing.markers]) at TIME on the trace's axis, or "
+                   "at the first rise of its 'marker' column; default: cross-correlation.")
 @click.option("--transition", default=None, metavar="FREQ",
               help="Transition frequency for a 'frequency' column (default: c/λ of the scenario's species).")
 @click.option("--reference", default=None, metavar="DETUNING", help="Detuning of the reference laser of a 'beat' column.")
