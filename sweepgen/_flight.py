@@ -587,22 +587,27 @@ class _Compiled(_Propagation):
         self.tables = tables() if tables is not None else None
         self.words = _kernel.stream(rng)
 
+    def rule(self) -> tuple:
+        """The step rule's numbers as the compiled run takes them (:func:`sweepgen._kernel._choose`)."""
+        off = self.rates.off
+        return (float(self.max_move), float(self.t_end), math.inf if self.all_emitted else self.next_emission,
+                self.all_emitted, float(self.lead), float(self.dv_max), float(self.s_peak), float(self.gamma),
+                float(self.wavelength), float(self.rates.fraction), float(off.splitting) if off else 0.0,
+                off is not None)
+
     def steps_until(self, t: float) -> float:
         """Steps from ``t`` in one compiled call (:func:`sweepgen._kernel.run_steps`) until the working
         set needs :meth:`take_in`, none is left in flight or the run ends; the time reached."""
         if self.tables is None:
             return super().steps_until(t)
-        w, out, off = self.w, self.out, self.rates.off
+        w, out = self.w, self.out
         if self.finished.size < w.size:
             self.finished = np.empty(w.size, dtype=np.intp)
-        rule = (float(self.max_move), float(self.t_end), math.inf if self.all_emitted else self.next_emission,
-                self.all_emitted, float(self.lead), float(self.dv_max), float(self.s_peak), float(self.gamma),
-                float(self.wavelength), float(self.rates.fraction), float(off.splitting) if off else 0.0, off is not None)
         state = np.array([self.dt_prev, self.smallest, self.dv_seen, self.steps, self.atom_steps, w.parked,
                           self.n_dark, self.sorted_at + SORT_EVERY], dtype=float)
         lv = self.levels
         t = _kernel.run_steps(
-            self.words, self.k, self.tables, rule, lv.edges, lv.levels, lv.period, self.repump_s,
+            self.words, self.k, self.tables, self.rule(), lv.edges, lv.levels, lv.period, self.repump_s,
             self.repump_follows, self.repump_offset, self.repump_fixed, state, float(t), float(self.r_peak),
             float(self.PARK), w.v, w.z, w.x, w.y, w.vx, w.vy, w.clock, w.pump, w.photons, w.alive, w.dark,
             w.depumped, w.budget if w.has_budget else self.no_budget, w.lit, w.idx, out.fate, out.final_velocity,

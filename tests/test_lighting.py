@@ -233,3 +233,28 @@ def test_the_survival_estimate_takes_each_light_at_its_level(rb):
     full = plan(norepump).survival.design
     half = plan(gated(norepump, ("gate", "chirp_start", "chirp_end", 0.5, ["main"], -20e-6, 50e-6))).survival.design
     assert math.log(half) / math.log(full) == pytest.approx(0.5, rel=2e-3)
+
+
+def test_no_step_crosses_a_change_of_level(rb):
+    # a step that would cross the gate's opening ends on it, in the NumPy rule and in the compiled one, and
+    # the level of the step after it is the open gate's
+    from sweepgen import _flight
+
+    sc, p = rb
+    sc = gated(sc, ("gate", "chirp_start", "chirp_end", 0.8, ["main", "repump"], -20e-6, 50e-6))
+    lv = light_levels(sc, p)
+    atoms = draw_atoms(sc, 300, np.random.default_rng(2))
+    program = DetuningProgram(p.schedule())
+    t = lv.edges[0] - 3e-8
+    for cls in (_flight._Propagation, _flight._Compiled):
+        run = cls(sc, atoms, program, np.random.default_rng(3), True, lv, _flight.STEP_FRACTION)
+        run.take_in(t)
+        if cls is _flight._Propagation:
+            dt, _ = run.choose_step(t)
+        else:
+            state = np.array([math.inf, math.inf, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0])
+            dt, _ = _kernel._choose(run.k, run.tables, run.rule(), state, t, float(run.w.v.max()), run.w.v,
+                                    run.w.dark, run.w.alive, _kernel.next_edge(lv.edges, lv.period, t),
+                                    lv.levels[0, _kernel.segment(lv.edges, lv.period, t)])
+        assert dt == pytest.approx(3e-8, rel=1e-6), (cls.__name__, dt)
+        assert tuple(lv.at(t + dt)) == (0.8, 0.8) and tuple(lv.at(t)) == (0.0, 0.0)
