@@ -37,7 +37,6 @@ import numpy as np
 from scipy.integrate import solve_ivp
 
 from sweepgen import physics
-from sweepgen.lighting import light_levels
 
 #: nodes over the band's velocities and over the emission times for the release position
 BAND_NODES = 101
@@ -139,7 +138,7 @@ def after_chirp(plan, schedule=None) -> AfterChirp:
     v_r = physics.recoil_velocity(sp.mass, sp.wavelength)
     t_end = plan.chirp_start + plan.chirp_duration
     z0 = release_position(plan)
-    levels = light_levels(sc, plan)
+    levels = plan.light_levels
 
     def rhs(t, y, level):
         z, v = y.tolist()                   # floats: NumPy scalars' arithmetic costs several times more

@@ -122,7 +122,7 @@ class LightLevels:
 def chirp_level(plan) -> float:
     """The slowing light's lowest level during ``plan``'s chirp (1 without a gate): the fraction of its
     intensity the design's force can count on."""
-    lv = light_levels(plan.scenario, plan)
+    lv = plan.light_levels
     return lv.lowest(plan.chirp_start, plan.chirp_start + plan.chirp_duration) if lv.gated else 1.0
 
 

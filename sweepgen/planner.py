@@ -126,6 +126,13 @@ class Plan:
         return after_chirp(self, schedule)
 
     @cached_property
+    def light_levels(self):
+        """Each light's level over the period as the scenario's gates set it (:mod:`sweepgen.lighting`)."""
+        from sweepgen.lighting import light_levels
+
+        return light_levels(self.scenario, self)
+
+    @cached_property
     def survival(self):
         """Expected survival of the band (:mod:`sweepgen.survival`)."""
         from sweepgen.survival import expected_survival

@@ -847,15 +847,14 @@ def played_table(scenario, sweep) -> Played:
                       f"response (the scenario names no generator)")
     pb = prepare_table(scenario, sweep.table, laser=sweep.laser)
     return played_from(pb, undelayed(sweep.schedule, delay), f"the table's detuning through laser "
-                                                                f"'{sweep.laser.key}'", delay=delay)
+                                                                f"'{sweep.laser.key}'")
 
 
-def played_from(pb, schedule=None, fallback: str = "the plan itself", delay: float | None = None) -> Played:
+def played_from(pb, schedule=None, fallback: str = "the plan itself") -> Played:
     """The detuning a checked playback (:class:`Playback`) plays, from its
-    tracking (computed once, by the checker's ``tracking`` rule), on the trigger's axis (the table's
-    first sample plays ``delay`` after the trigger; default the playback's timing); ``schedule``
-    (on the trigger's axis; default: the plan's, with ``fallback`` naming it) when the generator
-    cannot play it."""
+    tracking (computed once, by the checker's ``tracking`` rule), moved onto the trigger's axis (the
+    table's first sample plays the report's ``delay`` after the trigger); ``schedule`` (on the
+    trigger's axis; default: the plan's, with ``fallback`` naming it) when the generator cannot play it."""
     schedule = pb.plan.schedule() if schedule is None else schedule
     tracking = pb.report.tracking
     if tracking is None:
@@ -864,8 +863,7 @@ def played_from(pb, schedule=None, fallback: str = "the plan itself", delay: flo
                "; ".join(f.message for f in pb.report.failures()[:1]))
         return Played(DetuningProgram(schedule), False, f"the generator cannot play the sweep ({why}), so "
                                                         f"{fallback} is played")
-    if delay is None:
-        delay = pb.timing.delay if pb.timing is not None else 0.0  # the table's first sample plays then
+    delay = pb.report.delay                # the table's first sample plays then (the checker's tracking)
     in_chirp = schedule.kinds((tracking.time + delay) % schedule.period) == "chirp"
     error = float(np.max(np.abs(tracking.error[in_chirp]))) if np.any(in_chirp) else 0.0
     quantised = "quantised to its codes, " if pb.report.quantisation is not None else ""

@@ -47,7 +47,6 @@ import numpy as np
 from scipy.integrate import cumulative_trapezoid
 
 from sweepgen import physics
-from sweepgen.lighting import light_levels
 
 #: velocity nodes over the band for the band average
 BAND_NODES = 401
@@ -79,7 +78,7 @@ def expected_survival(plan) -> Survival:
         each = np.exp(log_keep * (v_band - sc.chirp.end_velocity))
         design = math.exp(log_keep * (sc.chirp.start_velocity - sc.chirp.end_velocity))
         return Survival(_mean(each, weight), design, 0.0, "dark states", False)
-    lv = light_levels(sc, plan)
+    lv = plan.light_levels
     when = plan.chirp_start + tr.time                 # the design path on the trigger's axis
     seen = tr.saturation * lv.along(when, 0)          # the slowing light as its gates let it through
     repumps = [lv.along(when, 1 + j) for j in range(len(sc.repumps))]
