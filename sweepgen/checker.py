@@ -73,6 +73,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from sweepgen._format import si
+from sweepgen.channels import MAIN_LIGHT
 from sweepgen.errors import CheckFailed
 
 if TYPE_CHECKING:
@@ -320,10 +321,11 @@ def _deceleration(plan) -> Finding:
               else "")
     return upper("deceleration", worst, 1.0, "",
                  f"the design deceleration {si(tr.deceleration[i], 'm/s²')} is {worst:.3g} of the largest force the "
-                 f"light gives at z = {tr.position[i]:.3g} m {where}{dimmed}; common practice keeps it to 0.5-0.75",
-                 "widen the slowing beam (light.waist) or collimate the atomic beam more, raise light.saturation"
-                 + (" or the gate's level" if ov.level < 1.0 else "")
-                 + ", or lower chirp.force_fraction (η) for more reserve")
+                 f"light gives at z = {tr.position[i]:.3g} m, {where}{dimmed}; common practice keeps it to 0.5-0.75",
+                 ("raise the gates' level on the slowing light during the chirp (channels.NAME.level, on/off), "
+                  if ov.level < 1.0 else "")
+                 + "widen the slowing beam (light.waist) or collimate the atomic beam more, raise light.saturation, "
+                 "or lower chirp.force_fraction (η) for more reserve")
 
 
 def _beam_overlap(plan) -> Finding:
@@ -585,10 +587,20 @@ def generator_findings(playing) -> list[Finding]:
                            f"{o.word_bits}-bit words", "" if same else
                            "make the DDS stage of the laser profile and the generator profile describe the same DDS"))
     ch_ok = playing.output <= gen.channels
+    key = _output_key(playing)
     out.append(Finding("channel", "pass" if ch_ok else "fail", playing.output, gen.channels, "", None,
-                       f"drive.channel {playing.output} of {gen.channels} channel(s)",
-                       "" if ch_ok else f"set drive.channel to 1..{gen.channels}"))
+                       f"{key} {playing.output} of {gen.channels} channel(s)",
+                       "" if ch_ok else f"set {key} to 1..{gen.channels}"))
     return out
+
+
+def _output_key(playing) -> str:
+    """The scenario key that chooses ``playing``'s generator output."""
+    if playing.name == MAIN_LIGHT:
+        return "drive.channel"
+    if getattr(playing, "kind", None) == "marker":
+        return f"timing.markers.{playing.name}.output"
+    return f"channels.{playing.name}.output"
 
 
 def _generator_range(gen, drive_range) -> Finding:
@@ -806,9 +818,9 @@ def _table_delay(table, delay: float) -> Finding:
 
     written = float((table.sidecar.get("timing") or {}).get("delay") or 0.0)
     same = abs(written - delay) <= 1e-9 * max(abs(written), abs(delay), 1e-9)
-    text = (f"{table.path.name} was written to play its first sample {si(written, 's')} after the trigger"
-            + ("" if same else f"; the scenario's [timing] delay is {si(delay, 's')}, and the table is judged and "
-                               f"flown as the scenario says"))
+    text = (f"{table.path.name} was written to play its first sample {written * 1e6:.9g} µs after the trigger"
+            + ("" if same else f"; the scenario's [timing] delay is {delay * 1e6:.9g} µs, and the table is judged "
+                               f"and flown as the scenario says"))
     return Finding("table_delay", "pass" if same else "warn", written, delay, "s", None, text,
                    "" if same else "set [timing] delay to the table's, or export a new table from the scenario")
 
@@ -884,16 +896,20 @@ def _gate_findings(ch, timing) -> list[Finding]:
                    f"gate {name} open from {si(opened, 's')} to {si(closed, 's')} after the trigger "
                    f"(table from {si(timing.delay, 's')} to {si(timing.period, 's')})",
                    "" if fits else "move the gate's on/off (or their shifts) inside the played period")]
-    covers = opened <= when["chirp_start"] and closed >= when["chirp_end"]
+    covers = opened <= when["chirp_start"] and closed >= when["chirp_end"] and g.level > 0.0
     lights = ", ".join(g.lights)
+    lets = (f"lets {lights} through at {g.level:g} of full intensity" if g.level > 0.0 else
+            f"is open for {lights} at level 0 (lets no light through)")
     out.append(Finding(f"{name}.coverage", "pass" if covers else "fail", None, None, "s", None,
-                       f"gate {name} lets {lights} through from {si(opened, 's')} to {si(closed, 's')}; the chirp "
+                       f"gate {name} {lets} from {si(opened, 's')} to {si(closed, 's')}; the chirp "
                        f"runs from {si(when['chirp_start'], 's')} to {si(when['chirp_end'], 's')}",
-                       "" if covers else "open the gate before the chirp starts and close it after it ends"))
+                       "" if covers else
+                       f"raise channels.{name}.level above 0" if g.level <= 0.0 else
+                       "open the gate before the chirp starts and close it after it ends"))
     late = closed - when["chirp_end"]
     out.append(upper(f"{name}.switch_off", late, g.tolerance, "s",
                      f"gate {name} closes {si(late, 's')} after the chirp's end (tolerance {si(g.tolerance, 's')}): "
-                     f"light left on turns the slowed atoms back",
+                     f"light left on can turn the slowed atoms back (after_chirp follows one of them)",
                      f"close it sooner (channels.{name}.off, off_shift) or raise channels.{name}.tolerance",
                      warns=False))
     return out

@@ -34,6 +34,7 @@ import numpy as np
 
 from sweepgen import checker, sampling
 from sweepgen._format import si
+from sweepgen.channels import MAIN_LIGHT
 from sweepgen.errors import CheckFailed, InputError
 from sweepgen.generator import load_generator
 from sweepgen.laser import load_laser
@@ -42,8 +43,8 @@ from sweepgen.programs import DetuningProgram, Played, SampledProgram
 from sweepgen.render import drive_range, render
 from sweepgen.scenario import Scenario, load_scenario
 
-#: the name of the main channel: the slowing light's detuning sweep
-MAIN = "main"
+#: the name of the main channel: the slowing light's detuning sweep (the lights' name for it)
+MAIN = MAIN_LIGHT
 
 
 # ---------------------------------------------------------------------------------------------
@@ -456,6 +457,12 @@ def table_sweep(table, laser) -> TableSweep:
     from sweepgen import readback
 
     doc = table.sidecar
+    channel = doc.get("channel") or {}
+    if channel.get("name", MAIN) != MAIN:
+        raise InputError(f"this is the table of channel '{channel['name']}' ({channel.get('kind', 'a further')} "
+                         f"channel); a table read back is judged and flown as the main sweep: give the main "
+                         f"sweep's table (the file without '-{channel['name']}')", file=str(table.path),
+                         key="channel.name")
     unit = table.drive_unit
     if unit != laser.chain.drive_unit:
         raise InputError(f"the table drives in {unit} but laser '{laser.key}' takes {laser.chain.drive_unit}",
@@ -871,4 +878,5 @@ def played_from(pb, schedule=None, fallback: str = "the plan itself") -> Played:
     reason = (f"laser '{pb.laser.key}' driven by generator '{pb.generator.key}' at {si(pb.report.rate_choice.sample_rate, 'Sa/s')}, "
               f"{shaped}{quantised}through the actuator response ({pb.laser.response.model})")
     program = SampledProgram(tracking.actual, schedule.period).later(delay)      # on the trigger's axis
-    return Played(program, True, reason, error, pb.report.rate_choice.sample_rate)
+    failed = tuple(dict.fromkeys(f.rule for f in pb.report.failures()))
+    return Played(program, True, reason, error, pb.report.rate_choice.sample_rate, failed)

@@ -206,7 +206,9 @@ class Played:
     reason: str                     # why the plan is played, or what plays the hardware
     tracking_error: float | None = None   # Hz, largest |played − planned| during the chirp
     sample_rate: float | None = None      # Sa/s of the played table
+    failed_rules: tuple = ()              # the playback's check rules that fail (what is played breaks them)
 
     def to_json(self) -> dict:
         return {"detuning": "hardware" if self.hardware else "plan", "reason": self.reason,
-                "tracking_error_max": self.tracking_error, "sample_rate": self.sample_rate}
+                "tracking_error_max": self.tracking_error, "sample_rate": self.sample_rate,
+                "failed_rules": list(self.failed_rules)}

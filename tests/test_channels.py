@@ -114,6 +114,7 @@ def test_the_gate_is_bright_only_while_it_is_open(played):
     ({"off_shift": "1 ms"}, "gate.switch_off"),                   # light left on 1 ms after the chirp
     ({"on_shift": "0.2 ms"}, "gate.coverage"),                    # opens after the chirp started
     ({"on": "trigger", "on_shift": "0 s"}, "gate.window"),        # opens before the table's first sample
+    ({"off_shift": "10 us", "level": 0.0}, "gate.coverage"),      # open all the chirp, but lets nothing through
 ])
 def test_a_gate_out_of_step_with_the_chirp_fails(write, change, rule):
     channels = {"gate": {"kind": "gate", "on": "chirp_start", "off": "chirp_end", "dark": "0 V",
@@ -333,7 +334,7 @@ def test_a_table_exported_with_a_trigger_delay_still_matches_its_plan(write, tmp
     found = {f["rule"]: f for f in json.loads(again.stdout)["findings"]}
     delay = found["table_delay"]
     assert delay["status"] == "warn" and (delay["value"], delay["limit"]) == pytest.approx((1e-4, 2e-4))
-    assert "the scenario's [timing] delay is 200 µs" in delay["message"], delay["message"]
+    assert "the scenario's [timing] delay is 200 µs, and the table" in delay["message"], delay["message"]
 
 
 def test_a_connection_lost_during_the_second_table_leaves_every_output_off(played):
@@ -504,3 +505,42 @@ def test_the_reports_speak_of_the_triggers_axis_after_a_delay(played, write, tmp
     numbers = sweepgen.inspect(main["paths"][0]).to_json()
     # (the table's chirp is found where it leaves the start level by a code step: 0.6 us late, as without a delay)
     assert numbers["delay"] == pytest.approx(1e-4) and abs(numbers["chirp_start"] - t0) < 2e-6
+
+
+def test_a_further_output_out_of_range_names_its_own_key(write):
+    # the bench generator has four outputs: a marker on 5, a gate on 7 are refused with the key that chose them
+    timing = {"delay": "0.1 ms", "markers": {"arrival": {"at": "arrival", "width": "20 us", "output": 5,
+                                                         "high": "3.3 V"}}}
+    channels = {"gate": {"kind": "gate", "on": "chirp_start", "off": "chirp_end", "off_shift": "10 us",
+                         "dark": "0 V", "bright": "1 V", "output": 7}}
+    report = prepare(write(channels=channels, timing=timing)).report
+    marker, gate = report.finding("arrival.channel"), report.finding("gate.channel")
+    assert marker.status == gate.status == "fail"
+    assert marker.advice == "set timing.markers.arrival.output to 1..4"
+    assert gate.advice == "set channels.gate.output to 1..4"
+
+
+def test_a_further_channels_table_is_not_read_back_as_the_main_sweep(write, tmp_path):
+    # the gate's table (a level, not a detuning) given to check --table or simulate --table: one line naming
+    # the file and what to give instead, exit 2
+    path = write()
+    assert run_cli("export", path, "-f", "csv", "-o", tmp_path / "out").exit_code == 0
+    for command in ("check", "simulate"):
+        result = run_cli(command, path, "--table", tmp_path / "out" / "scenario-gate.csv")
+        assert result.exit_code == 2, result.output
+        assert "scenario-gate.csv" in result.stderr and "channel 'gate'" in result.stderr
+        assert "give the main sweep's table" in result.stderr and len(result.stderr.strip().splitlines()) == 1
+
+
+def test_simulate_warns_when_what_is_played_breaks_a_rule(write):
+    # a gate that closes 1 ms late fails gate.switch_off; simulate still flies the atoms (what the hardware
+    # would play) but says so, on stderr and in the JSON
+    channels = {"gate": {"kind": "gate", "on": "chirp_start", "off": "chirp_end", "off_shift": "1 ms",
+                         "dark": "0 V", "bright": "1 V", "output": 3}}
+    path = write(channels=channels)
+    result = run_cli("simulate", path, "--atoms", 200, "--seed", 1)
+    assert result.exit_code == 0 and "fails 1 check rule(s) (gate.switch_off)" in result.stderr, result.stderr
+    doc = json.loads(run_cli("simulate", path, "--atoms", 200, "--seed", 1, "--json").stdout)
+    assert doc["played"]["failed_rules"] == ["gate.switch_off"]
+    clean = json.loads(run_cli("simulate", write(), "--atoms", 200, "--seed", 1, "--json").stdout)
+    assert clean["played"]["failed_rules"] == []

@@ -130,6 +130,7 @@ def command(scenario, atoms, seed, workers, yes, as_json, plot_file, table_file,
         return
     lost = doc["lost_by_reason"]
     click.echo(f"detuning played: {doc['played']['reason']}")
+    _warn_failed(doc["played"].get("failed_rules") or [])
     for line in _gated(doc.get("light_levels", {})):
         click.echo(line)
     click.echo(f"{sc.title}  [{sc.species.key}, {'pulsed' if sc.pulsed else 'continuous'} source, "
@@ -193,3 +194,11 @@ def _gated(levels: dict) -> list[str]:
         dark = lit and any(level == 0.0 for _, _, level in runs)
         lines.append(f"light '{name}' as its gates set it: {when}" + (", dark otherwise" if dark else ""))
     return lines
+
+
+def _warn_failed(failed: list) -> None:
+    """A warning on stderr when what is played breaks check rules (the atoms fly through it all the same)."""
+    if failed:
+        click.echo(f"warning: what the hardware plays fails {len(failed)} check rule(s) ({', '.join(failed)}): the "
+                   f"atoms fly through it as it would be played; 'sweepgen check' has the details and the fixes",
+                   err=True)
