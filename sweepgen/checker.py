@@ -842,6 +842,7 @@ def timing_findings(scenario, timing, generator) -> list[Finding]:
                     f"{si(start, 's')}",
                     "lower timing.delay to at most the chirp start: only the rest before the chirp may be skipped")]
     out += _trigger_findings(timing, generator)
+    out.append(_burst_finding(timing))
     for ch in scenario.channels:
         if ch.kind == "gate":
             out += _gate_findings(ch, timing)
@@ -857,6 +858,21 @@ def timing_findings(scenario, timing, generator) -> list[Finding]:
                            f"marker {name}: this period has no such moment (a continuous beam has no arrival "
                            f"of a bunch)", "choose another moment for timing.markers." + name + ".at"))
     return out
+
+
+def _burst_finding(timing) -> Finding:
+    """``timing.burst``: in burst mode a table of whole periods started ``delay`` after the trigger plays on
+    past the next trigger (the source's next shot, a period later); a generator that takes no trigger
+    while it plays then skips every other shot (a warning with the overlap)."""
+    over = timing.delay if timing.mode == "burst" else 0.0
+    end = timing.cycles * timing.period + timing.delay
+    text = (f"{timing.mode} mode: the table plays from {si(timing.delay, 's')} to {si(end, 's')} after the trigger"
+            + (f", {si(over, 's')} after {timing.cycles} period(s) have passed: the trigger of the source's next "
+               f"shot then finds it still playing, and a generator that takes no trigger while it plays skips "
+               f"that shot" if over > 0 else ""))
+    return Finding("timing.burst", "warn" if over > 0 else "pass", over, 0.0, "s", None, text,
+                   "set timing.delay to 0 (the rest before the chirp does the waiting), use timing.mode = "
+                   "\"repeat\", or make sure the generator takes a trigger while it plays" if over > 0 else "")
 
 
 def _trigger_findings(timing, generator) -> list[Finding]:

@@ -544,3 +544,12 @@ def test_simulate_warns_when_what_is_played_breaks_a_rule(write):
     assert doc["played"]["failed_rules"] == ["gate.switch_off"]
     clean = json.loads(run_cli("simulate", write(), "--atoms", 200, "--seed", 1, "--json").stdout)
     assert clean["played"]["failed_rules"] == []
+
+
+def test_a_burst_that_outlasts_the_period_is_warned(played, write):
+    # the bench scenario plays one period per trigger from 0.1 ms after it: until 20.1 ms, when the source's
+    # next shot (20 ms) has already triggered; in repeat mode, or without a delay, nothing outlasts the period
+    f = played.report.finding("timing.burst")
+    assert f.status == "warn" and f.value == pytest.approx(1e-4) and "20.1 ms after the trigger" in f.message
+    for timing in ({"delay": "0 ms"}, {"delay": "0.1 ms", "mode": "repeat", "source": "internal"}):
+        assert prepare(write(channels={}, timing=timing)).report.finding("timing.burst").status == "pass"
