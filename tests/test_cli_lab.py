@@ -121,6 +121,8 @@ def test_check_and_simulate_an_old_table(tmp_path, exported, measurement):
     sim = run("simulate", SCENARIO, "--table", path, "--atoms", 500, "--json")
     assert sim.exit_code == 0, sim.output
     assert json.loads(sim.stdout)["table"]["file"] == str(path)
+    text = run("simulate", SCENARIO, "--table", path, "--atoms", 200)
+    assert f"table played: {path} (sha256 " in text.stdout                  # the text names the table too
 
 
 def test_compare_catches_an_injected_error(tmp_path):

@@ -130,7 +130,7 @@ def command(scenario, atoms, seed, workers, yes, as_json, plot_file, table_file,
         return
     lost = doc["lost_by_reason"]
     click.echo(f"detuning played: {doc['played']['reason']}")
-    _warn_failed(doc["played"].get("failed_rules") or [])
+    _say_played(doc)
     for line in _gated(doc.get("light_levels", {})):
         click.echo(line)
     click.echo(f"{sc.title}  [{sc.species.key}, {'pulsed' if sc.pulsed else 'continuous'} source, "
@@ -196,8 +196,13 @@ def _gated(levels: dict) -> list[str]:
     return lines
 
 
-def _warn_failed(failed: list) -> None:
-    """A warning on stderr when what is played breaks check rules (the atoms fly through it all the same)."""
+def _say_played(doc: dict) -> None:
+    """The table read back that is played (``--table``), and a warning on stderr when what is played breaks
+    check rules (the atoms fly through it all the same)."""
+    if "table" in doc:
+        click.echo(f"table played: {doc['table']['file']} (sha256 {doc['table']['table_sha256'][:16]}…), through "
+                   f"laser '{doc['table']['laser']}'")
+    failed = doc["played"].get("failed_rules") or []
     if failed:
         click.echo(f"warning: what the hardware plays fails {len(failed)} check rule(s) ({', '.join(failed)}): the "
                    f"atoms fly through it as it would be played; 'sweepgen check' has the details and the fixes",
