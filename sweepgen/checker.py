@@ -598,7 +598,7 @@ def _output_key(playing) -> str:
     """The scenario key that chooses ``playing``'s generator output."""
     if playing.name == MAIN_LIGHT:
         return "drive.channel"
-    if getattr(playing, "kind", None) == "marker":
+    if playing.kind == "marker":
         return f"timing.markers.{playing.name}.output"
     return f"channels.{playing.name}.output"
 
