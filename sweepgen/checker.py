@@ -319,9 +319,11 @@ def _deceleration(plan) -> Finding:
                   f"{si(ov.beam_radius[i], 'm')})")
     dimmed = (f" (the gates let {ov.level:.3g} of its intensity through during the chirp)" if ov.level < 1.0
               else "")
+    share = (f"is {worst:.3g} of the largest force the light gives" if math.isfinite(worst)
+             else "cannot be met: the light gives no force")
     return upper("deceleration", worst, 1.0, "",
-                 f"the design deceleration {si(tr.deceleration[i], 'm/s²')} is {worst:.3g} of the largest force the "
-                 f"light gives at z = {tr.position[i]:.3g} m, {where}{dimmed}; common practice keeps it to 0.5-0.75",
+                 f"the design deceleration {si(tr.deceleration[i], 'm/s²')} {share} at z = {tr.position[i]:.3g} m, "
+                 f"{where}{dimmed}; common practice keeps it to 0.5-0.75",
                  ("raise the gates' level on the slowing light during the chirp (channels.NAME.level, on/off), "
                   if ov.level < 1.0 else "")
                  + "widen the slowing beam (light.waist) or collimate the atomic beam more, raise light.saturation, "

@@ -53,6 +53,7 @@ PLAN_ROWS = (
     ("photons_per_atom", "photons per atom", "photons"),
     ("max_rate_fraction", "largest scattering rate / Γ", ""),
     ("effective_saturation", "saturation the atoms see on axis", ""),
+    ("chirp_light_level", "slowing light let through in the chirp", ""),
     ("beam_overlap", "atomic beam finding the design force", ""),
     ("survival_fraction", "band left bright (dark states, depumping)", ""),
     ("hold_velocity_loss", "velocity the hold takes", "m/s"),
@@ -313,7 +314,7 @@ class PlanResult(_Judged):
         for key, label, unit in self.ROWS:
             value = self._doc.get(key)
             if value is None or (key == "survival_fraction" and sc.species.loss_per_photon == 0
-                                 and sc.species.off_resonant is None):
+                                 and sc.species.off_resonant is None) or (key == "chirp_light_level" and value == 1):
                 continue
             rows.append((label, si(value, unit)))
         return rows

@@ -194,7 +194,26 @@ def test_a_light_dimmed_during_the_chirp_is_judged_by_the_force_it_gives(rb):
     assert "the gates let 0.4 of its intensity through during the chirp" in dimmed.message
     # a gate that opens late (mid-chirp) leaves the design no light at all for part of it
     late = plan(gated(sc, ("gate", "chirp_start", "chirp_end", 1.0, ["main"], 1e-3, 50e-6)))
-    assert late.overlap.level == 0.0 and _deceleration(late).status == "fail"
+    none = _deceleration(late)
+    assert late.overlap.level == 0.0 and none.status == "fail"
+    assert "cannot be met: the light gives no force" in none.message and " inf of" not in none.message
+    # the plan shows the saturation the atoms see through the gate (L·s), and the level only when gated
+    doc, doc_dim = p.to_json(), dim.to_json()
+    assert doc_dim["effective_saturation"] == pytest.approx(0.4 * doc["effective_saturation"], rel=1e-12)
+    assert (doc["chirp_light_level"], doc_dim["chirp_light_level"]) == (1.0, 0.4)
+
+
+def test_the_plan_text_names_the_level_only_behind_a_gate(rb):
+    from sweepgen import api
+
+    sc, _ = rb
+    label = "slowing light let through in the chirp"
+    rows = dict(api.plan(sc).table_rows())
+    rows_dim = dict(api.plan(gated(sc, ("gate", "chirp_start", "chirp_end", 0.4, ["main"], -20e-6, 50e-6)))
+                    .table_rows())
+    assert label not in rows and rows_dim[label] == "0.4"
+    assert float(rows_dim["saturation the atoms see on axis"]) == pytest.approx(
+        0.4 * float(rows["saturation the atoms see on axis"]), rel=1e-3)
 
 
 @pytest.mark.slow
