@@ -155,7 +155,9 @@ def _mse(schedule, trace: Trace, lag: float) -> float:
 
 
 def align_xcorr(schedule, trace: Trace) -> tuple[float, dict]:
-    """Lag (schedule time − trace time) by folded circular cross-correlation, refined by least squares."""
+    """Lag (schedule time − trace time) by folded circular cross-correlation, refined by least squares.
+    A periodic plan fixes it only modulo the period: it is given in ``[0, period)`` (a marker's lag, from
+    a known moment, is the lag itself and may differ from it by whole periods)."""
     from scipy.optimize import minimize_scalar
 
     period = schedule.period
@@ -179,7 +181,8 @@ def align_xcorr(schedule, trace: Trace) -> tuple[float, dict]:
                             method="bounded", options={"xatol": h * 1e-3})
         results.append((float(r.fun), float(r.x) % period))
     mse, lag = min(results)
-    return lag, {"method": "cross-correlation", "lag": lag, "grid_step": h, "rms_at_lag": math.sqrt(mse)}
+    return lag, {"method": "cross-correlation", "lag": lag, "period": period, "grid_step": h,
+                 "rms_at_lag": math.sqrt(mse)}
 
 
 def compare(plan, trace: Trace, *, marker: str | None = None, marker_time: float | None = None,

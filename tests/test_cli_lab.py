@@ -143,6 +143,7 @@ def test_compare_catches_an_injected_error(tmp_path):
     bad.write_text("time (s),detuning (Hz)\n" + "".join(f"{a:.7f},{b:.1f}\n" for a, b in zip(t, det)))
     result = run("compare", SCENARIO, bad)
     assert result.exit_code == 1 and "EXCEEDED" in result.stdout
+    assert "(known modulo the period, 20 ms)" in result.stdout, result.stdout
 
 
 def _trace_of(name: str, path, periods: float = 2.2):

@@ -72,6 +72,10 @@ def test_marker_alignment(planned, tmp_path):
     cmp2 = compare(p, trace, marker="chirp_start", marker_time=s.segment("chirp").start - lag)
     assert cmp2.lag == pytest.approx(lag, abs=1e-12)
     assert cmp.ok and cmp2.ok
+    # the same trace by cross-correlation: the lag modulo the period, in [0, period), and said so
+    cmp3 = compare(p, trace)
+    assert cmp3.alignment["period"] == s.period and 0 <= cmp3.lag < s.period
+    assert cmp3.lag == pytest.approx(lag % s.period, abs=2e-6)
     with pytest.raises(InputError, match="transition"):
         read_trace(path)
 

@@ -71,7 +71,8 @@ def command(scenario, measured, marker, transition, reference, beat_sign, plot_f
 
 def _print(doc):
     a = doc["alignment"]
-    how = (f"cross-correlation, lag {si(a['lag'], 's')}" if a["method"] == "cross-correlation" else
+    how = (f"cross-correlation, lag {si(a['lag'], 's')} (known modulo the period, {si(a['period'], 's')})"
+           if a["method"] == "cross-correlation" else
            f"{a['event']} at {si(a['trace_time'], 's')} of the trace ({a['from']}), lag {si(a['lag'], 's')}")
     rows = [("alignment", how),
             ("samples", f"{doc['samples']} ({doc['chirp_samples']} during the chirp)"),
