@@ -132,7 +132,7 @@ def gate_window(gate, when: dict) -> tuple[float, float] | None:
 
 def lanes(scenario, plan) -> list[tuple[str, list[tuple[float, float]]]]:
     """What happens when, on the trigger axis, one lane each: the source pulse, the played table
-    (from ``delay``), every gate's open window and every marker's pulse; ``(label, [(start,
+    (one period of samples from ``delay``), every gate's open window and every marker's pulse; ``(label, [(start,
     end), ...])`` in seconds. For ``plan`` and its plot."""
     when = moments(plan)
     tm, period = scenario.timing, scenario.chirp.period
@@ -140,7 +140,9 @@ def lanes(scenario, plan) -> list[tuple[str, list[tuple[float, float]]]]:
     if when["pulse"] is not None:
         duration = getattr(scenario.emission, "pulse_duration", None) or period * 2e-3
         out.append(("source pulse", [(when["pulse"], when["pulse"] + duration)]))
-    out.append((f"table (first sample {tm.delay * 1e3:.4g} ms after the trigger)", [(tm.delay, period)]))
+    # the table holds one period of samples: from its first sample to a period later (past the period's
+    # end by the delay: in a burst those last samples play while the next period begins)
+    out.append((f"table (first sample {tm.delay * 1e3:.4g} ms after the trigger)", [(tm.delay, tm.delay + period)]))
     out.append(("chirp", [(when["chirp_start"], when["chirp_end"])]))
     for ch in scenario.channels:
         if ch.kind == "gate":

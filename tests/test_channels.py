@@ -61,6 +61,19 @@ def played(tmp_path_factory):
     return prepare(folder / "scenario.toml")
 
 
+def test_the_plans_timing_lanes_show_each_table_and_window_where_it_plays(played):
+    from sweepgen.timing import lanes
+
+    pb = played
+    sc, plan = pb.plan.scenario, pb.plan
+    spans = dict(lanes(sc, plan))
+    table = next(v for k, v in spans.items() if k.startswith("table"))
+    # one period of samples from the first, 0.1 ms after the trigger: to 20.1 ms (not cut at 20 ms)
+    assert table == [(pytest.approx(1e-4), pytest.approx(1e-4 + sc.chirp.period))]
+    on, off = pb.timing.moments["chirp_start"] - 20e-6, pb.timing.moments["chirp_end"] + 50e-6
+    assert spans["gate: light on (main, repump)"] == [(pytest.approx(on), pytest.approx(off))]
+
+
 def test_every_output_is_planned_on_one_time_axis(played):
     pb = played
     assert pb.ok, [f.message for f in pb.report.failures()]
