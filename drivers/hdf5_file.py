@@ -15,9 +15,14 @@ its axis, each field with a ``units`` attribute)::
     /entry/sweep           NX_class = "NXdata", signal = "detuning", axes = ["time"],
                            time_indices = 0, and every sidecar field as an attribute
     /entry/sweep/detuning  float64, units "Hz": the optical detuning the codes play
-    /entry/sweep/time      float64, units "s": index / sample_rate
+    /entry/sweep/time      float64, units "s": after the trigger edge, delay + index / sample_rate
+                           (delay: the sidecar's timing.delay, 0 without)
     /entry/sweep/drive     float64, units "V" (or "Hz"): the drive the codes play
     /entry/sweep/code      the table itself: generator codes in their own dtype, units "1"
+
+A gate's or a marker's table holds no detuning: its signal is ``level`` (float64,
+units "1": a gate's fraction of full intensity, a marker's 0 low to 1 high) in
+place of ``detuning``.
 
 Sidecar fields that are tables or lists of mixed values (``scaling``,
 ``generator``, ``chain``, ``provenance``, ...) are stored as JSON text; the
@@ -66,7 +71,8 @@ class Hdf5Driver(FileDriver):
     name = "hdf5"
     extension = "h5"
     suffixes = (".h5", ".hdf5", ".nxs")
-    description = "HDF5 file, NeXus NXdata layout (detuning, drive and codes versus time, with units); needs h5py"
+    description = ("HDF5 file, NeXus NXdata layout (detuning or level, drive and codes versus time after the "
+                   "trigger, with units); needs h5py")
     options = {"compression": "none (default) | gzip"}
     choices = {"compression": tuple(COMPRESSION)}
     writes_path = True
@@ -96,38 +102,38 @@ class Hdf5Driver(FileDriver):
             g = f.create_group(GROUP)
             made = {}
             for name, dtype, unit, long_name in (
-                    ("detuning", "<f8", "Hz", "optical detuning"), ("time", "<f8", "s", "time after the trigger"),
+                    _signal(info, fields), ("time", "<f8", "s", "time after the trigger"),
                     ("drive", "<f8", info.drive_unit, "drive at the actuator"),
                     ("code", layout["dtype"], "1", "generator code")):
                 d = g.create_dataset(name, shape=(n,), dtype=dtype, chunks=chunks, compression=comp)
                 d.attrs.update({"units": unit, "long_name": long_name})
                 made[name] = d
             self._fill(table, made, fields)
-            self._attributes(g, fields, table.hexdigest())
+            self._attributes(g, fields, table.hexdigest(), info.quantity)
 
     @staticmethod
     def _fill(table, made, fields):
         from sweepgen.readback import ReadTable
 
         decode = ReadTable(None, fields, np.empty(0), "hdf5")
-        rate = table.info.sample_rate
+        info = table.info
         for frame in table.frames(CHUNK):
             a, b = frame.start, frame.start + len(frame.codes)
             decode.values = np.asarray(frame.codes)
             made["code"][a:b] = frame.codes
-            made["time"][a:b] = np.arange(a, b) / rate
+            made["time"][a:b] = info.after_trigger(np.arange(a, b) / info.sample_rate)
             made["drive"][a:b] = decode.drive()
-            made["detuning"][a:b] = decode.detuning()
+            made[info.quantity][a:b] = decode.level() if info.quantity == "level" else decode.detuning()
 
     @staticmethod
-    def _attributes(group, fields, digest):
+    def _attributes(group, fields, digest, signal):
         doc = dict(fields, table_sha256=digest, sha256=None, data_bytes=None)
         as_json = []
         for key, value in doc.items():
             group.attrs[key], is_json = _attribute(value)
             if is_json:
                 as_json.append(key)
-        group.attrs.update({"NX_class": "NXdata", "signal": "detuning", "axes": ["time"], "time_indices": 0,
+        group.attrs.update({"NX_class": "NXdata", "signal": signal, "axes": ["time"], "time_indices": 0,
                             "json_attributes": json.dumps(as_json)})
 
     # -- reading back ----------------------------------------------------------------------------
@@ -158,6 +164,18 @@ class Hdf5Driver(FileDriver):
         table = readback.ReadTable(Path(data), doc, values, self.name, [])
         table.checks += readback.value_checks(table)
         return table
+
+
+#: what a level means, by the channel's kind (the ``long_name`` of the ``level`` field)
+LEVEL_MEANING = {"gate": "level: fraction of full intensity", "marker": "level: 0 low, 1 high"}
+
+
+def _signal(info, fields) -> tuple:
+    """``(name, dtype, units, long_name)`` of the plotted field: the detuning, or a level table's level."""
+    if info.quantity != "level":
+        return "detuning", "<f8", "Hz", "optical detuning"
+    kind = (fields.get("channel") or {}).get("kind")
+    return "level", "<f8", "1", LEVEL_MEANING.get(kind, "level")
 
 
 def _plain(value):

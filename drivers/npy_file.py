@@ -1,7 +1,7 @@
 """``npy``: the codes as a NumPy ``.npy`` file (format 1.0, one-dimensional).
 
 ``numpy.load`` reads it directly; the sidecar adds the scaling to drive units
-and detuning, the sample rate and the provenance. The values are the codes
+and detuning (a gate's or a marker's table: level), the sample rate and the provenance. The values are the codes
 exactly as rendered (DAC codes or DDS frequency tuning words), in the byte order
 asked for (little-endian by default).
 """

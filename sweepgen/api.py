@@ -572,8 +572,10 @@ def inspect(table: str | os.PathLike) -> InspectResult:
     Returns
     -------
     InspectResult
-        ``ok`` (the file matches its sidecar), ``start_detuning``, ``end_detuning`` (Hz),
-        ``chirp_rate_max`` (Hz/s), ``sample_rate`` (Sa/s), ``checks``.
+        ``ok`` (the file matches its sidecar), ``quantity``, ``start_detuning``, ``end_detuning`` (Hz),
+        ``chirp_rate_max`` (Hz/s), ``sample_rate`` (Sa/s), ``checks``; for a gate's or a marker's
+        table (``quantity == "level"``) ``level_min``, ``level_max``, ``levels`` and ``windows`` (each
+        ``start``, ``end`` after the trigger, ``duration`` in s, ``level``) instead of the sweep's numbers.
 
     Example
     -------

@@ -104,7 +104,8 @@ class Stage(abc.ABC):
 class LinearMap(Stage):
     """``upstream = set_point + coefficient · (downstream − set_drive)``."""
 
-    def __init__(self, name, coefficient: float, set_point: float, set_drive: float, down_unit: str):
+    def __init__(self, name, coefficient: float, set_point: float, set_drive: float, down_unit: str,
+                 up_unit: str = "Hz"):
         super().__init__(name)
         if coefficient == 0 or not math.isfinite(coefficient):
             raise ValueError("coefficient must be finite and non-zero")
@@ -112,6 +113,7 @@ class LinearMap(Stage):
         self.set_point = float(set_point)
         self.set_drive = float(set_drive)
         self.down_unit = down_unit
+        self.up_unit = up_unit             # "Hz"; "1" where the chain maps a level (a gate's input)
 
     def forward(self, x):
         return self.set_drive + (np.asarray(x, dtype=float) - self.set_point) / self.coefficient
@@ -124,7 +126,7 @@ class LinearMap(Stage):
 
     def info(self):
         return {**super().info(), "coefficient": self.coefficient, "set_point": self.set_point,
-                "set_drive": self.set_drive, "unit": f"Hz/{self.down_unit}"}
+                "set_drive": self.set_drive, "unit": f"{self.up_unit}/{self.down_unit}"}
 
 
 class AnalogStage(LinearMap):
@@ -410,11 +412,13 @@ class DdsStage(Stage):
 
 @dataclass
 class Chain:
-    """The ordered stages from optical detuning (Hz) to the generator's output."""
+    """The ordered stages from optical detuning (Hz) to the generator's output (for a gate or a marker:
+    from its level, ``input = "level"``)."""
 
     stages: tuple
     safe_min: float | None = None      # the actuator's safe input range, drive units (set by the laser)
     safe_max: float | None = None
+    input: str = "optical detuning"    # what the first stage takes, in words
 
     def __post_init__(self):
         self.stages = tuple(self.stages)
@@ -469,7 +473,7 @@ class Chain:
         return None
 
     def describe(self) -> str:
-        return " → ".join(["optical detuning"] + [st.name for st in self.stages])
+        return " → ".join([self.input] + [st.name for st in self.stages])
 
     def info(self) -> list:
         return [st.info() for st in self.stages]

@@ -295,8 +295,8 @@ def gate_laser(name: str, gate):
     from sweepgen.laser import Laser, Limits
     from sweepgen.response import Response
 
-    stage = AnalogStage(f"{name} input", 1.0 / (gate.bright - gate.dark), 0.0, gate.dark, "V")
-    chain = Chain([stage], safe_min=gate.input_min, safe_max=gate.input_max)
+    stage = AnalogStage(f"{name} input", 1.0 / (gate.bright - gate.dark), 0.0, gate.dark, "V", up_unit="1")
+    chain = Chain([stage], safe_min=gate.input_min, safe_max=gate.input_max, input="level")
     limits = Limits(None, math.inf, gate.input_min, gate.input_max)
     return Laser(key=name, title=f"{name}: level 0 at {gate.dark:g} V, 1 at {gate.bright:g} V", chain=chain,
                  limits=limits, response=Response())
@@ -457,7 +457,7 @@ def table_sweep(table, laser) -> TableSweep:
     from sweepgen import readback
 
     doc = table.sidecar
-    channel = doc.get("channel") or {}
+    channel = table.channel
     if channel.get("name", MAIN) != MAIN:
         raise InputError(f"this is the table of channel '{channel['name']}' ({channel.get('kind', 'a further')} "
                          f"channel); a table read back is judged and flown as the main sweep: give the main "
@@ -587,7 +587,7 @@ class Playback:
         if channel not in self._tables:
             self.require_playable()
             playing = self.channels[channel]
-            table = render(playing, digest=self.scenario.digest)
+            table = render(playing, digest=self.scenario.digest, delay=self.timing.delay if self.timing else 0.0)
             if len(self.channels) > 1 or self.timing is not None and self.timing.delay:
                 table.info.extra["channel"] = {"name": channel, "kind": playing.kind, "output": playing.output,
                                                "generator": playing.generator.key, "quantity": playing.quantity}

@@ -390,21 +390,28 @@ def plot_table(table, numbers, file) -> Path:
 
 
 def table_figure(table, numbers):
-    """A table read back (``sweepgen.readback.ReadTable``): detuning and drive versus time."""
+    """A table read back (``sweepgen.readback.ReadTable``): detuning (a gate's or a marker's table: its
+    level) and drive versus time after the trigger, the chirp (or the windows on) shaded."""
     plt = _pyplot()
     t = table.time()
     step = max(1, len(t) // 20000)
     fig, (ax, axd) = plt.subplots(2, 1, figsize=(8, 6), sharex=True)
-    ax.plot(t[::step] * 1e3, table.detuning()[::step] / 1e6, color=COLORS["sweep"], lw=1.2)
-    if numbers.get("chirp_start") is not None:
-        a = numbers["chirp_start"] - numbers.get("delay", 0.0)     # this figure's axis: from the first sample
-        ax.axvspan(a * 1e3, (a + numbers["chirp_duration"]) * 1e3, color=COLORS["sweep"], alpha=0.06)
-    ax.set_ylabel("detuning (MHz)")
+    if table.quantity == "level":
+        ax.plot(t[::step] * 1e3, table.level()[::step], color=COLORS["sweep"], lw=1.2, drawstyle="steps-post")
+        spans = [(w["start"], w["end"]) for w in numbers["windows"]]
+        ax.set_ylabel("level")
+    else:
+        ax.plot(t[::step] * 1e3, table.detuning()[::step] / 1e6, color=COLORS["sweep"], lw=1.2)
+        a = numbers.get("chirp_start")
+        spans = [] if a is None else [(a, a + numbers["chirp_duration"])]
+        ax.set_ylabel("detuning (MHz)")
+    for a, b in spans:
+        ax.axvspan(a * 1e3, b * 1e3, color=COLORS["sweep"], alpha=0.06)
     ax.set_title(f"{table.path.name} ({table.driver}, {table.count} samples)", fontsize=10)
     ax.grid(alpha=0.3)
     axd.plot(t[::step] * 1e3, table.drive()[::step], color=COLORS["design"], lw=1.2)
     axd.set_ylabel(f"drive ({table.drive_unit})")
-    axd.set_xlabel("time from the table's first sample (ms)")
+    axd.set_xlabel("time after the trigger (ms)")
     axd.grid(alpha=0.3)
     return fig
 

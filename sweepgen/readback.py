@@ -8,9 +8,12 @@ self-describing format). From the sidecar alone this module
 * verifies the file (size and SHA-256 of its bytes; the SHA-256 of the codes,
   ``table_sha256``, which is also what an upload records);
 * decodes the values to generator codes, drive (V at the actuator, or Hz) and
-  optical detuning (Hz) versus time ``t = index / sample_rate``;
+  optical detuning (Hz), or for a gate's or a marker's table its level
+  (dimensionless), versus time after the trigger edge ``t = delay + index /
+  sample_rate`` (``delay``: the sidecar's ``timing.delay``, 0 without);
 * finds the sweep's parts (rest, chirp, hold, return) and the numbers a
-  physicist checks it by (:func:`analyse`);
+  physicist checks it by, or a level table's levels and the windows where it
+  is on (:func:`analyse`);
 * makes a :class:`sweepgen.schedule.Schedule` of what the table plays, for
   ``check --table`` and ``simulate --table`` (:func:`table_schedule`).
 """
@@ -59,8 +62,27 @@ class ReadTable:
     def drive_unit(self) -> str:
         return self.sidecar["scaling"]["drive"].get("unit", "V")
 
+    @property
+    def delay(self) -> float:
+        """s from the trigger edge to the first sample (the sidecar's ``timing.delay``; 0 without)."""
+        return float((self.sidecar.get("timing") or {}).get("delay") or 0.0)
+
+    @property
+    def quantity(self) -> str:
+        """What the table holds: ``"detuning"`` (Hz), or ``"level"`` (a gate's or a marker's table:
+        its sidecar's ``channel.quantity``)."""
+        return "level" if (self.sidecar.get("channel") or {}).get("quantity") == "level" else "detuning"
+
+    @property
+    def channel(self) -> dict:
+        """The sidecar's ``channel`` (``name``, ``kind``, ``output``, ...); the main sweep's without one."""
+        from sweepgen.channels import MAIN_LIGHT
+
+        return self.sidecar.get("channel") or {"name": MAIN_LIGHT, "kind": "frequency", "quantity": "detuning"}
+
     def time(self) -> np.ndarray:
-        return np.arange(len(self.values)) / self.sample_rate
+        """When each sample plays after the trigger edge (s): ``delay + index / sample_rate``."""
+        return self.delay + np.arange(len(self.values)) / self.sample_rate
 
     def codes(self) -> np.ndarray:
         """Generator codes (DAC codes or DDS tuning words) in the generator's code dtype."""
@@ -83,13 +105,36 @@ class ReadTable:
 
     def detuning(self) -> np.ndarray:
         """Optical detuning (Hz) by the chain the table was made for (the sidecar's scaling)."""
-        det = self.sidecar["scaling"].get("detuning")
+        if self.quantity != "detuning":
+            ch = self.channel
+            raise InputError(f"this is the table of {ch.get('kind', 'a further channel')} '{ch.get('name')}': "
+                             f"it holds a level, not a detuning", file=str(self.path), key="channel.quantity")
+        return self._decoded("detuning")
+
+    def level(self) -> np.ndarray:
+        """The level of a gate's or a marker's table (dimensionless: a gate's fraction of full
+        intensity, a marker's 0 low to 1 high) from the sidecar's ``scaling.level``; a table written
+        before that key existed kept it under ``scaling.detuning`` (with ``channel.quantity = "level"``)."""
+        if self.quantity != "level":
+            raise InputError("this table holds a detuning, not a level", file=str(self.path), key="channel.quantity")
+        return self._decoded(self.level_key)
+
+    @property
+    def level_key(self) -> str:
+        """Where a level table's sidecar keeps its level scaling: ``level``, or ``detuning`` in one
+        written before ``level`` existed."""
+        scaling = self.sidecar["scaling"]
+        return "detuning" if scaling.get("level") is None and scaling.get("detuning") is not None else "level"
+
+    def _decoded(self, key: str) -> np.ndarray:
+        """The stored values through the sidecar's ``scaling.<key>`` (linear or lookup)."""
+        det = self.sidecar["scaling"].get(key)
         if det is None:
-            raise InputError("the sidecar has no detuning scaling", file=str(self.path), key="scaling.detuning")
+            raise InputError(f"the sidecar has no {key} scaling", file=str(self.path), key=f"scaling.{key}")
         v = self._exact()
         if det["kind"] == "linear":
             return det["offset"] + det["scale"] * v
-        return np.interp(v, det["value"], det["detuning"])
+        return np.interp(v, det["value"], det[key])
 
     def table_sha256(self) -> str:
         """SHA-256 of the codes as little-endian bytes of the code dtype (what uploads record)."""
@@ -212,31 +257,44 @@ class _Fields:
         self.number("scaling.code.scale", nonzero=True)
         self.number("scaling.drive.offset")
         self.number("scaling.drive.scale")
-        self._detuning()
+        for name in ("detuning", "level"):
+            self._quantity(name)
+        self._channel()
 
-    def _detuning(self) -> None:
-        det = self.get("scaling.detuning", optional=True)
+    def _channel(self) -> None:
+        """``channel`` and ``timing`` (optional): tables of keys, with what the table holds and its delay."""
+        for key in ("channel", "timing"):
+            if self.doc.get(key) is not None and not isinstance(self.doc[key], dict):
+                raise self.fail(key, "a table of keys")
+        if self.get("channel.quantity", optional=True) not in (None, "detuning", "level"):
+            raise self.fail("channel.quantity", "'detuning' or 'level'")
+        if self.doc.get("timing") is not None:
+            self.number("timing.delay", optional=True)
+
+    def _quantity(self, name: str) -> None:
+        """``scaling.<name>`` (``detuning`` or ``level``), when present: linear or a lookup."""
+        det = self.get(f"scaling.{name}", optional=True)
         if det is None:
             return
-        kind = self.get("scaling.detuning.kind")
+        kind = self.get(f"scaling.{name}.kind")
         if kind == "linear":
-            self.number("scaling.detuning.offset")
-            self.number("scaling.detuning.scale")
+            self.number(f"scaling.{name}.offset")
+            self.number(f"scaling.{name}.scale")
             return
         if kind != "lookup":
-            raise self.fail("scaling.detuning.kind", "'linear' or 'lookup'")
+            raise self.fail(f"scaling.{name}.kind", "'linear' or 'lookup'")
         columns = []
-        for key in ("value", "detuning"):
-            items = self.get(f"scaling.detuning.{key}")
+        for key in ("value", name):
+            items = self.get(f"scaling.{name}.{key}")
             try:
                 array = np.asarray(items, dtype=float)
             except (TypeError, ValueError):
                 array = None
             if array is None or array.ndim != 1 or len(array) < 2 or not np.all(np.isfinite(array)):
-                raise self.fail(f"scaling.detuning.{key}", "a list of at least two finite numbers")
+                raise self.fail(f"scaling.{name}.{key}", "a list of at least two finite numbers")
             columns.append(array)
         if len(columns[0]) != len(columns[1]) or not np.all(np.diff(columns[0]) > 0):
-            raise self.fail("scaling.detuning.value", "increasing values, as many as in scaling.detuning.detuning")
+            raise self.fail(f"scaling.{name}.value", f"increasing values, as many as in scaling.{name}.{name}")
 
 
 def file_checks(data: Path, doc: dict) -> list:
@@ -322,22 +380,36 @@ def period_samples(table: ReadTable) -> int:
 
 
 def analyse(table: ReadTable) -> dict:
-    """The numbers of the sweep a table plays (SI units, Hz for detunings), like ``plan``'s; ``chirp_start``
-    on the trigger's axis (the table's first sample plays ``delay`` after the trigger, as its sidecar's
-    ``timing`` says; 0 without)."""
+    """The numbers of what a table plays (SI units, Hz for detunings), times on the trigger's axis (the
+    table's first sample plays ``delay`` after the trigger, as its sidecar's ``timing`` says; 0 without):
+    for the main sweep's table the sweep's numbers as ``plan`` gives them (:func:`sweep_numbers`), for
+    a gate's or a marker's its levels and the windows where it is on (:func:`level_numbers`)."""
     doc = table.sidecar
-    delay = float((doc.get("timing") or {}).get("delay") or 0.0)
-    d = table.detuning()[: period_samples(table)]
     rate = table.sample_rate
-    det = doc["scaling"]["detuning"] or {}
-    step = float(det.get("step") or abs(det.get("scale", 0.0)) or 0.0)
-    p = parts(d, step)
     drive = table.drive()
+    codes = table.codes()
     out = {"sample_rate": rate, "count": table.count, "period_count": int(doc.get("period_count", table.count)),
-           "padding": int(doc.get("padding", 0)), "duration": table.count / rate, "period": doc.get("period"),
-           "detuning_min": float(d.min()), "detuning_max": float(d.max()),
-           "drive_min": float(drive.min()), "drive_max": float(drive.max()), "drive_unit": table.drive_unit,
-           "code_min": int(table.codes().min()), "code_max": int(table.codes().max()),
+           "padding": int(doc.get("padding", 0)), "duration": table.count / rate, "period": doc.get("period")}
+    own = level_numbers(table) if table.quantity == "level" else sweep_numbers(table)
+    common = {"drive_min": float(drive.min()), "drive_max": float(drive.max()), "drive_unit": table.drive_unit,
+              "code_min": int(codes.min()), "code_max": int(codes.max())}
+    return {**out, **own.pop("head"), **common, **own}
+
+
+def _step(table: ReadTable, key: str) -> float:
+    """The size of one code step in the table's quantity (``scaling.<key>``: ``step``, or ``|scale|``)."""
+    det = table.sidecar["scaling"].get(key) or {}
+    return float(det.get("step") or abs(det.get("scale", 0.0)) or 0.0)
+
+
+def sweep_numbers(table: ReadTable) -> dict:
+    """The sweep's numbers of the main table (:func:`analyse`): detuning range, chirp, hold, return;
+    ``head`` holds those :func:`analyse` puts before the drive's."""
+    delay, rate = table.delay, table.sample_rate
+    d = table.detuning()[: period_samples(table)]
+    step = _step(table, "detuning")
+    p = parts(d, step)
+    out = {"head": {"quantity": "detuning", "detuning_min": float(d.min()), "detuning_max": float(d.max())},
            "detuning_step": step, "delay": delay}
     if p["chirp"] is None:
         out.update({"start_detuning": float(d[0]), "end_detuning": None, "chirp_span": 0.0, "chirp_rate_max": 0.0,
@@ -358,6 +430,34 @@ def analyse(table: ReadTable) -> dict:
         "chirp_rate_window": window,
     })
     return out
+
+
+#: windows of a level table listed by ``inspect`` (the count says how many there are)
+MAX_WINDOWS = 100
+#: distinct levels of a level table listed by ``inspect`` (more: a table that holds no few levels)
+MAX_LEVELS = 16
+
+
+def level_numbers(table: ReadTable) -> dict:
+    """A gate's or a marker's table (:func:`analyse`): its channel, the levels it holds (dimensionless),
+    and the windows where it is on (above level 0 by more than one code step), each with its ``start``
+    and ``end`` after the trigger, ``duration`` and ``level`` (the largest it holds there); ``head``
+    holds those :func:`analyse` puts before the drive's."""
+    delay, rate = table.delay, table.sample_rate
+    n = period_samples(table)
+    level, codes = table.level()[:n], table.codes()[:n]
+    step = _step(table, table.level_key)
+    _, first = np.unique(codes, return_index=True)
+    levels = sorted(float(level[i]) for i in first) if len(first) <= MAX_LEVELS else None
+    on = np.concatenate([[False], level > max(step, 1e-12), [False]])
+    edges = np.flatnonzero(np.diff(on.astype(np.int8)))
+    runs = edges.reshape(-1, 2)
+    windows = [{"start": delay + a / rate, "end": delay + b / rate, "duration": (b - a) / rate,
+                "level": float(level[a:b].max())} for a, b in runs[:MAX_WINDOWS]]
+    ch = table.channel
+    return {"head": {"quantity": "level", "channel": {k: ch.get(k) for k in ("name", "kind", "output")},
+                     "level_min": float(level.min()), "level_max": float(level.max())},
+            "level_step": step, "delay": delay, "levels": levels, "window_count": len(runs), "windows": windows}
 
 
 # ---------------------------------------------------------------------------------------------

@@ -2,7 +2,8 @@
 
 :func:`render` returns a :class:`sweepgen.table.RenderedTable` whose codes are
 computed chunk by chunk when a driver iterates it, so memory does not grow with
-the table's length. Sample ``i`` plays at ``t_i = i / sample_rate``:
+the table's length. Sample ``i`` plays at ``t_i = i / sample_rate`` from the table's first sample
+(``info.delay + t_i`` after the trigger edge, the axis written tables state):
 
 * for ``i < period_count`` (one period of the schedule) the optical detuning
   ``Δ(t_i)`` comes from :class:`sweepgen.schedule.Schedule`, the drive from the
@@ -129,7 +130,8 @@ def _refuse(findings):
 # code -> detuning, for sidecars
 # ---------------------------------------------------------------------------------------------
 def detuning_scaling(chain, q, code_lo: int, code_hi: int) -> dict:
-    """How a reader turns codes back into optical detuning (Hz).
+    """How a reader turns codes back into optical detuning (Hz), or into the level a gate's or a
+    marker's chain takes (``chain.input``; its table's ``level`` scaling).
 
     Linear when a straight line through the ends reproduces ``chain.to_detuning``
     within :data:`LINEAR_TOLERANCE` of a code step everywhere in ``[code_lo,
@@ -247,7 +249,7 @@ def _hermite_codes(schedule, chain, q, limit: int = 1 << 20):
 # ---------------------------------------------------------------------------------------------
 # Render
 # ---------------------------------------------------------------------------------------------
-def render(playing, *, digest: str = "") -> RenderedTable:
+def render(playing, *, digest: str = "", delay: float = 0.0) -> RenderedTable:
     """The table of generator codes for one period of what ``playing`` plays, streamed in chunks.
 
     Parameters
@@ -260,6 +262,9 @@ def render(playing, *, digest: str = "") -> RenderedTable:
         lengths, the quantisation.
     digest : str
         The scenario's digest, for the sidecar.
+    delay : float
+        s from the trigger edge to the first sample (``timing.delay``): the
+        table's ``info.delay``, where written tables put their time axis.
 
     Returns
     -------
@@ -294,7 +299,7 @@ def render(playing, *, digest: str = "") -> RenderedTable:
         "drive_range": list(playing.drive_range),
         "code_range": [code_lo, code_hi],
         "safe_range": [playing.laser.limits.input_min, playing.laser.limits.input_max],
-        "detuning_scaling": detuning_scaling(chain, q, code_lo, code_hi),
+        f"{playing.quantity}_scaling": detuning_scaling(chain, q, code_lo, code_hi),
     }
     if getattr(playing, "preshaped", None) is not None:
         extra["preshape"] = playing.preshaped.to_json()
@@ -302,7 +307,7 @@ def render(playing, *, digest: str = "") -> RenderedTable:
                      output=playing.generator.output.kind, drive_unit=chain.drive_unit,
                      code_scale=float(q.code_scale), code_offset=float(q.code_offset), amplitude=q.amplitude,
                      offset=q.offset, channel=playing.output, scenario_digest=digest, tool_version=__version__,
-                     extra=extra)
+                     extra=extra, quantity=playing.quantity, delay=float(delay))
     return RenderedTable(info, source, codes=source.codes)
 
 

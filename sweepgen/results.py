@@ -92,6 +92,7 @@ UNITS = {
     "uncertainty_optical": "Hz", "change_from_old": "Hz", "chirp_error_max": "Hz", "chirp_error_at": "s",
     "chirp_error_rms": "Hz", "chirp_error_mean": "Hz", "error_max": "Hz", "error_rms": "Hz", "tolerance": "Hz",
     "headroom": "", "atoms": "", "seed": "", "count": "samples", "period_count": "samples",
+    "level_min": "", "level_max": "", "level_step": "", "delay": "s",
     **{key: unit for key, _, unit in PLAN_ROWS + SIMULATION_ROWS},
 }
 #: pint spellings of the units sweepgen prints
@@ -540,12 +541,17 @@ class CalibrationResult(Result):
 
 
 class InspectResult(Result):
-    """A table read back, verified against its sidecar and decoded (what ``sweepgen inspect`` prints)."""
+    """A table read back, verified against its sidecar and decoded (what ``sweepgen inspect`` prints):
+    the sweep's numbers, or for a gate's or a marker's table (``quantity == "level"``) its levels and
+    ``windows``."""
 
     ROWS = (("start_detuning", "start detuning", "Hz"), ("end_detuning", "end detuning", "Hz"),
             ("chirp_span", "chirp span", "Hz"), ("chirp_rate_max", "largest chirp rate", "Hz/s"),
             ("chirp_duration", "chirp duration", "s"), ("sample_rate", "sample rate", "Sa/s"),
             ("period", "period", "s"))
+    LEVEL_ROWS = (("level_min", "lowest level", ""), ("level_max", "highest level", ""),
+                  ("window_count", "windows on", ""), ("delay", "first sample after trigger", "s"),
+                  ("sample_rate", "sample rate", "Sa/s"), ("period", "period", "s"))
 
     @property
     def ok(self) -> bool:
@@ -553,7 +559,11 @@ class InspectResult(Result):
         return bool(self._doc["verified"])
 
     def table_rows(self):
-        return [("file", str(self._doc["file"])), ("verified", "yes" if self.ok else "NO")] + super().table_rows()
+        head = [("file", str(self._doc["file"])), ("verified", "yes" if self.ok else "NO")]
+        if self._doc.get("quantity") != "level":
+            return head + super().table_rows()
+        return head + [(label, si(self._doc[key], unit)) for key, label, unit in self.LEVEL_ROWS
+                       if self._doc.get(key) is not None]
 
     def _figure(self):
         from sweepgen.plots import table_figure

@@ -21,7 +21,12 @@ sweepgen. Its keys (SI units; frequencies and detunings in Hz):
     Samples per second; samples in the file; samples that cover one period of
     the sweep; the samples appended (copies of the first one) to reach the
     generator's record granularity; ``count / sample_rate``; the period of
-    the schedule. Sample ``i`` plays at ``t = i / sample_rate``.
+    the schedule.
+``time``
+    When sample ``index`` plays, after the trigger edge: ``"t = index /
+    sample_rate"``, or with a trigger delay ``"t = timing.delay + index /
+    sample_rate (after the trigger edge)"``. The time a file writes (the csv
+    ``time`` column, the hdf5 ``time`` field) is on this axis.
 ``dtype``, ``numpy_dtype``, ``byte_order``, ``header_bytes``
     How each stored value is encoded: ``int16`` / ``uint16`` / ``float32`` /
     ``int32`` / ``uint32`` / ``uint64``, the NumPy dtype string (with byte
@@ -37,6 +42,11 @@ sweepgen. Its keys (SI units; frequencies and detunings in Hz):
     [...]}`` to be used as ``numpy.interp(value, lookup["value"],
     lookup["detuning"])``; the lookup is dense enough that this interpolation
     is within ``max_error`` Hz, less than one code step (``step``, Hz).
+    A gate's or a marker's table holds no detuning: its scaling has
+    ``level`` instead (``{"kind": "linear", "offset", "scale", "unit": ""}``,
+    ``level = offset + scale * value``, dimensionless): a gate's fraction of
+    full intensity (0 dark), a marker's fraction of the way from its low to
+    its high output (0 low, 1 high).
 ``generator``
     What to program besides the table: ``output`` ("voltage" | "frequency"),
     ``channel``, ``amplitude`` and ``offset`` (V, voltage outputs).
@@ -50,8 +60,7 @@ sweepgen. Its keys (SI units; frequencies and detunings in Hz):
 ``channel``, ``timing`` (scenarios with several outputs or a trigger delay)
     Which channel the table plays (``name``, ``kind``: ``frequency``, ``gate`` or
     ``marker``, ``output``, ``generator``, ``quantity``: ``detuning``, or ``level``
-    for a gate or marker, whose "detuning" scaling then gives the level, a
-    fraction of full intensity or of high), and when: the trigger source and
+    for a gate or marker, whose scaling then has ``level``), and when: the trigger source and
     edge (sweepgen's words and the profile's names), ``delay`` (sample ``i``
     plays at ``delay + i / sample_rate`` after the trigger edge), burst or
     repeat, and the moments of the period on the trigger's axis.
@@ -98,7 +107,8 @@ def _linear(offset: float, scale: float, **extra) -> dict:
 
 
 def scaling(info, value_to_code: dict) -> dict:
-    """Stored value -> code, drive and detuning for a table (see the module doc)."""
+    """Stored value -> code, drive and the table's quantity (``info.quantity``: ``detuning`` in Hz,
+    or ``level``, dimensionless) for a table (see the module doc)."""
     vc_off = float(value_to_code.get("offset", 0.0))
     vc_scale = float(value_to_code.get("scale", 1.0))
     out = {
@@ -106,19 +116,26 @@ def scaling(info, value_to_code: dict) -> dict:
         "drive": _linear(info.code_offset + info.code_scale * vc_off, info.code_scale * vc_scale,
                          unit=info.drive_unit),
     }
-    det = (info.extra or {}).get("detuning_scaling")
+    name, unit = info.quantity, info.quantity_unit
+    det = (info.extra or {}).get(f"{name}_scaling")           # from the renderer, code -> quantity
     if det is None:
-        out["detuning"] = None
+        out[name] = None
     elif det["kind"] == "linear":
-        out["detuning"] = _linear(det["offset"] + det["scale"] * vc_off, det["scale"] * vc_scale,
-                                  kind="linear", unit="Hz")
+        out[name] = _linear(det["offset"] + det["scale"] * vc_off, det["scale"] * vc_scale, kind="linear", unit=unit)
     else:
         codes = np.asarray(det["code"], dtype=float)
         values = (codes - vc_off) / vc_scale
-        out["detuning"] = {"kind": "lookup", "unit": "Hz", "value": values.tolist(),
-                           "detuning": [float(x) for x in det["detuning"]],
-                           "max_error": det.get("max_error"), "step": det.get("step")}
+        out[name] = {"kind": "lookup", "unit": unit, "value": values.tolist(),
+                     name: [float(x) for x in det["detuning"]],
+                     "max_error": det.get("max_error"), "step": det.get("step")}
     return out
+
+
+def time_axis(info) -> str:
+    """The sidecar's ``time``: when sample ``index`` plays, after the trigger edge."""
+    if not info.delay:
+        return "t = index / sample_rate"
+    return "t = timing.delay + index / sample_rate (after the trigger edge)"
 
 
 def build(info, *, driver: str, data_file: str, sha256: str | None, nbytes: int, layout: dict,
@@ -154,7 +171,7 @@ def build(info, *, driver: str, data_file: str, sha256: str | None, nbytes: int,
         "padding": int(info.count - info.period_count),
         "duration": info.count / info.sample_rate,
         "period": extra.get("period", info.period_count / info.sample_rate),
-        "time": "t = index / sample_rate",
+        "time": time_axis(info),
         "dtype": dtype.name,
         "numpy_dtype": dtype.str,
         "byte_order": byte_order(dtype),

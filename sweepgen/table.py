@@ -38,6 +38,8 @@ class TableInfo:
     scenario_digest: str = ""
     tool_version: str = ""
     extra: dict = field(default_factory=dict)   # renderer/chain details for sidecars
+    quantity: str = "detuning"  # what the chain maps to the drive: "detuning" (Hz) | "level" (a gate's, a marker's)
+    delay: float = 0.0        # s from the trigger edge to the first sample (``timing.delay``)
 
     @property
     def itemsize(self) -> int:
@@ -51,14 +53,24 @@ class TableInfo:
     def duration(self) -> float:
         return self.count / self.sample_rate
 
+    @property
+    def quantity_unit(self) -> str:
+        """The unit of :attr:`quantity`: ``"Hz"`` for a detuning, ``""`` for a level (dimensionless)."""
+        return "Hz" if self.quantity == "detuning" else ""
+
+    def after_trigger(self, time):
+        """Times from the table's first sample (``Frame.time``) as times after the trigger edge (s):
+        sample ``i`` plays at ``delay + i / sample_rate``, the axis every written table states."""
+        return self.delay + time
+
 
 @dataclass
 class Frame:
     """One chunk with its context, for drivers that write more than codes (CSV)."""
 
     start: int                # index of the first sample
-    time: np.ndarray          # s
-    detuning: np.ndarray      # Hz, planned optical detuning
+    time: np.ndarray          # s from the table's first sample (``info.after_trigger``: after the trigger)
+    detuning: np.ndarray      # what the chain maps (``info.quantity``): planned optical detuning (Hz), or level
     drive: np.ndarray         # drive units (V or Hz), planned (before quantisation)
     codes: np.ndarray         # info.dtype
 

@@ -566,3 +566,122 @@ def test_a_burst_that_outlasts_the_period_is_warned(played, write):
     assert f.status == "warn" and f.value == pytest.approx(1e-4) and "20.1 ms after the trigger" in f.message
     for timing in ({"delay": "0 ms"}, {"delay": "0.1 ms", "mode": "repeat", "source": "internal"}):
         assert prepare(write(channels={}, timing=timing)).report.finding("timing.burst").status == "pass"
+
+
+# ---------------------------------------------------------------------------------------------
+# What the files say about a further channel's table, and on which time axis
+# ---------------------------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def exported(played, tmp_path_factory):
+    """The bench scenario's four tables (main, repump, gate, marker) written as csv, npy and hdf5."""
+    from sweepgen.playback import file_format
+
+    folder = tmp_path_factory.mktemp("exported")
+    for fmt in ("csv", "npy", "hdf5"):
+        played.export(file_format(fmt), folder / fmt, {"name": "scenario"})
+    return folder
+
+
+def _sidecar(path: Path) -> dict:
+    return json.loads(Path(f"{path}.json").read_text())
+
+
+def test_a_gate_and_a_marker_table_hold_a_level_in_every_file(exported):
+    # a gate's table holds its fraction of full intensity, a marker's 0 low to 1 high: named so, without a
+    # unit, and no "detuning" in Hz anywhere (the csv column, the sidecar's scaling and chain, the hdf5 field)
+    import h5py
+
+    for name, meaning in (("gate", "fraction of full intensity"), ("arrival", "0 low, 1 high")):
+        csv = exported / "csv" / f"scenario-{name}.csv"
+        assert csv.read_text().splitlines()[0] == "time_s,level,drive_V,code"
+        side = _sidecar(csv)
+        assert side["columns"][1] == {"name": "level", "unit": ""}
+        assert "detuning" not in side["scaling"] and side["scaling"]["level"]["unit"] == ""
+        assert side["chain"]["description"].startswith("level →")
+        assert all("Hz" not in stage["unit"] for stage in side["chain"]["stages"])
+        level = np.loadtxt(csv, delimiter=",", skiprows=1, usecols=1)
+        assert set(np.round(level, 3)) == {0.0, 1.0}
+        with h5py.File(exported / "hdf5" / f"scenario-{name}.h5") as f:
+            g = f["entry/sweep"]
+            assert "detuning" not in g and g.attrs["signal"] == "level"
+            assert g["level"].attrs["units"] == "1" and meaning in g["level"].attrs["long_name"]
+            np.testing.assert_allclose(g["level"][()], level, atol=1e-12)
+    main = exported / "csv" / "scenario.csv"
+    assert main.read_text().splitlines()[0] == "time_s,detuning_Hz,drive_V,code"
+    assert _sidecar(main)["scaling"]["detuning"]["unit"] == "Hz" and "level" not in _sidecar(main)["scaling"]
+
+
+def test_every_file_gives_the_time_after_the_trigger(played, exported):
+    # the table's first sample plays 0.1 ms after the trigger: the csv's time column and the hdf5's time
+    # field start there, the sidecar says so, and the gate opens in the file when the plan says it does
+    # (chirp_start - 20 us on the trigger's axis, within one sample)
+    import h5py
+
+    delay, when = played.timing.delay, played.timing.moments
+    for name in ("scenario", "scenario-gate"):
+        data = np.loadtxt(exported / "csv" / f"{name}.csv", delimiter=",", skiprows=1)
+        assert data[0, 0] == pytest.approx(delay, abs=1e-15)
+        assert _sidecar(exported / "csv" / f"{name}.csv")["time"].startswith("t = timing.delay + index")
+        with h5py.File(exported / "hdf5" / f"{name}.h5") as f:
+            np.testing.assert_allclose(f["entry/sweep/time"][()], data[:, 0], rtol=0, atol=1e-15)
+    gate = np.loadtxt(exported / "csv" / "scenario-gate.csv", delimiter=",", skiprows=1)
+    opens = gate[np.argmax(gate[:, 1] > 0.5), 0]
+    assert 0 <= opens - (when["chirp_start"] - 20e-6) < 1 / played.main.rate_choice.sample_rate
+
+
+def test_compare_aligns_an_exported_table_by_its_trigger(played, exported):
+    # compare puts the plan's trigger at time 0 of the trace: the main table's csv, read as a trace and
+    # aligned there, follows the plan (one delay off, it was 81 MHz away during the chirp)
+    import sweepgen
+
+    result = sweepgen.compare(played.scenario, exported / "csv" / "scenario.csv", marker="trigger",
+                              marker_time="0 s")
+    assert result.ok and result.chirp_error_max < 1e3, result.chirp_error_max
+
+
+@pytest.mark.parametrize("fmt, suffix", [("csv", "csv"), ("npy", "npy"), ("hdf5", "h5")])
+def test_inspect_gives_a_level_tables_windows_not_chirp_numbers(played, exported, fmt, suffix):
+    # the gate is on from chirp_start - 20 us to chirp_end + 50 us, the marker for 20 us from arrival; each
+    # time after the trigger, within one sample
+    import sweepgen
+
+    when, dt = played.timing.moments, 1 / played.main.rate_choice.sample_rate
+    expected = {"gate": (when["chirp_start"] - 20e-6, when["chirp_end"] + 50e-6),
+                "arrival": (when["arrival"], when["arrival"] + 20e-6)}
+    for name, (start, end) in expected.items():
+        doc = sweepgen.inspect(exported / fmt / f"scenario-{name}.{suffix}").to_json()
+        assert doc["quantity"] == "level" and doc["channel"]["name"] == name
+        assert not {"start_detuning", "chirp_start", "chirp_span", "detuning_min"} & set(doc)
+        assert doc["levels"] == pytest.approx([0.0, 1.0], abs=1e-3) and doc["window_count"] == 1
+        window, = doc["windows"]
+        assert 0 <= window["start"] - start < dt and 0 <= window["end"] - end < dt
+        assert window["level"] == pytest.approx(1.0, abs=1e-3)
+    text = run_cli("inspect", exported / fmt / f"scenario-gate.{suffix}").stdout
+    assert "after trigger" in text and "chirp" not in text and "detuning" not in text
+
+
+def test_a_gate_table_written_before_the_level_key_is_read_as_a_level(exported, tmp_path):
+    # tables written before: the gate's level under scaling.detuning (in "Hz"), the sidecar's
+    # channel.quantity "level"; inspect reads them as level tables, with the same windows
+    import sweepgen
+
+    new = sweepgen.inspect(exported / "npy" / "scenario-gate.npy").to_json()
+    shutil.copy(exported / "npy" / "scenario-gate.npy", tmp_path / "old.npy")
+    side = _sidecar(exported / "npy" / "scenario-gate.npy")
+    side["data_file"] = "old.npy"
+    side["scaling"]["detuning"] = {**side["scaling"].pop("level"), "unit": "Hz"}
+    (tmp_path / "old.npy.json").write_text(json.dumps(side))
+    old = sweepgen.inspect(tmp_path / "old.npy").to_json()
+    assert old["quantity"] == "level" and old["verified"]
+    assert old["windows"] == new["windows"] and old["levels"] == new["levels"]
+
+
+def test_the_inspect_plot_of_a_gate_draws_its_level_after_the_trigger(played, exported):
+    from sweepgen import drivers, readback
+    from sweepgen.plots import table_figure
+
+    read = drivers.read_table(exported / "npy" / "scenario-gate.npy")
+    top, bottom = table_figure(read, readback.analyse(read)).axes
+    assert top.get_ylabel() == "level" and bottom.get_xlabel() == "time after the trigger (ms)"
+    x, y = (np.asarray(v, dtype=float) for v in top.lines[0].get_data())
+    assert x[0] == pytest.approx(played.timing.delay * 1e3) and set(np.round(y, 3)) == {0.0, 1.0}

@@ -452,6 +452,18 @@ def test_a_broken_measurement_file_is_refused(row, column, value):
         assert_refused(result, out, "piezo.csv")
 
 
+@pytest.mark.parametrize("key, value", [("channel", "gate"), ("timing", "soon"), ("channel.quantity", "volume"),
+                                        ("timing.delay", "0.1 ms")])
+def test_a_sidecars_channel_or_timing_of_the_wrong_form_is_refused_by_name(tmp_path, exported, key, value):
+    # what the table holds (channel.quantity) and when it plays (timing.delay) decide how it is read back
+    doc = json.loads((exported / "t.bin.json").read_text())
+    top, _, inner = key.partition(".")
+    doc[top] = {inner: value} if inner else value
+    (tmp_path / "t.bin").write_bytes((exported / "t.bin").read_bytes())
+    (tmp_path / "t.bin.json").write_text(json.dumps(doc))
+    assert_refused(run_cli("inspect", tmp_path / "t.bin", "--json"), tmp_path / "out", "t.bin.json", key)
+
+
 @pytest.mark.parametrize("text", ["[" * 100000 + "]" * 100000, '{"a": ' * 50000 + "1" + "}" * 50000])
 def test_a_sidecar_nested_too_deeply_is_refused(tmp_path, exported, text):
     from sweepgen import drivers

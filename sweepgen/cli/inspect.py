@@ -26,13 +26,16 @@ ROWS = [
 @click.argument("table_file", metavar="TABLE", type=click.Path(dir_okay=False))
 @json_option
 @click.option("--plot", "plot_file", type=PlotFile(), default=None, metavar="FILE",
-              help="Also draw detuning and drive versus time (PNG or SVG by extension).")
+              help="Also draw detuning (a gate's or marker's table: level) and drive versus time after the "
+                   "trigger (PNG or SVG by extension).")
 @handles_errors
 def command(table_file, as_json, plot_file):
     """Read TABLE (a data file written by 'sweepgen export' with any installed
     driver, or its JSON sidecar; an HDF5 table needs no sidecar), verify its
     size and SHA-256 and the digest of its codes against the sidecar, decode it
-    to drive and detuning versus time, and print the sweep's numbers.
+    to drive and detuning versus time after the trigger, and print the sweep's
+    numbers; for a gate's or a marker's table, its levels and the windows where
+    it is on.
 
     Exit status: 0 when the table verifies, 1 when it does not match its
     sidecar, 2 for bad input.
@@ -58,9 +61,28 @@ def command(table_file, as_json, plot_file):
         raise SystemExit(1)
 
 
+def _level_rows(doc) -> list:
+    """The rows of a gate's or a marker's table: its channel, levels, windows on, delay."""
+    ch = doc["channel"]
+    rows = [("channel", f"{ch.get('name')} ({ch.get('kind')}) on output {ch.get('output')}"),
+            ("levels", "—" if doc["levels"] is None else ", ".join(f"{v:.4g}" for v in doc["levels"]))]
+    for w in doc["windows"]:
+        rows.append(("on", f"{si(w['start'], 's')} to {si(w['end'], 's')} after trigger "
+                           f"({si(w['duration'], 's')}) at level {w['level']:.4g}"))
+    if doc["window_count"] > len(doc["windows"]):
+        rows.append(("", f"... {doc['window_count']} windows in all"))
+    if not doc["windows"]:
+        rows.append(("on", "never (level 0 throughout)"))
+    return rows + [("first sample after trigger", si(doc["delay"], "s")),
+                   ("sample rate", si(doc["sample_rate"], "Sa/s")), ("period", si(doc.get("period"), "s"))]
+
+
 def _print(doc):
     click.echo(f"{doc['file']}  [{doc['driver']}, written {doc['created'] or 'at an unknown time'}]")
-    rows = [(label, si(doc.get(key), unit)) for key, label, unit in ROWS if doc.get(key) is not None]
+    if doc.get("quantity") == "level":
+        rows = _level_rows(doc)
+    else:
+        rows = [(label, si(doc.get(key), unit)) for key, label, unit in ROWS if doc.get(key) is not None]
     unit = doc["drive_unit"]
     rows.append(("samples", f"{doc['count']} ({doc['period_count']} per period)"))
     rows.append(("drive", f"{si(doc['drive_min'], unit)} to {si(doc['drive_max'], unit)}"))
