@@ -56,7 +56,10 @@ generator
     ``output_kind`` (volts vs frequency), ``generator_range`` (the drive at the
     real load within the output range: a generator set for 50 Ω driving a
     high-impedance input delivers twice the programmed voltage),
-    ``sample_rate``, ``record_length`` (memory), ``granularity`` (padding),
+    ``generator_amplitude`` (an output that limits amplitude and offset apart,
+    ``amplitude_max`` and ``offset_max``: the peak-to-peak the drive needs
+    programmed, about the offset nearest its centre that ``offset_max`` allows,
+    within ``amplitude_max``), ``sample_rate``, ``record_length`` (memory), ``granularity`` (padding),
     ``channel``, ``step_per_sample`` and ``step_per_code`` (detuning change per
     sample and per DAC code / DDS word within ``[drive] max_step``, default
     0.1 × natural linewidth), ``dds_match`` and ``dds_rounding`` (a chain with a
@@ -470,13 +473,24 @@ def check_hardware(report: CheckReport, playing, delay: float = 0.0) -> None:
 
 def _judged_quantisation(report: CheckReport, playing):
     """The codes the remaining rules judge: none for a drive a range rule already refused; a
-    quantisation refused for another reason fails ``generator_range``."""
-    if any(f.status == "fail" and f.rule in ("actuator_range", "generator_range") for f in report.findings):
+    quantisation refused for another reason fails ``generator_range`` (:func:`_refused_codes`)."""
+    if any(f.status == "fail" and f.rule in RANGE_RULES for f in report.findings):
         return None
-    if playing.quantisation is None:
-        report.findings.append(Finding("generator_range", "fail", None, None, playing.drive_unit, None,
-                                       playing.quantisation_refusal, "see the message"))
+    report.findings.extend(_refused_codes(report.findings, playing))
     return playing.quantisation
+
+
+#: the rules whose failure says why no code window plays a drive
+RANGE_RULES = ("actuator_range", "generator_range", "generator_amplitude")
+
+
+def _refused_codes(found: list, playing) -> list[Finding]:
+    """A failed ``generator_range`` with the refusal's words when no code window plays the drive and
+    no rule in ``found`` (:data:`RANGE_RULES`) has already failed it with its numbers; else nothing."""
+    if playing.quantisation is not None or any(f.status == "fail" and f.rule in RANGE_RULES for f in found):
+        return []
+    return [Finding("generator_range", "fail", None, None, playing.drive_unit, None,
+                    playing.quantisation_refusal, "see the message")]
 
 
 # -- laser rules -------------------------------------------------------------------
@@ -576,9 +590,12 @@ def output_kind_finding(playing) -> Finding:
 
 
 def generator_findings(playing) -> list[Finding]:
-    """The generator's output range at the real load, its DDS, and the output channel."""
+    """The generator's output range at the real load, the amplitude its separate amplitude and
+    offset limits allow, its DDS, and the output channel."""
     gen = playing.generator
     out = [_generator_range(gen, playing.drive_range)]
+    if gen.output.kind == "voltage" and gen.output.amplitude_max is not None:
+        out.append(_generator_amplitude(playing))
     dds = playing.laser.chain.dds
     if dds is not None:
         o = gen.output
@@ -619,6 +636,38 @@ def _generator_range(gen, drive_range) -> Finding:
                   f"the DDS must make {dmin / 1e6:.6g} to {dmax / 1e6:.6g} MHz; generator '{gen.key}' makes "
                   f"{out.range_min / 1e6:g} to {out.range_max / 1e6:g} MHz",
                   "change the offset lock's divider or reference so the DDS frequency fits")
+
+
+def _generator_amplitude(playing) -> Finding:
+    """``generator_amplitude``: the peak-to-peak the drive needs programmed, about the offset nearest
+    its centre that ``offset_max`` allows (:func:`sweepgen.sampling.amplitude_window`), within
+    ``amplitude_max``."""
+    from sweepgen.sampling import amplitude_text, amplitude_window
+
+    out = playing.generator.output
+    k = out.delivered_factor
+    lo_p, hi_p = playing.drive_range[0] / k, playing.drive_range[1] / k
+    offset, amplitude = amplitude_window(lo_p, hi_p, out)
+    keys = f"outputs.{playing.output}" if playing.output in playing.generator.outputs else "output"
+    text = f"{playing.address}: " + amplitude_text(lo_p, hi_p, offset, amplitude, out, keys)
+    return upper("generator_amplitude", amplitude, out.amplitude_max, "V", text,
+                 _amplitude_advice(playing, offset != 0.5 * (lo_p + hi_p), keys))
+
+
+def _amplitude_advice(playing, offset_limited: bool, keys: str) -> str:
+    """What to change when a drive needs more peak-to-peak than the output plays."""
+    if playing.kind == "gate":
+        narrower = f"bring channels.{playing.name}.dark and bright closer together"
+    elif playing.kind == "marker":
+        narrower = f"bring timing.markers.{playing.name}.high and low closer together"
+    else:
+        narrower = "narrow the sweep (slow over a smaller velocity range)"
+    o_max = playing.generator.output.offset_max
+    centre = (f"move the chain's set point (set_point / reference) so the drive is centred "
+              f"{f'within ±{o_max:g} V' if o_max else 'on 0 V'}, " if offset_limited and playing.kind == "frequency"
+              else "")
+    return (f"{centre}{narrower}, or use an output (or an amplifier) that plays more peak-to-peak "
+            f"({keys}.amplitude_max, offset_max)")
 
 
 # -- sample-rate rules -------------------------------------------------------------
@@ -938,11 +987,9 @@ def channel_findings(playing) -> list[Finding]:
     the generator's output and sample-rate rules and its codes; for a gate or marker its input's safe
     range, the generator's output and its codes."""
     found = [output_kind_finding(playing)]
-    if found[0].status != "fail":
+    kind_fits = found[0].status != "fail"
+    if kind_fits:
         found += generator_findings(playing)
-        if playing.quantisation is None:
-            found.append(Finding("generator_range", "fail", None, None, playing.drive_unit, None,
-                                 playing.quantisation_refusal, "see the message"))
     if playing.kind == "frequency":
         sweep = SweepSamples.of(playing.schedule, playing.laser.chain)
         found = laser_findings(playing, sweep) + found
@@ -954,6 +1001,8 @@ def channel_findings(playing) -> list[Finding]:
         if rng.status == "warn":
             rng.status, rng.advice = "pass", ""
         found.insert(0, rng)
+    if kind_fits:
+        found += _refused_codes(found, playing)
     for f in found:
         f.rule = f"{playing.name}.{f.rule}"
     return found

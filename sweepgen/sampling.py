@@ -334,22 +334,46 @@ def quantisation(drive_min: float, drive_max: float, generator, chain) -> Quanti
 
 def _separate_limits(lo_p: float, hi_p: float, offset: float, amplitude: float, generator) -> tuple[float, float]:
     """``(offset, amplitude)`` within an output's separate limits (``amplitude_max`` peak-to-peak,
-    ``|offset| <= offset_max``), covering the programmed window ``[lo_p, hi_p]``; refused otherwise."""
+    ``|offset| <= offset_max``), covering the programmed window ``[lo_p, hi_p]``: the rounded
+    ``(offset, amplitude)`` given when they fit, else :func:`amplitude_window`; refused otherwise."""
     out = generator.output
     a_max, o_max = out.amplitude_max, out.offset_max
     slack = 1e-12 * max(a_max, 1.0)
-    if hi_p - lo_p > a_max + slack:
-        raise CheckFailed(f"the drive needs {hi_p - lo_p:.6g} V peak-to-peak programmed but generator "
-                          f"'{generator.key}' plays at most {a_max:g} V peak-to-peak (output.amplitude_max)")
     if abs(offset) <= o_max + slack and amplitude <= a_max + slack:
         return offset, amplitude
-    offset = min(max(0.5 * (lo_p + hi_p), -o_max), o_max)
-    amplitude = max(2.0 * max(hi_p - offset, offset - lo_p), 1e-6 * a_max)
+    offset, amplitude = amplitude_window(lo_p, hi_p, out)
     if amplitude > a_max + slack:
-        raise CheckFailed(f"the drive needs {lo_p:.6g} to {hi_p:.6g} V programmed: centred within the offset "
-                          f"limit ±{o_max:g} V that takes {amplitude:.6g} V peak-to-peak, above generator "
-                          f"'{generator.key}''s {a_max:g} V peak-to-peak (output.amplitude_max, offset_max)")
+        raise CheckFailed(f"generator '{generator.key}': " + amplitude_text(lo_p, hi_p, offset, amplitude, out))
     return offset, amplitude
+
+
+def amplitude_window(lo_p: float, hi_p: float, output) -> tuple[float, float]:
+    """``(offset, amplitude)``: the narrowest window (V programmed; amplitude peak-to-peak) that covers
+    ``[lo_p, hi_p]`` with its offset within ``±output.offset_max``.
+
+    The offset is the drive's centre where the limit allows it, else the limit nearest the centre;
+    the amplitude is twice the larger distance from that offset to an end of the drive (at least
+    ``1e-6 · amplitude_max``, so that a flat drive still gets a window). The output plays the drive
+    when the amplitude is at most ``output.amplitude_max``: the checker's ``generator_amplitude`` rule
+    judges this value, and :func:`quantisation` refuses a drive that needs more.
+    """
+    o_max = output.offset_max
+    offset = min(max(0.5 * (lo_p + hi_p), -o_max), o_max) + 0.0          # + 0.0: no -0 V at a zero limit
+    amplitude = max(2.0 * max(hi_p - offset, offset - lo_p), 1e-6 * output.amplitude_max)
+    return offset, amplitude
+
+
+def amplitude_text(lo_p: float, hi_p: float, offset: float, amplitude: float, output, keys: str = "output") -> str:
+    """The amplitude a drive ``[lo_p, hi_p]`` (V programmed) needs about ``offset`` (from
+    :func:`amplitude_window`), in words, naming the profile keys ``{keys}.amplitude_max`` and
+    ``{keys}.offset_max``."""
+    centre = 0.5 * (lo_p + hi_p)
+    where = (f"centred on it at {offset:.6g} V, within {keys}.offset_max ±{output.offset_max:g} V"
+             if offset == centre else
+             f"about an offset of {offset:.6g} V, the nearest its centre ({centre:.6g} V) that {keys}.offset_max "
+             f"±{output.offset_max:g} V allows")
+    return (f"the drive needs {lo_p:.6g} to {hi_p:.6g} V programmed: {amplitude:.6g} V peak-to-peak {where}; "
+            f"the output plays at most {output.amplitude_max:g} V peak-to-peak ({keys}.amplitude_max)")
 
 
 def drive_to_codes(drive, q: Quantisation) -> np.ndarray:

@@ -404,6 +404,34 @@ def test_separate_limits_refuse_an_amplitude_beyond_them():
         sampling.quantisation(-3.0, 3.0, gen.for_output(3), chain)     # output 3: 5 Vpp
 
 
+
+def test_further_outputs_needing_more_peak_to_peak_fail_generator_amplitude_and_nothing_is_sent(write, tmp_path):
+    # outputs 3 and 4 of the bench play at most 5 V peak-to-peak (|offset| <= 2.5 V), their window is ±5 V: a gate
+    # from -3 to 3 V and a marker from -0.5 to 4.9 V fit the window but need 6 and 5.4 V peak-to-peak
+    channels = {"gate": {"kind": "gate", "on": "chirp_start", "on_shift": "-20 us", "off": "chirp_end",
+                         "off_shift": "50 us", "dark": "-3 V", "bright": "3 V", "input_min": "-5 V",
+                         "input_max": "5 V", "output": 3}}
+    timing = {"delay": "0.1 ms", "markers": {"arrival": {"at": "arrival", "width": "20 us", "output": 4,
+                                                         "high": "4.9 V", "low": "-0.5 V"}}}
+    path = write(channels=channels, timing=timing)
+    report = prepare(path).report
+    for name, need, advice in (("gate", 6.0, "channels.gate.dark and bright"),
+                               ("arrival", 5.4, "timing.markers.arrival.high and low")):
+        f = report.finding(f"{name}.generator_amplitude")
+        assert (f.status, f.value, f.limit, f.unit) == ("fail", pytest.approx(need), 5.0, "V")
+        assert f.headroom == pytest.approx((5.0 - need) / 5.0)
+        assert "outputs." in f.message and "amplitude_max" in f.message and "offset_max" in f.message
+        assert advice in f.advice
+        assert report.finding(f"{name}.generator_range").status in ("pass", "warn")
+    assert not [f for f in report.findings if f.advice == "see the message"]
+    out = tmp_path / "out"
+    result = run_cli("export", path, "-f", "raw", "-o", out)
+    assert result.exit_code == 1 and "gate.generator_amplitude" in result.stderr and not out.exists()
+    with instrument_server(load_generator(str(BENCH))) as server:
+        result = run_cli("upload", path, "--resource", server.resource, "--arm")
+        assert result.exit_code == 1 and "nothing is written or sent" in result.stderr
+        assert server.clients == 0 and not server.instrument.ever_armed
+
 def test_the_detuning_played_after_a_trigger_delay_is_flown_on_the_triggers_axis(played):
     # the table's first sample plays 0.1 ms after the trigger; the atoms and the plan live on the trigger's
     # axis, so the detuning the simulation flies must follow the plan there to within the actuator's lag

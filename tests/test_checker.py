@@ -114,6 +114,40 @@ def test_fifty_ohm_doubling_decides_the_generator_range(tmp_path):
     assert q.code_scale == pytest.approx(q.amplitude * 2 / (2 * 8191))
 
 
+
+# an output limiting amplitude (peak-to-peak) and offset apart; range_* default to ±(offset_max + amplitude_max/2)
+@pytest.mark.parametrize("amp, off, wide, status, centred", [
+    ("5 V", "5 V", False, "fail", True),        # fits the ±7.5 V window but needs 5.93 Vpp
+    ("6 V", "0 V", True, "fail", False),        # fits 6 Vpp centred, but the offset must stay at 0 V
+    ("6.5 V", "0 V", True, "warn", False),      # fits with less than 20 % to spare
+    ("10 V", "5 V", False, "pass", True),
+])
+def test_generator_amplitude_judges_the_peak_to_peak_the_offset_limit_leaves(tmp_path, amp, off, wide, status,
+                                                                              centred):
+    out = {"kind": "voltage", "amplitude_max": amp, "offset_max": off, "dac_bits": 14}
+    if wide:
+        out.update(range_min="-10 V", range_max="10 V")
+    r = run(tmp_path, gen=merged(VOLTAGE_BOARD, output=out))
+    lag = physics.lag_velocity(3.0, 0.6, r.scenario.species.gamma, RB_LAMBDA)
+    lo, hi = [(-(v + lag) / RB_LAMBDA + 140e6) / 40e6 for v in (200, 15)]   # drive = (Δ − set point)/coefficient
+    need = hi - lo if centred else 2 * max(hi, -lo)                         # about the centre, or about 0 V
+    a_max = float(amp.split()[0])
+    f = r.finding("generator_amplitude")
+    assert (f.status, f.unit) == (status, "V")
+    assert f.value == pytest.approx(need, rel=1e-6) and f.limit == a_max
+    assert f.headroom == pytest.approx((a_max - need) / a_max, rel=1e-6)
+    assert "amplitude_max" in f.message and "offset_max" in f.message
+    assert (f.advice != "") == (status != "pass") and "see the message" not in f.advice
+    if not centred and status != "pass":
+        assert "set point" in f.advice                                      # centring the drive helps
+    # the window rule still judges the window alone, once; no second finding without numbers
+    assert [g.status for g in r.findings if g.rule == "generator_range"] == ["pass"]
+    assert all(g.value is not None for g in r.findings if g.status == "fail")
+    assert (r.quantisation is None) == (status == "fail")
+    if status == "fail":
+        with pytest.raises(CheckFailed, match="generator_amplitude"):
+            require_playable(r)
+
 def test_slew_rate_fails_with_rate_over_coefficient(tmp_path):
     r = run(tmp_path, laser=merged(PIEZO_LASER, limits={"max_slew": "10 V/ms"}))
     f = r.finding("slew_rate")
