@@ -327,9 +327,9 @@ class _StillOn(InstrumentError):
 
 #: IEEE 488.2 10.19: *OPC? answers the number 1 when all pending operations are complete (recalled)
 _COMPLETE = re.compile(r"^\+?1$")
+
 #: the message when no switch-off could be confirmed
 UNCONFIRMED = "could not confirm that the output is off: check the instrument before touching the setup"
-
 
 class _Session:
     """One upload: the plan, the link to the instrument and the running report."""
@@ -341,6 +341,16 @@ class _Session:
         self.delivery = delivery
         self.report = report
         self.link = VisaLink(resource, plan.backend, plan.timeout, self._log)
+        self.states = {}                      # output -> its state as last read back (output_state)
+
+    def _read_back(self, reads: list) -> None:
+        """Record ``(plan, read, on)`` readbacks in ``output_state``: each output's state as last read
+        (the switch-off's, or after ``output_on`` the switch-on's); one output's entry alone, several
+        as ``{"outputs": [...]}`` in arming order."""
+        for plan, read, on in reads:
+            self.states[plan.channel] = {"output": plan.channel, "state": "on" if on else "off", **read}
+        entries = [self.states[p.channel] for p in self.plans if p.channel in self.states]
+        self.report["output_state"] = entries[0] if len(self.plans) == 1 else {"outputs": entries}
 
     def _log(self, step, kind, command, nbytes, reply=None, duration=None):
         entry = {"step": step, "kind": kind, "command": command, "bytes": nbytes}
@@ -595,12 +605,14 @@ class _Session:
         detail = self._command(step, rendered[st.template], checked)
         has_state = plan.commands.has("output_state")
         if st.step == "output_off" and checked and has_state:
-            self.report["output_state"] = read = self.confirm_off(step)
+            read = self.confirm_off(step)
+            self._read_back([(plan, read, False)])
             detail["detail"] = f"read back: {read['query']} answered {read['reply']}"
         if st.step == "output_on":
             self.report["armed"] = True
             if has_state:
                 read = self.confirm_state(step, on=True)
+                self._read_back([(plan, read, True)])
                 detail["detail"] = f"read back: {read['query']} answered {read['reply']}"
         return detail
 
@@ -645,7 +657,7 @@ class _Session:
                     link.open()
                 if not link.clear_input():
                     continue                  # it keeps talking unasked: nothing it says can be trusted
-                read = self._all_off()
+                reads = self._all_off()
             except _StillOn as exc:
                 still_on = exc.reply
                 continue
@@ -653,7 +665,7 @@ class _Session:
                 refused = exc.reply if exc.reply and "error" in str(exc) else refused
                 continue
             self.report["armed"] = False
-            self.report["output_state"] = read
+            self._read_back(reads)
             what = ("output" if len(self.plans) == 1 else
                     f"every output ({', '.join(str(p.channel) for p in self.plans)})")
             return f"{what} switched off (confirmed on {attempt})"
@@ -664,17 +676,18 @@ class _Session:
             return f"the instrument refused output off (it said: {refused}); {UNCONFIRMED}"
         return UNCONFIRMED
 
-    def _all_off(self) -> dict:
-        """``output_off`` for every output, each read back; the error queue must stay empty."""
+    def _all_off(self) -> list:
+        """``output_off`` for every output, each read back; the error queue must stay empty. Returns
+        the readbacks as ``(plan, read, False)``; they confirm nothing unless the queue stays empty."""
         first = self.plans[0].rendered
         self.link.write("output_off", first["clear"])      # so that the queue read last is about this
-        read = None
+        reads = []
         for plan in self.plans:
             self.plan = plan
             self.link.write("output_off", plan.rendered["output_off"])
-            read = self.confirm_off("output_off")
+            reads.append((plan, self.confirm_off("output_off"), False))
         self.check_errors("output_off")
-        return read
+        return reads
 
 
 class _Crc32:

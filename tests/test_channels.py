@@ -197,6 +197,23 @@ def test_arm_switches_every_output_on_in_order(played):
     assert done.report["arm_order"] == [1, 2, 3, 4] and done.report["armed"] is True
 
 
+
+@pytest.mark.parametrize("arm, state, reply", [(True, "on", "1"), (False, "off", "0")])
+def test_upload_reports_each_outputs_state_as_last_read_back(write, arm, state, reply):
+    # every output is read back after its switch-off and, with --arm, after its switch-on: the report gives
+    # each output's last readback, in JSON and in text, not the last output's switch-off alone
+    path = write()
+    with instrument_server(load_generator(str(BENCH))) as server:
+        args = ["upload", path, "--resource", server.resource] + (["--arm"] if arm else [])
+        doc = json.loads(run_cli(*args, "--json").stdout)
+        text = run_cli(*args).stdout
+        assert server.instrument.outputs_on == ([1, 2, 3, 4] if arm else [])
+    assert doc["output_state"] == {"outputs": [{"output": n, "state": state, "query": f"OUTP{n}:STAT?",
+                                                "reply": reply} for n in (1, 2, 3, 4)]}
+    for n in (1, 2, 3, 4):
+        assert f"  output {n}: {'ON' if arm else 'off'} (read back: OUTP{n}:STAT? answered {reply})" in text
+
+
 def test_a_fault_on_the_second_output_leaves_the_first_switched_off(played):
     # the real instrument's output 2 reaches only 3 V, less than the profile says: it takes the repump's
     # amplitude and offset, but refuses to switch the output on, after output 1 was switched on

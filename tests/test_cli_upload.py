@@ -65,7 +65,16 @@ def test_arm_prints_the_caution_then_switches_on():
     assert "piezo" in err and "high-voltage" in err
     assert "scope and a wavemeter" in err
     assert "output: ON" in result.stdout
+    assert "  output 1: ON (read back: OUTP1:STAT? answered 1)" in result.stdout
     assert "verified by readback" in result.stdout
+
+
+def test_arm_json_reports_the_outputs_state_after_switching_it_on():
+    with instrument_server("virtual-awg") as server:
+        result = run(SCENARIO, "--resource", server.resource, "--arm", "--json")
+        assert result.exit_code == 0, result.output
+    doc = json.loads(result.stdout)
+    assert doc["output_state"] == {"output": 1, "state": "on", "query": "OUTP1:STAT?", "reply": "1"}
 
 
 # A dropped connection is charged to the upload even when the socket buffers took the whole

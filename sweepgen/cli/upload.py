@@ -135,3 +135,15 @@ def _print(doc, info, dry_run, arm):
         click.echo(f"{what}: ON" + (" (switched on in this order, each read back)" if outputs else ""))
     else:
         click.echo(f"{what}: off" + ("" if arm else f" (pass --arm to switch {'them' if outputs else 'it'} on)"))
+    for line in _read_back(doc):
+        click.echo(line)
+
+
+def _read_back(doc) -> list[str]:
+    """One line per output whose state was read back (``output_state``): its state as last read, and
+    the query and answer that read it."""
+    state = doc.get("output_state")
+    if not isinstance(state, dict):
+        return []
+    return [f"  output {e['output']}: {'ON' if e['state'] == 'on' else 'off'} (read back: {e['query']} answered "
+            f"{e['reply']})" for e in state.get("outputs", [state])]
