@@ -328,8 +328,23 @@ class _StillOn(InstrumentError):
 #: IEEE 488.2 10.19: *OPC? answers the number 1 when all pending operations are complete (recalled)
 _COMPLETE = re.compile(r"^\+?1$")
 
-#: the message when no switch-off could be confirmed
-UNCONFIRMED = "could not confirm that the output is off: check the instrument before touching the setup"
+
+def _named(channels: list, several: bool) -> str:
+    """How a message names outputs: ``the output`` in a one-output upload, else ``output 2`` or
+    ``outputs 1, 2 and 4``."""
+    if not several:
+        return "the output"
+    if len(channels) == 1:
+        return f"output {channels[0]}"
+    return f"outputs {', '.join(str(n) for n in channels[:-1])} and {channels[-1]}"
+
+
+def _unconfirmed(plans: list) -> str:
+    """The message when no switch-off could be confirmed, naming every output of the upload."""
+    verb = "is" if len(plans) == 1 else "are"
+    return (f"could not confirm that {_named([p.channel for p in plans], len(plans) > 1)} {verb} off: check "
+            f"the instrument before touching the setup")
+
 
 class _Session:
     """One upload: the plan, the link to the instrument and the running report."""
@@ -342,6 +357,7 @@ class _Session:
         self.report = report
         self.link = VisaLink(resource, plan.backend, plan.timeout, self._log)
         self.states = {}                      # output -> its state as last read back (output_state)
+        self.still_on = ""                    # the output a failed switch-off left reported ON, named
 
     def _read_back(self, reads: list) -> None:
         """Record ``(plan, read, on)`` readbacks in ``output_state``: each output's state as last read
@@ -660,6 +676,7 @@ class _Session:
                 reads = self._all_off()
             except _StillOn as exc:
                 still_on = exc.reply
+                self.still_on = _named([self.plan.channel], len(self.plans) > 1)
                 continue
             except InstrumentError as exc:
                 refused = exc.reply if exc.reply and "error" in str(exc) else refused
@@ -670,11 +687,11 @@ class _Session:
                     f"every output ({', '.join(str(p.channel) for p in self.plans)})")
             return f"{what} switched off (confirmed on {attempt})"
         if still_on is not None:
-            return (f"the output may still be ON: after output off the instrument reports it on (it said: "
+            return (f"{self.still_on} may still be ON: after output off the instrument reports it on (it said: "
                     f"{still_on}); check the output by hand before touching the setup")
         if refused is not None:
-            return f"the instrument refused output off (it said: {refused}); {UNCONFIRMED}"
-        return UNCONFIRMED
+            return f"the instrument refused output off (it said: {refused}); {_unconfirmed(self.plans)}"
+        return _unconfirmed(self.plans)
 
     def _all_off(self) -> list:
         """``output_off`` for every output, each read back; the error queue must stay empty. Returns
@@ -792,9 +809,9 @@ class VisaDriver(Driver):
                            "instrument is unknown): check its output by hand")
             else:
                 outcome = session.safe_off()
-                if isinstance(exc, _StillOn) and outcome.startswith("the output may still be ON"):
-                    outcome = ("asked again, on a new connection too, it still does: the output may still be ON; "
-                               "check the output by hand before touching the setup")
+                if isinstance(exc, _StillOn) and outcome.startswith(f"{session.still_on} may still be ON"):
+                    outcome = (f"asked again, on a new connection too, it still does: {session.still_on} may "
+                               f"still be ON; check the output by hand before touching the setup")
             error = InstrumentError(_message(exc), step=exc.step, reply=exc.reply)
             error.args = (f"{error}; {outcome}",)
             raise error from None

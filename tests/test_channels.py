@@ -12,6 +12,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from sweepgen.emulators.instrument import Faults
 from sweepgen.errors import CheckFailed, InstrumentError
 from sweepgen.generator import load_generator
 from sweepgen.playback import MAIN, prepare
@@ -214,6 +215,18 @@ def test_upload_reports_each_outputs_state_as_last_read_back(write, arm, state, 
         assert f"  output {n}: {'ON' if arm else 'off'} (read back: OUTP{n}:STAT? answered {reply})" in text
 
 
+def test_a_silent_instrument_is_reported_unconfirmed_for_every_output_by_number(write, tmp_path):
+    # the virtual instrument's --mute fault: no reply ever comes, so no switch-off of the four outputs is confirmed
+    path = write()
+    bench = tmp_path / "bench.toml"
+    bench.write_text(bench.read_text().replace('timeout = "5 s"', 'timeout = "0.2 s"'))
+    with instrument_server(load_generator(str(bench)), faults=Faults(mute=True)) as server:
+        result = run_cli("upload", path, "--resource", server.resource, "--arm")
+        assert server.instrument.outputs_on == [] and not server.instrument.ever_armed
+    assert result.exit_code == 1
+    assert result.stderr.rstrip().endswith("could not confirm that outputs 1, 2, 3 and 4 are off: check the "
+                                           "instrument before touching the setup")
+
 def test_a_fault_on_the_second_output_leaves_the_first_switched_off(played):
     # the real instrument's output 2 reaches only 3 V, less than the profile says: it takes the repump's
     # amplitude and offset, but refuses to switch the output on, after output 1 was switched on
@@ -371,7 +384,6 @@ def test_a_connection_lost_during_the_second_table_leaves_every_output_off(playe
     # the instrument hangs up in the middle of output 2's block; a new connection switches all off
     from sweepgen.drivers.base import Delivery
     from sweepgen.drivers.visa import VisaDriver
-    from sweepgen.emulators.instrument import Faults
 
     gen = load_generator(str(BENCH))
     tables = [played.table(n) for n in played.channels]
