@@ -160,6 +160,14 @@ def test_ctrl_c_stops_the_search_and_writes_what_finished(fast_file, tmp_path):
     import signal
     import threading
 
+    import dataclasses
+
+    from sweepgen.scenario import load_scenario
+    from sweepgen.simulate import simulate
+
+    sc = load_scenario(fast_file)          # the compiled step made ready first, so that the signal meets the search
+    simulate(dataclasses.replace(sc, chirp=dataclasses.replace(sc.chirp, start_velocity=180.0)), atoms=50,
+             workers=1, baselines=False)
     timer = threading.Timer(1.5, os.kill, (os.getpid(), signal.SIGINT))
     timer.start()
     try:
