@@ -352,13 +352,16 @@ class Session:
                   crc32=self.plans[0].send_crc)
 
     def safe_disarm(self) -> str:
-        """After a failure: switch the board's output off and read it back; says what happened.
+        """After a failure: switch the board's output off (every channel of this upload: one switch) and
+        read it back; says what happened, naming the channels when there are several.
 
         The confirmation is the board's answer to this DISARM (matched by
         sequence number and request type, after the input was cleared) and a
         STATUS that reports the output off.
         """
-        unconfirmed = "could not confirm that the board's output is off: check it before going on"
+        outputs, are, were = self._outputs()
+        them = "it" if are == "is" else "them"
+        unconfirmed = f"could not confirm that {outputs} {are} off: check {them} before going on"
         try:
             self.link.retries = min(self.link.retries, 2)
             self.link.flush_input()
@@ -372,11 +375,20 @@ class Session:
             return unconfirmed
         if armed:
             self.report["steps"].append({"step": "disarm", "ok": False, "detail": "STATUS reports armed"})
-            return ("the output may still be ON: the board acknowledged DISARM but its STATUS reports the output "
-                    "armed; check it by hand before going on")
+            still = "the output" if are == "is" else outputs
+            return (f"{still} may still be ON: the board acknowledged DISARM but its STATUS reports the output "
+                    f"armed; check {them} by hand before going on")
         self.report["armed"] = False
         self.report["steps"].append({"step": "disarm", "ok": True, "detail": "after a failure, read back"})
-        return "the board's output was switched off"
+        return f"{outputs} {were} switched off"
+
+    def _outputs(self) -> tuple[str, str, str]:
+        """The outputs this upload plays, as the switch-off messages name them, with their verbs."""
+        channels = sorted({p.channel for p in self.plans})
+        if len(channels) < 2:
+            return "the board's output", "is", "was"
+        named = ", ".join(str(c) for c in channels[:-1]) + f" and {channels[-1]}"
+        return f"the board's outputs (channels {named})", "are", "were"
 
 
 def _profile_problems(output, bits: int, clock: int) -> list:

@@ -324,7 +324,7 @@ def test_a_fault_on_the_second_channel_leaves_every_output_off():
             deliver_to_board(tables, served.url, arm=True, options={"timing": PULSED})
     message = str(info.value)
     assert "step 'verify'" in message and "RANGE" in message and info.value.exit_code == 1
-    assert message.endswith("the board's output was switched off")
+    assert message.endswith("the board's outputs (channels 1 and 2) were switched off"), message
     assert not board.armed and 0x07 not in board.requests        # ARM never sent
     assert 1 in board.tables and 2 not in board.tables            # channel 1 committed, never played
 
@@ -342,7 +342,7 @@ def test_a_fault_on_the_emulators_second_channel_leaves_the_first_off():
         assert not board.armed and "arm" not in [e[0] for e in board.events]
         assert np.array_equal(board.tables[1].codes(), words[1]) and 2 not in board.tables
     assert "channel 2 was not committed" in str(info.value)
-    assert str(info.value).endswith("the board's output was switched off")
+    assert str(info.value).endswith("the board's outputs (channels 1 and 2) were switched off"), str(info.value)
 
 
 def test_a_board_that_refuses_disarm_is_reported_as_unconfirmed_off():
@@ -353,7 +353,7 @@ def test_a_board_that_refuses_disarm_is_reported_as_unconfirmed_off():
             deliver_to_board(tables, served.url, arm=True)
     message = str(info.value)
     assert info.value.exit_code == 1 and "step 'disarm': the board refused DISARM" in message
-    assert "could not confirm that the board's output is off" in message
+    assert "could not confirm that the board's outputs (channels 1 and 2) are off: check them" in message
     assert "switched off" not in message.replace("could not confirm", "")
     assert 0x02 not in board.requests and 0x07 not in board.requests   # nothing uploaded, never armed
 

@@ -100,5 +100,5 @@ def test_a_pulsed_scenario_on_a_board_that_cannot_trigger_is_refused(scenario, b
     assert result.exit_code == 1 and "Traceback" not in result.stderr
     (error,) = [line for line in result.stderr.splitlines() if line.startswith("sweepgen: error:")]
     assert "step 'hello'" in error and reason in error and "nothing was uploaded or armed" in error
-    assert error.endswith("the board's output was switched off")
+    assert error.endswith("the board's outputs (channels 1, 2 and 3) were switched off"), error
     assert "begin" not in events and "arm" not in events
