@@ -289,7 +289,7 @@ def render(playing, *, digest: str = "", delay: float = 0.0) -> RenderedTable:
     chain = playing.laser.chain
     source = PeriodFrames(playing.schedule, chain, q, sample_rate, period_count)
     choice_doc = {"sample_rate": sample_rate, "period_count": period_count, "count": count,
-                  "limited_by": getattr(choice, "limited_by", None), "reason": getattr(choice, "reason", None)}
+                  "limited_by": getattr(choice, "limited_by", None), "reason": _rate_reason(playing)}
     extra = {
         "period": playing.schedule.period,
         "sampling": choice_doc,
@@ -412,3 +412,14 @@ class PeriodFrames:
         drive[inner:] = self.first_drive
         codes[inner:] = self.first_code
         return Frame(start, time, detuning, drive, codes)
+
+
+def _rate_reason(playing) -> str | None:
+    """Why the table has its sample rate: the choice's own reason for the main light; for a further
+    output the main light's choice, which every output of a scenario shares (they play in step)."""
+    from sweepgen.channels import MAIN_LIGHT
+
+    reason = getattr(playing.rate_choice, "reason", None)
+    if playing.name == MAIN_LIGHT or reason is None:
+        return reason
+    return f"the main light's rate, which every output of the scenario shares (they play in step): {reason}"

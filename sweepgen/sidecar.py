@@ -52,8 +52,10 @@ sweepgen. Its keys (SI units; frequencies and detunings in Hz):
     ``channel``, ``amplitude`` and ``offset`` (V, voltage outputs).
 ``chain``, ``sampling``, ``quantisation``
     How the drive, the sample rate and the codes were chosen (from the
-    renderer): the stages, the rate and what limited it, the code window and
-    the DAC's full scale.
+    renderer): the stages, the rate and what limited it (a further output's
+    table plays at the main light's rate, which every output of a scenario
+    shares; its ``sampling.reason`` says so), the code window and the DAC's
+    full scale.
 ``drive_range``, ``code_range``, ``safe_range``
     The drive over one period (exact extremes), the codes that span it, and
     the actuator's safe input range it was checked against.

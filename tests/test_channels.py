@@ -658,6 +658,9 @@ def test_a_gate_and_a_marker_table_hold_a_level_in_every_file(exported):
         assert all("Hz" not in stage["unit"] for stage in side["chain"]["stages"])
         level = np.loadtxt(csv, delimiter=",", skiprows=1, usecols=1)
         assert set(np.round(level, 3)) == {0.0, 1.0}
+        # its rate is the main light's (every output plays in step), and its sampling says so
+        assert side["sampling"]["reason"].startswith("the main light's rate, which every output of the scenario "
+                                                     "shares"), side["sampling"]
         with h5py.File(exported / "hdf5" / f"scenario-{name}.h5") as f:
             g = f["entry/sweep"]
             assert "detuning" not in g and g.attrs["signal"] == "level"
