@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import time
 
+from sweepgen._format import listed
 from sweepgen.drivers._serial_link import Refused, Restart
 from sweepgen.errors import InstrumentError
 from sweepgen.wire import frames as fr
@@ -387,8 +388,7 @@ class Session:
         channels = sorted({p.channel for p in self.plans})
         if len(channels) < 2:
             return "the board's output", "is", "was"
-        named = ", ".join(str(c) for c in channels[:-1]) + f" and {channels[-1]}"
-        return f"the board's outputs (channels {named})", "are", "were"
+        return f"the board's outputs (channels {listed(channels)})", "are", "were"
 
 
 def _profile_problems(output, bits: int, clock: int) -> list:

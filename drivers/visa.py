@@ -69,6 +69,7 @@ from typing import ClassVar
 
 import numpy as np
 
+from sweepgen._format import listed
 from sweepgen.dialect import split_data
 from sweepgen.drivers._visa_link import LinkLost, VisaLink, check_resource, visa_errors
 from sweepgen.drivers.base import Delivery, Driver
@@ -334,9 +335,7 @@ def _named(channels: list, several: bool) -> str:
     ``outputs 1, 2 and 4``."""
     if not several:
         return "the output"
-    if len(channels) == 1:
-        return f"output {channels[0]}"
-    return f"outputs {', '.join(str(n) for n in channels[:-1])} and {channels[-1]}"
+    return f"output{'s' if len(channels) > 1 else ''} {listed(channels)}"
 
 
 def _unconfirmed(plans: list) -> str:

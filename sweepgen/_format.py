@@ -38,3 +38,9 @@ def si(value, unit: str | None = "", digits: int = 4) -> str:
             return f"{value / factor:.{digits}g} {prefix}{unit}"
     factor, prefix = _PREFIXES[-1]
     return f"{value / factor:.{digits}g} {prefix}{unit}"
+
+
+def listed(items) -> str:
+    """Items in words, for messages: ``1``, ``1 and 2``, ``1, 2 and 4``."""
+    words = [str(x) for x in items]
+    return words[0] if len(words) == 1 else f"{', '.join(words[:-1])} and {words[-1]}"
